@@ -1,0 +1,5 @@
+"""Reranker: candidate features, calibrated logistic model, decisions and evaluation."""
+
+from __future__ import annotations
+
+__all__: list[str] = []

@@ -1,0 +1,109 @@
+"""Text to tokens: normalization, case folding, token pattern, stopwords and stemming."""
+
+from __future__ import annotations
+
+import re
+import unicodedata
+from collections.abc import Iterable
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import snowballstemmer
+from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS, strip_accents_unicode
+
+# scikit-learn's default token pattern: runs of two or more word characters.
+DEFAULT_TOKEN_PATTERN = r"(?u)\b\w\w+\b"
+
+
+@dataclass(frozen=True)
+class AnalyzerConfig:
+    """Everything that decides how text becomes tokens; stored in each index's manifest."""
+
+    normalization: str = "NFKC"
+    casefold: bool = True
+    strip_accents: bool = True
+    token_pattern: str = DEFAULT_TOKEN_PATTERN
+    stopwords: str | tuple[str, ...] = "english"
+    stemmer: str | None = "english"
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-JSON form of the configuration."""
+        data = asdict(self)
+        if isinstance(self.stopwords, tuple):
+            data["stopwords"] = list(self.stopwords)
+        return data
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> AnalyzerConfig:
+        """Rebuild a configuration written by `to_dict`, rejecting unknown keys."""
+        known = {f for f in cls.__dataclass_fields__}
+        unknown = set(data) - known
+        if unknown:
+            raise ValueError(f"unknown analyzer settings: {sorted(unknown)}")
+        values = dict(data)
+        if isinstance(values.get("stopwords"), list):
+            values["stopwords"] = tuple(values["stopwords"])
+        return cls(**values)
+
+
+def _stopword_set(spec: str | tuple[str, ...]) -> frozenset[str]:
+    if isinstance(spec, tuple):
+        return frozenset(spec)
+    if spec == "english":
+        return frozenset(ENGLISH_STOP_WORDS)
+    if spec in ("none", ""):
+        return frozenset()
+    raise ValueError(f"stopwords must be 'english', 'none' or a list of words, not {spec!r}")
+
+
+class Analyzer:
+    """Turns text into index terms the same way for articles and clues."""
+
+    def __init__(self, config: AnalyzerConfig | None = None, **settings: Any) -> None:
+        if config is None:
+            config = AnalyzerConfig(**settings)
+        elif settings:
+            raise ValueError("pass either an AnalyzerConfig or keyword settings, not both")
+        if config.normalization not in ("NFC", "NFKC", "NFD", "NFKD", "none"):
+            raise ValueError(f"normalization must be NFC, NFKC, NFD, NFKD or none, not {config.normalization!r}")
+        self.config = config
+        self._pattern = re.compile(config.token_pattern)
+        self._stopwords = _stopword_set(config.stopwords)
+        if config.stemmer:
+            try:
+                # snowballstemmer uses the C PyStemmer when it is installed.
+                self._stemmer = snowballstemmer.stemmer(config.stemmer)
+            except KeyError as exc:
+                raise ValueError(f"unknown stemmer language {config.stemmer!r}") from exc
+        else:
+            self._stemmer = None
+
+    def normalize(self, text: str) -> str:
+        """Unicode-normalize, case-fold and optionally strip accents."""
+        if self.config.normalization != "none":
+            text = unicodedata.normalize(self.config.normalization, text)
+        if self.config.casefold:
+            text = text.casefold()
+        if self.config.strip_accents:
+            text = strip_accents_unicode(text)
+        return text
+
+    def words(self, text: str) -> list[str]:
+        """Normalized words before stopword removal and stemming."""
+        return self._pattern.findall(self.normalize(text))
+
+    def tokens(self, text: str) -> list[str]:
+        """Index terms of `text`: words minus stopwords, stemmed."""
+        stop = self._stopwords
+        kept = [w for w in self._pattern.findall(self.normalize(text)) if w not in stop]
+        if self._stemmer is not None and kept:
+            return list(self._stemmer.stemWords(kept))
+        return kept
+
+    def tokens_many(self, texts: Iterable[str]) -> list[list[str]]:
+        """`tokens` for each text."""
+        return [self.tokens(t) for t in texts]
+
+    def __repr__(self) -> str:
+        return f"Analyzer({self.config!r})"

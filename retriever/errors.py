@@ -1,0 +1,38 @@
+"""Exceptions raised by the retrieval core, all rooted in RetrieverError."""
+
+from __future__ import annotations
+
+
+class RetrieverError(Exception):
+    """Base class of every error the retrieval core raises on purpose."""
+
+
+class CorpusError(RetrieverError):
+    """Raised when a corpus file has a bad record; names the file, line and field."""
+
+    def __init__(self, message: str, *, file: str = "", line: int = 0, field: str = "") -> None:
+        self.file = file
+        self.line = line
+        self.field = field
+        self.reason = message
+        where = file or "<records>"
+        if line:
+            where += f", line {line}"
+        if field:
+            where += f", field '{field}'"
+        super().__init__(f"{where}: {message}")
+
+
+class IndexFormatError(RetrieverError):
+    """Raised when a folder is not a readable hunchwise index (missing, foreign, corrupt)."""
+
+
+class UnknownDocumentError(RetrieverError, KeyError):
+    """Raised when an article id is not in the index."""
+
+    def __init__(self, doc_id: str) -> None:
+        self.doc_id = doc_id
+        super().__init__(f"no article with id {doc_id!r} in the index")
+
+    def __str__(self) -> str:
+        return str(self.args[0])

@@ -1,0 +1,233 @@
+"""A loaded BM25 index: search one clue or many, and look articles up."""
+
+from __future__ import annotations
+
+import json
+import threading
+from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import cached_property
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import store
+from .analyzer import Analyzer, AnalyzerConfig
+from .bm25 import BM25Params
+from .errors import IndexFormatError, UnknownDocumentError
+from .links import NameResolver
+
+
+@dataclass(frozen=True)
+class Hit:
+    """One retrieved article: its id, title, BM25 score, 1-based rank and row in the index."""
+
+    doc_id: str
+    title: str
+    score: float
+    rank: int
+    row: int
+
+
+@dataclass(frozen=True)
+class Document:
+    """One article's stored fields plus what the index derived from them."""
+
+    id: str
+    title: str
+    base: str
+    qualifier: str
+    text: str
+    links: tuple[str, ...]
+    aliases: tuple[str, ...]
+    popularity: float | None
+    inlinks: int
+    metadata: dict[str, Any]
+    row: int
+
+
+class _Field:
+    """Term-major postings of one field: CSR arrays over the shared vocabulary."""
+
+    def __init__(self, folder: Path, prefix: str, n_terms: int, n_postings: int) -> None:
+        self.indptr = store.open_array(folder, f"{prefix}_indptr", "int64", n_terms + 1)
+        self.docs = store.open_array(folder, f"{prefix}_docs", "int32", n_postings)
+        self.weight = store.open_array(folder, f"{prefix}_weight", "float32", n_postings)
+        if n_terms and int(self.indptr[-1]) != n_postings:
+            raise IndexFormatError(f"{folder}: {prefix}_indptr does not match the postings; rebuild the index")
+
+
+class Index:
+    """A read-only BM25 index loaded from a folder; safe to search from many threads."""
+
+    def __init__(self, folder: str | Path, *, title_weight: float | None = None) -> None:
+        self.path = Path(folder)
+        self.manifest = store.read_manifest(self.path)
+        try:
+            counts = self.manifest["counts"]
+            self.n_docs: int = int(counts["articles"])
+            self.n_terms: int = int(counts["terms"])
+            self.analyzer = Analyzer(AnalyzerConfig.from_dict(self.manifest["analyzer"]))
+            self.params = BM25Params(**self.manifest["bm25"])
+            vocab = json.loads((self.path / store.VOCAB).read_text(encoding="utf-8"))
+            keys = json.loads((self.path / store.KEYS).read_text(encoding="utf-8"))
+            self.body = _Field(self.path, "body", self.n_terms, int(counts["body_postings"]))
+            self.title_field = _Field(self.path, "title", self.n_terms, int(counts["title_postings"]))
+        except (KeyError, TypeError, ValueError, FileNotFoundError) as exc:
+            if isinstance(exc, IndexFormatError):
+                raise
+            raise IndexFormatError(f"{self.path}: the index is incomplete or damaged ({exc!r}); rebuild it") from exc
+        if len(vocab) != self.n_terms or any(len(keys[k]) != self.n_docs for k in ("ids", "titles")):
+            raise IndexFormatError(f"{self.path}: vocabulary or keys do not match the manifest; rebuild the index")
+        self.title_weight = self.params.title_weight if title_weight is None else float(title_weight)
+        self._vocab: dict[str, int] = {term: i for i, term in enumerate(vocab)}
+        self.ids: list[str] = keys["ids"]
+        self.titles: list[str] = keys["titles"]
+        self.bases: list[str] = keys["bases"]
+        self.qualifiers: list[str] = keys["qualifiers"]
+        self.aliases: list[list[str]] = keys["aliases"]
+        self.doc_len = store.open_array(self.path, "doc_len", "int32", self.n_docs)
+        self.inlinks = store.open_array(self.path, "inlinks", "int32", self.n_docs)
+        self.popularity = store.open_array(self.path, "popularity", "float64", self.n_docs)
+        self._store = store.StoreReader(self.path, self.n_docs)
+        self._local = threading.local()
+
+    # -- identity -------------------------------------------------------
+    @property
+    def version(self) -> str:
+        """Short identifier of this index's content and parameters."""
+        return str(self.manifest["index_version"])
+
+    @cached_property
+    def resolver(self) -> NameResolver:
+        """Name-to-row lookup over ids, titles and aliases (built on first use)."""
+        return NameResolver(self.ids, self.titles, self.aliases)
+
+    def row_of(self, doc_id: str) -> int:
+        """Row of an article id; raises UnknownDocumentError."""
+        row = self._row_by_id.get(doc_id)
+        if row is None:
+            raise UnknownDocumentError(doc_id)
+        return row
+
+    @cached_property
+    def _row_by_id(self) -> dict[str, int]:
+        return {doc_id: row for row, doc_id in enumerate(self.ids)}
+
+    def resolve(self, name: str) -> str | None:
+        """Article id that `name` (id, title, normalized title or alias) refers to, or None."""
+        row = self.resolver.row(name)
+        return None if row is None else self.ids[row]
+
+    def document(self, doc_id: str) -> Document:
+        """Stored fields of one article."""
+        return self.document_at(self.row_of(doc_id))
+
+    def document_at(self, row: int) -> Document:
+        """Stored fields of the article in `row`."""
+        rec = self._store.record(row)
+        pop = float(self.popularity[row])
+        return Document(
+            id=rec["id"], title=rec["title"], base=self.bases[row], qualifier=self.qualifiers[row],
+            text=rec["text"], links=tuple(rec["links"]), aliases=tuple(rec["aliases"]),
+            popularity=None if np.isnan(pop) else pop, inlinks=int(self.inlinks[row]),
+            metadata=rec["metadata"], row=row,
+        )
+
+    # -- scoring --------------------------------------------------------
+    def term_ids(self, tokens: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """Known query terms as (term ids, counts in the query); unknown tokens are dropped."""
+        counts: dict[int, int] = {}
+        get = self._vocab.get
+        for tok in tokens:
+            tid = get(tok)
+            if tid is not None:
+                counts[tid] = counts.get(tid, 0) + 1
+        return np.fromiter(counts.keys(), np.int64, len(counts)), np.fromiter(counts.values(), np.float64, len(counts))
+
+    def _buffer(self) -> np.ndarray:
+        buf = getattr(self._local, "buf", None)
+        if buf is None:
+            buf = self._local.buf = np.zeros(self.n_docs, dtype=np.float64)
+        return buf
+
+    def _accumulate(self, buf: np.ndarray, tids: np.ndarray, qtf: np.ndarray) -> list[np.ndarray]:
+        # Hand-written rather than a scipy product: adding only the postings of the query's
+        # terms into a reused dense buffer, and later choosing the top k among the touched
+        # rows only, keeps a query's cost proportional to its postings, not to the corpus.
+        touched = []
+        fields = [(self.body, 1.0)]
+        if self.title_weight > 0:
+            fields.append((self.title_field, self.title_weight))
+        for fld, scale in fields:
+            indptr, docs, weight = fld.indptr, fld.docs, fld.weight
+            for t, q in zip(tids.tolist(), qtf.tolist(), strict=True):
+                s, e = int(indptr[t]), int(indptr[t + 1])
+                if s == e:
+                    continue
+                d = docs[s:e]
+                factor = q * scale
+                if factor == 1.0:
+                    buf[d] += weight[s:e]
+                else:
+                    buf[d] += factor * weight[s:e]
+                touched.append(d)
+        return touched
+
+    def score_tokens(self, tokens: Sequence[str]) -> np.ndarray:
+        """BM25 score of every article for already-analyzed tokens. float64, shape (n_docs,)."""
+        tids, qtf = self.term_ids(tokens)
+        scores = np.zeros(self.n_docs, dtype=np.float64)
+        self._accumulate(scores, tids, qtf)
+        return scores
+
+    def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
+        """Top-k articles for already-analyzed tokens, best first (ties by row)."""
+        if k < 1:
+            raise ValueError(f"k must be at least 1, got {k}")
+        tids, qtf = self.term_ids(tokens)
+        if tids.size == 0:
+            return []
+        buf = self._buffer()
+        parts = self._accumulate(buf, tids, qtf)
+        if not parts:
+            return []
+        touched = parts[0] if len(parts) == 1 else np.concatenate(parts)
+        try:
+            # A row appears at most once per (field, term), so the best len(parts) * k
+            # entries of `touched` hold the best k distinct rows.
+            keep = k * len(parts)
+            if touched.size > keep:
+                vals = buf[touched]
+                sel = np.argpartition(vals, touched.size - keep)[touched.size - keep :]
+                cand = np.unique(touched[sel])
+            else:
+                cand = np.unique(touched)
+            cand_scores = buf[cand]
+            order = np.lexsort((cand, -cand_scores))[:k]
+            rows, scores = cand[order].tolist(), cand_scores[order].tolist()
+        finally:
+            buf[touched] = 0.0
+        ids, titles = self.ids, self.titles
+        return [Hit(ids[r], titles[r], s, i + 1, r) for i, (r, s) in enumerate(zip(rows, scores, strict=True))]
+
+    def search(self, clue: str, k: int = 20) -> list[Hit]:
+        """Top-k articles for a free-text clue, best first."""
+        return self.search_tokens(self.analyzer.tokens(clue), k)
+
+    def search_many(self, clues: Sequence[str], k: int = 20) -> list[list[Hit]]:
+        """`search` for each clue, in order."""
+        tokens = self.analyzer.tokens
+        return [self.search_tokens(tokens(c), k) for c in clues]
+
+    def __len__(self) -> int:
+        return self.n_docs
+
+    def __repr__(self) -> str:
+        return f"Index({str(self.path)!r}, articles={self.n_docs}, terms={self.n_terms})"
+
+
+def load_index(folder: str | Path, *, title_weight: float | None = None) -> Index:
+    """Open an index folder (arrays are memory-mapped, so loading is fast and shared)."""
+    return Index(folder, title_weight=title_weight)

@@ -1,0 +1,72 @@
+"""Resolve names (ids, titles, aliases) to article rows and count in-links."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from .corpus import normalize_title
+
+
+class NameResolver:
+    """Maps an id, exact title, normalized title or alias to a row, in that order of trust."""
+
+    def __init__(self, ids: Sequence[str], titles: Sequence[str], aliases: Sequence[Sequence[str]]) -> None:
+        self._by_id = {doc_id: row for row, doc_id in enumerate(ids)}
+        self._by_title = {title: row for row, title in enumerate(titles)}
+        self._by_norm: dict[str, int] = {}
+        for row, title in enumerate(titles):
+            self._by_norm.setdefault(normalize_title(title), row)
+        # An alias shared by several articles names none of them for sure; keep only unique ones.
+        alias_rows: dict[str, set[int]] = {}
+        for row, names in enumerate(aliases):
+            for name in names:
+                alias_rows.setdefault(normalize_title(name), set()).add(row)
+        self._by_alias = {name: next(iter(rows)) for name, rows in alias_rows.items() if len(rows) == 1}
+        self.ambiguous_aliases = sorted(name for name, rows in alias_rows.items() if len(rows) > 1)
+
+    def row(self, name: str) -> int | None:
+        """Row of the article `name` refers to, or None when nothing matches."""
+        for table in (self._by_id, self._by_title):
+            hit = table.get(name)
+            if hit is not None:
+                return hit
+        norm = normalize_title(name)
+        hit = self._by_norm.get(norm)
+        if hit is not None:
+            return hit
+        return self._by_alias.get(norm)
+
+    def how(self, name: str) -> str | None:
+        """Which rule resolved `name`: 'id', 'title', 'normalized_title', 'alias', or None."""
+        if name in self._by_id:
+            return "id"
+        if name in self._by_title:
+            return "title"
+        norm = normalize_title(name)
+        if norm in self._by_norm:
+            return "normalized_title"
+        if norm in self._by_alias:
+            return "alias"
+        return None
+
+
+def count_inlinks(resolver: NameResolver, links: Sequence[Sequence[str]], n_docs: int) -> tuple[np.ndarray, int]:
+    """In-link count of each article: distinct other articles linking to it.
+
+    Returns (counts int32 of shape (n_docs,), number of link strings that matched nothing).
+    """
+    counts = np.zeros(n_docs, dtype=np.int32)
+    unresolved = 0
+    for source, names in enumerate(links):
+        targets: set[int] = set()
+        for name in names:
+            row = resolver.row(name)
+            if row is None:
+                unresolved += 1
+            elif row != source:
+                targets.add(row)
+        for row in targets:
+            counts[row] += 1
+    return counts, unresolved

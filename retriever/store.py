@@ -1,0 +1,180 @@
+"""The index folder on disk: manifest, memory-mapped arrays, article store, atomic swaps."""
+
+from __future__ import annotations
+
+import contextlib
+import ctypes
+import json
+import mmap
+import os
+import shutil
+import uuid
+from collections.abc import Iterable, Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .corpus import Article
+from .errors import IndexFormatError
+
+FORMAT_NAME = "hunchwise-index"
+FORMAT_VERSION = 1
+MANIFEST = "manifest.json"
+STORE = "store.jsonl"
+STORE_OFFSETS = "store_offsets"
+KEYS = "keys.json"
+VOCAB = "vocab.json"
+
+
+def write_json(path: Path, data: Any) -> None:
+    """Write JSON to `path` through a temporary file and a rename, so readers never see half a file."""
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(data, fh, ensure_ascii=False, separators=(",", ":"))
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def save_array(folder: Path, name: str, array: np.ndarray) -> None:
+    """Save one array as `name.npy` with pickling disabled."""
+    np.save(folder / f"{name}.npy", np.ascontiguousarray(array), allow_pickle=False)
+
+
+def open_array(folder: Path, name: str, dtype: str, length: int | None = None) -> np.ndarray:
+    """Memory-map `name.npy` read-only and check its dtype and length."""
+    path = folder / f"{name}.npy"
+    if not path.exists():
+        raise IndexFormatError(f"{folder}: the array file {path.name} is missing; rebuild the index")
+    try:
+        arr = np.load(path, mmap_mode="r", allow_pickle=False)
+    except (ValueError, OSError, EOFError) as exc:
+        raise IndexFormatError(f"{folder}: the array file {path.name} is corrupt ({exc}); rebuild the index") from exc
+    if arr.dtype != np.dtype(dtype) or arr.ndim != 1 or (length is not None and arr.shape[0] != length):
+        raise IndexFormatError(
+            f"{folder}: {path.name} holds {arr.dtype} of shape {arr.shape}, expected {dtype} of length "
+            f"{length}; the index is damaged, rebuild it"
+        )
+    return arr
+
+
+def write_store(folder: Path, articles: Iterable[Article]) -> int:
+    """Write the article store (one JSON line each) and its byte offsets; returns the count."""
+    offsets = [0]
+    with open(folder / STORE, "wb") as fh:
+        for art in articles:
+            line = json.dumps(art.to_record(), ensure_ascii=False, separators=(",", ":")).encode() + b"\n"
+            fh.write(line)
+            offsets.append(offsets[-1] + len(line))
+        fh.flush()
+        os.fsync(fh.fileno())
+    save_array(folder, STORE_OFFSETS, np.asarray(offsets, dtype=np.int64))
+    return len(offsets) - 1
+
+
+class StoreReader:
+    """Random access to stored articles by row, through a read-only memory map."""
+
+    def __init__(self, folder: Path, n_docs: int) -> None:
+        self._offsets = open_array(folder, STORE_OFFSETS, "int64", n_docs + 1)
+        path = folder / STORE
+        if not path.exists():
+            raise IndexFormatError(f"{folder}: the article store {STORE} is missing; rebuild the index")
+        size = path.stat().st_size
+        if size != int(self._offsets[-1]):
+            raise IndexFormatError(f"{folder}: {STORE} is {size} bytes, expected {int(self._offsets[-1])}; rebuild")
+        with open(path, "rb") as fh:
+            self._map = mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) if size else None
+
+    def record(self, row: int) -> dict[str, Any]:
+        """The stored record of one row, as in the corpus file."""
+        if self._map is None:
+            raise IndexFormatError("the article store is empty")
+        start, end = int(self._offsets[row]), int(self._offsets[row + 1])
+        data: dict[str, Any] = json.loads(self._map[start:end])
+        return data
+
+    def articles(self) -> Iterator[Article]:
+        """Every stored article in row order."""
+        for row in range(len(self._offsets) - 1):
+            rec = self.record(row)
+            yield Article(
+                id=rec["id"], title=rec["title"], text=rec["text"], links=tuple(rec["links"]),
+                aliases=tuple(rec["aliases"]), popularity=rec["popularity"], metadata=rec["metadata"],
+            )
+
+
+def read_manifest(folder: Path) -> dict[str, Any]:
+    """Read and check the manifest of an index folder."""
+    if not folder.is_dir():
+        raise IndexFormatError(f"{folder}: no such index folder; build one with 'hunchwise index build'")
+    path = folder / MANIFEST
+    if not path.exists():
+        raise IndexFormatError(f"{folder}: not a hunchwise index (no {MANIFEST}); build one with 'hunchwise index build'")
+    try:
+        manifest: dict[str, Any] = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise IndexFormatError(f"{path}: the manifest is not valid JSON; rebuild the index") from exc
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
+        raise IndexFormatError(f"{folder}: {MANIFEST} does not describe a hunchwise index")
+    version = manifest.get("format_version")
+    if version != FORMAT_VERSION:
+        raise IndexFormatError(
+            f"{folder}: index format version {version} is not supported by this hunchwise "
+            f"(it reads version {FORMAT_VERSION}); rebuild the index with this version"
+        )
+    return manifest
+
+
+_RENAME_EXCHANGE = 2
+
+
+def _exchange(a: Path, b: Path) -> bool:
+    """Atomically swap two paths with renameat2(RENAME_EXCHANGE); False where unsupported."""
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        renameat2 = libc.renameat2
+    except (OSError, AttributeError):
+        return False
+    at_fdcwd = -100
+    rc = renameat2(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), _RENAME_EXCHANGE)
+    return rc == 0
+
+
+@contextlib.contextmanager
+def atomic_folder(target: Path) -> Iterator[Path]:
+    """Yield a temporary sibling folder; on success it replaces `target` in one step.
+
+    A crash before the swap leaves `target` exactly as it was (the temporary folder
+    is left behind with a name starting with '.', and is cleaned up by the next write).
+    """
+    target = target.resolve()
+    target.parent.mkdir(parents=True, exist_ok=True)
+    for stale in target.parent.glob(f".{target.name}.building-*"):
+        shutil.rmtree(stale, ignore_errors=True)
+    tmp = target.parent / f".{target.name}.building-{uuid.uuid4().hex[:8]}"
+    tmp.mkdir()
+    try:
+        yield tmp
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    if target.exists():
+        if not (target / MANIFEST).exists() and any(target.iterdir()):
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise IndexFormatError(f"{target} exists and is not a hunchwise index; refusing to replace it")
+        if _exchange(tmp, target):
+            shutil.rmtree(tmp, ignore_errors=True)  # tmp now holds the old index
+            return
+        old = target.parent / f".{target.name}.old-{uuid.uuid4().hex[:8]}"
+        os.rename(target, old)
+        os.rename(tmp, target)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        os.rename(tmp, target)
+
+
+def folder_size(folder: Path) -> int:
+    """Bytes on disk of the files in a folder."""
+    return sum(p.stat().st_size for p in folder.iterdir() if p.is_file())
