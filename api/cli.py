@@ -6,6 +6,7 @@ import argparse
 import sys
 from collections.abc import Callable, Sequence
 
+from reranker.errors import RerankerError
 from retriever.errors import RetrieverError
 
 from . import cli_index
@@ -46,7 +47,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     func: Callable[[argparse.Namespace], int] = args.func
     try:
         return func(args)
-    except (RetrieverError, ValueError, OSError) as exc:
+    except (RetrieverError, RerankerError, ValueError, OSError) as exc:
         return fail(str(exc))
     except KeyboardInterrupt:
         return fail("interrupted", 130)

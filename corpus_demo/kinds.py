@@ -243,7 +243,7 @@ GENERAL_FACTS: tuple[str, ...] = (
     "A street in {town} is named after {S}.",
     "{S} appears in the painting {painting}.",
 )
-NAMED_AFTER = "{S} takes its name from {namesake}."
+NAMED_AFTER = "{S} takes its name from the {nkind} {namesake}."
 
 # fmt: off
 VALUES: dict[str, tuple[str, ...]] = {

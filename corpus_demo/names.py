@@ -3,16 +3,17 @@
 from __future__ import annotations
 
 import random
+from collections.abc import Set as AbstractSet
 
 # Onsets, vowels and codas chosen to give an "island-chronicle" flavour while
 # avoiding most everyday English spellings.
 ONSETS = (
     "b br d dr f g gr h k kh kr l m n p pr r s sk st t th tr v vr z ch y"
 ).split()
-VOWELS = "a e i o u ae ai ei ou y".split()
-CODAS = ["", "", "", "l", "n", "r", "s", "th", "sk", "rn", "st", "v", "m"]
+VOWELS = "a a e e i o o u ae ai y".split()
+CODAS = ["", "", "", "", "", "l", "n", "r", "s", "th", "sk", "rn", "st", "v", "m"]
 ENDINGS = (
-    "a ora is en eth ane ir ost ys elle ar un ia ayne ovar ess ith orin ulde"
+    "a ora is en eth ane ir ost ys elle ar un ia ayne ovar ess ith orin ulde wen"
 ).split()
 GIVEN_ENDINGS = "a o en in el is ia ar ov une ette ad".split()
 
@@ -42,19 +43,20 @@ def _syllable(rng: random.Random) -> str:
 def _clean(word: str) -> bool:
     """Return True if a candidate looks pronounceable and is not a common word."""
     low = word.lower()
-    if len(low) < 5 or len(low) > 12 or low in BLOCKLIST:
+    if len(low) < 5 or len(low) > 10 or low in BLOCKLIST:
         return False
     # Reject triple letters and awkward doubled vowels such as "aeai".
     for a, b, c in zip(low, low[1:], low[2:]):
         if a == b == c:
             return False
-    return not any(v in low for v in ("aeae", "aiai", "yy", "ouou", "eiei"))
+    bad = ("ii", "aea", "aia", "yy", "uu", "aee", "aie", "yi", "iy", "hh", "kk", "ss")
+    return not any(v in low for v in bad)
 
 
 def place_name(rng: random.Random) -> str:
     """Return one invented single-word name such as 'Velmorane'."""
     while True:
-        n_syl = 1 if rng.random() < 0.35 else 2
+        n_syl = 1 if rng.random() < 0.45 else 2
         word = "".join(_syllable(rng) for _ in range(n_syl)) + rng.choice(ENDINGS)
         if _clean(word):
             return word.capitalize()
@@ -64,8 +66,8 @@ def given_name(rng: random.Random) -> str:
     """Return one invented given name."""
     while True:
         word = _syllable(rng) + rng.choice(GIVEN_ENDINGS)
-        if rng.random() < 0.3:
-            word = _syllable(rng) + word
+        if rng.random() < 0.2:
+            word = rng.choice(ONSETS) + rng.choice(VOWELS) + word
         if _clean(word) or (len(word) == 4 and word.lower() not in BLOCKLIST):
             return word.capitalize()
 
@@ -124,7 +126,9 @@ def person_alias(rng: random.Random, given: str, family: str) -> str:
     return f"{base} {epithet}"
 
 
-def old_name(rng: random.Random, taken: set[str], reserved: frozenset[str]) -> str:
+def old_name(
+    rng: random.Random, taken: AbstractSet[str], reserved: AbstractSet[str]
+) -> str:
     """Return an invented former or alternative name (not used as any title)."""
     while True:
         name = place_name(rng)

@@ -6,7 +6,7 @@ import re
 import unicodedata
 from collections.abc import Iterable
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import Any, Literal, cast
 
 import snowballstemmer
 from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS, strip_accents_unicode
@@ -66,7 +66,9 @@ class Analyzer:
         elif settings:
             raise ValueError("pass either an AnalyzerConfig or keyword settings, not both")
         if config.normalization not in ("NFC", "NFKC", "NFD", "NFKD", "none"):
-            raise ValueError(f"normalization must be NFC, NFKC, NFD, NFKD or none, not {config.normalization!r}")
+            raise ValueError(
+                f"normalization must be NFC, NFKC, NFD, NFKD or none, not {config.normalization!r}"
+            )
         self.config = config
         self._pattern = re.compile(config.token_pattern)
         self._stopwords = _stopword_set(config.stopwords)
@@ -82,7 +84,8 @@ class Analyzer:
     def normalize(self, text: str) -> str:
         """Unicode-normalize, case-fold and optionally strip accents."""
         if self.config.normalization != "none":
-            text = unicodedata.normalize(self.config.normalization, text)
+            form = cast(Literal["NFC", "NFD", "NFKC", "NFKD"], self.config.normalization)
+            text = unicodedata.normalize(form, text)
         if self.config.casefold:
             text = text.casefold()
         if self.config.strip_accents:
@@ -105,5 +108,40 @@ class Analyzer:
         """`tokens` for each text."""
         return [self.tokens(t) for t in texts]
 
+    def term_table(self) -> TermTable:
+        """A fresh word-to-term-id table that analyzes each distinct word only once."""
+        return TermTable(self)
+
+    def term_ids(self, text: str, table: TermTable) -> list[int]:
+        """Ids in `table` of `tokens(text)`, with -1 where a word is a stopword."""
+        return list(map(table.__getitem__, self._pattern.findall(self.normalize(text))))
+
     def __repr__(self) -> str:
         return f"Analyzer({self.config!r})"
+
+
+class TermTable(dict[str, int]):
+    """Maps a normalized word to the id of its term (-1 for stopwords), filled on first sight.
+
+    Indexing runs the stopword check and the stemmer once per distinct word instead of
+    once per occurrence; hits are plain dict lookups done in C by `map`.
+    """
+
+    def __init__(self, analyzer: Analyzer) -> None:
+        super().__init__()
+        self._stop = analyzer._stopwords
+        self._stem = analyzer._stemmer.stemWord if analyzer._stemmer is not None else None
+        self.terms: list[str] = []
+        self._ids: dict[str, int] = {}
+
+    def __missing__(self, word: str) -> int:
+        if word in self._stop:
+            tid = -1
+        else:
+            term = self._stem(word) if self._stem is not None else word
+            tid = self._ids.get(term, -1)
+            if tid < 0:
+                tid = self._ids[term] = len(self.terms)
+                self.terms.append(term)
+        self[word] = tid
+        return tid

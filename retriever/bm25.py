@@ -43,7 +43,8 @@ def idf_okapi(df: np.ndarray, n_docs: int, epsilon: float) -> np.ndarray:
     """Okapi IDF log((N - df + 0.5) / (df + 0.5)) with rank_bm25's floor.
 
     Terms whose IDF is negative (df > N/2) get epsilon x the mean IDF over the
-    vocabulary, exactly as rank_bm25.BM25Okapi does. float64, shape (n_terms,).
+    vocabulary, exactly as rank_bm25.BM25Okapi does, so `df` must hold only terms that
+    occur in the field (df >= 1): an absent term would shift the mean. float64.
     """
     df = np.asarray(df, dtype=np.float64)
     idf = np.log(n_docs - df + 0.5) - np.log(df + 0.5)
@@ -73,7 +74,11 @@ def idf(df: np.ndarray, n_docs: int, params: BM25Params) -> np.ndarray:
 def term_weights(
     tf: np.ndarray, dl: np.ndarray, term_idf: np.ndarray, avgdl: float, k1: float, b: float
 ) -> np.ndarray:
-    """BM25 weight of each posting; all inputs are per posting. float32, shape (n_postings,)."""
+    """BM25 weight of each posting; all inputs are per posting. float64, shape (n_postings,).
+
+    Kept in float64: float32 weights lose the 1e-5 relative agreement with rank_bm25 when
+    positive and floored negative IDFs nearly cancel in a score.
+    """
     tf = np.asarray(tf, dtype=np.float64)
     if avgdl > 0:
         norm = k1 * (1.0 - b + b * np.asarray(dl, dtype=np.float64) / avgdl)
@@ -81,4 +86,4 @@ def term_weights(
         norm = np.full(tf.shape, k1 * (1.0 - b))
     with np.errstate(divide="ignore", invalid="ignore"):
         w = term_idf * (tf * (k1 + 1.0)) / (tf + norm)
-    return np.nan_to_num(w, nan=0.0).astype(np.float32)
+    return np.nan_to_num(w, nan=0.0)

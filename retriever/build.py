@@ -5,8 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 import time
-from collections import defaultdict
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -18,137 +17,147 @@ from tqdm.auto import tqdm
 from . import bm25, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
+from .counting import CHUNK, TermCounter, count_articles, default_workers
 from .index import Index, load_index
 from .links import NameResolver, count_inlinks
 
-CHUNK = 20_000  # articles per sparse chunk while counting terms
-
-
-class _TermCounter:
-    """Counts terms per article into doc-major sparse chunks over one growing vocabulary."""
-
-    def __init__(self) -> None:
-        self.vocab: defaultdict[str, int] = defaultdict(lambda: len(self.vocab))
-        self.chunks: list[sp.csr_matrix] = []
-        self._rows: list[int] = []
-        self._terms: list[int] = []
-        self._n = 0
-
-    def add(self, tokens: Sequence[str]) -> None:
-        """Count the tokens of the next article."""
-        get = self.vocab.__getitem__
-        self._terms.extend(map(get, tokens))
-        self._rows.extend([self._n] * len(tokens))
-        self._n += 1
-        if self._n >= CHUNK:
-            self.flush()
-
-    def add_counts(self, matrix: sp.csr_matrix, terms: Sequence[str]) -> None:
-        """Append already-counted articles (rows of `matrix`, columns named by `terms`)."""
-        self.flush()
-        col_map = np.fromiter((self.vocab[t] for t in terms), np.int64, len(terms))
-        m = matrix.tocoo()
-        self.chunks.append(_csr(m.data, m.row, col_map[m.col], m.shape[0]))
-
-    def flush(self) -> None:
-        """Close the current chunk."""
-        if self._n:
-            rows = np.asarray(self._rows, dtype=np.int64)
-            terms = np.asarray(self._terms, dtype=np.int64)
-            self.chunks.append(_csr(np.ones(len(terms), np.int32), rows, terms, self._n))
-        self._rows, self._terms, self._n = [], [], 0
-
-    def finish(self, order: np.ndarray | None = None) -> tuple[list[str], sp.csc_matrix]:
-        """Sorted vocabulary and the (articles x terms) count matrix in CSC form."""
-        self.flush()
-        n_terms = len(self.vocab)
-        mats = [sp.csr_matrix((c.data, c.indices, c.indptr), shape=(c.shape[0], n_terms)) for c in self.chunks]
-        tf = sp.vstack(mats, format="csr") if mats else sp.csr_matrix((0, n_terms), dtype=np.int32)
-        if order is not None:
-            tf = tf[order]
-        # Sorted vocabulary, and only terms still used: the same corpus always gives the same index.
-        terms = np.array(list(self.vocab.keys()), dtype=object)
-        used = np.flatnonzero(np.diff(tf.tocsc().indptr) > 0)
-        ranked = used[np.argsort(terms[used].astype(str), kind="stable")]
-        return [str(t) for t in terms[ranked]], tf.tocsc()[:, ranked].tocsc()
-
-
-def _csr(data: np.ndarray, rows: np.ndarray, cols: np.ndarray, n_rows: int) -> sp.csr_matrix:
-    n_cols = int(cols.max()) + 1 if cols.size else 0
-    m = sp.coo_matrix((np.asarray(data, np.int32), (rows, cols)), shape=(n_rows, n_cols)).tocsr()
-    m.sum_duplicates()
-    return m
-
-
 def _field_arrays(tf: sp.csc_matrix, params: bm25.BM25Params) -> dict[str, np.ndarray]:
-    """Postings (term-major) and BM25 weights of one field from its count matrix."""
+    """Postings (term-major), BM25 weights and per-term maximum weight of one field."""
     n_docs = tf.shape[0]
     tf.sort_indices()
     doc_len = np.asarray(tf.sum(axis=1)).ravel().astype(np.int64)
     avgdl = float(doc_len.sum()) / n_docs if n_docs else 0.0
     df = np.diff(tf.indptr)
-    term_idf = bm25.idf(df, n_docs, params)
-    per_posting_idf = np.repeat(term_idf, df)
+    # The IDF (and the okapi floor's mean) is over the terms this field contains, as in
+    # rank_bm25; the shared vocabulary also holds terms seen only in the other field.
+    present = df > 0
+    term_idf = np.zeros(df.size, dtype=np.float64)
+    term_idf[present] = bm25.idf(df[present], n_docs, params)
     docs = tf.indices.astype(np.int32)
-    weight = bm25.term_weights(tf.data, doc_len[docs], per_posting_idf, avgdl, params.k1, params.b)
-    return {"indptr": tf.indptr.astype(np.int64), "docs": docs, "tf": tf.data.astype(np.int32),
-            "weight": weight, "doc_len": doc_len.astype(np.int32)}
+    weight = bm25.term_weights(
+        tf.data, doc_len[docs], np.repeat(term_idf, df), avgdl, params.k1, params.b
+    )
+    # Largest weight of each term: the bound that lets a query skip most postings of common terms.
+    max_weight = np.zeros(df.size, dtype=np.float64)
+    if weight.size:
+        max_weight[present] = np.maximum.reduceat(weight, tf.indptr[:-1][present])
+    return {
+        "indptr": tf.indptr.astype(np.int64),
+        "docs": docs,
+        "tf": tf.data.astype(np.int32),
+        "weight": weight,
+        "max_weight": max_weight,
+        "doc_len": doc_len.astype(np.int32),
+    }
 
 
-def _write(out: Path, articles: list[Article], body: _TermCounter, title: _TermCounter,
-           body_order: np.ndarray | None, analyzer: Analyzer, params: bm25.BM25Params,
-           checksum: str, build: dict[str, Any]) -> Index:
-    started = time.perf_counter()
+def _term_major(counter: TermCounter, order: np.ndarray | None) -> tuple[list[str], list[sp.csc_matrix]]:
+    """Sorted vocabulary of the used terms and each field's (articles x terms) CSC counts."""
+    body = counter.matrix("body", order)
+    title = counter.matrix("title")
+    used = (np.diff(body.tocsc().indptr) > 0) | (np.diff(title.tocsc().indptr) > 0)
+    names = np.asarray(counter.terms, dtype=object)
+    used_ids = np.flatnonzero(used)
+    # Sorted and without unused terms: the same corpus always gives the same index.
+    ranked = used_ids[np.argsort(names[used_ids].astype(str), kind="stable")]
+    new_id = np.full(len(counter.terms), -1, dtype=np.int64)
+    new_id[ranked] = np.arange(ranked.size)
+    mats = []
+    for m in (body, title):
+        m = m.tocsr()
+        mats.append(
+            sp.csr_matrix((m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], ranked.size)).tocsc()
+        )
+    return [str(t) for t in names[ranked]], mats
+
+
+def _write(
+    out: Path,
+    articles: list[Article],
+    counter: TermCounter,
+    body_order: np.ndarray | None,
+    analyzer: Analyzer,
+    params: bm25.BM25Params,
+    checksum: str,
+    build: dict[str, Any],
+    started: float,
+) -> Index:
     # `body_order[i]` is the counted row that becomes row i (updates count rows out of order).
-    terms, tf_body = body.finish(body_order)
-    title_terms, tf_title = title.finish()
-    # Both fields share one vocabulary so a query is mapped to term ids once.
-    all_terms = sorted(set(terms) | set(title_terms))
-    pos = {t: i for i, t in enumerate(all_terms)}
-
-    def widen(tf: sp.csc_matrix, names: list[str]) -> sp.csc_matrix:
-        cols = np.fromiter((pos[t] for t in names), np.int64, len(names))
-        coo = tf.tocoo()
-        return sp.csc_matrix((coo.data, (coo.row, cols[coo.col])), shape=(tf.shape[0], len(all_terms)))
-
-    b = _field_arrays(widen(tf_body, terms), params)
-    t = _field_arrays(widen(tf_title, title_terms), params)
-    resolver = NameResolver([a.id for a in articles], [a.title for a in articles], [a.aliases for a in articles])
+    all_terms, (tf_body, tf_title) = _term_major(counter, body_order)
+    b = _field_arrays(tf_body, params)
+    t = _field_arrays(tf_title, params)
+    ids = [a.id for a in articles]
+    titles = [a.title for a in articles]
+    resolver = NameResolver(ids, titles, [a.aliases for a in articles])
     inlinks, unresolved = count_inlinks(resolver, [a.links for a in articles], len(articles))
-    build = {**build, "unresolved_links": unresolved, "seconds": round(time.perf_counter() - started
-                                                                        + build.get("seconds", 0.0), 3)}
+    split = [split_title(title) for title in titles]
     with store.atomic_folder(out) as tmp:
         for prefix, arrays in (("body", b), ("title", t)):
-            for name in ("indptr", "docs", "tf", "weight"):
+            for name in ("indptr", "docs", "tf", "weight", "max_weight"):
                 store.save_array(tmp, f"{prefix}_{name}", arrays[name])
         store.save_array(tmp, "title_len", t["doc_len"])
         store.save_array(tmp, "doc_len", b["doc_len"])
         store.save_array(tmp, "inlinks", inlinks)
-        store.save_array(tmp, "popularity", np.array(
-            [np.nan if a.popularity is None else a.popularity for a in articles], dtype=np.float64))
+        popularity = [np.nan if a.popularity is None else a.popularity for a in articles]
+        store.save_array(tmp, "popularity", np.array(popularity, dtype=np.float64))
         store.write_json(tmp / store.VOCAB, all_terms)
-        split = [split_title(a.title) for a in articles]
-        store.write_json(tmp / store.KEYS, {
-            "ids": [a.id for a in articles], "titles": [a.title for a in articles],
-            "bases": [s[0] for s in split], "qualifiers": [s[1] for s in split],
-            "aliases": [list(a.aliases) for a in articles]})
+        store.write_json(
+            tmp / store.KEYS,
+            {
+                "ids": ids,
+                "titles": titles,
+                "bases": [s[0] for s in split],
+                "qualifiers": [s[1] for s in split],
+                "aliases": [list(a.aliases) for a in articles],
+            },
+        )
         store.write_store(tmp, articles)
         created = datetime.now(UTC).isoformat(timespec="seconds")
-        version = hashlib.sha256(json.dumps([checksum, params.to_dict(), analyzer.config.to_dict()],
-                                            sort_keys=True).encode()).hexdigest()[:12]
+        stamp = [checksum, params.to_dict(), analyzer.config.to_dict()]
+        version = hashlib.sha256(json.dumps(stamp, sort_keys=True).encode()).hexdigest()[:12]
         manifest = {
-            "format": store.FORMAT_NAME, "format_version": store.FORMAT_VERSION,
-            "index_version": version, "created_at": created, "corpus_checksum": checksum,
-            "analyzer": analyzer.config.to_dict(), "bm25": params.to_dict(),
-            "counts": {"articles": len(articles), "terms": len(all_terms),
-                       "body_postings": int(b["docs"].size), "title_postings": int(t["docs"].size),
-                       "avgdl": float(b["doc_len"].mean()) if len(articles) else 0.0,
-                       "qualified_titles": sum(1 for s in split if s[1])},
-            "build": build,
+            "format": store.FORMAT_NAME,
+            "format_version": store.FORMAT_VERSION,
+            "index_version": version,
+            "created_at": created,
+            "corpus_checksum": checksum,
+            "analyzer": analyzer.config.to_dict(),
+            "bm25": params.to_dict(),
+            "counts": {
+                "articles": len(articles),
+                "terms": len(all_terms),
+                "body_postings": int(b["docs"].size),
+                "title_postings": int(t["docs"].size),
+                "avgdl": float(b["doc_len"].mean()) if len(articles) else 0.0,
+                "qualified_titles": sum(1 for s in split if s[1]),
+                "unresolved_links": unresolved,
+            },
+            "build": {
+                **build,
+                "unresolved_links": unresolved,
+                "ambiguous_aliases": len(resolver.ambiguous_aliases),
+                "seconds": round(time.perf_counter() - started, 3),
+            },
         }
         manifest["build"]["bytes_on_disk"] = store.folder_size(tmp)
-        store.write_json(tmp / store.MANIFEST, manifest)  # written last: its presence marks a whole index
+        # Written last: its presence marks a whole index.
+        store.write_json(tmp / store.MANIFEST, manifest)
     return load_index(out)
+
+
+def _chunks(articles: Iterable[Article], keep: list[Article]) -> Iterator[tuple[list[str], list[str]]]:
+    """(bodies, titles) in chunks, remembering every article in `keep`."""
+    bodies: list[str] = []
+    titles: list[str] = []
+    for art in articles:
+        keep.append(art)
+        bodies.append(art.text)
+        titles.append(art.title)
+        if len(bodies) >= CHUNK:
+            yield bodies, titles
+            bodies, titles = [], []
+    if bodies:
+        yield bodies, titles
 
 
 def _resolve_settings(analyzer: Analyzer | AnalyzerConfig | Mapping[str, Any] | None,
@@ -182,35 +191,39 @@ def build_index(
     skip_bad: bool = False,
     progress: bool = False,
     report: ReadReport | None = None,
+    workers: int | None = None,
     **options: Any,
 ) -> Index:
-    """Build an index folder from a corpus file or records; the old folder is replaced only on success.
+    """Build an index folder from a corpus file or records; an old folder is replaced only on success.
 
     Options may name any AnalyzerConfig field (stemmer, stopwords, ...) or BM25Params
-    field (k1, b, epsilon, idf, title_weight).
+    field (k1, b, epsilon, idf, title_weight). `workers` processes count terms (default:
+    2 on multi-core machines for corpora over ~20k articles, else 1); the result is the same.
     """
     started = time.perf_counter()
     an, p = _resolve_settings(analyzer, params, dict(options))
     report = report if report is not None else ReadReport()
     if isinstance(corpus, str | Path):
-        checksum = file_checksum(corpus) if Path(corpus).exists() else ""
-        source: Any = corpus
+        path = Path(corpus)
+        checksum = file_checksum(path) if path.is_file() else ""
+        source: Any = path
+        # About 1 KiB per article in typical corpora.
+        hint = path.stat().st_size // 1024 if path.is_file() else 0
     else:
         records = [a.to_record() if isinstance(a, Article) else dict(a) for a in corpus]
-        checksum = hashlib.sha256(json.dumps(records, sort_keys=True, default=str).encode()).hexdigest()
-        source = records
+        blob = json.dumps(records, sort_keys=True, default=str).encode()
+        checksum = hashlib.sha256(blob).hexdigest()
+        source, hint = records, len(records)
     articles: list[Article] = []
-    body, title = _TermCounter(), _TermCounter()
     it = read_articles(source, skip_bad=skip_bad, report=report)
-    for art in tqdm(it, desc="indexing", unit=" articles", disable=not progress, mininterval=0.5):
-        articles.append(art)
-        body.add(an.tokens(art.text))
-        title.add(an.tokens(art.title))
+    bar = tqdm(it, desc="indexing", unit=" articles", disable=not progress, mininterval=0.5)
+    n_workers = default_workers(hint) if workers is None else max(1, int(workers))
+    counter = count_articles(_chunks(bar, articles), an, n_workers)
     if not articles:
-        raise CorpusError("the corpus has no valid articles", file=str(corpus) if isinstance(corpus, str | Path) else "")
-    build = {"skipped_lines": report.skipped, "problems": report.problems[:5],
-             "seconds": time.perf_counter() - started}
-    return _write(Path(out_dir), articles, body, title, None, an, p, checksum, build)
+        where = str(corpus) if isinstance(corpus, str | Path) else ""
+        raise CorpusError("the corpus has no valid articles", file=where)
+    build = {"skipped_lines": report.skipped, "problems": report.problems[:5], "workers": n_workers}
+    return _write(Path(out_dir), articles, counter, None, an, p, checksum, build, started)
 
 
 def _existing_counts(index: Index, keep_rows: np.ndarray) -> tuple[sp.csr_matrix, list[str]]:
@@ -218,8 +231,10 @@ def _existing_counts(index: Index, keep_rows: np.ndarray) -> tuple[sp.csr_matrix
     vocab = json.loads((index.path / store.VOCAB).read_text(encoding="utf-8"))
     n_postings = int(index.manifest["counts"]["body_postings"])
     body_tf = store.open_array(index.path, "body_tf", "int32", n_postings)
-    tf = sp.csc_matrix((np.asarray(body_tf), np.asarray(index.body.docs), np.asarray(index.body.indptr)),
-                       shape=(index.n_docs, index.n_terms)).tocsr()
+    tf = sp.csc_matrix(
+        (np.asarray(body_tf), np.asarray(index.body.docs), np.asarray(index.body.indptr)),
+        shape=(index.n_docs, index.n_terms),
+    ).tocsr()
     return tf[keep_rows], vocab
 
 
@@ -234,7 +249,7 @@ def update_index(
 ) -> Index:
     """Add, replace (same id) and remove articles; scores equal those of a fresh build.
 
-    Existing articles keep their rows and counted terms (no re-analysis of their text);
+    Kept articles keep their rows and counted terms (their text is not analyzed again);
     replaced ones keep their row, new ones go at the end, removed ones disappear.
     """
     started = time.perf_counter()
@@ -242,55 +257,61 @@ def update_index(
     report = report if report is not None else ReadReport()
     missing = [d for d in remove if d not in old._row_by_id]
     if missing:
-        raise CorpusError(f"cannot remove unknown article ids: {missing[:10]}")
+        raise CorpusError(f"cannot remove unknown article ids: {missing[:10]}", field="id")
     new_articles = list(read_articles(add, skip_bad=skip_bad, report=report)) if add else []
     new_by_id = {a.id: a for a in new_articles}
     removed = set(remove) - set(new_by_id)
     existing = list(old._store.articles())
-    title_owner = {a.title: a.id for a in existing if a.id not in removed and a.id not in new_by_id}
+    changed = removed | set(new_by_id)
+    title_owner = {a.title: a.id for a in existing if a.id not in changed}
     for a in new_articles:
         if title_owner.get(a.title, a.id) != a.id:
-            raise CorpusError(f"title {a.title!r} already belongs to article {title_owner[a.title]!r}", field="title")
-    keep = [r for r, a in enumerate(existing) if a.id not in removed and a.id not in new_by_id]
-    body, title = _TermCounter(), _TermCounter()
+            owner = title_owner[a.title]
+            raise CorpusError(f"title {a.title!r} already belongs to article {owner!r}", field="title")
+    keep = [r for r, a in enumerate(existing) if a.id not in changed]
     counts, vocab = _existing_counts(old, np.asarray(keep, dtype=np.int64))
-    body.add_counts(counts, vocab)
-    an = old.analyzer
-    # Final order: old rows (replacements in place) then new articles.
+    old_ids = {a.id for a in existing}
+    # Final order: old rows (replacements in place), then new articles.
     final: list[Article] = []
-    source_pos: list[int] = []  # position of each final row in the order counts were added
+    source_pos: list[int] = []  # where each final row is among the counted rows
     kept_pos = {r: i for i, r in enumerate(keep)}
-    appended = 0
+    recount: list[Article] = []
     for r, a in enumerate(existing):
         if a.id in removed:
             continue
         if a.id in new_by_id:
             final.append(new_by_id[a.id])
-            source_pos.append(len(keep) + appended)
-            body.add(an.tokens(new_by_id[a.id].text))
-            appended += 1
+            source_pos.append(len(keep) + len(recount))
+            recount.append(new_by_id[a.id])
         else:
             final.append(a)
             source_pos.append(kept_pos[r])
-    old_ids = {a.id for a in existing}
-    for a in tqdm(new_articles, desc="adding", unit=" articles", disable=not progress):
+    for a in new_articles:
         if a.id not in old_ids:
             final.append(a)
-            source_pos.append(len(keep) + appended)
-            body.add(an.tokens(a.text))
-            appended += 1
-    for a in final:
-        title.add(an.tokens(a.title))
-    order = np.asarray(source_pos, dtype=np.int64)
+            source_pos.append(len(keep) + len(recount))
+            recount.append(a)
     if not final:
-        raise CorpusError("removing these articles would leave the index empty")
-    checksum = hashlib.sha256(json.dumps(
-        [old.manifest["corpus_checksum"], sorted(remove), [a.to_record() for a in new_articles]],
-        sort_keys=True, default=str).encode()).hexdigest()
-    build = {"skipped_lines": report.skipped, "problems": report.problems[:5], "updated_from": old.version,
-             "added": sum(1 for a in new_articles if a.id not in old_ids),
-             "replaced": sum(1 for a in new_articles if a.id in old_ids), "removed": len(removed),
-             "seconds": time.perf_counter() - started}
+        raise CorpusError("removing these articles would leave the index empty", field="id")
+    an = old.analyzer
+    counter = count_articles([([a.text for a in recount], [])], an, 1)
+    counter.add_counts("body", counts, vocab)
+    counter.chunks["body"].insert(0, counter.chunks["body"].pop())
+    # Titles are short: count them again for every row rather than reorder stored ones.
+    titles = count_articles([([], [a.title for a in final])], an, 1)
+    counter.merge_field(titles, "title")
+    record = [old.manifest["corpus_checksum"], sorted(remove), [a.to_record() for a in new_articles]]
+    checksum = hashlib.sha256(json.dumps(record, sort_keys=True, default=str).encode()).hexdigest()
+    build = {
+        "skipped_lines": report.skipped,
+        "problems": report.problems[:5],
+        "updated_from": old.version,
+        "added": sum(1 for a in new_articles if a.id not in old_ids),
+        "replaced": sum(1 for a in new_articles if a.id in old_ids),
+        "removed": len(removed),
+    }
     params = old.params
+    order = np.asarray(source_pos, dtype=np.int64)
     del old  # release the memory maps before the folder is swapped
-    return _write(Path(index_dir), final, body, title, order, an, params, checksum, build)
+    return _write(Path(index_dir), final, counter, order, an, params, checksum, build, started)
+

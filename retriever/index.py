@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 
-from . import store
+from . import scoring, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .errors import IndexFormatError, UnknownDocumentError
@@ -51,11 +51,17 @@ class _Field:
     """Term-major postings of one field: CSR arrays over the shared vocabulary."""
 
     def __init__(self, folder: Path, prefix: str, n_terms: int, n_postings: int) -> None:
-        self.indptr = store.open_array(folder, f"{prefix}_indptr", "int64", n_terms + 1)
-        self.docs = store.open_array(folder, f"{prefix}_docs", "int32", n_postings)
-        self.weight = store.open_array(folder, f"{prefix}_weight", "float32", n_postings)
-        if n_terms and int(self.indptr[-1]) != n_postings:
-            raise IndexFormatError(f"{folder}: {prefix}_indptr does not match the postings; rebuild the index")
+        # Plain ndarray views of the memory maps: slicing a np.memmap costs far more.
+        self.indptr = np.asarray(store.open_array(folder, f"{prefix}_indptr", "int64", n_terms + 1))
+        self.docs = np.asarray(store.open_array(folder, f"{prefix}_docs", "int32", n_postings))
+        self.weight = np.asarray(store.open_array(folder, f"{prefix}_weight", "float64", n_postings))
+        self.max_weight = np.asarray(
+            store.open_array(folder, f"{prefix}_max_weight", "float64", n_terms)
+        )
+        if int(self.indptr[-1]) != n_postings or (n_terms and int(self.indptr[0]) != 0):
+            raise IndexFormatError(
+                f"{folder}: {prefix}_indptr does not match the postings; rebuild the index"
+            )
 
 
 class Index:
@@ -152,65 +158,39 @@ class Index:
             buf = self._local.buf = np.zeros(self.n_docs, dtype=np.float64)
         return buf
 
-    def _accumulate(self, buf: np.ndarray, tids: np.ndarray, qtf: np.ndarray) -> list[np.ndarray]:
-        # Hand-written rather than a scipy product: adding only the postings of the query's
-        # terms into a reused dense buffer, and later choosing the top k among the touched
-        # rows only, keeps a query's cost proportional to its postings, not to the corpus.
-        touched = []
+    def _plan(self, tokens: Sequence[str]) -> scoring.Plan | None:
+        tids, qtf = self.term_ids(tokens)
+        if tids.size == 0:
+            return None
         fields = [(self.body, 1.0)]
         if self.title_weight > 0:
             fields.append((self.title_field, self.title_weight))
-        for fld, scale in fields:
-            indptr, docs, weight = fld.indptr, fld.docs, fld.weight
-            for t, q in zip(tids.tolist(), qtf.tolist(), strict=True):
-                s, e = int(indptr[t]), int(indptr[t + 1])
-                if s == e:
-                    continue
-                d = docs[s:e]
-                factor = q * scale
-                if factor == 1.0:
-                    buf[d] += weight[s:e]
-                else:
-                    buf[d] += factor * weight[s:e]
-                touched.append(d)
-        return touched
+        return scoring.plan(fields, tids, qtf)
 
     def score_tokens(self, tokens: Sequence[str]) -> np.ndarray:
         """BM25 score of every article for already-analyzed tokens. float64, shape (n_docs,)."""
-        tids, qtf = self.term_ids(tokens)
         scores = np.zeros(self.n_docs, dtype=np.float64)
-        self._accumulate(scores, tids, qtf)
+        plan = self._plan(tokens)
+        if plan is not None:
+            scoring.scatter(scores, plan, 0, plan.size)
         return scores
 
     def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
-        """Top-k articles for already-analyzed tokens, best first (ties by row)."""
+        """Top-k articles for already-analyzed tokens, best first (ties by row).
+
+        Candidates are the articles holding at least one known query term.
+        """
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
-        tids, qtf = self.term_ids(tokens)
-        if tids.size == 0:
+        plan = self._plan(tokens)
+        if plan is None or plan.size == 0:
             return []
-        buf = self._buffer()
-        parts = self._accumulate(buf, tids, qtf)
-        if not parts:
-            return []
-        touched = parts[0] if len(parts) == 1 else np.concatenate(parts)
-        try:
-            # A row appears at most once per (field, term), so the best len(parts) * k
-            # entries of `touched` hold the best k distinct rows.
-            keep = k * len(parts)
-            if touched.size > keep:
-                vals = buf[touched]
-                sel = np.argpartition(vals, touched.size - keep)[touched.size - keep :]
-                cand = np.unique(touched[sel])
-            else:
-                cand = np.unique(touched)
-            cand_scores = buf[cand]
-            order = np.lexsort((cand, -cand_scores))[:k]
-            rows, scores = cand[order].tolist(), cand_scores[order].tolist()
-        finally:
-            buf[touched] = 0.0
+        rows, scores = scoring.top_k(self._buffer(), plan, k)
         ids, titles = self.ids, self.titles
-        return [Hit(ids[r], titles[r], s, i + 1, r) for i, (r, s) in enumerate(zip(rows, scores, strict=True))]
+        return [
+            Hit(ids[r], titles[r], sc, i + 1, r)
+            for i, (r, sc) in enumerate(zip(rows.tolist(), scores.tolist(), strict=True))
+        ]
 
     def search(self, clue: str, k: int = 20) -> list[Hit]:
         """Top-k articles for a free-text clue, best first."""

@@ -19,7 +19,7 @@ from .corpus import Article
 from .errors import IndexFormatError
 
 FORMAT_NAME = "hunchwise-index"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 MANIFEST = "manifest.json"
 STORE = "store.jsonl"
 STORE_OFFSETS = "store_offsets"
@@ -30,8 +30,10 @@ VOCAB = "vocab.json"
 def write_json(path: Path, data: Any) -> None:
     """Write JSON to `path` through a temporary file and a rename, so readers never see half a file."""
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
+    # dumps, not dump: only the one-shot encoder runs in C.
+    text = json.dumps(data, ensure_ascii=False, separators=(",", ":"))
     with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(data, fh, ensure_ascii=False, separators=(",", ":"))
+        fh.write(text)
         fh.flush()
         os.fsync(fh.fileno())
     os.replace(tmp, path)
@@ -56,7 +58,7 @@ def open_array(folder: Path, name: str, dtype: str, length: int | None = None) -
             f"{folder}: {path.name} holds {arr.dtype} of shape {arr.shape}, expected {dtype} of length "
             f"{length}; the index is damaged, rebuild it"
         )
-    return arr
+    return np.asarray(arr)  # plain ndarray view of the map: slicing a memmap subclass is slow
 
 
 def write_store(folder: Path, articles: Iterable[Article]) -> int:

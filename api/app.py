@@ -1,0 +1,92 @@
+"""The FastAPI application factory: `create_app(settings)` and the env-driven `app_from_env`."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from typing import Any
+
+import anyio
+from fastapi import FastAPI
+from fastapi.middleware.cors import CORSMiddleware
+
+from . import routes, schemas
+from .deps import Runtime
+from .handlers import BodyLimitMiddleware, SafeJSONResponse, install_handlers
+from .metrics import Metrics, MetricsMiddleware
+from .settings import ServiceSettings
+
+DESCRIPTION = """\
+Rank the articles of your own encyclopedia-style corpus for a free-text clue: BM25
+candidates, calibrated probabilities from the reranker model, and a decision (answer,
+wait for more words, or abstain). Rank requests and feedback go to a served log that
+`hunchwise train` reads back.
+"""
+
+_COMMON: dict[int | str, dict[str, Any]] = {
+    400: {
+        "description": "malformed request (e.g. a bad Content-Length)",
+        "model": schemas.ErrorOut,
+    },
+    413: {"description": "request body over the configured limit", "model": schemas.ErrorOut},
+    503: {
+        "description": "the server is starting or the index is unreadable",
+        "model": schemas.ErrorOut,
+    },
+}
+_ADMIN: dict[int | str, dict[str, Any]] = {
+    401: {"description": "missing or wrong admin token", "model": schemas.ErrorOut},
+    403: {
+        "description": "admin endpoints are disabled (no token configured)",
+        "model": schemas.ErrorOut,
+    },
+}
+
+
+def create_app(settings: ServiceSettings | None = None) -> FastAPI:
+    """A new application; the index and model are loaded when its lifespan starts."""
+    settings = settings if settings is not None else ServiceSettings()  # type: ignore[call-arg]
+    metrics = Metrics()
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        # Loaded once per process into one read-only container; requests share it.
+        runtime = await anyio.to_thread.run_sync(Runtime.start, settings, metrics)
+        app.state.runtime = runtime
+        try:
+            yield
+        finally:
+            app.state.runtime = None
+            runtime.close()
+
+    app = FastAPI(
+        title="hunchwise",
+        version="0.1.0",
+        description=DESCRIPTION,
+        lifespan=lifespan,
+        default_response_class=SafeJSONResponse,
+    )
+    app.state.settings = settings
+    app.state.runtime = None
+    app.include_router(routes.router, responses=_COMMON)
+    app.include_router(routes.admin, responses={**_COMMON, **_ADMIN})
+    install_handlers(app)
+    if settings.cors_origins:
+        app.add_middleware(
+            CORSMiddleware,
+            allow_origins=settings.cors_origins,
+            allow_methods=["GET", "POST", "DELETE"],
+            allow_headers=["Authorization", "Content-Type"],
+        )
+    app.add_middleware(
+        BodyLimitMiddleware,
+        max_bytes=settings.max_body_bytes,
+        admin_max_bytes=settings.max_admin_body_bytes,
+    )
+    app.add_middleware(MetricsMiddleware, metrics=metrics)
+    return app
+
+
+def app_from_env() -> FastAPI:
+    """Factory for uvicorn workers: settings come from the HUNCHWISE_* environment."""
+    return create_app(ServiceSettings())  # type: ignore[call-arg]

@@ -1,0 +1,145 @@
+"""Sub-command `serve`: the JSON service under uvicorn, with one or more worker processes.
+
+The parent process checks the index, model and token first (so mistakes are reported as a
+one-line error, not a traceback per worker), then hands every setting to the workers
+through HUNCHWISE_* environment variables. It also prepares what the workers share: the
+state folder (generation marker, admin lock, request-id key), a request-id secret, and
+the folder of prometheus_client's multiprocess mode.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import gc
+import os
+import secrets
+import shutil
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+
+ENV_PREFIX = "HUNCHWISE_"
+METRICS_ENV = "PROMETHEUS_MULTIPROC_DIR"
+
+
+def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    """Add the serve sub-command."""
+    p = sub.add_parser("serve", help="serve the JSON API (rank, feedback, entries, admin)")
+    p.add_argument("--index", type=Path, required=True, help="index folder to serve")
+    p.add_argument(
+        "--model", type=Path, help="reranker model file (without one: BM25 order, no probabilities)"
+    )
+    p.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1)")
+    p.add_argument("--port", type=int, default=8000, help="port (default 8000; 0: any free port)")
+    p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
+    p.add_argument("--log-dir", type=Path, help="folder of the served log served.jsonl")
+    p.add_argument(
+        "--state-dir",
+        type=Path,
+        help="folder the workers share (default: a temporary folder removed on exit)",
+    )
+    p.add_argument(
+        "--admin-token-file",
+        type=Path,
+        help="file holding the admin bearer token (or set HUNCHWISE_ADMIN_TOKEN)",
+    )
+    p.add_argument("--log-max-bytes", type=int, help="rotate served.jsonl past this many bytes")
+    p.add_argument("--log-backups", type=int, help="rotated served logs to keep")
+    p.add_argument(
+        "--cors-origin",
+        action="append",
+        default=[],
+        metavar="ORIGIN",
+        help="allow this origin by CORS (repeatable; default: CORS off)",
+    )
+    p.add_argument("--access-log", action="store_true", help="print one line per request")
+    p.set_defaults(func=cmd_serve)
+
+
+def _environment(args: argparse.Namespace, state_dir: Path) -> dict[str, str]:
+    env = {
+        "INDEX_DIR": str(args.index.resolve()),
+        "STATE_DIR": str(state_dir.resolve()),
+    }
+    if args.model is not None:
+        env["MODEL_PATH"] = str(args.model.resolve())
+    if args.log_dir is not None:
+        env["LOG_DIR"] = str(args.log_dir.resolve())
+    if args.admin_token_file is not None:
+        env["ADMIN_TOKEN_FILE"] = str(args.admin_token_file.resolve())
+    if args.log_max_bytes is not None:
+        env["LOG_MAX_BYTES"] = str(args.log_max_bytes)
+    if args.log_backups is not None:
+        env["LOG_BACKUPS"] = str(args.log_backups)
+    if args.cors_origin:
+        env["CORS_ORIGINS"] = "[" + ",".join(f'"{o}"' for o in args.cors_origin) + "]"
+    if not os.environ.get(ENV_PREFIX + "REQUEST_SECRET"):
+        # Shared by all workers of this run; set it yourself to accept feedback across restarts.
+        env["REQUEST_SECRET"] = secrets.token_hex(32)
+    return {ENV_PREFIX + k: v for k, v in env.items()}
+
+
+@contextlib.contextmanager
+def _state_folder(given: Path | None) -> Iterator[Path]:
+    if given is not None:
+        given.mkdir(parents=True, exist_ok=True)
+        yield given
+        return
+    folder = Path(tempfile.mkdtemp(prefix="hunchwise-serve-"))
+    try:
+        yield folder
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def _check(args: argparse.Namespace) -> None:
+    """Fail fast, in the parent, on anything a worker would fail on at startup."""
+    from .settings import ServiceSettings
+    from .state import load_pair
+
+    if args.workers < 1:
+        raise ValueError("--workers must be at least 1")
+    if not 0 <= args.port <= 65535:
+        raise ValueError("--port must be between 0 and 65535")
+    from reranker import RerankerError
+
+    settings = ServiceSettings()  # type: ignore[call-arg]
+    settings.resolved_admin_token()
+    try:
+        index, model = load_pair(settings)
+    except RerankerError as exc:  # the CLI's error printer knows ValueError, not RerankerError
+        raise ValueError(str(exc)) from exc
+    print(
+        f"serving index {index.version} ({index.n_docs} articles), "
+        + (f"model {model.version}" if model is not None else "no model: BM25 order only")
+        + f", {args.workers} worker(s) on http://{args.host}:{args.port}",
+        flush=True,
+    )
+    del index, model
+    gc.collect()
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    """Run the service until interrupted."""
+    import uvicorn
+
+    with _state_folder(args.state_dir) as state_dir:
+        os.environ.update(_environment(args, state_dir))
+        metrics_dir = state_dir / "metrics"
+        shutil.rmtree(metrics_dir, ignore_errors=True)
+        metrics_dir.mkdir(parents=True)
+        # Set before any worker imports prometheus_client: it picks its mode at import time.
+        os.environ[METRICS_ENV] = str(metrics_dir)
+        _check(args)
+        uvicorn.run(
+            "api.app:app_from_env",
+            factory=True,
+            host=args.host,
+            port=args.port,
+            workers=args.workers,
+            access_log=args.access_log,
+            log_level="info",
+            timeout_graceful_shutdown=10,
+        )
+    return 0

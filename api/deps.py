@@ -1,0 +1,125 @@
+"""Per-process runtime (serving state, request ids, served log, metrics) and its dependencies."""
+
+from __future__ import annotations
+
+import hmac
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Annotated, Any
+
+from fastapi import Depends, HTTPException, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+
+from .metrics import Metrics
+from .requestids import RequestIds, shared_secret
+from .servedlog import ServedLog
+from .settings import ServiceSettings, get_settings
+from .state import Serving
+
+bearer = HTTPBearer(
+    auto_error=False,
+    description="the admin token (HUNCHWISE_ADMIN_TOKEN or the --admin-token-file)",
+)
+
+
+@dataclass
+class Runtime:
+    """Everything one worker process holds while it serves."""
+
+    settings: ServiceSettings
+    serving: Serving
+    ids: RequestIds
+    served_log: ServedLog | None
+    metrics: Metrics
+    admin_token: str | None
+
+    @classmethod
+    def start(cls, settings: ServiceSettings, metrics: Metrics) -> Runtime:
+        """Load the index and model, open the served log, start the reload watcher."""
+        token = settings.resolved_admin_token()
+        secret = settings.request_secret.get_secret_value() if settings.request_secret else None
+        ids = RequestIds(shared_secret(secret, settings.state_dir))
+        serving = Serving(settings)
+        log = None
+        if settings.log_dir is not None:
+            log = ServedLog(
+                settings.log_dir, max_bytes=settings.log_max_bytes, backups=settings.log_backups
+            )
+        serving.start()
+        return cls(settings, serving, ids, log, metrics, token)
+
+    def close(self) -> None:
+        """Stop the watcher and flush the served log."""
+        self.serving.stop()
+        if self.served_log is not None:
+            self.served_log.close()
+
+
+def get_runtime(request: Request) -> Runtime:
+    """Dependency: this process's runtime; 503 while the server is still starting."""
+    runtime: Runtime | None = getattr(request.app.state, "runtime", None)
+    if runtime is None:
+        raise HTTPException(503, "the server is starting: index and model are not loaded yet")
+    return runtime
+
+
+RuntimeDep = Annotated[Runtime, Depends(get_runtime)]
+SettingsDep = Annotated[ServiceSettings, Depends(get_settings)]
+
+
+def require_admin(
+    runtime: RuntimeDep,
+    credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)],
+) -> None:
+    """Dependency: allow the call only with the right bearer token; admin is off without one."""
+    if runtime.admin_token is None:
+        raise HTTPException(
+            403,
+            "admin endpoints are disabled: start the server with HUNCHWISE_ADMIN_TOKEN "
+            "or --admin-token-file to enable them",
+        )
+    if credentials is None:
+        raise HTTPException(
+            401,
+            "missing admin token: send 'Authorization: Bearer <token>'",
+            headers={"WWW-Authenticate": "Bearer"},
+        )
+    given = credentials.credentials.encode("utf-8")
+    if not hmac.compare_digest(given, runtime.admin_token.encode("utf-8")):
+        raise HTTPException(401, "wrong admin token", headers={"WWW-Authenticate": "Bearer"})
+
+
+def field_error(
+    loc: Sequence[str | int], msg: str, kind: str = "value_error", **ctx: Any
+) -> RequestValidationError:
+    """A 422 in FastAPI's own error shape, for checks that depend on the settings."""
+    error: dict[str, Any] = {"type": kind, "loc": tuple(loc), "msg": msg}
+    if ctx:
+        error["ctx"] = ctx
+    return RequestValidationError([error])
+
+
+def check_clue(clue: str, settings: ServiceSettings, loc: Sequence[str | int]) -> None:
+    """Reject a clue longer than the configured limit (422 naming the field)."""
+    if len(clue) > settings.max_clue_chars:
+        raise field_error(
+            loc,
+            f"String should have at most {settings.max_clue_chars} characters (got {len(clue)})",
+            "string_too_long",
+            max_length=settings.max_clue_chars,
+        )
+
+
+def check_k(k: int | None, settings: ServiceSettings) -> int:
+    """The k to use: the request's, bounded by max_k, or the server default."""
+    if k is None:
+        return settings.default_k
+    if k > settings.max_k:
+        raise field_error(
+            ("body", "k"),
+            f"Input should be less than or equal to {settings.max_k}",
+            "less_than_equal",
+            le=settings.max_k,
+        )
+    return k

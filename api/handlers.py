@@ -1,0 +1,123 @@
+"""JSON responses, the error handlers and the request-body size limit."""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.encoders import jsonable_encoder
+from fastapi.exceptions import RequestValidationError
+from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.responses import JSONResponse
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from reranker import ModelFormatError, ModelMismatchError, RerankerError
+from retriever import CorpusError, IndexFormatError, RetrieverError, UnknownDocumentError
+
+
+class SafeJSONResponse(JSONResponse):
+    """JSON with non-ASCII escaped: any string encodes (even lone surrogates); NaN is refused."""
+
+    def render(self, content: Any) -> bytes:
+        """Serialize compactly."""
+        return json.dumps(
+            content, ensure_ascii=True, allow_nan=False, separators=(",", ":")
+        ).encode("ascii")
+
+
+def library_error(request: Request, exc: Exception) -> SafeJSONResponse:
+    """The one place where retriever and reranker errors become HTTP statuses."""
+    if isinstance(exc, UnknownDocumentError):
+        return SafeJSONResponse({"detail": str(exc)}, status_code=404)
+    if isinstance(exc, CorpusError):
+        if exc.line:
+            # Records of a request body are numbered from 1 by the reader; the body list from 0.
+            loc: list[str | int] = ["body", exc.line - 1]
+            if exc.field:
+                loc.append(exc.field)
+            return SafeJSONResponse(
+                {"detail": [{"type": "value_error", "loc": loc, "msg": exc.reason}]},
+                status_code=422,
+            )
+        return SafeJSONResponse({"detail": str(exc)}, status_code=422)
+    if isinstance(exc, ModelFormatError | ModelMismatchError):
+        return SafeJSONResponse({"detail": str(exc)}, status_code=409)
+    if isinstance(exc, IndexFormatError):
+        return SafeJSONResponse({"detail": f"the index cannot be read: {exc}"}, status_code=503)
+    return SafeJSONResponse({"detail": f"{type(exc).__name__}: {exc}"}, status_code=500)
+
+
+async def _library_error(request: Request, exc: Exception) -> SafeJSONResponse:
+    return library_error(request, exc)
+
+
+async def _http_error(request: Request, exc: Exception) -> SafeJSONResponse:
+    if not isinstance(exc, StarletteHTTPException):
+        raise TypeError(f"unexpected exception {exc!r}")
+    return SafeJSONResponse(
+        {"detail": exc.detail}, status_code=exc.status_code, headers=exc.headers
+    )
+
+
+async def _validation_error(request: Request, exc: Exception) -> SafeJSONResponse:
+    if not isinstance(exc, RequestValidationError):
+        raise TypeError(f"unexpected exception {exc!r}")
+    return SafeJSONResponse({"detail": jsonable_encoder(exc.errors())}, status_code=422)
+
+
+def install_handlers(app: FastAPI) -> None:
+    """Register the error handlers (FastAPI's {"detail": ...} shape throughout)."""
+    app.add_exception_handler(RetrieverError, _library_error)
+    app.add_exception_handler(RerankerError, _library_error)
+    app.add_exception_handler(StarletteHTTPException, _http_error)
+    app.add_exception_handler(RequestValidationError, _validation_error)
+
+
+class BodyLimitMiddleware:
+    """413 for bodies over the limit, by Content-Length up front or by counting chunks."""
+
+    def __init__(self, app: ASGIApp, *, max_bytes: int, admin_max_bytes: int) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+        self.admin_max_bytes = admin_max_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        path = str(scope.get("path", ""))
+        limit = self.admin_max_bytes if path.startswith("/v1/admin/") else self.max_bytes
+        for name, value in scope.get("headers", []):
+            if name == b"content-length":
+                try:
+                    length = int(value)
+                except ValueError:
+                    await _reject(
+                        scope, receive, send, 400, "the Content-Length header is not a number"
+                    )
+                    return
+                if length > limit:
+                    await _reject(scope, receive, send, 413, _too_large(limit))
+                    return
+        seen = 0
+
+        async def counting_receive() -> Message:
+            nonlocal seen
+            message = await receive()
+            if message["type"] == "http.request":
+                seen += len(message.get("body", b""))
+                if seen > limit:
+                    # FastAPI re-raises HTTPExceptions from body reading; the handler renders it.
+                    raise StarletteHTTPException(413, _too_large(limit))
+            return message
+
+        await self.app(scope, counting_receive, send)
+
+
+def _too_large(limit: int) -> str:
+    return f"request body is larger than the limit of {limit} bytes"
+
+
+async def _reject(scope: Scope, receive: Receive, send: Send, status: int, detail: str) -> None:
+    await SafeJSONResponse({"detail": detail}, status_code=status)(scope, receive, send)

@@ -1,0 +1,134 @@
+"""Prometheus metrics (prometheus_client) and the ASGI middleware that records them.
+
+With several workers the server runs prometheus_client's multiprocess mode: `hunchwise
+serve` points PROMETHEUS_MULTIPROC_DIR at a fresh folder before any worker starts, every
+worker writes its samples to memory-mapped files there, and /metrics on any worker sums
+them all. Without that variable (one process, tests) each app keeps its own registry.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    Counter,
+    Histogram,
+    generate_latest,
+)
+from prometheus_client.multiprocess import MultiProcessCollector
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+MULTIPROC_ENV = "PROMETHEUS_MULTIPROC_DIR"
+# Latency buckets in seconds, dense where a loopback rank request lands (about 1-50 ms).
+BUCKETS = (
+    0.001,
+    0.0025,
+    0.005,
+    0.0075,
+    0.01,
+    0.015,
+    0.02,
+    0.03,
+    0.05,
+    0.075,
+    0.1,
+    0.25,
+    0.5,
+    1.0,
+    2.5,
+    5.0,
+    10.0,
+)
+
+
+class Metrics:
+    """The service's counters and histograms, in a registry of their own."""
+
+    content_type = CONTENT_TYPE_LATEST
+
+    def __init__(self) -> None:
+        self.registry = CollectorRegistry()
+        self.requests = Counter(
+            "hunchwise_http_requests",
+            "HTTP requests answered, by endpoint, method and status",
+            ["endpoint", "method", "status"],
+            registry=self.registry,
+        )
+        self.latency = Histogram(
+            "hunchwise_http_request_duration_seconds",
+            "Time to answer a request, by endpoint",
+            ["endpoint", "method"],
+            buckets=BUCKETS,
+            registry=self.registry,
+        )
+        self.clues = Counter(
+            "hunchwise_clues_ranked",
+            "Clues ranked (batch requests count each clue)",
+            ["ranked_by"],
+            registry=self.registry,
+        )
+        self.decisions = Counter(
+            "hunchwise_decisions",
+            "Decisions returned, by action",
+            ["action"],
+            registry=self.registry,
+        )
+        self.reloads = Counter(
+            "hunchwise_reloads",
+            "Index/model swaps in this worker, by cause and outcome",
+            ["cause", "outcome"],
+            registry=self.registry,
+        )
+
+    @staticmethod
+    def multiprocess() -> bool:
+        """True when samples are shared between worker processes through files."""
+        return bool(os.environ.get(MULTIPROC_ENV))
+
+    def render(self) -> bytes:
+        """The text exposition format, summed over all workers in multiprocess mode."""
+        if self.multiprocess():
+            registry = CollectorRegistry()
+            MultiProcessCollector(registry)
+            return bytes(generate_latest(registry))
+        return bytes(generate_latest(self.registry))
+
+
+class MetricsMiddleware:
+    """Counts every HTTP request and times it, labelled by route template (not raw path)."""
+
+    def __init__(self, app: ASGIApp, metrics: Metrics) -> None:
+        self.app = app
+        self.metrics = metrics
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = time.perf_counter()
+        status = 500
+
+        async def send_wrapper(message: Message) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = int(message["status"])
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_wrapper)
+        finally:
+            endpoint = _endpoint(scope)
+            method = str(scope.get("method", ""))
+            self.metrics.requests.labels(endpoint, method, str(status)).inc()
+            self.metrics.latency.labels(endpoint, method).observe(time.perf_counter() - started)
+
+
+def _endpoint(scope: Scope) -> str:
+    # Route templates keep the label set small; unmatched paths share one label so
+    # a client probing random URLs cannot grow the metrics without bound.
+    route = scope.get("route")
+    path = getattr(route, "path", None)
+    return str(path) if path else "unmatched"

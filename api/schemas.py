@@ -1,0 +1,250 @@
+"""Request and response bodies of the JSON API (pydantic v2 models; they make the OpenAPI)."""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Any, Literal
+
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StringConstraints
+
+REQUEST_ID_MAX = 64
+
+
+def _valid_text(value: str) -> str:
+    # A lone surrogate (legal in a JSON \u escape) cannot be encoded as UTF-8 later on.
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        raise ValueError("must be valid Unicode text (no lone surrogate escapes)") from exc
+    return value
+
+
+def _non_blank(value: str) -> str:
+    if not value.strip():
+        raise ValueError("must contain at least one non-space character")
+    return value
+
+
+def _finite_json(value: Any) -> Any:
+    # Python's JSON parser accepts NaN and Infinity, which no JSON reply could carry back.
+    stack = [value]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, float) and not math.isfinite(item):
+            raise ValueError("must not contain NaN or infinite numbers")
+        if isinstance(item, dict):
+            stack.extend(item.values())
+        elif isinstance(item, list):
+            stack.extend(item)
+    return value
+
+
+Text = Annotated[str, AfterValidator(_valid_text)]
+Clue = Annotated[str, AfterValidator(_valid_text), AfterValidator(_non_blank)]
+ArticleId = Annotated[
+    str,
+    StringConstraints(min_length=1, max_length=1000),
+    AfterValidator(_valid_text),
+    AfterValidator(_non_blank),
+]
+FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class PayoffIn(_Strict):
+    """What a right answer gains and a wrong one costs; sets the answer threshold."""
+
+    reward: FiniteFloat = Field(default=1.0, gt=0, le=1e6, description="gain of a right answer")
+    penalty: FiniteFloat = Field(default=1.0, ge=0, le=1e6, description="cost of a wrong answer")
+
+
+class _RankOptions(_Strict):
+    k: int | None = Field(default=None, ge=1, description="candidates to return (server default)")
+    include_features: bool = Field(default=False, description="add each candidate's features")
+    payoff: PayoffIn | None = Field(default=None, description="overrides the model's threshold")
+    complete: bool = Field(
+        default=False, description="the clue is finished: no more words are coming"
+    )
+
+
+class RankRequest(_RankOptions):
+    """One clue to rank."""
+
+    clue: Clue = Field(description="free-text clue, possibly still incomplete")
+    metadata: Annotated[dict[str, Any], AfterValidator(_finite_json)] | None = Field(
+        default=None, description="values for a model's metadata features (kept in the log)"
+    )
+
+
+class BatchRankRequest(_RankOptions):
+    """Many clues ranked with the same options."""
+
+    clues: list[Clue] = Field(min_length=1, description="clues to rank, answered in order")
+
+
+class CandidateOut(BaseModel):
+    """One candidate article."""
+
+    id: str
+    title: str
+    qualifier: str = Field(description="parenthetical part of the title, '' if none")
+    score: float = Field(description="BM25 score")
+    rank: int = Field(description="1-based BM25 rank")
+    probability: float | None = Field(description="calibrated probability; null without a model")
+    features: dict[str, float | None] | None = Field(
+        default=None, description="feature values (only when include_features is true)"
+    )
+
+
+class DecisionOut(BaseModel):
+    """Answer now, wait for more words, or (complete clues only) abstain."""
+
+    action: Literal["answer", "wait", "abstain"]
+    id: str | None = Field(description="chosen article id when action is 'answer'")
+    probability: float | None
+    threshold: float = Field(description="probability an answer had to reach")
+    reason: str
+
+
+class TimingOut(BaseModel):
+    """Server-side time spent, in milliseconds."""
+
+    rank_ms: float = Field(description="search, features and model")
+    total_ms: float = Field(description="whole handler, including logging")
+
+
+class RankResult(BaseModel):
+    """Candidates and decision for one clue."""
+
+    request_id: str = Field(description="send it back with POST /v1/feedback")
+    clue: str
+    candidates: list[CandidateOut]
+    decision: DecisionOut
+
+
+class RankResponse(RankResult):
+    """Reply to POST /v1/rank."""
+
+    k: int
+    complete: bool
+    ranked_by: Literal["probability", "bm25"]
+    note: str | None = Field(default=None, description="set when no model is loaded")
+    index_version: str
+    model_version: str | None
+    timing: TimingOut
+
+
+class BatchRankResponse(BaseModel):
+    """Reply to POST /v1/rank/batch: one result per clue, in order."""
+
+    results: list[RankResult]
+    k: int
+    complete: bool
+    ranked_by: Literal["probability", "bm25"]
+    note: str | None = None
+    index_version: str
+    model_version: str | None
+    timing: TimingOut
+
+
+class FeedbackRequest(_Strict):
+    """The right answer to a ranked clue, or null for 'none of these'."""
+
+    request_id: Annotated[str, StringConstraints(max_length=REQUEST_ID_MAX)]
+    answer: ArticleId | None = Field(description="article id, or null: none of the candidates")
+
+
+class FeedbackResponse(BaseModel):
+    """Feedback accepted."""
+
+    request_id: str
+    answer: str | None
+    recorded: bool = Field(description="false when the server keeps no served log")
+
+
+class EntryOut(BaseModel):
+    """One article's stored fields and what the index derived from them."""
+
+    id: str
+    title: str
+    base: str
+    qualifier: str
+    text: str
+    links: list[str]
+    aliases: list[str]
+    popularity: float | None
+    inlinks: int
+    metadata: dict[str, Any]
+
+
+class ArticleIn(_Strict):
+    """An article in the corpus record shape."""
+
+    id: ArticleId
+    title: Annotated[Text, StringConstraints(min_length=1, max_length=1000)]
+    text: Text
+    links: list[Text] = Field(default_factory=list)
+    aliases: list[Text] = Field(default_factory=list)
+    popularity: FiniteFloat | None = Field(default=None, ge=0)
+    metadata: Annotated[dict[str, Any], AfterValidator(_finite_json)] = Field(default_factory=dict)
+
+
+class ChangeOut(BaseModel):
+    """What an admin call changed."""
+
+    generation: int = Field(description="sibling workers load the files when they see it")
+    index_version: str
+    model_version: str | None
+    previous_index_version: str
+    previous_model_version: str | None
+    articles: int
+
+
+class LimitsOut(BaseModel):
+    """Bounds on requests."""
+
+    default_k: int
+    max_k: int
+    max_clue_chars: int
+    max_batch: int
+    max_body_bytes: int
+
+
+class InfoOut(BaseModel):
+    """What this server serves."""
+
+    index_version: str
+    model_version: str | None
+    ranked_by: Literal["probability", "bm25"]
+    features: list[str]
+    articles: int
+    terms: int
+    generation: int
+    loaded_at: str
+    served_log: bool
+    admin_enabled: bool
+    limits: LimitsOut
+
+
+class ErrorOut(BaseModel):
+    """FastAPI's error shape: a message, or a list of field errors."""
+
+    detail: Any
+
+
+class HealthOut(BaseModel):
+    """Liveness."""
+
+    status: Literal["ok"]
+
+
+class ReadyOut(BaseModel):
+    """Readiness: the index, and the model if one was configured, are loaded."""
+
+    ready: bool
+    index_version: str | None
+    model_version: str | None
+    model_configured: bool

@@ -1,0 +1,91 @@
+"""Service settings, read from HUNCHWISE_* environment variables (pydantic-settings)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from fastapi import Request
+from pydantic import Field, SecretStr, model_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class ServiceSettings(BaseSettings):
+    """Everything `hunchwise serve` can be told; each field is also env var HUNCHWISE_<NAME>."""
+
+    model_config = SettingsConfigDict(env_prefix="HUNCHWISE_", extra="ignore", frozen=True)
+
+    index_dir: Path = Field(description="index folder the server searches")
+    model_path: Path | None = Field(
+        default=None, description="reranker model file; without one the server ranks by BM25"
+    )
+    log_dir: Path | None = Field(
+        default=None, description="folder of the served log (served.jsonl); None: no log"
+    )
+    state_dir: Path | None = Field(
+        default=None,
+        description="folder the workers share: generation marker, locks, request-id secret",
+    )
+    admin_token: SecretStr | None = Field(default=None, description="bearer token of /v1/admin/*")
+    admin_token_file: Path | None = Field(
+        default=None, description="file holding the admin token (instead of HUNCHWISE_ADMIN_TOKEN)"
+    )
+    request_secret: SecretStr | None = Field(
+        default=None,
+        description="key that signs request ids; set it so feedback survives restarts",
+    )
+
+    default_k: int = Field(default=20, ge=1, description="candidates returned when k is omitted")
+    max_k: int = Field(default=100, ge=1, description="largest k a request may ask for")
+    max_clue_chars: int = Field(default=2000, ge=1, description="longest clue, in characters")
+    max_batch: int = Field(default=256, ge=1, description="most clues in one batch request")
+    max_body_bytes: int = Field(default=1_000_000, ge=1024, description="largest request body")
+    max_admin_body_bytes: int = Field(
+        default=50_000_000, ge=1024, description="largest body of POST /v1/admin/entries"
+    )
+    max_entries_per_call: int = Field(default=10_000, ge=1, description="articles per admin call")
+
+    log_max_bytes: int = Field(
+        default=64 * 1024 * 1024, ge=1024, description="rotate served.jsonl past this size"
+    )
+    log_backups: int = Field(
+        default=10, ge=1, description="rotated files kept: served.1.jsonl ... served.N.jsonl"
+    )
+    reload_check_seconds: float = Field(
+        default=0.5, gt=0, le=60, description="how often a worker looks at the generation marker"
+    )
+    cors_origins: list[str] = Field(
+        default_factory=list, description="origins allowed by CORS; empty: CORS off"
+    )
+
+    @model_validator(mode="after")
+    def _check(self) -> ServiceSettings:
+        if self.default_k > self.max_k:
+            raise ValueError(f"default_k ({self.default_k}) exceeds max_k ({self.max_k})")
+        if self.admin_token is not None and self.admin_token_file is not None:
+            raise ValueError("set the admin token either in HUNCHWISE_ADMIN_TOKEN or in a file")
+        return self
+
+    def resolved_admin_token(self) -> str | None:
+        """The admin token from the env or the token file; None when admin is disabled."""
+        if self.admin_token is not None:
+            token = self.admin_token.get_secret_value().strip()
+        elif self.admin_token_file is not None:
+            try:
+                token = self.admin_token_file.read_text(encoding="utf-8").strip()
+            except (OSError, UnicodeDecodeError) as exc:
+                raise ValueError(
+                    f"{self.admin_token_file}: cannot read the admin token: {exc}"
+                ) from exc
+            if not token:
+                raise ValueError(f"{self.admin_token_file}: the admin token file is empty")
+        else:
+            return None
+        if not token:
+            raise ValueError("HUNCHWISE_ADMIN_TOKEN is set but empty")
+        return token
+
+
+def get_settings(request: Request) -> ServiceSettings:
+    """Dependency: the settings of the app serving this request (override it in tests)."""
+    settings: ServiceSettings = request.app.state.settings
+    return settings

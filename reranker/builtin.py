@@ -1,0 +1,267 @@
+"""The built-in candidate features, grouped for the ablation table."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+
+from retriever import Index
+
+from .features import CandidateSet, Feature, FeatureRegistry, index_cache
+
+_FEATURES: list[Feature] = []
+
+
+def feature(
+    group: str,
+) -> Callable[[Callable[[CandidateSet], np.ndarray]], Callable[[CandidateSet], np.ndarray]]:
+    """Register the decorated function as a built-in feature of `group`; its docstring describes it."""
+
+    def wrap(func: Callable[[CandidateSet], np.ndarray]) -> Callable[[CandidateSet], np.ndarray]:
+        doc = (func.__doc__ or "").strip().splitlines()[0]
+        _FEATURES.append(Feature(func.__name__, group, doc, func))
+        return func
+
+    return wrap
+
+
+def _fraction(parts: list[frozenset[str]], clue: frozenset[str]) -> np.ndarray:
+    return np.array([len(p & clue) / len(p) if p else 0.0 for p in parts])
+
+
+# -- retrieval: the score and how it compares with the clue's other candidates ------------
+@feature("retrieval")
+def bm25_score(cs: CandidateSet) -> np.ndarray:
+    """BM25 score of the candidate for the clue."""
+    return cs.scores
+
+
+@feature("retrieval")
+def bm25_rank(cs: CandidateSet) -> np.ndarray:
+    """1-based BM25 rank among the clue's candidates."""
+    return cs.ranks.astype(np.float64)
+
+
+@feature("retrieval")
+def inverse_rank(cs: CandidateSet) -> np.ndarray:
+    """1 / BM25 rank."""
+    return 1.0 / cs.ranks
+
+
+@feature("retrieval")
+def gap_to_next(cs: CandidateSet) -> np.ndarray:
+    """Score minus the next-ranked candidate's score (0 for the last)."""
+    return np.append(cs.scores[:-1] - cs.scores[1:], 0.0)
+
+
+@feature("retrieval")
+def gap_to_best_rival(cs: CandidateSet) -> np.ndarray:
+    """Score minus the best score among the other candidates (positive only for a clear leader)."""
+    s = cs.scores
+    if s.size < 2:
+        return np.zeros_like(s)
+    order = np.argsort(-s, kind="stable")
+    best, second = s[order[0]], s[order[1]]
+    rival = np.full_like(s, best)
+    rival[order[0]] = second
+    return s - rival
+
+
+@feature("retrieval")
+def score_ratio_to_top(cs: CandidateSet) -> np.ndarray:
+    """Score divided by the top candidate's score."""
+    top = cs.scores.max() if cs.scores.size else 0.0
+    return cs.scores / top if top > 0 else np.zeros_like(cs.scores)
+
+
+@feature("retrieval")
+def score_zscore(cs: CandidateSet) -> np.ndarray:
+    """Score standardized over the clue's candidates."""
+    sd = cs.scores.std()
+    return (cs.scores - cs.scores.mean()) / sd if sd > 0 else np.zeros_like(cs.scores)
+
+
+@feature("retrieval")
+def score_softmax(cs: CandidateSet) -> np.ndarray:
+    """Softmax of the scores over the clue's candidates: a within-clue share of the evidence."""
+    z = np.exp(cs.scores - cs.scores.max()) if cs.scores.size else cs.scores
+    return z / z.sum() if z.size else z
+
+
+# -- clue length: long clues make a high score more trustworthy ---------------------------
+@feature("length")
+def clue_words(cs: CandidateSet) -> np.ndarray:
+    """Words of the clue seen so far."""
+    return np.full(len(cs), float(len(cs.words)))
+
+
+@feature("length")
+def log_clue_words(cs: CandidateSet) -> np.ndarray:
+    """log1p of the words seen so far."""
+    return np.full(len(cs), np.log1p(len(cs.words)))
+
+
+@feature("length")
+def score_x_clue_words(cs: CandidateSet) -> np.ndarray:
+    """BM25 score times the words seen so far."""
+    return cs.scores * len(cs.words)
+
+
+@feature("length")
+def softmax_x_log_words(cs: CandidateSet) -> np.ndarray:
+    """Softmax share times log1p(words seen): a leader in a long clue is worth more."""
+    return score_softmax(cs) * np.log1p(len(cs.words))
+
+
+# -- popularity: raw counts are long-tailed, the log is closer to normal ------------------
+@feature("popularity")
+def inlinks(cs: CandidateSet) -> np.ndarray:
+    """In-link count (distinct articles linking here)."""
+    return np.asarray(cs.index.inlinks[cs.rows], dtype=np.float64)
+
+
+@feature("popularity")
+def log_inlinks(cs: CandidateSet) -> np.ndarray:
+    """log1p of the in-link count."""
+    return np.log1p(np.asarray(cs.index.inlinks[cs.rows], dtype=np.float64))
+
+
+@feature("popularity")
+def log_inlinks_vs_best(cs: CandidateSet) -> np.ndarray:
+    """log1p(in-links) minus the highest among the clue's candidates."""
+    v = log_inlinks(cs)
+    return v - v.max() if v.size else v
+
+
+@feature("popularity")
+def log_popularity(cs: CandidateSet) -> np.ndarray:
+    """log1p of the corpus's popularity field (0 when absent)."""
+    p = np.asarray(cs.index.popularity[cs.rows], dtype=np.float64)
+    return np.log1p(np.nan_to_num(p, nan=0.0))
+
+
+@feature("popularity")
+def popularity_missing(cs: CandidateSet) -> np.ndarray:
+    """1 when the article has no popularity value."""
+    return np.isnan(np.asarray(cs.index.popularity[cs.rows], dtype=np.float64)).astype(np.float64)
+
+
+# -- qualifier: does the clue say what kind of thing it wants? -----------------------------
+@feature("qualifier")
+def has_qualifier(cs: CandidateSet) -> np.ndarray:
+    """1 when the title carries a parenthetical qualifier."""
+    return np.array([1.0 if q else 0.0 for q in cs.qualifier_tokens])
+
+
+@feature("qualifier")
+def qualifier_in_clue(cs: CandidateSet) -> np.ndarray:
+    """1 when any word of the qualifier appears in the clue."""
+    clue = cs.token_set
+    return np.array([1.0 if q & clue else 0.0 for q in cs.qualifier_tokens])
+
+
+@feature("qualifier")
+def qualifier_overlap(cs: CandidateSet) -> np.ndarray:
+    """Fraction of the qualifier's words that appear in the clue."""
+    return _fraction(cs.qualifier_tokens, cs.token_set)
+
+
+# -- leakage: an answer is rarely named in its own clue ------------------------------------
+@feature("leakage")
+def title_overlap(cs: CandidateSet) -> np.ndarray:
+    """Fraction of the title's base-name words that appear in the clue."""
+    return _fraction(cs.base_tokens, cs.token_set)
+
+
+@feature("leakage")
+def alias_overlap(cs: CandidateSet) -> np.ndarray:
+    """Fraction of the candidate's alias words that appear in the clue."""
+    return _fraction(cs.alias_tokens, cs.token_set)
+
+
+# -- term overlap: how much of the clue the article covers --------------------------------
+def _matched(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray]:
+    """(distinct clue terms in each candidate, IDF-like weight of those terms), via the postings."""
+    cached = cs.memo.get("matched")
+    if cached is None:
+        cached = cs.memo["matched"] = _match_terms(cs)
+    return cached
+
+
+def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray]:
+    tids, _ = cs.index.term_ids(cs.tokens)
+    count = np.zeros(len(cs))
+    weight = np.zeros(len(cs))
+    indptr, docs = cs.index.body.indptr, cs.index.body.docs
+    n = max(cs.index.n_docs, 1)
+    rows = cs.rows.astype(np.int32)
+    for t in tids.tolist():
+        s, e = int(indptr[t]), int(indptr[t + 1])
+        if s == e:
+            continue
+        posting = docs[s:e]  # sorted rows, so membership is a binary search
+        pos = np.searchsorted(posting, rows)
+        hit = (pos < posting.size) & (posting[np.minimum(pos, posting.size - 1)] == rows)
+        count += hit
+        weight += hit * np.log(n / (e - s))
+    return count, weight
+
+
+@feature("overlap")
+def matched_terms(cs: CandidateSet) -> np.ndarray:
+    """Distinct clue terms found in the article."""
+    return _matched(cs)[0]
+
+
+@feature("overlap")
+def matched_fraction(cs: CandidateSet) -> np.ndarray:
+    """Share of the clue's distinct known terms found in the article."""
+    count, _ = _matched(cs)
+    known = cs.index.term_ids(cs.tokens)[0].size
+    return count / known if known else np.zeros(len(cs))
+
+
+@feature("overlap")
+def matched_rarity(cs: CandidateSet) -> np.ndarray:
+    """Sum of log(N/df) over the clue terms found in the article."""
+    return _matched(cs)[1]
+
+
+@feature("overlap")
+def log_doc_length(cs: CandidateSet) -> np.ndarray:
+    """log1p of the article's length in terms."""
+    return np.log1p(np.asarray(cs.index.doc_len[cs.rows], dtype=np.float64))
+
+
+@feature("overlap")
+def qualifier_frequency(cs: CandidateSet) -> np.ndarray:
+    """log1p of how many titles in the corpus share the candidate's qualifier (0 if none)."""
+    counts = _qualifier_counts(cs.index)
+    return np.array(
+        [
+            np.log1p(counts.get(cs.index.qualifiers[r], 0)) if cs.index.qualifiers[r] else 0.0
+            for r in cs.rows.tolist()
+        ]
+    )
+
+
+def _qualifier_counts(index: Index) -> dict[str, int]:
+    cache = index_cache(index)
+    counts: dict[str, int] | None = cache.get("qualifier_counts")
+    if counts is None:
+        counts = {}
+        for q in index.qualifiers:
+            if q:
+                counts[q] = counts.get(q, 0) + 1
+        cache["qualifier_counts"] = counts
+    return counts
+
+
+# The score-only model, the yardstick every other feature set must beat.
+SCORE_ONLY = ("bm25_score",)
+
+
+def default_registry() -> FeatureRegistry:
+    """A registry of the built-in features."""
+    return FeatureRegistry(_FEATURES)

@@ -1,0 +1,236 @@
+"""Labelled clues to a training table: prefixes, candidates, features and labels."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from tqdm.auto import tqdm
+
+from retriever import Index
+
+from .features import CandidateSet, FeatureRegistry
+from .logs import LabelledClue
+
+
+@dataclass(frozen=True)
+class PrefixPlan:
+    """Which prefixes of each clue become examples: shares of its words, or every N words."""
+
+    fractions: tuple[float, ...] = (0.2, 0.4, 0.6, 0.8, 1.0)
+    every_words: int | None = None
+
+    def __post_init__(self) -> None:
+        if self.every_words is not None and self.every_words < 1:
+            raise ValueError(f"every_words must be at least 1, got {self.every_words}")
+        if any(not 0 < f <= 1 for f in self.fractions):
+            raise ValueError(f"prefix fractions must be in (0, 1], got {self.fractions}")
+
+    def cuts(self, n_words: int) -> list[int]:
+        """Distinct word counts to keep, ending with the whole clue."""
+        if n_words == 0:
+            return []
+        if self.every_words:
+            cuts = list(range(self.every_words, n_words, self.every_words))
+        else:
+            cuts = [max(1, math.ceil(f * n_words)) for f in self.fractions]
+        return sorted(set(cuts) | {n_words})
+
+
+@dataclass(frozen=True)
+class MetadataColumns:
+    """Log metadata used as features: numeric ones as they are, categorical ones one-hot."""
+
+    numeric: tuple[str, ...] = ()
+    categorical: dict[str, tuple[str, ...]] = field(default_factory=dict)
+
+    @property
+    def names(self) -> list[str]:
+        """Column names as they appear in the model."""
+        out = [f"meta:{n}" for n in self.numeric]
+        for name, values in self.categorical.items():
+            out.extend(f"meta:{name}={v}" for v in values)
+        return out
+
+    @classmethod
+    def learn(cls, clues: Sequence[LabelledClue], names: Sequence[str]) -> MetadataColumns:
+        """Decide numeric or categorical per name from the training logs; learn category values."""
+        numeric, categorical = [], {}
+        for name in names:
+            values = [c.metadata.get(name) for c in clues if c.metadata.get(name) is not None]
+            if not values:
+                raise ValueError(f"metadata field {name!r} never appears in the logs")
+            if all(isinstance(v, int | float) and not isinstance(v, bool) for v in values):
+                numeric.append(name)
+            else:
+                categorical[name] = tuple(sorted({str(v) for v in values}))
+        return cls(tuple(numeric), categorical)
+
+    def row(self, metadata: dict[str, Any]) -> np.ndarray:
+        """Values for one clue; unseen categories and missing fields give zeros."""
+        vals: list[float] = []
+        for n in self.numeric:
+            v = metadata.get(n)
+            vals.append(float(v) if isinstance(v, int | float) and not isinstance(v, bool) else 0.0)
+        for name, cats in self.categorical.items():
+            v = metadata.get(name)
+            vals.extend(1.0 if v is not None and str(v) == c else 0.0 for c in cats)
+        return np.asarray(vals, dtype=np.float64)
+
+
+def candidate_set(
+    index: Index, clue: str, hits: Sequence[Any], metadata: dict[str, Any] | None = None
+) -> CandidateSet:
+    """The CandidateSet of a clue from its BM25 hits."""
+    return CandidateSet(
+        index=index,
+        clue=clue,
+        words=index.analyzer.words(clue),
+        tokens=index.analyzer.tokens(clue),
+        rows=np.fromiter((h.row for h in hits), np.int64, len(hits)),
+        scores=np.fromiter((h.score for h in hits), np.float64, len(hits)),
+        ranks=np.fromiter((h.rank for h in hits), np.int64, len(hits)),
+        metadata=metadata or {},
+    )
+
+
+@dataclass
+class TrainingTable:
+    """One row per (clue prefix, candidate). Arrays share the first dimension n."""
+
+    X: np.ndarray  # float64, shape (n, n_features)
+    y: np.ndarray  # int8, shape (n,): 1 for the gold answer
+    group: np.ndarray  # int64, shape (n,): one id per clue prefix
+    clue_id: np.ndarray  # int64, shape (n,): one id per clue (cross-validation groups)
+    fraction: np.ndarray  # float64, shape (n,): share of the clue's words revealed
+    score: np.ndarray  # float64, shape (n,): BM25 score
+    rank: np.ndarray  # int64, shape (n,)
+    row: np.ndarray  # int64, shape (n,): index row of the candidate
+    feature_names: list[str]
+    unresolved: list[dict[str, Any]] = field(default_factory=list)
+    n_clues: int = 0
+    n_prefixes: int = 0
+
+    def columns(self, names: Sequence[str]) -> np.ndarray:
+        """The feature columns `names`, in that order."""
+        pos = {n: i for i, n in enumerate(self.feature_names)}
+        missing = [n for n in names if n not in pos]
+        if missing:
+            raise ValueError(f"the table has no features {missing}")
+        return self.X[:, [pos[n] for n in names]]
+
+    def to_frame(self) -> pd.DataFrame:
+        """The table as a pandas DataFrame (features plus bookkeeping columns)."""
+        df = pd.DataFrame(self.X, columns=self.feature_names)
+        for name in ("y", "group", "clue_id", "fraction", "score", "rank", "row"):
+            df[f"_{name}"] = getattr(self, name)
+        return df
+
+    def recall(self) -> float:
+        """Share of full-clue prefixes whose gold answer is among the candidates."""
+        full = self.fraction == 1.0
+        if not full.any():
+            return 0.0
+        groups = np.unique(self.group[full])
+        hit = np.unique(self.group[full & (self.y == 1)])
+        return float(hit.size / groups.size)
+
+
+def build_table(
+    index: Index,
+    clues: Sequence[LabelledClue],
+    registry: FeatureRegistry,
+    feature_names: Sequence[str],
+    *,
+    k: int = 20,
+    plan: PrefixPlan | None = None,
+    metadata: MetadataColumns | None = None,
+    progress: bool = False,
+) -> TrainingTable:
+    """Search every prefix of every clue, featurize its candidates and label them."""
+    plan = plan or PrefixPlan()
+    metadata = metadata or MetadataColumns()
+    unresolved: list[dict[str, Any]] = []
+    texts: list[str] = []
+    owners: list[
+        tuple[int, float, int | None, dict[str, Any]]
+    ] = []  # clue id, fraction, gold row, metadata
+    n_clues = 0
+    for c in clues:
+        gold: int | None = None
+        if c.answer is not None:
+            gold = index.resolver.row(c.answer)
+            if gold is None:
+                unresolved.append(
+                    {"file": c.file, "line": c.line, "answer": c.answer, "clue": c.clue[:80]}
+                )
+                continue
+        words = c.clue.split()
+        cuts = plan.cuts(len(words))
+        if not cuts:
+            continue
+        for m in cuts:
+            texts.append(" ".join(words[:m]))
+            owners.append((n_clues, m / len(words), gold, c.metadata))
+        n_clues += 1
+    hits_all = []
+    step = 512
+    for start in tqdm(
+        range(0, len(texts), step), desc="candidates", unit=" batches", disable=not progress
+    ):
+        hits_all.extend(index.search_many(texts[start : start + step], k=k))
+    names = list(feature_names)
+    all_names = names + metadata.names
+    blocks: list[np.ndarray] = []
+    cols: dict[str, list[np.ndarray]] = {
+        n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row")
+    }
+    for g, (text, hits, (cid, frac, gold, meta)) in enumerate(
+        tqdm(
+            zip(texts, hits_all, owners, strict=True),
+            total=len(texts),
+            desc="features",
+            unit=" prefixes",
+            disable=not progress,
+            mininterval=0.5,
+        )
+    ):
+        if not hits:
+            continue
+        cs = candidate_set(index, text, hits, meta)
+        x = registry.matrix(cs, names)
+        if metadata.names:
+            x = np.hstack([x, np.tile(metadata.row(meta), (len(cs), 1))])
+        blocks.append(x)
+        n = len(cs)
+        cols["y"].append(
+            (cs.rows == gold).astype(np.int8) if gold is not None else np.zeros(n, np.int8)
+        )
+        cols["group"].append(np.full(n, g, np.int64))
+        cols["clue_id"].append(np.full(n, cid, np.int64))
+        cols["fraction"].append(np.full(n, frac))
+        cols["score"].append(cs.scores)
+        cols["rank"].append(cs.ranks)
+        cols["row"].append(cs.rows)
+
+    def cat(name: str, dtype: Any) -> np.ndarray:
+        return np.concatenate(cols[name]).astype(dtype) if cols[name] else np.zeros(0, dtype)
+
+    return TrainingTable(
+        X=np.vstack(blocks) if blocks else np.zeros((0, len(all_names))),
+        y=cat("y", np.int8),
+        group=cat("group", np.int64),
+        clue_id=cat("clue_id", np.int64),
+        fraction=cat("fraction", np.float64),
+        score=cat("score", np.float64),
+        rank=cat("rank", np.int64),
+        row=cat("row", np.int64),
+        feature_names=all_names,
+        unresolved=unresolved,
+        n_clues=n_clues,
+        n_prefixes=len(texts),
+    )

@@ -1,0 +1,300 @@
+"""The logistic reranker: grouped cross-validated fit, optional calibration, JSON artifact."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import uuid
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sklearn.isotonic import IsotonicRegression
+from sklearn.linear_model import LogisticRegression
+from sklearn.metrics import log_loss
+from sklearn.model_selection import GroupKFold
+from sklearn.pipeline import Pipeline, make_pipeline
+from sklearn.preprocessing import StandardScaler
+
+from .errors import ModelFormatError, TrainingError
+
+FORMAT_NAME = "hunchwise-model"
+FORMAT_VERSION = 1
+DEFAULT_CS = (0.01, 0.1, 1.0, 10.0, 100.0)
+CALIBRATIONS = ("auto", "none", "platt", "isotonic")
+_EPS = 1e-6  # keep calibrated probabilities off 0 and 1 so log-loss stays finite
+
+
+def make_pipeline_for(C: float, max_iter: int = 5000) -> Pipeline:
+    """StandardScaler + LogisticRegression with every setting that matters spelled out."""
+    return make_pipeline(
+        StandardScaler(),
+        LogisticRegression(C=C, solver="newton-cholesky", max_iter=max_iter, tol=1e-6, fit_intercept=True),
+    )
+
+
+def grouped_folds(
+    y: np.ndarray, groups: np.ndarray, n_folds: int
+) -> list[tuple[np.ndarray, np.ndarray]]:
+    """GroupKFold splits (folds by clue, never by row) whose training side has both labels."""
+    n_groups = np.unique(groups).size
+    if n_groups < 2:
+        raise TrainingError("cross-validation needs at least two clues")
+    splits = list(GroupKFold(n_splits=min(n_folds, n_groups)).split(np.zeros(len(y)), y, groups))
+    for train, _ in splits:
+        if np.unique(y[train]).size < 2:
+            raise TrainingError(
+                "a cross-validation fold has only one label; add more labelled clues"
+            )
+    return splits
+
+
+def positive_proba(pipe: Pipeline, X: np.ndarray) -> np.ndarray:
+    """Probability of label 1, found through classes_."""
+    col = int(np.flatnonzero(pipe.classes_ == 1)[0])
+    return np.asarray(pipe.predict_proba(X)[:, col])
+
+
+def oof_proba(
+    X: np.ndarray, y: np.ndarray, splits: list[tuple[np.ndarray, np.ndarray]], C: float
+) -> np.ndarray:
+    """Out-of-fold probabilities of label 1 for one C."""
+    out = np.zeros(len(y))
+    for train, test in splits:
+        pipe = make_pipeline_for(C).fit(X[train], y[train])
+        out[test] = positive_proba(pipe, X[test])
+    return out
+
+
+def _logit(p: np.ndarray) -> np.ndarray:
+    p = np.clip(p, _EPS, 1 - _EPS)
+    return np.log(p / (1 - p))
+
+
+def fit_calibrator(method: str, p: np.ndarray, y: np.ndarray) -> dict[str, Any]:
+    """Fit a post-hoc calibrator on held-out probabilities; returns its plain-data form."""
+    if method == "platt":
+        lr = LogisticRegression(C=1e6, solver="newton-cholesky", max_iter=5000, tol=1e-8).fit(
+            _logit(p)[:, None], y
+        )
+        return {"method": "platt", "a": float(lr.coef_[0, 0]), "b": float(lr.intercept_[0])}
+    if method == "isotonic":
+        iso = IsotonicRegression(y_min=0.0, y_max=1.0, out_of_bounds="clip").fit(p, y)
+        return {
+            "method": "isotonic",
+            "x": iso.X_thresholds_.tolist(),
+            "y": iso.y_thresholds_.tolist(),
+        }
+    return {"method": "none"}
+
+
+def apply_calibrator(cal: dict[str, Any], p: np.ndarray) -> np.ndarray:
+    """Apply a calibrator written by fit_calibrator (numpy only)."""
+    method = cal.get("method", "none")
+    if method == "platt":
+        z = cal["a"] * _logit(p) + cal["b"]
+        return np.clip(1.0 / (1.0 + np.exp(-z)), _EPS, 1 - _EPS)
+    if method == "isotonic":
+        return np.clip(np.interp(p, np.asarray(cal["x"]), np.asarray(cal["y"])), _EPS, 1 - _EPS)
+    return p
+
+
+def choose_calibration(
+    p: np.ndarray, y: np.ndarray, groups: np.ndarray, n_folds: int
+) -> tuple[str, dict[str, float]]:
+    """Pick the calibration with the lowest grouped-CV log-loss on out-of-fold probabilities."""
+    splits = grouped_folds(y, groups, n_folds)
+    scores = {"none": float(log_loss(y, np.clip(p, _EPS, 1 - _EPS), labels=[0, 1]))}
+    for method in ("platt", "isotonic"):
+        out = np.zeros_like(p)
+        for train, test in splits:
+            out[test] = apply_calibrator(fit_calibrator(method, p[train], y[train]), p[test])
+        scores[method] = float(log_loss(y, out, labels=[0, 1]))
+    return min(scores, key=lambda m: (scores[m], m != "none")), scores
+
+
+class Reranker:
+    """Logistic model of 'this candidate is the answer', with its scaler and calibrator as plain data."""
+
+    # Set by load_model when the model is prepared for serving.
+    artifact_: dict[str, Any]
+    registry_: Any
+    code_features_: list[str]
+    metadata_: Any
+    threshold_: float
+    index_note_: str
+
+    def __init__(
+        self,
+        *,
+        Cs: tuple[float, ...] = DEFAULT_CS,
+        calibration: str = "auto",
+        n_folds: int = 5,
+        max_iter: int = 5000,
+    ) -> None:
+        if calibration not in CALIBRATIONS:
+            raise ValueError(f"calibration must be one of {CALIBRATIONS}, got {calibration!r}")
+        if not Cs or any(not c > 0 for c in Cs):
+            raise ValueError(f"Cs must be a non-empty list of positive numbers, got {Cs}")
+        self.Cs = tuple(Cs)
+        self.calibration = calibration
+        self.n_folds = n_folds
+        self.max_iter = max_iter
+
+    def fit(
+        self, X: np.ndarray, y: np.ndarray, groups: np.ndarray, feature_names: list[str]
+    ) -> Reranker:
+        """Choose C by grouped CV log-loss, fit on all rows, then choose and fit the calibrator."""
+        X, y = np.asarray(X, dtype=np.float64), np.asarray(y).astype(np.int64)
+        if X.ndim != 2 or X.shape[1] != len(feature_names):
+            raise ValueError(
+                f"X has shape {X.shape} but {len(feature_names)} feature names were given"
+            )
+        if y.sum() == 0 or y.sum() == len(y):
+            raise TrainingError(
+                "training needs both right and wrong candidates; "
+                "check that gold answers resolve and appear among the candidates"
+            )
+        splits = grouped_folds(y, groups, self.n_folds)
+        self.cv_log_loss_: dict[str, float] = {}
+        best: tuple[float, float, np.ndarray] | None = None
+        for C in self.Cs:
+            p = oof_proba(X, y, splits, C)
+            loss = float(log_loss(y, p, labels=[0, 1]))
+            self.cv_log_loss_[repr(C)] = loss
+            if best is None or loss < best[0]:
+                best = (loss, C, p)
+        if best is None:
+            raise TrainingError("no regularization strengths (Cs) to try")
+        _, self.C_, raw_oof = best
+        self.pipeline_ = make_pipeline_for(self.C_, self.max_iter).fit(X, y)
+        scaler: StandardScaler = self.pipeline_[0]
+        lr: LogisticRegression = self.pipeline_[-1]
+        sign = 1.0 if lr.classes_[1] == 1 else -1.0
+        self.feature_names_ = list(feature_names)
+        self.mean_ = scaler.mean_.astype(np.float64)
+        self.scale_ = scaler.scale_.astype(np.float64)
+        self.coef_ = sign * lr.coef_[0].astype(np.float64)
+        self.intercept_ = float(sign * lr.intercept_[0])
+        if self.calibration == "auto":
+            method, self.calibration_scores_ = choose_calibration(raw_oof, y, groups, self.n_folds)
+        else:
+            method, self.calibration_scores_ = self.calibration, {}
+        self.calibrator_ = fit_calibrator(method, raw_oof, y)
+        self.oof_proba_ = apply_calibrator(self.calibrator_, raw_oof)
+        return self
+
+    def raw_probability(self, X: np.ndarray) -> np.ndarray:
+        """Uncalibrated P(answer) from the stored numbers (numpy only). float64, shape (n,)."""
+        z = (
+            (np.asarray(X, dtype=np.float64) - self.mean_) / self.scale_
+        ) @ self.coef_ + self.intercept_
+        return 1.0 / (1.0 + np.exp(-z))
+
+    def probability(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated P(answer) of each row. float64, shape (n,)."""
+        return apply_calibrator(self.calibrator_, self.raw_probability(X))
+
+    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+        """scikit-learn style: columns [P(wrong), P(right)]."""
+        p = self.probability(X)
+        return np.column_stack([1 - p, p])
+
+    # -- artifact ---------------------------------------------------------------
+    def to_dict(self, **extra: Any) -> dict[str, Any]:
+        """The model as plain JSON data; `extra` adds sections such as metrics or decision."""
+        body = {
+            "feature_names": self.feature_names_,
+            "scaler": {"mean": self.mean_.tolist(), "scale": self.scale_.tolist()},
+            "coef": self.coef_.tolist(),
+            "intercept": self.intercept_,
+            "calibration": self.calibrator_,
+            "C": self.C_,
+            "cv_log_loss": self.cv_log_loss_,
+            "calibration_log_loss": self.calibration_scores_,
+        }
+        version = hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()[:12]
+        return {
+            "format": FORMAT_NAME,
+            "format_version": FORMAT_VERSION,
+            "model_version": version,
+            "created_at": datetime.now(UTC).isoformat(timespec="seconds"),
+            **body,
+            **extra,
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any], *, source: str = "<model>") -> Reranker:
+        """Rebuild a fitted model from its plain-data form, checking the format."""
+        if not isinstance(data, dict) or data.get("format") != FORMAT_NAME:
+            raise ModelFormatError(f"{source}: not a hunchwise model file")
+        if data.get("format_version") != FORMAT_VERSION:
+            raise ModelFormatError(
+                f"{source}: model format version {data.get('format_version')} is not supported "
+                f"(this hunchwise reads {FORMAT_VERSION}); retrain with 'hunchwise train'"
+            )
+        try:
+            m = cls(
+                calibration=data["calibration"]["method"]
+                if data["calibration"]["method"] != "none"
+                else "none"
+            )
+            m.feature_names_ = [str(n) for n in data["feature_names"]]
+            m.mean_ = np.asarray(data["scaler"]["mean"], dtype=np.float64)
+            m.scale_ = np.asarray(data["scaler"]["scale"], dtype=np.float64)
+            m.coef_ = np.asarray(data["coef"], dtype=np.float64)
+            m.intercept_ = float(data["intercept"])
+            m.calibrator_ = dict(data["calibration"])
+            m.C_ = float(data["C"])
+            m.cv_log_loss_ = dict(data.get("cv_log_loss", {}))
+            m.calibration_scores_ = dict(data.get("calibration_log_loss", {}))
+        except (KeyError, TypeError, ValueError) as exc:
+            raise ModelFormatError(
+                f"{source}: the model file is incomplete or damaged ({exc!r}); retrain it"
+            ) from exc
+        n = len(m.feature_names_)
+        if not (m.mean_.shape == m.scale_.shape == m.coef_.shape == (n,)) or not all(
+            math.isfinite(v) for v in [m.intercept_, *m.coef_.tolist(), *m.mean_.tolist()]
+        ):
+            raise ModelFormatError(
+                f"{source}: coefficient arrays do not match the {n} feature names; retrain it"
+            )
+        m.artifact_ = data
+        return m
+
+    @property
+    def version(self) -> str:
+        """Short id of the artifact (set once saved or loaded)."""
+        return str(getattr(self, "artifact_", {}).get("model_version", "unsaved"))
+
+
+def save_model(model: Reranker, path: str | Path, **extra: Any) -> dict[str, Any]:
+    """Write the model JSON atomically (temp file + rename); returns what was written."""
+    data = model.to_dict(**extra)
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(data, fh, indent=1)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    model.artifact_ = data
+    return data
+
+
+def read_model(path: str | Path) -> Reranker:
+    """Read a model JSON file (no code runs; only numbers and names are read)."""
+    path = Path(path)
+    if not path.exists():
+        raise ModelFormatError(f"{path}: no such model file; train one with 'hunchwise train'")
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise ModelFormatError(
+            f"{path}: not valid JSON ({exc}); retrain or restore the model file"
+        ) from exc
+    return Reranker.from_dict(data, source=str(path))

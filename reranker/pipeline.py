@@ -1,0 +1,206 @@
+"""Serving path: clue -> BM25 candidates -> features -> probabilities -> decision."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from retriever import Hit, Index
+
+from .builtin import default_registry
+from .decision import Decision, Payoff, decide
+from .errors import ModelMismatchError
+from .examples import MetadataColumns, candidate_set
+from .features import FEATURE_SET_VERSION, FeatureRegistry
+from .model import Reranker, read_model
+
+
+@dataclass(frozen=True)
+class ScoredCandidate:
+    """A candidate as served: BM25 evidence, the model's probability and (optionally) its features."""
+
+    doc_id: str
+    title: str
+    qualifier: str
+    score: float
+    rank: int
+    probability: float | None
+    features: dict[str, float]
+
+
+@dataclass(frozen=True)
+class Ranking:
+    """Everything known about one clue: candidates best first, and what to do now."""
+
+    clue: str
+    candidates: list[ScoredCandidate]
+    decision: Decision
+    model_version: str | None
+    index_version: str
+    n_tokens: int
+
+
+def load_model(
+    path: str | Path,
+    *,
+    index: Index | None = None,
+    registry: FeatureRegistry | None = None,
+    user_features: Sequence[str] = (),
+) -> Reranker:
+    """Read a model file and check that the running code provides every feature it uses."""
+    model = read_model(path)
+    data = model.artifact_
+    reg = registry if registry is not None else default_registry().with_user_features(user_features)
+    if data.get("feature_set_version") != FEATURE_SET_VERSION:
+        raise ModelMismatchError(
+            f"{path}: model built with feature set version {data.get('feature_set_version')}, this code has "
+            f"version {FEATURE_SET_VERSION}; retrain with 'hunchwise train'"
+        )
+    meta_spec = data.get("metadata_columns") or {}
+    meta = MetadataColumns(
+        tuple(meta_spec.get("numeric", ())),
+        {k: tuple(v) for k, v in meta_spec.get("categorical", {}).items()},
+    )
+    code_names = [n for n in model.feature_names_ if not n.startswith("meta:")]
+    missing = [n for n in code_names if n not in reg]
+    extra_meta = [n for n in model.feature_names_ if n.startswith("meta:") and n not in meta.names]
+    if missing or extra_meta:
+        raise ModelMismatchError(
+            f"{path}: the model uses features the running code does not provide: {missing + extra_meta}. "
+            "Register the user features it was trained with (--feature module:function) or retrain."
+        )
+    if model.feature_names_ != code_names + meta.names:
+        raise ModelMismatchError(f"{path}: metadata columns must come after the computed features")
+    model.registry_ = reg
+    model.code_features_ = code_names
+    model.metadata_ = meta
+    model.threshold_ = float((data.get("decision") or {}).get("threshold", 0.5))
+    if index is not None and data.get("index_version") not in (None, index.version):
+        model.index_note_ = (
+            f"trained on index {data.get('index_version')}, serving index {index.version}"
+        )
+    return model
+
+
+def _features_of(
+    model: Reranker | None, registry: FeatureRegistry, cs: Any
+) -> tuple[np.ndarray, list[str]]:
+    if model is None:
+        names = registry.names
+        return registry.matrix(cs, names), names
+    x = model.registry_.matrix(cs, model.code_features_)
+    if model.metadata_.names:
+        x = np.hstack([x, np.tile(model.metadata_.row(cs.metadata), (len(cs), 1))])
+    return x, model.feature_names_
+
+
+def _rank_hits(
+    index: Index,
+    model: Reranker | None,
+    clue: str,
+    hits: list[Hit],
+    *,
+    payoff: Payoff | None,
+    complete: bool,
+    include_features: bool,
+    metadata: dict[str, Any] | None,
+    registry: FeatureRegistry | None,
+) -> Ranking:
+    cs = candidate_set(index, clue, hits, metadata)
+    probs: np.ndarray | None = None
+    x, names = np.zeros((len(hits), 0)), []
+    if model is not None or include_features:
+        x, names = _features_of(model, registry or default_registry(), cs)
+    if model is not None and hits:
+        probs = model.probability(x)
+    order = np.argsort(-probs, kind="stable") if probs is not None else np.arange(len(hits))
+    cands = [
+        ScoredCandidate(
+            doc_id=hits[i].doc_id,
+            title=hits[i].title,
+            qualifier=index.qualifiers[hits[i].row],
+            score=float(hits[i].score),
+            rank=hits[i].rank,
+            probability=None if probs is None else float(probs[i]),
+            features={n: float(v) for n, v in zip(names, x[i].tolist(), strict=True)}
+            if include_features
+            else {},
+        )
+        for i in order.tolist()
+    ]
+    if payoff is not None:
+        threshold = payoff.break_even
+    else:
+        threshold = model.threshold_ if model is not None else 0.5
+    top = cands[0] if cands else None
+    decision = decide(
+        top.doc_id if top else None, top.probability if top else None, threshold, complete=complete
+    )
+    return Ranking(
+        clue=clue,
+        candidates=cands,
+        decision=decision,
+        model_version=None if model is None else model.version,
+        index_version=index.version,
+        n_tokens=len(cs.tokens),
+    )
+
+
+def rank_clue(
+    index: Index,
+    model: Reranker | None,
+    clue: str,
+    *,
+    k: int = 20,
+    payoff: Payoff | None = None,
+    complete: bool = False,
+    include_features: bool = False,
+    metadata: dict[str, Any] | None = None,
+    registry: FeatureRegistry | None = None,
+) -> Ranking:
+    """Rank one clue's candidates by calibrated probability (by BM25 when there is no model)."""
+    hits = index.search(clue, k=k)
+    return _rank_hits(
+        index,
+        model,
+        clue,
+        hits,
+        payoff=payoff,
+        complete=complete,
+        include_features=include_features,
+        metadata=metadata,
+        registry=registry,
+    )
+
+
+def rank_clues(
+    index: Index,
+    model: Reranker | None,
+    clues: Sequence[str],
+    *,
+    k: int = 20,
+    payoff: Payoff | None = None,
+    complete: bool = False,
+    include_features: bool = False,
+    registry: FeatureRegistry | None = None,
+) -> list[Ranking]:
+    """`rank_clue` for many clues, with one batch search."""
+    all_hits = index.search_many(list(clues), k=k)
+    return [
+        _rank_hits(
+            index,
+            model,
+            c,
+            h,
+            payoff=payoff,
+            complete=complete,
+            include_features=include_features,
+            metadata=None,
+            registry=registry,
+        )
+        for c, h in zip(clues, all_hits, strict=True)
+    ]

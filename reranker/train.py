@@ -1,0 +1,130 @@
+"""Train a reranker from labelled logs: table, fit, threshold, artifact."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from retriever import Index
+
+from .builtin import default_registry
+from .decision import Payoff, simulate_commits, tune_threshold
+from .examples import MetadataColumns, PrefixPlan, TrainingTable, build_table
+from .features import FEATURE_SET_VERSION, FeatureRegistry
+from .logs import LogReport, read_logs
+from .model import Reranker, save_model
+
+
+@dataclass
+class TrainResult:
+    """What training produced: the model, its artifact, the table it learned from, and counts."""
+
+    model: Reranker
+    artifact: dict[str, Any]
+    table: TrainingTable
+    log_report: LogReport
+    notes: list[str] = field(default_factory=list)
+
+
+def top_of_groups(
+    group: np.ndarray, prob: np.ndarray, y: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per group: (group id, top candidate's probability, whether the top candidate is right)."""
+    order = np.lexsort((-prob, group))
+    g = group[order]
+    first = np.r_[True, g[1:] != g[:-1]]
+    idx = order[first]
+    return group[idx], prob[idx], y[idx].astype(bool)
+
+
+def prefix_tops(table: TrainingTable, prob: np.ndarray) -> dict[str, np.ndarray]:
+    """Per clue prefix: clue id, fraction revealed, top probability, top is right."""
+    g, p, right = top_of_groups(table.group, prob, table.y)
+    rows = np.searchsorted(table.group, g)  # groups are numbered in table order, so sorted
+    return {
+        "group": g,
+        "clue": table.clue_id[rows],
+        "fraction": table.fraction[rows],
+        "prob": p,
+        "right": right,
+    }
+
+
+def train(
+    index: Index,
+    logs: Sequence[str | Path],
+    out: str | Path,
+    *,
+    k: int = 20,
+    plan: PrefixPlan | None = None,
+    features: Sequence[str] | None = None,
+    user_features: Sequence[str] = (),
+    metadata_features: Sequence[str] = (),
+    calibration: str = "auto",
+    payoff: Payoff | None = None,
+    skip_bad: bool = False,
+    progress: bool = False,
+    registry: FeatureRegistry | None = None,
+) -> TrainResult:
+    """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON."""
+    payoff = payoff or Payoff()
+    plan = plan or PrefixPlan()
+    reg = registry if registry is not None else default_registry().with_user_features(user_features)
+    names = list(features) if features else [n for n in reg.names]
+    report = LogReport()
+    clues = read_logs(logs, skip_bad=skip_bad, report=report)
+    meta = (
+        MetadataColumns.learn(clues, metadata_features) if metadata_features else MetadataColumns()
+    )
+    table = build_table(index, clues, reg, names, k=k, plan=plan, metadata=meta, progress=progress)
+    model = Reranker(calibration=calibration).fit(
+        table.X, table.y, table.clue_id, table.feature_names
+    )
+    tops = prefix_tops(table, model.oof_proba_)
+    tuned = tune_threshold(tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff)
+    at_break_even = simulate_commits(
+        tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff.break_even, payoff
+    )
+    notes = []
+    if table.unresolved:
+        notes.append(
+            f"{len(table.unresolved)} gold answers matched no article (listed in the artifact)"
+        )
+    artifact = save_model(
+        model,
+        out,
+        feature_set_version=FEATURE_SET_VERSION,
+        metadata_columns={
+            "numeric": list(meta.numeric),
+            "categorical": {k2: list(v) for k2, v in meta.categorical.items()},
+        },
+        user_features=list(user_features),
+        index_version=index.version,
+        training={
+            "logs": [str(p) for p in logs],
+            "checksum": report.checksum,
+            "clues": table.n_clues,
+            "prefixes": table.n_prefixes,
+            "rows": int(table.y.size),
+            "positives": int(table.y.sum()),
+            "k": k,
+            "prefix_plan": {"fractions": list(plan.fractions), "every_words": plan.every_words},
+            "recall_at_k_full_clue": table.recall(),
+            "unresolved_answers": table.unresolved[:50],
+            "unresolved_count": len(table.unresolved),
+            "skipped_lines": report.skipped,
+            "served_without_feedback": report.served_without_feedback,
+        },
+        decision={
+            "threshold": tuned["threshold"],
+            "break_even": payoff.break_even,
+            "payoff": {"reward": payoff.reward, "penalty": payoff.penalty},
+            "tuned_on_held_out": tuned,
+            "at_break_even": at_break_even,
+        },
+    )
+    return TrainResult(model, artifact, table, report, notes)

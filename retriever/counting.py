@@ -1,0 +1,166 @@
+"""Count the terms of many articles into sparse matrices, in worker processes for big corpora."""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+from collections import deque
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from .analyzer import Analyzer, AnalyzerConfig, TermTable
+
+CHUNK = 4_000  # articles per task: big enough to amortize pickling, small enough to stream
+ChunkResult = tuple[int, list[str], np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+
+
+def default_workers(n_hint: int) -> int:
+    """Worker processes worth starting for about `n_hint` articles (1 means in-process)."""
+    if n_hint < 20_000:
+        return 1
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:
+        cores = os.cpu_count() or 1
+    return max(1, min(2, cores))
+
+
+def _ids_of(analyzer: Analyzer, table: TermTable, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Term ids of each text (stopwords dropped), concatenated, and the count per text."""
+    flat: list[int] = []
+    lens = np.empty(len(texts), dtype=np.int64)
+    for i, text in enumerate(texts):
+        before = len(flat)
+        flat.extend(analyzer.term_ids(text, table))
+        lens[i] = len(flat) - before
+    ids = np.asarray(flat, dtype=np.int32)
+    if ids.size == 0:
+        return ids, np.zeros(len(texts), dtype=np.int32)
+    keep = ids >= 0
+    # Words per text minus the stopwords among them.
+    rows = np.repeat(np.arange(len(texts)), lens)
+    kept_lens = np.bincount(rows[keep], minlength=len(texts)).astype(np.int32)
+    return ids[keep], kept_lens
+
+
+class _Worker:
+    """State of one counting process: its analyzer and its own word table."""
+
+    analyzer: Analyzer | None = None
+    table: TermTable | None = None
+    sent = 0
+
+
+def _init_worker(config: dict[str, Any]) -> None:
+    _Worker.analyzer = Analyzer(AnalyzerConfig.from_dict(config))
+    _Worker.table = _Worker.analyzer.term_table()
+    _Worker.sent = 0
+
+
+def _count_chunk(chunk: tuple[list[str], list[str]]) -> ChunkResult:
+    analyzer, table = _Worker.analyzer, _Worker.table
+    if analyzer is None or table is None:
+        raise RuntimeError("counting worker used before initialization")
+    body_ids, body_lens = _ids_of(analyzer, table, chunk[0])
+    title_ids, title_lens = _ids_of(analyzer, table, chunk[1])
+    new_terms = table.terms[_Worker.sent :]
+    _Worker.sent = len(table.terms)
+    return os.getpid(), new_terms, body_ids, body_lens, title_ids, title_lens
+
+
+class TermCounter:
+    """Per-field (articles x terms) counts over one shared, growing vocabulary."""
+
+    def __init__(self) -> None:
+        self.vocab: dict[str, int] = {}
+        self.terms: list[str] = []
+        self.chunks: dict[str, list[sp.csr_matrix]] = {"body": [], "title": []}
+        self._maps: dict[int, np.ndarray] = {}
+
+    def _global_ids(self, names: Iterable[str]) -> np.ndarray:
+        out = []
+        for term in names:
+            gid = self.vocab.get(term)
+            if gid is None:
+                gid = self.vocab[term] = len(self.terms)
+                self.terms.append(term)
+            out.append(gid)
+        return np.asarray(out, dtype=np.int64)
+
+    def add_result(self, result: ChunkResult) -> None:
+        """Merge one counted chunk (its term ids are local to the process that counted it)."""
+        pid, new_terms, body_ids, body_lens, title_ids, title_lens = result
+        known = self._maps.get(pid, np.zeros(0, dtype=np.int64))
+        mapping = self._maps[pid] = np.concatenate([known, self._global_ids(new_terms)])
+        for name, ids, lens in (("body", body_ids, body_lens), ("title", title_ids, title_lens)):
+            self.chunks[name].append(_csr(mapping[ids], lens))
+
+    def add_counts(self, field: str, matrix: sp.csr_matrix, names: Sequence[str]) -> None:
+        """Append already-counted articles (rows of `matrix`, columns named by `names`)."""
+        cols = self._global_ids(names)
+        m = matrix.tocsr()
+        width = int(cols.max()) + 1 if cols.size else 0
+        self.chunks[field].append(
+            sp.csr_matrix(
+                (m.data.astype(np.int32), cols[m.indices], m.indptr), shape=(m.shape[0], width)
+            )
+        )
+
+    def merge_field(self, other: TermCounter, field: str) -> None:
+        """Replace this counter's `field` by `other`'s, mapped onto this vocabulary."""
+        cols = self._global_ids(other.terms)
+        merged = []
+        for c in other.chunks[field]:
+            width = int(cols.max()) + 1 if cols.size else 0
+            merged.append(sp.csr_matrix((c.data, cols[c.indices], c.indptr), shape=(c.shape[0], width)))
+        self.chunks[field] = merged
+
+    def matrix(self, field: str, order: np.ndarray | None = None) -> sp.csr_matrix:
+        """All counted rows of one field as CSR over the vocabulary so far (`order` picks rows)."""
+        n_terms = len(self.terms)
+        mats = [
+            sp.csr_matrix((c.data, c.indices, c.indptr), shape=(c.shape[0], n_terms))
+            for c in self.chunks[field]
+        ]
+        tf = sp.vstack(mats, format="csr") if mats else sp.csr_matrix((0, n_terms), dtype=np.int32)
+        return tf[order] if order is not None else tf
+
+
+def _csr(ids: np.ndarray, lens: np.ndarray) -> sp.csr_matrix:
+    """Doc-major counts of one chunk; columns are global term ids (width fixed later)."""
+    rows = np.repeat(np.arange(len(lens), dtype=np.int32), lens)
+    n_cols = int(ids.max()) + 1 if ids.size else 0
+    m = sp.csr_matrix(
+        (np.ones(ids.size, dtype=np.int32), (rows, ids.astype(np.int32))), shape=(len(lens), n_cols)
+    )
+    m.sum_duplicates()
+    return m
+
+
+def count_articles(
+    chunks: Iterable[tuple[list[str], list[str]]], analyzer: Analyzer, workers: int
+) -> TermCounter:
+    """Count (bodies, titles) chunks, in `workers` processes when more than one."""
+    counter = TermCounter()
+    config = analyzer.config.to_dict()
+    if workers <= 1:
+        _init_worker(config)
+        for chunk in chunks:
+            counter.add_result(_count_chunk(chunk))
+        return counter
+    # fork shares the already-imported modules; results are merged in submission order, so
+    # the vocabulary and every count are the same as with one process.
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+    ctx = multiprocessing.get_context(method)
+    with ctx.Pool(workers, initializer=_init_worker, initargs=(config,)) as pool:
+        pending: deque[Any] = deque()
+        for chunk in chunks:
+            pending.append(pool.apply_async(_count_chunk, (chunk,)))
+            while len(pending) > 2 * workers:
+                counter.add_result(pending.popleft().get())
+        while pending:
+            counter.add_result(pending.popleft().get())
+    return counter
