@@ -71,6 +71,7 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     app.include_router(routes.router, responses=_COMMON)
     app.include_router(routes.admin, responses={**_COMMON, **_ADMIN})
     install_handlers(app)
+    _document_limits(app, settings)
     if settings.cors_origins:
         app.add_middleware(
             CORSMiddleware,
@@ -85,6 +86,32 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     )
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     return app
+
+
+def _document_limits(app: FastAPI, settings: ServiceSettings) -> None:
+    """Put the configured limits into the OpenAPI schema (the models only know the types)."""
+    plain_openapi = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is not None:
+            return app.openapi_schema
+        schema = plain_openapi()
+        models = schema.get("components", {}).get("schemas", {})
+        for name in ("RankRequest", "BatchRankRequest"):
+            props = models.get(name, {}).get("properties", {})
+            k = props.get("k", {})
+            for option in k.get("anyOf", [k]):
+                if option.get("type") == "integer":
+                    option["maximum"] = settings.max_k
+            if "clue" in props:
+                props["clue"]["maxLength"] = settings.max_clue_chars
+            if "clues" in props:
+                props["clues"]["maxItems"] = settings.max_batch
+                props["clues"]["items"]["maxLength"] = settings.max_clue_chars
+        app.openapi_schema = schema
+        return schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
 
 
 def app_from_env() -> FastAPI:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 import time
 from pathlib import Path
 from typing import Any
@@ -13,26 +14,58 @@ from retriever.store import folder_size
 from .console import format_table, human_bytes, print_json
 
 
-def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg,unused-ignore]
     """Add the index and search sub-commands."""
     index = sub.add_parser("index", help="build, inspect and update a BM25 index folder")
     isub = index.add_subparsers(dest="index_command", metavar="ACTION", required=True)
 
-    p = isub.add_parser("build", help="index a corpus file (.jsonl, .csv, .tsv, .parquet) into a folder")
-    p.add_argument("corpus", type=Path, help="corpus file: one article per line/row with id, title, text")
-    p.add_argument("--out", type=Path, required=True, help="index folder to write (replaced only on success)")
-    p.add_argument("--k1", type=float, default=1.5, help="BM25 term-frequency saturation (default 1.5)")
-    p.add_argument("--b", type=float, default=0.75, help="BM25 length normalization, 0..1 (default 0.75)")
-    p.add_argument("--epsilon", type=float, default=0.25,
-                   help="floor for negative IDF, as a share of the mean IDF (okapi only; default 0.25)")
-    p.add_argument("--idf", choices=["okapi", "lucene"], default="okapi",
-                   help="okapi: rank_bm25's IDF with its floor; lucene: always-positive log(1+...) IDF")
-    p.add_argument("--title-weight", type=float, default=0.0,
-                   help="also score titles as a second BM25 field with this weight (default 0: off)")
-    p.add_argument("--stemmer", default="english", help="Snowball stemmer language, or 'none' (default english)")
-    p.add_argument("--stopwords", default="english", help="'english' (scikit-learn's list) or 'none'")
+    p = isub.add_parser(
+        "build", help="index a corpus file (.jsonl, .csv, .tsv, .parquet) into a folder"
+    )
+    p.add_argument(
+        "corpus", type=Path, help="corpus file: one article per line/row with id, title, text"
+    )
+    p.add_argument(
+        "--out", type=Path, required=True, help="index folder to write (replaced only on success)"
+    )
+    p.add_argument(
+        "--k1", type=float, default=1.5, help="BM25 term-frequency saturation (default 1.5)"
+    )
+    p.add_argument(
+        "--b", type=float, default=0.75, help="BM25 length normalization, 0..1 (default 0.75)"
+    )
+    p.add_argument(
+        "--epsilon",
+        type=float,
+        default=0.25,
+        help="floor for negative IDF, as a share of the mean IDF (okapi only; default 0.25)",
+    )
+    p.add_argument(
+        "--idf",
+        choices=["okapi", "lucene"],
+        default="okapi",
+        help="okapi: rank_bm25's IDF with its floor; lucene: always-positive log(1+...) IDF",
+    )
+    p.add_argument(
+        "--title-weight",
+        type=float,
+        default=0.0,
+        help="also score titles as a second BM25 field with this weight (default 0: off)",
+    )
+    p.add_argument(
+        "--stemmer",
+        default="english",
+        help="Snowball stemmer language, or 'none' (default english)",
+    )
+    p.add_argument(
+        "--stopwords", default="english", help="'english' (scikit-learn's list) or 'none'"
+    )
     p.add_argument("--keep-accents", action="store_true", help="do not strip accents from words")
-    p.add_argument("--skip-bad", action="store_true", help="skip bad lines (and report them) instead of stopping")
+    p.add_argument(
+        "--skip-bad",
+        action="store_true",
+        help="skip bad lines (and report them) instead of stopping",
+    )
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_build)
 
@@ -62,14 +95,24 @@ def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     p.set_defaults(func=cmd_search)
 
 
+def _show_progress(args: argparse.Namespace) -> bool:
+    """A progress bar only for a person watching: not with --json, not into a pipe or file."""
+    return not args.json and sys.stderr.isatty()
+
+
 def _summary(index_dir: Path, seconds: float, report: ReadReport) -> dict[str, Any]:
     idx = load_index(index_dir)
     counts, build = idx.manifest["counts"], idx.manifest["build"]
     return {
-        "index": str(index_dir), "index_version": idx.version, "articles": counts["articles"],
-        "terms": counts["terms"], "unresolved_links": build.get("unresolved_links", 0),
-        "skipped_lines": report.skipped, "problems": report.problems[:5],
-        "seconds": round(seconds, 2), "bytes_on_disk": folder_size(index_dir),
+        "index": str(index_dir),
+        "index_version": idx.version,
+        "articles": counts["articles"],
+        "terms": counts["terms"],
+        "unresolved_links": build.get("unresolved_links", 0),
+        "skipped_lines": report.skipped,
+        "problems": report.problems[:5],
+        "seconds": round(seconds, 2),
+        "bytes_on_disk": folder_size(index_dir),
     }
 
 
@@ -77,8 +120,11 @@ def _print_summary(s: dict[str, Any], as_json: bool) -> None:
     if as_json:
         print_json(s)
         return
-    print(f"index {s['index']} (version {s['index_version']}): {s['articles']} articles, {s['terms']} terms, "
-          f"{s['unresolved_links']} unresolved links, {s['seconds']} s, {human_bytes(s['bytes_on_disk'])} on disk")
+    print(
+        f"index {s['index']} (version {s['index_version']}): {s['articles']} articles, "
+        f"{s['terms']} terms, {s['unresolved_links']} unresolved links, {s['seconds']} s, "
+        f"{human_bytes(s['bytes_on_disk'])} on disk"
+    )
     if s["skipped_lines"]:
         print(f"skipped {s['skipped_lines']} bad lines, first ones:")
         for problem in s["problems"]:
@@ -90,10 +136,19 @@ def cmd_build(args: argparse.Namespace) -> int:
     started = time.perf_counter()
     report = ReadReport()
     build_index(
-        args.corpus, args.out, k1=args.k1, b=args.b, epsilon=args.epsilon, idf=args.idf,
-        title_weight=args.title_weight, stemmer=None if args.stemmer == "none" else args.stemmer,
-        stopwords=args.stopwords, strip_accents=not args.keep_accents, skip_bad=args.skip_bad,
-        progress=not args.json, report=report,
+        args.corpus,
+        args.out,
+        k1=args.k1,
+        b=args.b,
+        epsilon=args.epsilon,
+        idf=args.idf,
+        title_weight=args.title_weight,
+        stemmer=None if args.stemmer == "none" else args.stemmer,
+        stopwords=args.stopwords,
+        strip_accents=not args.keep_accents,
+        skip_bad=args.skip_bad,
+        progress=_show_progress(args),
+        report=report,
     )
     _print_summary(_summary(args.out, time.perf_counter() - started, report), args.json)
     return 0
@@ -107,9 +162,12 @@ def cmd_info(args: argparse.Namespace) -> int:
         return 0
     m = idx.manifest
     rows = [
-        ("index version", m["index_version"]), ("created", m["created_at"]),
-        ("articles", m["counts"]["articles"]), ("terms", m["counts"]["terms"]),
-        ("postings", m["counts"]["body_postings"]), ("mean length", round(m["counts"]["avgdl"], 1)),
+        ("index version", m["index_version"]),
+        ("created", m["created_at"]),
+        ("articles", m["counts"]["articles"]),
+        ("terms", m["counts"]["terms"]),
+        ("postings", m["counts"]["body_postings"]),
+        ("mean length", round(m["counts"]["avgdl"], 1)),
         ("qualified titles", m["counts"]["qualified_titles"]),
         ("unresolved links", m["build"].get("unresolved_links", 0)),
         ("bm25", ", ".join(f"{k}={v}" for k, v in m["bm25"].items())),
@@ -124,7 +182,13 @@ def cmd_add(args: argparse.Namespace) -> int:
     """Add or replace articles."""
     started = time.perf_counter()
     report = ReadReport()
-    update_index(args.index, add=args.corpus, skip_bad=args.skip_bad, progress=not args.json, report=report)
+    update_index(
+        args.index,
+        add=args.corpus,
+        skip_bad=args.skip_bad,
+        progress=_show_progress(args),
+        report=report,
+    )
     _print_summary(_summary(args.index, time.perf_counter() - started, report), args.json)
     return 0
 
@@ -145,10 +209,16 @@ def cmd_search(args: argparse.Namespace) -> int:
     idx = load_index(args.index)
     hits = idx.search(args.clue, k=args.k)
     if args.json:
-        print_json([{"rank": h.rank, "id": h.doc_id, "title": h.title, "score": h.score} for h in hits])
+        print_json(
+            [{"rank": h.rank, "id": h.doc_id, "title": h.title, "score": h.score} for h in hits]
+        )
         return 0
     if not hits:
         print("no candidates: none of the clue's words is in the index")
         return 0
-    print(format_table(["rank", "id", "title", "bm25"], [(h.rank, h.doc_id, h.title, h.score) for h in hits]))
+    print(
+        format_table(
+            ["rank", "id", "title", "bm25"], [(h.rank, h.doc_id, h.title, h.score) for h in hits]
+        )
+    )
     return 0

@@ -16,46 +16,97 @@ def _fractions(text: str) -> tuple[float, ...]:
     try:
         values = tuple(float(v) for v in text.split(",") if v.strip())
     except ValueError:
-        raise argparse.ArgumentTypeError(f"expected comma-separated numbers like 0.2,0.5,1, got {text!r}") from None
+        raise argparse.ArgumentTypeError(
+            f"expected comma-separated numbers like 0.2,0.5,1, got {text!r}"
+        ) from None
     if not values or any(not 0 < v <= 1 for v in values):
         raise argparse.ArgumentTypeError("prefix fractions must be between 0 (exclusive) and 1")
     return values
 
 
 def _common(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--index", type=Path, required=True, help="index folder built by 'hunchwise index build'")
-    p.add_argument("--log", type=Path, action="append", required=True, metavar="FILE",
-                   help="labelled log (clue + answer lines) or served log with feedback; repeat for several")
-    p.add_argument("-k", type=int, default=None, help="candidates per clue (default 20; evaluate: the model's)")
-    p.add_argument("--feature", action="append", default=[], metavar="MODULE:FUNCTION",
-                   help="register a user-defined feature function (repeatable)")
-    p.add_argument("--reward", type=float, default=None, help="payoff of a right answer (default 1)")
+    p.add_argument(
+        "--index", type=Path, required=True, help="index folder built by 'hunchwise index build'"
+    )
+    p.add_argument(
+        "--log",
+        type=Path,
+        action="append",
+        required=True,
+        metavar="FILE",
+        help="labelled log (clue + answer lines) or served log with feedback; repeat for several",
+    )
+    p.add_argument(
+        "-k", type=int, default=None, help="candidates per clue (default 20; evaluate: the model's)"
+    )
+    p.add_argument(
+        "--feature",
+        action="append",
+        default=[],
+        metavar="MODULE:FUNCTION",
+        help="register a user-defined feature function (repeatable)",
+    )
+    p.add_argument(
+        "--reward", type=float, default=None, help="payoff of a right answer (default 1)"
+    )
     p.add_argument("--penalty", type=float, default=None, help="cost of a wrong answer (default 1)")
-    p.add_argument("--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping")
+    p.add_argument(
+        "--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping"
+    )
     p.add_argument("--json", action="store_true", help="print results as JSON")
 
 
-def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def register(sub: argparse._SubParsersAction) -> None:
     """Add the train and evaluate sub-commands."""
     p = sub.add_parser("train", help="fit the reranker on labelled logs and write a JSON model")
     _common(p)
     p.add_argument("--out", type=Path, required=True, help="model file to write (JSON)")
-    p.add_argument("--prefixes", type=_fractions, default=PrefixPlan().fractions, metavar="F,F,...",
-                   help="shares of each clue's words that become examples (default 0.2,0.4,0.6,0.8,1)")
-    p.add_argument("--every-words", type=int, default=None, metavar="N",
-                   help="instead of --prefixes, take a prefix every N words")
-    p.add_argument("--features", default=None, metavar="NAME,NAME,...",
-                   help="use only these features (default: all built-in plus --feature ones)")
-    p.add_argument("--meta-feature", action="append", default=[], metavar="FIELD",
-                   help="use a metadata field of the log as a feature (numbers as-is, text one-hot)")
-    p.add_argument("--calibration", choices=["auto", "none", "platt", "isotonic"], default="auto",
-                   help="post-hoc calibration on held-out folds; auto keeps it only if log-loss improves")
+    p.add_argument(
+        "--prefixes",
+        type=_fractions,
+        default=PrefixPlan().fractions,
+        metavar="F,F,...",
+        help="shares of each clue's words that become examples (default 0.2,0.4,0.6,0.8,1)",
+    )
+    p.add_argument(
+        "--every-words",
+        type=int,
+        default=None,
+        metavar="N",
+        help="instead of --prefixes, take a prefix every N words",
+    )
+    p.add_argument(
+        "--features",
+        default=None,
+        metavar="NAME,NAME,...",
+        help="use only these features (default: all built-in plus --feature ones)",
+    )
+    p.add_argument(
+        "--meta-feature",
+        action="append",
+        default=[],
+        metavar="FIELD",
+        help="use a metadata field of the log as a feature (numbers as-is, text one-hot)",
+    )
+    p.add_argument(
+        "--calibration",
+        choices=["auto", "none", "platt", "isotonic"],
+        default="auto",
+        help="post-hoc calibration on held-out folds; auto keeps it only if log-loss improves",
+    )
     p.set_defaults(func=cmd_train)
 
     p = sub.add_parser("evaluate", help="score a model on held-out logs and write a report folder")
     _common(p)
-    p.add_argument("--model", type=Path, required=True, help="model file written by 'hunchwise train'")
-    p.add_argument("--report", type=Path, required=True, help="folder for metrics.json, PNG plots and report.html")
+    p.add_argument(
+        "--model", type=Path, required=True, help="model file written by 'hunchwise train'"
+    )
+    p.add_argument(
+        "--report",
+        type=Path,
+        required=True,
+        help="folder for metrics.json, PNG plots and report.html",
+    )
     p.add_argument("--no-ablation", action="store_true", help="skip the feature ablation (faster)")
     p.set_defaults(func=cmd_evaluate)
 
@@ -63,7 +114,10 @@ def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
 def _payoff(args: argparse.Namespace) -> Payoff | None:
     if args.reward is None and args.penalty is None:
         return None
-    return Payoff(args.reward if args.reward is not None else 1.0, args.penalty if args.penalty is not None else 1.0)
+    return Payoff(
+        args.reward if args.reward is not None else 1.0,
+        args.penalty if args.penalty is not None else 1.0,
+    )
 
 
 def cmd_train(args: argparse.Namespace) -> int:
@@ -71,17 +125,33 @@ def cmd_train(args: argparse.Namespace) -> int:
     index = load_index(args.index)
     features = [f.strip() for f in args.features.split(",") if f.strip()] if args.features else None
     res = train(
-        index, args.log, args.out, k=args.k or 20, plan=PrefixPlan(args.prefixes, args.every_words),
-        features=features, user_features=args.feature, metadata_features=args.meta_feature,
-        calibration=args.calibration, payoff=_payoff(args), skip_bad=args.skip_bad, progress=not args.json,
+        index,
+        args.log,
+        args.out,
+        k=args.k or 20,
+        plan=PrefixPlan(args.prefixes, args.every_words),
+        features=features,
+        user_features=args.feature,
+        metadata_features=args.meta_feature,
+        calibration=args.calibration,
+        payoff=_payoff(args),
+        skip_bad=args.skip_bad,
+        progress=not args.json,
     )
     a = res.artifact
     summary = {
-        "model": str(args.out), "model_version": a["model_version"], "features": len(a["feature_names"]),
-        "clues": a["training"]["clues"], "rows": a["training"]["rows"], "C": a["C"],
-        "cv_log_loss": min(a["cv_log_loss"].values()), "calibration": a["calibration"]["method"],
-        "threshold": a["decision"]["threshold"], "recall_at_k": a["training"]["recall_at_k_full_clue"],
-        "unresolved_answers": a["training"]["unresolved_count"], "skipped_lines": a["training"]["skipped_lines"],
+        "model": str(args.out),
+        "model_version": a["model_version"],
+        "features": len(a["feature_names"]),
+        "clues": a["training"]["clues"],
+        "rows": a["training"]["rows"],
+        "C": a["C"],
+        "cv_log_loss": min(a["cv_log_loss"].values()),
+        "calibration": a["calibration"]["method"],
+        "threshold": a["decision"]["threshold"],
+        "recall_at_k": a["training"]["recall_at_k_full_clue"],
+        "unresolved_answers": a["training"]["unresolved_count"],
+        "skipped_lines": a["training"]["skipped_lines"],
     }
     if args.json:
         print_json(summary)
@@ -96,10 +166,21 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     """Evaluate a model and write the report folder."""
     index = load_index(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
-    ev = evaluate(index, model, args.log, args.report, k=args.k, payoff=_payoff(args),
-                  run_ablation=not args.no_ablation, skip_bad=args.skip_bad, progress=not args.json)
+    ev = evaluate(
+        index,
+        model,
+        args.log,
+        args.report,
+        k=args.k,
+        payoff=_payoff(args),
+        run_ablation=not args.no_ablation,
+        skip_bad=args.skip_bad,
+        progress=not args.json,
+    )
     if args.json:
-        print_json({"metrics": ev.metrics, "ablation": ev.ablation, "report": str(ev.paths.get("report"))})
+        print_json(
+            {"metrics": ev.metrics, "ablation": ev.ablation, "report": str(ev.paths.get("report"))}
+        )
         return 0
     print(ev.summary)
     print(f"\nreport: {ev.paths.get('report')}")

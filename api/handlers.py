@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -63,7 +64,18 @@ async def _http_error(request: Request, exc: Exception) -> SafeJSONResponse:
 async def _validation_error(request: Request, exc: Exception) -> SafeJSONResponse:
     if not isinstance(exc, RequestValidationError):
         raise TypeError(f"unexpected exception {exc!r}")
-    return SafeJSONResponse({"detail": jsonable_encoder(exc.errors())}, status_code=422)
+    return SafeJSONResponse({"detail": _finite(jsonable_encoder(exc.errors()))}, status_code=422)
+
+
+def _finite(value: Any) -> Any:
+    # Errors echo the input, and Python's JSON parser lets NaN/Infinity in; spell them out.
+    if isinstance(value, float) and not math.isfinite(value):
+        return str(value)
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_finite(v) for v in value]
+    return value
 
 
 def install_handlers(app: FastAPI) -> None:

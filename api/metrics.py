@@ -16,12 +16,15 @@ from prometheus_client import (
     CollectorRegistry,
     Counter,
     Histogram,
+    disable_created_metrics,
     generate_latest,
 )
 from prometheus_client.multiprocess import MultiProcessCollector
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 MULTIPROC_ENV = "PROMETHEUS_MULTIPROC_DIR"
+# The *_created series double the output and mean nothing in multiprocess mode.
+disable_created_metrics()
 # Latency buckets in seconds, dense where a loopback rank request lands (about 1-50 ms).
 BUCKETS = (
     0.001,

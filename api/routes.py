@@ -8,6 +8,7 @@ so it works on one consistent index/model pair even if a reload swaps it meanwhi
 from __future__ import annotations
 
 import math
+import os
 import time
 from typing import Annotated, Any, Literal, cast
 
@@ -218,13 +219,12 @@ def feedback(body: s.FeedbackRequest, runtime: RuntimeDep) -> s.FeedbackResponse
         raise HTTPException(
             404, f"unknown request_id {body.request_id!r}: not issued by this server"
         )
-    if body.answer is not None:
-        try:
-            runtime.serving.current.index.row_of(body.answer)
-        except UnknownDocumentError:
-            raise field_error(
-                ("body", "answer"), f"no article with id {body.answer!r} in the index"
-            ) from None
+    answer = body.answer
+    if answer is not None:
+        # An id is expected; a title or alias that names exactly one article is taken too.
+        answer = runtime.serving.current.index.resolve(answer)
+        if answer is None:
+            raise field_error(("body", "answer"), f"no article with id {body.answer!r} in the index")
     recorded = runtime.served_log is not None
     if runtime.served_log is not None:
         runtime.served_log.append(
@@ -233,11 +233,11 @@ def feedback(body: s.FeedbackRequest, runtime: RuntimeDep) -> s.FeedbackResponse
                     "kind": "feedback",
                     "request_id": body.request_id,
                     "time": utc_now(),
-                    "answer": body.answer,
+                    "answer": answer,
                 }
             ]
         )
-    return s.FeedbackResponse(request_id=body.request_id, answer=body.answer, recorded=recorded)
+    return s.FeedbackResponse(request_id=body.request_id, answer=answer, recorded=recorded)
 
 
 def _entry(runtime: Runtime, doc_id: str) -> s.EntryOut:
@@ -280,6 +280,7 @@ def info(runtime: RuntimeDep, settings: SettingsDep) -> s.InfoOut:
         loaded_at=loaded.loaded_at,
         served_log=runtime.served_log is not None,
         admin_enabled=runtime.admin_token is not None,
+        worker_pid=os.getpid(),
         limits=s.LimitsOut(
             default_k=settings.default_k,
             max_k=settings.max_k,

@@ -154,7 +154,10 @@ class FeedbackRequest(_Strict):
     """The right answer to a ranked clue, or null for 'none of these'."""
 
     request_id: Annotated[str, StringConstraints(max_length=REQUEST_ID_MAX)]
-    answer: ArticleId | None = Field(description="article id, or null: none of the candidates")
+    answer: ArticleId | None = Field(
+        description="article id (a title or alias naming one article is resolved to its id), "
+        "or null: none of the candidates"
+    )
 
 
 class FeedbackResponse(BaseModel):
@@ -226,6 +229,7 @@ class InfoOut(BaseModel):
     loaded_at: str
     served_log: bool
     admin_enabled: bool
+    worker_pid: int = Field(description="process id of the worker that answered")
     limits: LimitsOut
 
 

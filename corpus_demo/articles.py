@@ -82,6 +82,8 @@ def article_facts(world: World, i: int) -> list[Fact]:
     for t in world.fact_tpl[world.fact_off[i] : world.fact_off[i + 1]].tolist():
         tpl = TEMPLATES[t]
         text = tpl.text
+        if tpl.role == "named" and spec.person:
+            text = "{S} was named after the {nkind} {namesake}."
         if tpl.role == "intro":
             verb = "was" if spec.category in ("person", "event") else "is"
             text = "{S} " + verb + " a " + text + "."
@@ -156,7 +158,8 @@ def echo_sentences(world: World, i: int) -> list[str]:
     for s in world.echo_src[world.echo_off[i] : world.echo_off[i + 1]].tolist():
         facts = article_facts(world, s)
         hit = next((f for f in facts if i in f.refs.values()), facts[0])
-        if hit.role != "intro" and rng.random() < 0.4:
+        namesake = int(world.namesake[s]) == i
+        if hit.role != "intro" and (namesake or rng.random() < 0.4):
             out.append(facts[0].sentence)
         out.append(hit.sentence)
     return out

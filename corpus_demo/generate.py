@@ -34,8 +34,7 @@ def build_parser() -> argparse.ArgumentParser:
         "--articles",
         type=int,
         default=DEFAULT_ARTICLES,
-        help="number of articles to write (default %(default)s; 100000 or "
-        "1000000 for benchmarks)",
+        help="number of articles to write (default %(default)s; 100000 or 1000000 for benchmarks)",
     )
     p.add_argument(
         "--questions",
@@ -53,9 +52,7 @@ def build_parser() -> argparse.ArgumentParser:
         default=DEFAULT_DATA_DIR,
         help="output folder, created if missing (default: corpus_demo/data)",
     )
-    p.add_argument(
-        "--no-progress", action="store_true", help="never show the progress bar"
-    )
+    p.add_argument("--no-progress", action="store_true", help="never show the progress bar")
     return p
 
 

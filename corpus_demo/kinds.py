@@ -247,8 +247,10 @@ NAMED_AFTER = "{S} takes its name from the {nkind} {namesake}."
 
 # fmt: off
 VALUES: dict[str, tuple[str, ...]] = {
-    "good": tuple("amber salt copper barley indigo tin wool pearls cedar honey flax "
-                  "saffron slate resin kelp".split()),
+    "good": (
+        "amber", "salt", "copper", "barley", "indigo", "tin", "wool", "pearls", "cedar",
+        "honey", "flax", "saffron", "slate", "resin", "kelp"
+    ),
     "color": ("grey", "crimson", "ochre", "pale blue", "green", "black", "silver",
               "russet", "white", "violet"),
     "topic": ("tides", "eclipses", "grammar", "salt marshes", "star charts", "old law",

@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-import os
 import random
 
 import numpy as np
 
 from corpus_demo.kinds import KINDS
 
-MAX_ECHOES = int(os.environ.get("CD_ME", "4"))
+MAX_ECHOES = 8
 
 
 class RefSampler:
@@ -59,7 +58,7 @@ class RefSampler:
 
 def choose_echoes(
     prng: random.Random, n: int, pairs: np.ndarray, fame_rank: np.ndarray,
-    names: list[str],
+    names: list[str], namesake: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:  # fmt: skip
     """Pick, for each article, a few articles linking to it that it mentions back.
 
@@ -74,13 +73,21 @@ def choose_echoes(
     frac = 1.0 - np.log(fame_rank) / log_n
     echo_off = np.zeros(n + 1, dtype=np.int64)
     chosen: list[int] = []
+    named = np.flatnonzero(namesake >= 0)
+    named = named[np.argsort(namesake[named], kind="stable")]
+    named_off = np.searchsorted(namesake[named], np.arange(n + 1))
     for i in range(n):
+        # A name's main article always mentions the things named after it.
+        forced = named[named_off[i] : named_off[i + 1]].tolist()
+        chosen.extend(forced)
         lo, hi = int(in_off[i]), int(in_off[i + 1])
         if hi > lo:
             k = min(hi - lo, prng.randint(0, 1 + int(MAX_ECHOES * frac[i])))
             if k:
                 picks = sorted(prng.sample(range(lo, hi), k))
-                chosen.extend(s for s in in_src[picks].tolist() if names[s] != names[i])
+                chosen.extend(
+                    s for s in in_src[picks].tolist() if names[s] != names[i] and s not in forced
+                )
         echo_off[i + 1] = len(chosen)
     echo_src = np.asarray(chosen, dtype=np.int64)
     echo_from = np.repeat(np.arange(n, dtype=np.int64), np.diff(echo_off))

@@ -99,9 +99,7 @@ def paraphrase(template: str, rng: random.Random, rate: float) -> str:
         return alt.capitalize() if word[0].isupper() else alt
 
     parts = _SLOT_SPLIT.split(template)
-    return "".join(
-        p if p.startswith("{") else _WORD_RE.sub(swap, p) for p in parts
-    )
+    return "".join(p if p.startswith("{") else _WORD_RE.sub(swap, p) for p in parts)
 
 
 def paraphrase_value(value: str, rng: random.Random, rate: float) -> str:

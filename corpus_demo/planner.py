@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 import random
 
 import numpy as np
@@ -20,10 +19,11 @@ from corpus_demo.templates import (
 )
 
 RED_LINK_RATE = 0.02  # share of links pointing at titles that do not exist
-LOCAL_LINK_RATE = float(os.environ.get("CD_LR", "0.85"))  # links from own cluster
-TWIN_RATE = float(os.environ.get("CD_TR", "0.35"))  # articles modelled on a neighbour
-TWIN_COPY = float(os.environ.get("CD_TC", "0.75"))  # share of a model's links a twin keeps
+LOCAL_LINK_RATE = 0.85  # links from own cluster
+TWIN_RATE = 0.85  # articles modelled on a neighbour
+TWIN_COPY = 0.95  # share of a model's links a twin keeps
 MAX_MODELS = 8
+MODEL_FAMOUS = 0.9  # twins copy the cluster's star
 
 
 class LinkPlanner:
@@ -87,7 +87,7 @@ class LinkPlanner:
         prng, k = self.prng, int(self.kinds[i])
         frac = 1.0 - np.log(self.fame_rank[i]) / self.log_n
         n_facts = min(len(FACT_IDX[k]), 3 + int(frac * 4 + prng.random()))
-        chosen = [INTRO_IDX[k]] + sorted(prng.sample(FACT_IDX[k], n_facts))
+        chosen = [INTRO_IDX[k], *sorted(prng.sample(FACT_IDX[k], n_facts))]
         if frac > 0.55:
             chosen += prng.sample(GENERAL_IDX, prng.randint(0, int(frac * 4)))
         return [(t, None) for t in chosen]
@@ -95,7 +95,9 @@ class LinkPlanner:
     def _twin(self, i: int, m: int) -> list[tuple[int, list[int] | None]]:
         """Model article i on neighbour m of the same kind: same facts, mostly same links."""
         prng, k = self.prng, int(self.kinds[i])
-        base = [(t, refs) for t, refs in self.facts_of(m) if TEMPLATES[t].role != "named"]
+        base: list[tuple[int, list[int] | None]] = [
+            (t, refs) for t, refs in self.facts_of(m) if TEMPLATES[t].role != "named"
+        ]
         intro, body = base[0], [b for b in base[1:] if TEMPLATES[b[0]].role == "fact"]
         if len(body) > 3 and prng.random() < 0.6:
             body.pop(prng.randrange(len(body)))
@@ -112,7 +114,7 @@ class LinkPlanner:
         key = int(self.cluster[i]) * len(KINDS) + k
         models = self.models.setdefault(key, [])
         if models and prng.random() < TWIN_RATE:
-            if prng.random() < 0.6:
+            if prng.random() < MODEL_FAMOUS:
                 m = min(models, key=lambda j: int(self.fame_rank[j]))
             else:
                 m = prng.choice(models)
@@ -134,6 +136,8 @@ class LinkPlanner:
                 r = -1
                 if model_refs is not None and prng.random() < TWIN_COPY:
                     r = model_refs[pos]
+                    if prng.random() < RED_LINK_RATE:
+                        r = self._red(rk)
                 if r in used or r == -1:
                     r = self._draw(i, rk, used)
                 used.add(r)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import os
 import random
 import re
 
@@ -29,12 +28,13 @@ SOURCES: dict[str, tuple[int, int, float, float]] = {
     "Ostvale Circuit": (4, 6, 0.55, 0.25),
 }
 SOURCE_NAMES = tuple(SOURCES)
-GIVEAWAY_DESCRIBE = float(os.environ.get("CD_GD", "0.5"))
-HUB_DEGREE = float(os.environ.get("CD_HD", "40"))
-RARE_HIDE = float(os.environ.get("CD_RH", "0.8"))
-VALUE_RATE = float(os.environ.get("CD_VR", "0.8"))
-VAGUE_SENTENCES = int(os.environ.get("CD_VS", "1"))
-DESC_SCALE = float(os.environ.get("CD_DS", "1.0"))
+GIVEAWAY_DESCRIBE = 0.65  # chance the give-away hides one of its links
+HUB_DEGREE = 40  # in-links from which a link counts as a well-known hub
+RARE_HIDE = 0.8  # extra hiding of rarely linked names
+VALUE_RATE = 0.8  # chance a plain value is reworded
+VAGUE_SENTENCES = 0  # leading sentences with vague numbers and nouns
+ANSWER_EXP = -0.6  # answer weight ~ fame_rank ** 0.6: obscure answers favoured
+DESC_SCALE = 2.6  # scales the per-source link-hiding rates
 VERBS = ("Name this", "Identify this", "Give the name of this")
 OPENERS = (
     "According to one chronicle, ",
@@ -161,7 +161,7 @@ def make_clue(world: World, i: int, rng: random.Random, source: str) -> str:
 def choose_answers(world: World, n_questions: int, seed: int) -> np.ndarray:
     """Pick answer articles: mostly mid-popularity, with extra weight on namesakes."""
     rng = np.random.default_rng(seed + 4242)
-    p = (world.fame_rank.astype(np.float64) ** -0.35) * np.where(
+    p = (world.fame_rank.astype(np.float64) ** -ANSWER_EXP) * np.where(
         world.namesake >= 0, 2.5, 1.0
     )
     p /= p.sum()

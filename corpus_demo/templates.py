@@ -45,9 +45,7 @@ NAMED_IDX = len(TEMPLATES)
 TEMPLATES.append(_template(NAMED_AFTER, "named"))
 
 _TEMPLATE_WORDS = {
-    w.lower()
-    for t in TEMPLATES
-    for w in re.findall(r"[A-Za-z]+", SLOT_RE.sub(" ", t.text))
+    w.lower() for t in TEMPLATES for w in re.findall(r"[A-Za-z]+", SLOT_RE.sub(" ", t.text))
 }
 RESERVED = frozenset(
     _TEMPLATE_WORDS

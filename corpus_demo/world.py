@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 import random
 from dataclasses import dataclass
 
@@ -15,7 +14,7 @@ from corpus_demo.planner import LinkPlanner
 from corpus_demo.templates import RESERVED
 
 GROUP_SHARE = 0.30  # share of articles that sit in an ambiguous-name group
-CLUSTER_SIZE = int(os.environ.get("CD_CS", "30"))  # articles per topical cluster
+CLUSTER_SIZE = 150  # articles per topical cluster
 ZIPF_EXPONENT = 1.0
 
 
@@ -46,12 +45,10 @@ class World:
     taken: frozenset[str]
 
 
-def _form_groups(
-    rng: np.random.Generator, kinds: np.ndarray, n: int
-) -> list[np.ndarray]:
+def _form_groups(rng: np.random.Generator, kinds: np.ndarray, n: int) -> list[np.ndarray]:
     """Partition a share of articles into groups of distinct kinds sharing one name."""
     order = rng.permutation(n)
-    target = int(round(GROUP_SHARE * n))
+    target = round(GROUP_SHARE * n)
     sizes = rng.choice([2, 3, 4], size=target // 2 + 2, p=[0.6, 0.3, 0.1])
     groups: list[np.ndarray] = []
     pos = 0
@@ -92,7 +89,7 @@ def build_world(n: int, seed: int, progress: bool = False) -> World:
     namesake = np.full(n, -1, dtype=np.int64)
     grouped = np.zeros(n, dtype=bool)
     group_names = nm.unique_names(prng, len(groups), taken, RESERVED)
-    for gname, members in zip(group_names, groups):
+    for gname, members in zip(group_names, groups, strict=True):
         primary = int(members[np.argmax(w[members])])
         bare = prng.random() < 0.55
         for m in members.tolist():
@@ -124,7 +121,7 @@ def build_world(n: int, seed: int, progress: bool = False) -> World:
     src = np.repeat(np.arange(n, dtype=np.int64), np.diff(ref_off))
     ok = refs >= 0
     pairs = np.unique(src[ok] * n + refs[ok])
-    echo_off, echo_src, pairs = choose_echoes(prng, n, pairs, fame_rank, names)
+    echo_off, echo_src, pairs = choose_echoes(prng, n, pairs, fame_rank, names, namesake)
     inlinks = np.bincount(pairs % n, minlength=n)
     noise = rng.lognormal(0.0, 0.8, size=n)
     floor = rng.lognormal(2.5, 1.0, size=n)

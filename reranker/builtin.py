@@ -16,11 +16,11 @@ _FEATURES: list[Feature] = []
 def feature(
     group: str,
 ) -> Callable[[Callable[[CandidateSet], np.ndarray]], Callable[[CandidateSet], np.ndarray]]:
-    """Register the decorated function as a built-in feature of `group`; its docstring describes it."""
+    """Register the decorated function as a built-in feature of `group`."""
 
     def wrap(func: Callable[[CandidateSet], np.ndarray]) -> Callable[[CandidateSet], np.ndarray]:
         doc = (func.__doc__ or "").strip().splitlines()[0]
-        _FEATURES.append(Feature(func.__name__, group, doc, func))
+        _FEATURES.append(Feature(func.__name__, group, doc, func, trusted=True))
         return func
 
     return wrap
@@ -85,8 +85,11 @@ def score_zscore(cs: CandidateSet) -> np.ndarray:
 @feature("retrieval")
 def score_softmax(cs: CandidateSet) -> np.ndarray:
     """Softmax of the scores over the clue's candidates: a within-clue share of the evidence."""
-    z = np.exp(cs.scores - cs.scores.max()) if cs.scores.size else cs.scores
-    return z / z.sum() if z.size else z
+    out = cs.memo.get("softmax")
+    if out is None:
+        z = np.exp(cs.scores - cs.scores.max()) if cs.scores.size else cs.scores
+        out = cs.memo["softmax"] = z / z.sum() if z.size else z
+    return out
 
 
 # -- clue length: long clues make a high score more trustworthy ---------------------------
@@ -124,7 +127,10 @@ def inlinks(cs: CandidateSet) -> np.ndarray:
 @feature("popularity")
 def log_inlinks(cs: CandidateSet) -> np.ndarray:
     """log1p of the in-link count."""
-    return np.log1p(np.asarray(cs.index.inlinks[cs.rows], dtype=np.float64))
+    out = cs.memo.get("log_inlinks")
+    if out is None:
+        out = cs.memo["log_inlinks"] = np.log1p(inlinks(cs))
+    return out
 
 
 @feature("popularity")
@@ -138,7 +144,7 @@ def log_inlinks_vs_best(cs: CandidateSet) -> np.ndarray:
 def log_popularity(cs: CandidateSet) -> np.ndarray:
     """log1p of the corpus's popularity field (0 when absent)."""
     p = np.asarray(cs.index.popularity[cs.rows], dtype=np.float64)
-    return np.log1p(np.nan_to_num(p, nan=0.0))
+    return np.log1p(np.where(np.isnan(p), 0.0, p))
 
 
 @feature("popularity")
@@ -181,31 +187,29 @@ def alias_overlap(cs: CandidateSet) -> np.ndarray:
 
 
 # -- term overlap: how much of the clue the article covers --------------------------------
-def _matched(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray]:
-    """(distinct clue terms in each candidate, IDF-like weight of those terms), via the postings."""
+def _matched(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
+    """(distinct clue terms in each candidate, their summed log(N/df), known clue terms)."""
     cached = cs.memo.get("matched")
     if cached is None:
         cached = cs.memo["matched"] = _match_terms(cs)
     return cached
 
 
-def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray]:
-    tids, _ = cs.index.term_ids(cs.tokens)
-    count = np.zeros(len(cs))
-    weight = np.zeros(len(cs))
+def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
+    tids = cs.index.term_ids(cs.tokens)[0]
+    n = len(cs)
+    if tids.size == 0 or n == 0:
+        return np.zeros(n), np.zeros(n), int(tids.size)
     indptr, docs = cs.index.body.indptr, cs.index.body.docs
-    n = max(cs.index.n_docs, 1)
-    rows = cs.rows.astype(np.int32)
-    for t in tids.tolist():
-        s, e = int(indptr[t]), int(indptr[t + 1])
-        if s == e:
-            continue
+    starts, ends = indptr[tids].tolist(), indptr[tids + 1].tolist()
+    rows = cs.rows.astype(docs.dtype)
+    hits = np.empty((tids.size, n), dtype=bool)
+    for i, (s, e) in enumerate(zip(starts, ends, strict=True)):
         posting = docs[s:e]  # sorted rows, so membership is a binary search
-        pos = np.searchsorted(posting, rows)
-        hit = (pos < posting.size) & (posting[np.minimum(pos, posting.size - 1)] == rows)
-        count += hit
-        weight += hit * np.log(n / (e - s))
-    return count, weight
+        hits[i] = posting.take(posting.searchsorted(rows), mode="clip") == rows
+    df = np.asarray(ends, dtype=np.float64) - np.asarray(starts, dtype=np.float64)
+    rarity = np.log(max(cs.index.n_docs, 1) / df)
+    return hits.sum(axis=0).astype(np.float64), rarity @ hits, int(tids.size)
 
 
 @feature("overlap")
@@ -217,8 +221,7 @@ def matched_terms(cs: CandidateSet) -> np.ndarray:
 @feature("overlap")
 def matched_fraction(cs: CandidateSet) -> np.ndarray:
     """Share of the clue's distinct known terms found in the article."""
-    count, _ = _matched(cs)
-    known = cs.index.term_ids(cs.tokens)[0].size
+    count, _, known = _matched(cs)
     return count / known if known else np.zeros(len(cs))
 
 

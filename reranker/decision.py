@@ -42,7 +42,7 @@ class Decision:
 def decide(
     top_id: str | None, top_probability: float | None, threshold: float, *, complete: bool = False
 ) -> Decision:
-    """Answer when the top candidate's probability clears the threshold, else wait (or abstain if complete)."""
+    """Answer when the top probability clears the threshold, else wait (abstain if complete)."""
     idle = ABSTAIN if complete else WAIT
     if top_id is None:
         return Decision(
@@ -77,12 +77,14 @@ def simulate_commits(
     threshold: float,
     payoff: Payoff,
 ) -> dict[str, float]:
-    """Play each clue word by word: commit at the first prefix whose top probability clears the threshold.
+    """Play each clue word by word, committing at the first prefix that clears the threshold.
 
     Inputs are per clue prefix (one row each). Returns mean payoff, commit rate, accuracy of the
     commits and mean fraction of the clue revealed at commit, plus the same for deciding only on
     the full clue ("always wait").
     """
+    if np.asarray(clue).size == 0:
+        raise ValueError("simulate_commits needs at least one clue prefix")
     order = np.lexsort((fraction, clue))
     c, f, p, r = clue[order], fraction[order], top_prob[order], top_right[order].astype(bool)
     starts = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])

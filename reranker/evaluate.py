@@ -22,7 +22,16 @@ from .model import Reranker, grouped_folds, oof_proba
 from .report import summary_text, write_report
 from .train import prefix_tops
 
-GROUP_ORDER = ("retrieval", "length", "popularity", "qualifier", "leakage", "overlap", "user", "metadata")
+GROUP_ORDER = (
+    "retrieval",
+    "length",
+    "popularity",
+    "qualifier",
+    "leakage",
+    "overlap",
+    "user",
+    "metadata",
+)
 
 
 @dataclass
@@ -35,17 +44,35 @@ class Evaluation:
     summary: str
 
 
-def _score_row(name: str, kind: str, names: Sequence[str], table: TrainingTable, p: np.ndarray) -> dict[str, Any]:
+def _score_row(
+    name: str, kind: str, names: Sequence[str], table: TrainingTable, p: np.ndarray
+) -> dict[str, Any]:
     full = table.fraction == 1.0
     clue = M.clue_metrics(table.group[full], table.y[full], p[full], table.score[full])
     return {
-        "name": name, "kind": kind, "features": list(names),
+        "name": name,
+        "kind": kind,
+        "features": list(names),
         "log_loss": float(log_loss(table.y, p, labels=[0, 1])),
         "brier": float(brier_score_loss(table.y, p, labels=[0, 1])),
         "roc_auc": float(roc_auc_score(table.y, p)) if np.unique(table.y).size == 2 else None,
         "ece": M.expected_calibration_error(table.y, p),
-        "top1": clue["top1_reranked"], "top_candidate_ece": clue["top_candidate_ece"],
+        "top1": clue["top1_reranked"],
+        "top_candidate_ece": clue["top_candidate_ece"],
     }
+
+
+def _columns(table: TrainingTable, names: Sequence[str]) -> np.ndarray:
+    """Feature columns of the table; the BM25 score is there even when the model lacks it."""
+    if all(n in table.feature_names for n in names):
+        return table.columns(names)
+    cols = [
+        table.score
+        if n not in table.feature_names and n in SCORE_ONLY
+        else table.columns([n])[:, 0]
+        for n in names
+    ]
+    return np.column_stack(cols)
 
 
 def feature_groups(model: Reranker) -> dict[str, list[str]]:
@@ -58,12 +85,20 @@ def feature_groups(model: Reranker) -> dict[str, list[str]]:
         else:
             group = next((g for g, names in by_group.items() if name in names), "user")
         out.setdefault(group, []).append(name)
-    return {g: out[g] for g in sorted(out, key=lambda g: GROUP_ORDER.index(g) if g in GROUP_ORDER else 99)}
+    return {
+        g: out[g]
+        for g in sorted(out, key=lambda g: GROUP_ORDER.index(g) if g in GROUP_ORDER else 99)
+    }
 
 
-def ablation(table: TrainingTable, groups: dict[str, list[str]], C: float, n_folds: int = 5,
-             progress: bool = False) -> list[dict[str, Any]]:
-    """Baseline, each group alone, forward additions, drop-one, and full; all with one grouped CV."""
+def ablation(
+    table: TrainingTable,
+    groups: dict[str, list[str]],
+    C: float,
+    n_folds: int = 5,
+    progress: bool = False,
+) -> list[dict[str, Any]]:
+    """Baseline, each group alone, forward additions, drop-one and full, on one grouped CV."""
     splits = grouped_folds(table.y, table.clue_id, n_folds)
     full = [n for names in groups.values() for n in names]
     plan: list[tuple[str, str, list[str]]] = [("bm25 score only", "baseline", list(SCORE_ONLY))]
@@ -73,11 +108,14 @@ def ablation(table: TrainingTable, groups: dict[str, list[str]], C: float, n_fol
         acc = acc + [n for n in names if n not in acc]
         plan.append((f"+ {g}", "forward", list(acc)))
     if len(groups) > 1:
-        plan += [(f"- {g}", "drop-one", [n for n in full if n not in names]) for g, names in groups.items()]
+        plan += [
+            (f"- {g}", "drop-one", [n for n in full if n not in names])
+            for g, names in groups.items()
+        ]
     plan.append(("full model", "full", full))
     rows = []
     for name, kind, names in tqdm(plan, desc="ablation", unit=" fits", disable=not progress):
-        p = oof_proba(table.columns(names), table.y, splits, C)
+        p = oof_proba(_columns(table, names), table.y, splits, C)
         rows.append(_score_row(name, kind, names, table, p))
     return rows
 
@@ -111,19 +149,38 @@ def evaluate(
         threshold = payoff.break_even
     report = LogReport()
     clues = read_logs(logs, skip_bad=skip_bad, report=report)
-    table = build_table(index, clues, model.registry_, model.code_features_, k=k, plan=plan,
-                        metadata=model.metadata_, progress=progress)
+    table = build_table(
+        index,
+        clues,
+        model.registry_,
+        model.code_features_,
+        k=k,
+        plan=plan,
+        metadata=model.metadata_,
+        progress=progress,
+    )
     if table.y.size == 0 or table.y.sum() == 0:
-        raise ValueError("the evaluation logs give no candidate rows with a right answer; check the answers resolve")
+        raise ValueError(
+            "the evaluation logs give no candidate rows with a right answer; "
+            "check the answers resolve"
+        )
     prob = model.probability(table.columns(model.feature_names_))
-    bm25_only = Reranker(calibration="none", n_folds=n_folds).fit(
-        table.columns(list(SCORE_ONLY)), table.y, table.clue_id, list(SCORE_ONLY)).oof_proba_
+    bm25_only = (
+        Reranker(calibration="none", n_folds=n_folds)
+        .fit(_columns(table, SCORE_ONLY), table.y, table.clue_id, list(SCORE_ONLY))
+        .oof_proba_
+    )
     full = table.fraction == 1.0
     clue = M.clue_metrics(table.group[full], table.y[full], prob[full], table.score[full])
-    candidate = {"model": M.candidate_metrics(table.y, prob), "bm25_only": M.candidate_metrics(table.y, bm25_only),
-                 "all_wrong": M.baseline_all_wrong(table.y)}
+    candidate = {
+        "model": M.candidate_metrics(table.y, prob),
+        "bm25_only": M.candidate_metrics(table.y, bm25_only),
+        "all_wrong": M.baseline_all_wrong(table.y),
+    }
     tops = prefix_tops(table, prob)
-    commits = simulate_commits(tops["clue"], tops["fraction"], tops["prob"], tops["right"], threshold, payoff)
+    commits = simulate_commits(
+        tops["clue"], tops["fraction"], tops["prob"], tops["right"], threshold, payoff
+    )
     top_row = np.zeros(table.y.size, dtype=bool)
     order = np.lexsort((-prob, table.group))
     first = np.r_[True, table.group[order][1:] != table.group[order][:-1]]
@@ -131,20 +188,40 @@ def evaluate(
     committed = top_row & (prob >= threshold)
     prefix_rows = M.by_prefix(table.fraction, table.group, table.y, prob, committed, payoff)
     metrics: dict[str, Any] = {
-        "clue": clue, "candidate": candidate,
-        "decision": {"threshold": threshold, "payoff": {"reward": payoff.reward, "penalty": payoff.penalty},
-                     **commits},
-        "data": {"logs": [str(p) for p in logs], "clues": table.n_clues, "prefixes": table.n_prefixes,
-                 "candidate_rows": int(table.y.size), "k": k, "model_version": model.version,
-                 "index_version": index.version, "unresolved_answers": len(table.unresolved),
-                 "skipped_lines": report.skipped,
-                 "note": "clue-level figures use the full clue; candidate-level figures use every prefix"},
+        "clue": clue,
+        "candidate": candidate,
+        "decision": {
+            "threshold": threshold,
+            "payoff": {"reward": payoff.reward, "penalty": payoff.penalty},
+            **commits,
+        },
+        "data": {
+            "logs": [str(p) for p in logs],
+            "clues": table.n_clues,
+            "prefixes": table.n_prefixes,
+            "candidate_rows": int(table.y.size),
+            "k": k,
+            "model_version": model.version,
+            "index_version": index.version,
+            "unresolved_answers": len(table.unresolved),
+            "skipped_lines": report.skipped,
+            "note": "clue-level figures use the full clue; "
+            "candidate-level figures use every prefix",
+        },
     }
-    rows = ablation(table, feature_groups(model), model.C_, n_folds, progress) if run_ablation else []
+    rows = (
+        ablation(table, feature_groups(model), model.C_, n_folds, progress) if run_ablation else []
+    )
     inlinks = np.asarray(index.inlinks[table.row])
     paths = write_report(
-        report_dir, metrics, reliability_candidate=M.reliability_table(table.y, prob),
-        reliability_top=clue["top_candidate_reliability"], prefix_rows=prefix_rows, ablation_rows=rows,
-        inlinks=inlinks, labels=table.y, unresolved=table.unresolved,
+        report_dir,
+        metrics,
+        reliability_candidate=M.reliability_table(table.y, prob),
+        reliability_top=clue["top_candidate_reliability"],
+        prefix_rows=prefix_rows,
+        ablation_rows=rows,
+        inlinks=inlinks,
+        labels=table.y,
+        unresolved=table.unresolved,
     )
     return Evaluation(metrics, rows, paths, summary_text(metrics, rows))

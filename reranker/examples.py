@@ -37,7 +37,8 @@ class PrefixPlan:
         if self.every_words:
             cuts = list(range(self.every_words, n_words, self.every_words))
         else:
-            cuts = [max(1, math.ceil(f * n_words)) for f in self.fractions]
+            # The small slack keeps float noise (0.28 * 25 = 7.000000000000001) from adding a word.
+            cuts = [max(1, math.ceil(f * n_words - 1e-9)) for f in self.fractions]
         return sorted(set(cuts) | {n_words})
 
 

@@ -47,15 +47,8 @@ class CandidateSet:
         return frozenset(self.tokens)
 
     def _cached(self, kind: str) -> list[frozenset[str]]:
-        cache = index_cache(self.index)
-        out = []
-        for row in self.rows.tolist():
-            key = (kind, row)
-            hit = cache.get(key)
-            if hit is None:
-                hit = cache[key] = _tokens_of(self.index, kind, row)
-            out.append(hit)
-        return out
+        table = name_tokens(self.index, kind)
+        return [table[r] for r in self.rows.tolist()]
 
     @cached_property
     def base_tokens(self) -> list[frozenset[str]]:
@@ -69,7 +62,7 @@ class CandidateSet:
 
     @cached_property
     def alias_tokens(self) -> list[frozenset[str]]:
-        """Analyzed tokens of each alias of each candidate, one frozenset per alias, flattened per candidate."""
+        """Analyzed tokens of all of each candidate's aliases, one frozenset per candidate."""
         return self._cached("aliases")
 
 
@@ -84,13 +77,22 @@ def index_cache(index: Index) -> dict[Any, Any]:
     return cache
 
 
-def _tokens_of(index: Index, kind: str, row: int) -> frozenset[str]:
-    tok = index.analyzer.tokens
-    if kind == "base":
-        return frozenset(tok(index.bases[row]))
-    if kind == "qualifier":
-        return frozenset(tok(index.qualifiers[row]))
-    return frozenset(t for alias in index.aliases[row] for t in tok(alias))
+def name_tokens(index: Index, kind: str) -> list[frozenset[str]]:
+    """Analyzed tokens of every row's base title, qualifier or aliases, computed once per index."""
+    cache = index_cache(index)
+    table: list[frozenset[str]] | None = cache.get(kind)
+    if table is None:
+        tokens_many = index.analyzer.tokens_many
+        if kind == "base":
+            table = [frozenset(t) for t in tokens_many(index.bases)]
+        elif kind == "qualifier":
+            table = [frozenset(t) for t in tokens_many(index.qualifiers)]
+        elif kind == "aliases":
+            table = [frozenset(t) for t in tokens_many(" ".join(a) for a in index.aliases)]
+        else:
+            raise ValueError(f"unknown name kind {kind!r}")
+        cache[kind] = table
+    return table
 
 
 FeatureFunc = Callable[[CandidateSet], Any]
@@ -104,6 +106,7 @@ class Feature:
     group: str
     description: str
     func: FeatureFunc
+    trusted: bool = False  # built-ins skip the per-call checks; the matrix is checked once
 
     def compute(self, cs: CandidateSet) -> np.ndarray:
         """Run the function and check it returned one finite float per candidate."""
@@ -159,9 +162,19 @@ class FeatureRegistry:
 
     def matrix(self, cs: CandidateSet, names: Sequence[str]) -> np.ndarray:
         """Feature values of the candidates. float64, shape (n_candidates, len(names))."""
-        if len(cs) == 0:
-            return np.zeros((0, len(names)))
-        return np.column_stack([self[n].compute(cs) for n in names])
+        n = len(cs)
+        out = np.empty((n, len(names)))
+        if n == 0:
+            return out
+        for j, name in enumerate(names):
+            f = self[name]
+            # Built-ins are called directly (their shapes are fixed by tests); this loop is
+            # over features, not candidates, and per-call checks would cost more than the work.
+            out[:, j] = f.func(cs) if f.trusted else f.compute(cs)
+        if not np.isfinite(out).all():
+            bad = [names[int(j)] for j in np.flatnonzero(~np.isfinite(out).all(axis=0))]
+            raise FeatureError(f"features {bad} returned NaN or infinite values")
+        return out
 
     def with_user_features(
         self, specs: Sequence[str] = (), *, entry_point_group: str = ENTRY_POINT_GROUP
@@ -182,14 +195,14 @@ def load_function(spec: str) -> FeatureFunc:
         raise FeatureError(f"feature path {spec!r} must look like 'package.module:function'")
     try:
         module = importlib.import_module(module_name)
-    except ImportError as exc:
+    except Exception as exc:  # ImportError, but also a module that fails while importing
         raise FeatureError(
             f"cannot import module {module_name!r} for feature {spec!r}: {exc}"
         ) from exc
     func = getattr(module, attr, None)
     if not callable(func):
         raise FeatureError(f"{spec!r}: module {module_name!r} has no function {attr!r}")
-    return func  # type: ignore[no-any-return]
+    return func
 
 
 def _as_feature(name: str | None, obj: Any) -> Feature:

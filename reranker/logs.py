@@ -1,4 +1,4 @@
-"""Read labelled logs: our training form ({clue, answer}) and the service's served + feedback lines."""
+"""Read labelled logs: the training form ({clue, answer}) and served + feedback lines."""
 
 from __future__ import annotations
 
@@ -16,7 +16,7 @@ NONE_OF_THESE = None  # a feedback answer of null: the right entry was not among
 
 @dataclass(frozen=True)
 class LabelledClue:
-    """One clue with its gold answer as written in the log (id, title or alias; None = none of these)."""
+    """One clue and its gold answer as written (id, title or alias; None = none of these)."""
 
     clue: str
     answer: str | None
@@ -96,7 +96,7 @@ def _parse(rec: Any, where: dict[str, Any]) -> tuple[str, Any]:
 def read_logs(
     paths: Sequence[str | Path], *, skip_bad: bool = False, report: LogReport | None = None
 ) -> list[LabelledClue]:
-    """Labelled clues from several logs; served lines are joined with their feedback by request id."""
+    """Labelled clues from several logs; served lines joined with their feedback by request id."""
     report = report if report is not None else LogReport()
     digest = hashlib.sha256()
     out: list[LabelledClue] = []
@@ -109,7 +109,7 @@ def read_logs(
         with open(path, "rb") as fh:
             for n, raw in enumerate(fh, 1):
                 digest.update(raw)
-                where = {"file": str(path), "line": n}
+                where: dict[str, Any] = {"file": str(path), "line": n}
                 try:
                     text = raw.decode("utf-8")
                     if not text.strip():

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from scipy.special import expit
 from sklearn.isotonic import IsotonicRegression
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import log_loss
@@ -32,7 +33,9 @@ def make_pipeline_for(C: float, max_iter: int = 5000) -> Pipeline:
     """StandardScaler + LogisticRegression with every setting that matters spelled out."""
     return make_pipeline(
         StandardScaler(),
-        LogisticRegression(C=C, solver="newton-cholesky", max_iter=max_iter, tol=1e-6, fit_intercept=True),
+        LogisticRegression(
+            C=C, solver="newton-cholesky", max_iter=max_iter, tol=1e-6, fit_intercept=True
+        ),
     )
 
 
@@ -96,7 +99,7 @@ def apply_calibrator(cal: dict[str, Any], p: np.ndarray) -> np.ndarray:
     method = cal.get("method", "none")
     if method == "platt":
         z = cal["a"] * _logit(p) + cal["b"]
-        return np.clip(1.0 / (1.0 + np.exp(-z)), _EPS, 1 - _EPS)
+        return np.clip(expit(z), _EPS, 1 - _EPS)
     if method == "isotonic":
         return np.clip(np.interp(p, np.asarray(cal["x"]), np.asarray(cal["y"])), _EPS, 1 - _EPS)
     return p
@@ -116,8 +119,34 @@ def choose_calibration(
     return min(scores, key=lambda m: (scores[m], m != "none")), scores
 
 
+def _check_calibrator(cal: dict[str, Any], source: str) -> None:
+    """Reject a calibrator that would fail or give nonsense at serving time."""
+    method = cal.get("method")
+    bad = False
+    if method == "platt":
+        bad = not all(
+            isinstance(cal.get(k), int | float) and math.isfinite(cal[k]) for k in ("a", "b")
+        )
+    elif method == "isotonic":
+        try:
+            x = np.asarray(cal.get("x"), dtype=np.float64)
+            y = np.asarray(cal.get("y"), dtype=np.float64)
+        except (TypeError, ValueError):
+            bad = True
+        else:
+            bad = (
+                x.ndim != 1
+                or x.shape != y.shape
+                or x.size == 0
+                or not np.all(np.isfinite(x) & np.isfinite(y))
+                or bool(np.any(np.diff(x) < 0))
+            )
+    if bad:
+        raise ModelFormatError(f"{source}: the {method} calibrator is damaged; retrain the model")
+
+
 class Reranker:
-    """Logistic model of 'this candidate is the answer', with its scaler and calibrator as plain data."""
+    """Logistic model of 'this candidate is the answer'; scaler and calibrator as plain data."""
 
     # Set by load_model when the model is prepared for serving.
     artifact_: dict[str, Any]
@@ -192,7 +221,8 @@ class Reranker:
         z = (
             (np.asarray(X, dtype=np.float64) - self.mean_) / self.scale_
         ) @ self.coef_ + self.intercept_
-        return 1.0 / (1.0 + np.exp(-z))
+        # expit, as scikit-learn's predict_proba uses: 1 / (1 + exp(-z)) overflows for z < -709.
+        return np.asarray(expit(z), dtype=np.float64)
 
     def probability(self, X: np.ndarray) -> np.ndarray:
         """Calibrated P(answer) of each row. float64, shape (n,)."""
@@ -262,6 +292,9 @@ class Reranker:
             raise ModelFormatError(
                 f"{source}: coefficient arrays do not match the {n} feature names; retrain it"
             )
+        if not np.all(np.isfinite(m.scale_) & (m.scale_ > 0)):
+            raise ModelFormatError(f"{source}: scaler scales must be positive numbers; retrain it")
+        _check_calibrator(m.calibrator_, source)
         m.artifact_ = data
         return m
 
@@ -293,6 +326,8 @@ def read_model(path: str | Path) -> Reranker:
         raise ModelFormatError(f"{path}: no such model file; train one with 'hunchwise train'")
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise ModelFormatError(f"{path}: cannot read the model file ({exc})") from exc
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise ModelFormatError(
             f"{path}: not valid JSON ({exc}); retrain or restore the model file"

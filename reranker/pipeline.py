@@ -15,13 +15,13 @@ from .builtin import default_registry
 from .decision import Decision, Payoff, decide
 from .errors import ModelMismatchError
 from .examples import MetadataColumns, candidate_set
-from .features import FEATURE_SET_VERSION, FeatureRegistry
+from .features import FEATURE_SET_VERSION, FeatureRegistry, name_tokens
 from .model import Reranker, read_model
 
 
 @dataclass(frozen=True)
 class ScoredCandidate:
-    """A candidate as served: BM25 evidence, the model's probability and (optionally) its features."""
+    """A candidate as served: BM25 evidence, the model's probability, optionally its features."""
 
     doc_id: str
     title: str
@@ -57,7 +57,8 @@ def load_model(
     reg = registry if registry is not None else default_registry().with_user_features(user_features)
     if data.get("feature_set_version") != FEATURE_SET_VERSION:
         raise ModelMismatchError(
-            f"{path}: model built with feature set version {data.get('feature_set_version')}, this code has "
+            f"{path}: model built with feature set version {data.get('feature_set_version')}, "
+            f"this code has "
             f"version {FEATURE_SET_VERSION}; retrain with 'hunchwise train'"
         )
     meta_spec = data.get("metadata_columns") or {}
@@ -70,7 +71,8 @@ def load_model(
     extra_meta = [n for n in model.feature_names_ if n.startswith("meta:") and n not in meta.names]
     if missing or extra_meta:
         raise ModelMismatchError(
-            f"{path}: the model uses features the running code does not provide: {missing + extra_meta}. "
+            f"{path}: the model uses features the running code does not provide: "
+            f"{missing + extra_meta}. "
             "Register the user features it was trained with (--feature module:function) or retrain."
         )
     if model.feature_names_ != code_names + meta.names:
@@ -79,6 +81,9 @@ def load_model(
     model.code_features_ = code_names
     model.metadata_ = meta
     model.threshold_ = float((data.get("decision") or {}).get("threshold", 0.5))
+    if index is not None:
+        for kind in ("base", "qualifier", "aliases"):  # warm the title tables before serving
+            name_tokens(index, kind)
     if index is not None and data.get("index_version") not in (None, index.version):
         model.index_note_ = (
             f"trained on index {data.get('index_version')}, serving index {index.version}"
@@ -112,7 +117,7 @@ def _rank_hits(
 ) -> Ranking:
     cs = candidate_set(index, clue, hits, metadata)
     probs: np.ndarray | None = None
-    x, names = np.zeros((len(hits), 0)), []
+    x, names = np.zeros((len(hits), 0)), list[str]()
     if model is not None or include_features:
         x, names = _features_of(model, registry or default_registry(), cs)
     if model is not None and hits:

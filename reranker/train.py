@@ -127,4 +127,9 @@ def train(
             "at_break_even": at_break_even,
         },
     )
+    # Ready to serve as load_model would leave it, so rank_clue and evaluate take it directly.
+    model.registry_ = reg
+    model.code_features_ = names
+    model.metadata_ = meta
+    model.threshold_ = float(tuned["threshold"])
     return TrainResult(model, artifact, table, report, notes)

@@ -105,8 +105,28 @@ class Analyzer:
         return kept
 
     def tokens_many(self, texts: Iterable[str]) -> list[list[str]]:
-        """`tokens` for each text."""
-        return [self.tokens(t) for t in texts]
+        """`tokens` for each text, normalizing and stemming all of them in one call each.
+
+        Same result as calling `tokens` per text (normalization never creates or removes a
+        line break once the texts' own line breaks are spaces), but far faster for many short
+        texts such as titles.
+        """
+        items = [t.replace("\r", " ").replace("\n", " ") for t in texts]
+        if not items:
+            return []
+        lines = self.normalize("\n".join(items)).split("\n")
+        if len(lines) != len(items):  # a normalization form changed the line structure: be safe
+            return [self.tokens(t) for t in items]
+        stop, find = self._stopwords, self._pattern.findall
+        kept = [[w for w in find(line) if w not in stop] for line in lines]
+        if self._stemmer is None:
+            return kept
+        flat = self._stemmer.stemWords([w for ws in kept for w in ws])
+        out, pos = [], 0
+        for ws in kept:
+            out.append(list(flat[pos : pos + len(ws)]))
+            pos += len(ws)
+        return out
 
     def term_table(self) -> TermTable:
         """A fresh word-to-term-id table that analyzes each distinct word only once."""

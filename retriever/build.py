@@ -21,6 +21,7 @@ from .counting import CHUNK, TermCounter, count_articles, default_workers
 from .index import Index, load_index
 from .links import NameResolver, count_inlinks
 
+
 def _field_arrays(tf: sp.csc_matrix, params: bm25.BM25Params) -> dict[str, np.ndarray]:
     """Postings (term-major), BM25 weights and per-term maximum weight of one field."""
     n_docs = tf.shape[0]
@@ -37,21 +38,18 @@ def _field_arrays(tf: sp.csc_matrix, params: bm25.BM25Params) -> dict[str, np.nd
     weight = bm25.term_weights(
         tf.data, doc_len[docs], np.repeat(term_idf, df), avgdl, params.k1, params.b
     )
-    # Largest weight of each term: the bound that lets a query skip most postings of common terms.
-    max_weight = np.zeros(df.size, dtype=np.float64)
-    if weight.size:
-        max_weight[present] = np.maximum.reduceat(weight, tf.indptr[:-1][present])
     return {
         "indptr": tf.indptr.astype(np.int64),
         "docs": docs,
         "tf": tf.data.astype(np.int32),
         "weight": weight,
-        "max_weight": max_weight,
         "doc_len": doc_len.astype(np.int32),
     }
 
 
-def _term_major(counter: TermCounter, order: np.ndarray | None) -> tuple[list[str], list[sp.csc_matrix]]:
+def _term_major(
+    counter: TermCounter, order: np.ndarray | None
+) -> tuple[list[str], list[sp.csc_matrix]]:
     """Sorted vocabulary of the used terms and each field's (articles x terms) CSC counts."""
     body = counter.matrix("body", order)
     title = counter.matrix("title")
@@ -66,7 +64,9 @@ def _term_major(counter: TermCounter, order: np.ndarray | None) -> tuple[list[st
     for m in (body, title):
         m = m.tocsr()
         mats.append(
-            sp.csr_matrix((m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], ranked.size)).tocsc()
+            sp.csr_matrix(
+                (m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], ranked.size)
+            ).tocsc()
         )
     return [str(t) for t in names[ranked]], mats
 
@@ -93,7 +93,7 @@ def _write(
     split = [split_title(title) for title in titles]
     with store.atomic_folder(out) as tmp:
         for prefix, arrays in (("body", b), ("title", t)):
-            for name in ("indptr", "docs", "tf", "weight", "max_weight"):
+            for name in ("indptr", "docs", "tf", "weight"):
                 store.save_array(tmp, f"{prefix}_{name}", arrays[name])
         store.save_array(tmp, "title_len", t["doc_len"])
         store.save_array(tmp, "doc_len", b["doc_len"])
@@ -112,6 +112,12 @@ def _write(
             },
         )
         store.write_store(tmp, articles)
+        build_info = {
+            **build,
+            "unresolved_links": unresolved,
+            "ambiguous_aliases": len(resolver.ambiguous_aliases),
+            "seconds": round(time.perf_counter() - started, 3),
+        }
         created = datetime.now(UTC).isoformat(timespec="seconds")
         stamp = [checksum, params.to_dict(), analyzer.config.to_dict()]
         version = hashlib.sha256(json.dumps(stamp, sort_keys=True).encode()).hexdigest()[:12]
@@ -132,20 +138,17 @@ def _write(
                 "qualified_titles": sum(1 for s in split if s[1]),
                 "unresolved_links": unresolved,
             },
-            "build": {
-                **build,
-                "unresolved_links": unresolved,
-                "ambiguous_aliases": len(resolver.ambiguous_aliases),
-                "seconds": round(time.perf_counter() - started, 3),
-            },
+            "build": build_info,
         }
-        manifest["build"]["bytes_on_disk"] = store.folder_size(tmp)
+        build_info["bytes_on_disk"] = store.folder_size(tmp)
         # Written last: its presence marks a whole index.
         store.write_json(tmp / store.MANIFEST, manifest)
     return load_index(out)
 
 
-def _chunks(articles: Iterable[Article], keep: list[Article]) -> Iterator[tuple[list[str], list[str]]]:
+def _chunks(
+    articles: Iterable[Article], keep: list[Article]
+) -> Iterator[tuple[list[str], list[str]]]:
     """(bodies, titles) in chunks, remembering every article in `keep`."""
     bodies: list[str] = []
     titles: list[str] = []
@@ -160,9 +163,11 @@ def _chunks(articles: Iterable[Article], keep: list[Article]) -> Iterator[tuple[
         yield bodies, titles
 
 
-def _resolve_settings(analyzer: Analyzer | AnalyzerConfig | Mapping[str, Any] | None,
-                      params: bm25.BM25Params | Mapping[str, Any] | None,
-                      options: dict[str, Any]) -> tuple[Analyzer, bm25.BM25Params]:
+def _resolve_settings(
+    analyzer: Analyzer | AnalyzerConfig | Mapping[str, Any] | None,
+    params: bm25.BM25Params | Mapping[str, Any] | None,
+    options: dict[str, Any],
+) -> tuple[Analyzer, bm25.BM25Params]:
     bm25_keys = set(bm25.BM25Params.__dataclass_fields__)
     bm25_opts = {k: options.pop(k) for k in list(options) if k in bm25_keys}
     an_keys = set(AnalyzerConfig.__dataclass_fields__)
@@ -194,7 +199,7 @@ def build_index(
     workers: int | None = None,
     **options: Any,
 ) -> Index:
-    """Build an index folder from a corpus file or records; an old folder is replaced only on success.
+    """Build an index folder from a corpus file or records; an old one is replaced only on success.
 
     Options may name any AnalyzerConfig field (stemmer, stopwords, ...) or BM25Params
     field (k1, b, epsilon, idf, title_weight). `workers` processes count terms (default:
@@ -267,7 +272,9 @@ def update_index(
     for a in new_articles:
         if title_owner.get(a.title, a.id) != a.id:
             owner = title_owner[a.title]
-            raise CorpusError(f"title {a.title!r} already belongs to article {owner!r}", field="title")
+            raise CorpusError(
+                f"title {a.title!r} already belongs to article {owner!r}", field="title"
+            )
     keep = [r for r, a in enumerate(existing) if a.id not in changed]
     counts, vocab = _existing_counts(old, np.asarray(keep, dtype=np.int64))
     old_ids = {a.id for a in existing}
@@ -300,7 +307,11 @@ def update_index(
     # Titles are short: count them again for every row rather than reorder stored ones.
     titles = count_articles([([], [a.title for a in final])], an, 1)
     counter.merge_field(titles, "title")
-    record = [old.manifest["corpus_checksum"], sorted(remove), [a.to_record() for a in new_articles]]
+    record = [
+        old.manifest["corpus_checksum"],
+        sorted(remove),
+        [a.to_record() for a in new_articles],
+    ]
     checksum = hashlib.sha256(json.dumps(record, sort_keys=True, default=str).encode()).hexdigest()
     build = {
         "skipped_lines": report.skipped,
@@ -314,4 +325,3 @@ def update_index(
     order = np.asarray(source_pos, dtype=np.int64)
     del old  # release the memory maps before the folder is swapped
     return _write(Path(index_dir), final, counter, order, an, params, checksum, build, started)
-

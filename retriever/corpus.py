@@ -74,11 +74,18 @@ def detect_format(path: Path) -> str:
     if suffixes and suffixes[-1] == ".gz":
         suffixes = suffixes[:-1]
     ext = suffixes[-1] if suffixes else ""
-    mapping = {".jsonl": "jsonl", ".ndjson": "jsonl", ".json": "jsonl", ".csv": "csv",
-               ".tsv": "tsv", ".parquet": "parquet"}
+    mapping = {
+        ".jsonl": "jsonl",
+        ".ndjson": "jsonl",
+        ".json": "jsonl",
+        ".csv": "csv",
+        ".tsv": "tsv",
+        ".parquet": "parquet",
+    }
     if ext not in mapping:
         raise CorpusError(
-            f"cannot tell the format from the name; use .jsonl, .csv, .tsv or .parquet (got {ext or 'no extension'!r})",
+            "cannot tell the format from the name; use .jsonl, .csv, .tsv or .parquet "
+            f"(got {ext or 'no extension'!r})",
             file=str(path),
         )
     return mapping[ext]
@@ -112,7 +119,9 @@ def validate_record(record: Any, *, file: str = "", line: int = 0) -> Article:
         if name not in record or record[name] is None:
             raise CorpusError("is required", field=name, **where)
         if not isinstance(record[name], str):
-            raise CorpusError(f"must be a string, got {type(record[name]).__name__}", field=name, **where)
+            raise CorpusError(
+                f"must be a string, got {type(record[name]).__name__}", field=name, **where
+            )
     if not record["id"].strip():
         raise CorpusError("must not be empty", field="id", **where)
     if not record["title"].strip():
@@ -122,12 +131,16 @@ def validate_record(record: Any, *, file: str = "", line: int = 0) -> Article:
         try:
             popularity = float(popularity) if popularity.strip() else None
         except ValueError as exc:
-            raise CorpusError(f"must be a number, got {popularity!r}", field="popularity", **where) from exc
+            raise CorpusError(
+                f"must be a number, got {popularity!r}", field="popularity", **where
+            ) from exc
     if popularity is not None:
         if isinstance(popularity, bool) or not isinstance(popularity, int | float):
             raise CorpusError("must be a number", field="popularity", **where)
         if not math.isfinite(popularity) or popularity < 0:
-            raise CorpusError(f"must be a finite number >= 0, got {popularity}", field="popularity", **where)
+            raise CorpusError(
+                f"must be a finite number >= 0, got {popularity}", field="popularity", **where
+            )
         popularity = float(popularity)
     metadata = record.get("metadata")
     if isinstance(metadata, str):  # CSV cell
@@ -152,64 +165,95 @@ def validate_record(record: Any, *, file: str = "", line: int = 0) -> Article:
 
 def _open_text(path: Path) -> io.TextIOBase:
     raw = gzip.open(path, "rb") if path.suffix.lower() == ".gz" else open(path, "rb")  # noqa: SIM115
-    return io.TextIOWrapper(raw, encoding="utf-8", errors="strict", newline="")
+    # surrogateescape keeps reading past bad bytes so the bad row alone can be reported.
+    return io.TextIOWrapper(raw, encoding="utf-8", errors="surrogateescape", newline="")
 
 
-def _raw_jsonl(path: Path) -> Iterator[tuple[int, Any]]:
+# Raw readers yield (line, record) or (line, CorpusError) so that --skip-bad can go on
+# after a line that does not even parse.
+RawItem = tuple[int, Any]
+
+
+def _raw_jsonl(path: Path) -> Iterator[RawItem]:
     opener = gzip.open if path.suffix.lower() == ".gz" else open
     with opener(path, "rb") as fh:
         for n, raw in enumerate(fh, 1):
             try:
                 text = raw.decode("utf-8")
             except UnicodeDecodeError as exc:
-                raise CorpusError(f"not valid UTF-8 ({exc.reason} at byte {exc.start})",
-                                  file=str(path), line=n) from exc
+                msg = f"not valid UTF-8 ({exc.reason} at byte {exc.start})"
+                yield n, CorpusError(msg, file=str(path), line=n)
+                continue
             if not text.strip():
                 continue
             try:
-                yield n, json.loads(text)
+                record = json.loads(text)
             except json.JSONDecodeError as exc:
-                raise CorpusError(f"malformed JSON: {exc.msg} (column {exc.colno})",
-                                  file=str(path), line=n) from exc
+                msg = f"malformed JSON: {exc.msg} (column {exc.colno})"
+                yield n, CorpusError(msg, file=str(path), line=n)
+                continue
+            yield n, record
 
 
-def _raw_delimited(path: Path, delimiter: str) -> Iterator[tuple[int, Any]]:
+def _bad_cell(row: dict[str, str]) -> str | None:
+    for key, value in row.items():
+        try:
+            value.encode("utf-8")
+        except UnicodeEncodeError:
+            return key
+    return None
+
+
+def _raw_delimited(path: Path, delimiter: str) -> Iterator[RawItem]:
     fh = _open_text(path)
     with fh:
-        reader = csv.DictReader(fh, delimiter=delimiter)  # type: ignore[arg-type]
-        try:
-            header = reader.fieldnames
-        except UnicodeDecodeError as exc:
-            raise CorpusError("not valid UTF-8", file=str(path), line=1) from exc
+        reader = csv.DictReader(fh, delimiter=delimiter)
+        header = reader.fieldnames
         if not header:
-            raise CorpusError("empty file: expected a header row with id,title,text", file=str(path), line=1)
+            raise CorpusError(
+                "empty file: expected a header row with id,title,text", file=str(path), line=1
+            )
+        if any(_bad_cell({h: h}) for h in header):
+            raise CorpusError("the header row is not valid UTF-8", file=str(path), line=1)
         while True:
+            start = reader.line_num + 1
             try:
                 row = next(reader)
             except StopIteration:
                 return
-            except UnicodeDecodeError as exc:
-                raise CorpusError("not valid UTF-8", file=str(path), line=reader.line_num + 1) from exc
             except csv.Error as exc:
-                raise CorpusError(f"malformed row: {exc}", file=str(path), line=reader.line_num) from exc
+                yield start, CorpusError(f"malformed row: {exc}", file=str(path), line=start)
+                continue
             if None in row:
-                raise CorpusError("row has more cells than the header", file=str(path), line=reader.line_num)
-            yield reader.line_num, {k: v for k, v in row.items() if v is not None and v != ""}
+                msg = "row has more cells than the header"
+                yield start, CorpusError(msg, file=str(path), line=start)
+                continue
+            # An empty cell is an absent optional field, but an empty text is a text.
+            cells = {k: v for k, v in row.items() if v or k in ("id", "title", "text")}
+            bad = _bad_cell(cells)
+            if bad is not None:
+                msg = "not valid UTF-8"
+                yield start, CorpusError(msg, file=str(path), line=start, field=bad)
+                continue
+            yield start, cells
 
 
 def _raw_parquet(path: Path) -> Iterator[tuple[int, Any]]:
     try:
         import pyarrow.parquet as pq
     except ImportError as exc:
-        raise CorpusError("reading Parquet needs pyarrow: pip install 'hunchwise[parquet]'",
-                          file=str(path)) from exc
-    table = pq.read_table(path)
-    for n, row in enumerate(table.to_pylist(), 1):
-        yield n, row
+        raise CorpusError(
+            "reading Parquet needs pyarrow: pip install 'hunchwise[parquet]'", file=str(path)
+        ) from exc
+    try:
+        table = pq.read_table(path)
+    except (OSError, ValueError) as exc:  # pyarrow's errors derive from these
+        raise CorpusError(f"not a readable Parquet file ({exc})", file=str(path)) from exc
+    yield from enumerate(table.to_pylist(), 1)
 
 
 def iter_raw(path: Path, fmt: str | None = None) -> Iterator[tuple[int, Any]]:
-    """(line number, raw record) pairs of a corpus file; parse errors raise CorpusError."""
+    """(line, raw record) pairs of a corpus file; unparsable lines come as (line, CorpusError)."""
     if not path.exists():
         raise CorpusError("file not found", file=str(path))
     fmt = fmt or detect_format(path)
@@ -259,13 +303,23 @@ def read_articles(
     seen_titles: dict[str, int] = {}
     for line, rec in raw:
         try:
+            if isinstance(rec, CorpusError):
+                raise rec
             art = rec if isinstance(rec, Article) else validate_record(rec, file=file, line=line)
             if art.id in seen_ids:
-                raise CorpusError(f"duplicate id {art.id!r} (first seen on line {seen_ids[art.id]})",
-                                  file=file, line=line, field="id")
+                raise CorpusError(
+                    f"duplicate id {art.id!r} (first seen on line {seen_ids[art.id]})",
+                    file=file,
+                    line=line,
+                    field="id",
+                )
             if art.title in seen_titles:
-                raise CorpusError(f"duplicate title {art.title!r} (first seen on line {seen_titles[art.title]})",
-                                  file=file, line=line, field="title")
+                raise CorpusError(
+                    f"duplicate title {art.title!r} (first seen on line {seen_titles[art.title]})",
+                    file=file,
+                    line=line,
+                    field="title",
+                )
         except CorpusError as exc:
             if not skip_bad:
                 raise

@@ -28,7 +28,9 @@ def default_workers(n_hint: int) -> int:
     return max(1, min(2, cores))
 
 
-def _ids_of(analyzer: Analyzer, table: TermTable, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+def _ids_of(
+    analyzer: Analyzer, table: TermTable, texts: Sequence[str]
+) -> tuple[np.ndarray, np.ndarray]:
     """Term ids of each text (stopwords dropped), concatenated, and the count per text."""
     flat: list[int] = []
     lens = np.empty(len(texts), dtype=np.int64)
@@ -115,7 +117,9 @@ class TermCounter:
         merged = []
         for c in other.chunks[field]:
             width = int(cols.max()) + 1 if cols.size else 0
-            merged.append(sp.csr_matrix((c.data, cols[c.indices], c.indptr), shape=(c.shape[0], width)))
+            merged.append(
+                sp.csr_matrix((c.data, cols[c.indices], c.indptr), shape=(c.shape[0], width))
+            )
         self.chunks[field] = merged
 
     def matrix(self, field: str, order: np.ndarray | None = None) -> sp.csr_matrix:

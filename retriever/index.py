@@ -54,9 +54,8 @@ class _Field:
         # Plain ndarray views of the memory maps: slicing a np.memmap costs far more.
         self.indptr = np.asarray(store.open_array(folder, f"{prefix}_indptr", "int64", n_terms + 1))
         self.docs = np.asarray(store.open_array(folder, f"{prefix}_docs", "int32", n_postings))
-        self.weight = np.asarray(store.open_array(folder, f"{prefix}_weight", "float64", n_postings))
-        self.max_weight = np.asarray(
-            store.open_array(folder, f"{prefix}_max_weight", "float64", n_terms)
+        self.weight = np.asarray(
+            store.open_array(folder, f"{prefix}_weight", "float64", n_postings)
         )
         if int(self.indptr[-1]) != n_postings or (n_terms and int(self.indptr[0]) != 0):
             raise IndexFormatError(
@@ -79,14 +78,24 @@ class Index:
             vocab = json.loads((self.path / store.VOCAB).read_text(encoding="utf-8"))
             keys = json.loads((self.path / store.KEYS).read_text(encoding="utf-8"))
             self.body = _Field(self.path, "body", self.n_terms, int(counts["body_postings"]))
-            self.title_field = _Field(self.path, "title", self.n_terms, int(counts["title_postings"]))
+            self.title_field = _Field(
+                self.path, "title", self.n_terms, int(counts["title_postings"])
+            )
         except (KeyError, TypeError, ValueError, FileNotFoundError) as exc:
             if isinstance(exc, IndexFormatError):
                 raise
-            raise IndexFormatError(f"{self.path}: the index is incomplete or damaged ({exc!r}); rebuild it") from exc
-        if len(vocab) != self.n_terms or any(len(keys[k]) != self.n_docs for k in ("ids", "titles")):
-            raise IndexFormatError(f"{self.path}: vocabulary or keys do not match the manifest; rebuild the index")
-        self.title_weight = self.params.title_weight if title_weight is None else float(title_weight)
+            raise IndexFormatError(
+                f"{self.path}: the index is incomplete or damaged ({exc!r}); rebuild it"
+            ) from exc
+        if len(vocab) != self.n_terms or any(
+            len(keys[k]) != self.n_docs for k in ("ids", "titles")
+        ):
+            raise IndexFormatError(
+                f"{self.path}: vocabulary or keys do not match the manifest; rebuild the index"
+            )
+        self.title_weight = (
+            self.params.title_weight if title_weight is None else float(title_weight)
+        )
         self._vocab: dict[str, int] = {term: i for i, term in enumerate(vocab)}
         self.ids: list[str] = keys["ids"]
         self.titles: list[str] = keys["titles"]
@@ -135,10 +144,17 @@ class Index:
         rec = self._store.record(row)
         pop = float(self.popularity[row])
         return Document(
-            id=rec["id"], title=rec["title"], base=self.bases[row], qualifier=self.qualifiers[row],
-            text=rec["text"], links=tuple(rec["links"]), aliases=tuple(rec["aliases"]),
-            popularity=None if np.isnan(pop) else pop, inlinks=int(self.inlinks[row]),
-            metadata=rec["metadata"], row=row,
+            id=rec["id"],
+            title=rec["title"],
+            base=self.bases[row],
+            qualifier=self.qualifiers[row],
+            text=rec["text"],
+            links=tuple(rec["links"]),
+            aliases=tuple(rec["aliases"]),
+            popularity=None if np.isnan(pop) else pop,
+            inlinks=int(self.inlinks[row]),
+            metadata=rec["metadata"],
+            row=row,
         )
 
     # -- scoring --------------------------------------------------------
@@ -150,7 +166,9 @@ class Index:
             tid = get(tok)
             if tid is not None:
                 counts[tid] = counts.get(tid, 0) + 1
-        return np.fromiter(counts.keys(), np.int64, len(counts)), np.fromiter(counts.values(), np.float64, len(counts))
+        return np.fromiter(counts.keys(), np.int64, len(counts)), np.fromiter(
+            counts.values(), np.float64, len(counts)
+        )
 
     def _buffer(self) -> np.ndarray:
         buf = getattr(self._local, "buf", None)
@@ -162,7 +180,7 @@ class Index:
         tids, qtf = self.term_ids(tokens)
         if tids.size == 0:
             return None
-        fields = [(self.body, 1.0)]
+        fields: list[tuple[scoring.Postings, float]] = [(self.body, 1.0)]
         if self.title_weight > 0:
             fields.append((self.title_field, self.title_weight))
         return scoring.plan(fields, tids, qtf)
@@ -172,7 +190,7 @@ class Index:
         scores = np.zeros(self.n_docs, dtype=np.float64)
         plan = self._plan(tokens)
         if plan is not None:
-            scoring.scatter(scores, plan, 0, plan.size)
+            scoring.accumulate(scores, plan)
         return scores
 
     def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
@@ -183,7 +201,7 @@ class Index:
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         plan = self._plan(tokens)
-        if plan is None or plan.size == 0:
+        if plan is None or plan.postings == 0:
             return []
         rows, scores = scoring.top_k(self._buffer(), plan, k)
         ids, titles = self.ids, self.titles

@@ -12,7 +12,9 @@ from .corpus import normalize_title
 class NameResolver:
     """Maps an id, exact title, normalized title or alias to a row, in that order of trust."""
 
-    def __init__(self, ids: Sequence[str], titles: Sequence[str], aliases: Sequence[Sequence[str]]) -> None:
+    def __init__(
+        self, ids: Sequence[str], titles: Sequence[str], aliases: Sequence[Sequence[str]]
+    ) -> None:
         self._by_id = {doc_id: row for row, doc_id in enumerate(ids)}
         self._by_title = {title: row for row, title in enumerate(titles)}
         self._by_norm: dict[str, int] = {}
@@ -23,7 +25,9 @@ class NameResolver:
         for row, names in enumerate(aliases):
             for name in names:
                 alias_rows.setdefault(normalize_title(name), set()).add(row)
-        self._by_alias = {name: next(iter(rows)) for name, rows in alias_rows.items() if len(rows) == 1}
+        self._by_alias = {
+            name: next(iter(rows)) for name, rows in alias_rows.items() if len(rows) == 1
+        }
         self.ambiguous_aliases = sorted(name for name, rows in alias_rows.items() if len(rows) > 1)
 
     def row(self, name: str) -> int | None:
@@ -52,7 +56,9 @@ class NameResolver:
         return None
 
 
-def count_inlinks(resolver: NameResolver, links: Sequence[Sequence[str]], n_docs: int) -> tuple[np.ndarray, int]:
+def count_inlinks(
+    resolver: NameResolver, links: Sequence[Sequence[str]], n_docs: int
+) -> tuple[np.ndarray, int]:
     """In-link count of each article: distinct other articles linking to it.
 
     Returns (counts int32 of shape (n_docs,), number of link strings that matched nothing).

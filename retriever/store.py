@@ -28,7 +28,7 @@ VOCAB = "vocab.json"
 
 
 def write_json(path: Path, data: Any) -> None:
-    """Write JSON to `path` through a temporary file and a rename, so readers never see half a file."""
+    """Write JSON to `path` via a temporary file and a rename: readers never see half a file."""
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
     # dumps, not dump: only the one-shot encoder runs in C.
     text = json.dumps(data, ensure_ascii=False, separators=(",", ":"))
@@ -48,15 +48,23 @@ def open_array(folder: Path, name: str, dtype: str, length: int | None = None) -
     """Memory-map `name.npy` read-only and check its dtype and length."""
     path = folder / f"{name}.npy"
     if not path.exists():
-        raise IndexFormatError(f"{folder}: the array file {path.name} is missing; rebuild the index")
+        raise IndexFormatError(
+            f"{folder}: the array file {path.name} is missing; rebuild the index"
+        )
     try:
         arr = np.load(path, mmap_mode="r", allow_pickle=False)
     except (ValueError, OSError, EOFError) as exc:
-        raise IndexFormatError(f"{folder}: the array file {path.name} is corrupt ({exc}); rebuild the index") from exc
-    if arr.dtype != np.dtype(dtype) or arr.ndim != 1 or (length is not None and arr.shape[0] != length):
         raise IndexFormatError(
-            f"{folder}: {path.name} holds {arr.dtype} of shape {arr.shape}, expected {dtype} of length "
-            f"{length}; the index is damaged, rebuild it"
+            f"{folder}: the array file {path.name} is corrupt ({exc}); rebuild the index"
+        ) from exc
+    if (
+        arr.dtype != np.dtype(dtype)
+        or arr.ndim != 1
+        or (length is not None and arr.shape[0] != length)
+    ):
+        raise IndexFormatError(
+            f"{folder}: {path.name} holds {arr.dtype} of shape {arr.shape}, expected {dtype} of "
+            f"length {length}; the index is damaged, rebuild it"
         )
     return np.asarray(arr)  # plain ndarray view of the map: slicing a memmap subclass is slow
 
@@ -66,7 +74,10 @@ def write_store(folder: Path, articles: Iterable[Article]) -> int:
     offsets = [0]
     with open(folder / STORE, "wb") as fh:
         for art in articles:
-            line = json.dumps(art.to_record(), ensure_ascii=False, separators=(",", ":")).encode() + b"\n"
+            line = (
+                json.dumps(art.to_record(), ensure_ascii=False, separators=(",", ":")).encode()
+                + b"\n"
+            )
             fh.write(line)
             offsets.append(offsets[-1] + len(line))
         fh.flush()
@@ -82,10 +93,14 @@ class StoreReader:
         self._offsets = open_array(folder, STORE_OFFSETS, "int64", n_docs + 1)
         path = folder / STORE
         if not path.exists():
-            raise IndexFormatError(f"{folder}: the article store {STORE} is missing; rebuild the index")
+            raise IndexFormatError(
+                f"{folder}: the article store {STORE} is missing; rebuild the index"
+            )
         size = path.stat().st_size
         if size != int(self._offsets[-1]):
-            raise IndexFormatError(f"{folder}: {STORE} is {size} bytes, expected {int(self._offsets[-1])}; rebuild")
+            raise IndexFormatError(
+                f"{folder}: {STORE} is {size} bytes, expected {int(self._offsets[-1])}; rebuild"
+            )
         with open(path, "rb") as fh:
             self._map = mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) if size else None
 
@@ -102,22 +117,34 @@ class StoreReader:
         for row in range(len(self._offsets) - 1):
             rec = self.record(row)
             yield Article(
-                id=rec["id"], title=rec["title"], text=rec["text"], links=tuple(rec["links"]),
-                aliases=tuple(rec["aliases"]), popularity=rec["popularity"], metadata=rec["metadata"],
+                id=rec["id"],
+                title=rec["title"],
+                text=rec["text"],
+                links=tuple(rec["links"]),
+                aliases=tuple(rec["aliases"]),
+                popularity=rec["popularity"],
+                metadata=rec["metadata"],
             )
 
 
 def read_manifest(folder: Path) -> dict[str, Any]:
     """Read and check the manifest of an index folder."""
     if not folder.is_dir():
-        raise IndexFormatError(f"{folder}: no such index folder; build one with 'hunchwise index build'")
+        raise IndexFormatError(
+            f"{folder}: no such index folder; build one with 'hunchwise index build'"
+        )
     path = folder / MANIFEST
     if not path.exists():
-        raise IndexFormatError(f"{folder}: not a hunchwise index (no {MANIFEST}); build one with 'hunchwise index build'")
+        raise IndexFormatError(
+            f"{folder}: not a hunchwise index (no {MANIFEST}); "
+            "build one with 'hunchwise index build'"
+        )
     try:
         manifest: dict[str, Any] = json.loads(path.read_text(encoding="utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise IndexFormatError(f"{path}: the manifest is not valid JSON; rebuild the index") from exc
+        raise IndexFormatError(
+            f"{path}: the manifest is not valid JSON; rebuild the index"
+        ) from exc
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
         raise IndexFormatError(f"{folder}: {MANIFEST} does not describe a hunchwise index")
     version = manifest.get("format_version")
@@ -165,7 +192,9 @@ def atomic_folder(target: Path) -> Iterator[Path]:
     if target.exists():
         if not (target / MANIFEST).exists() and any(target.iterdir()):
             shutil.rmtree(tmp, ignore_errors=True)
-            raise IndexFormatError(f"{target} exists and is not a hunchwise index; refusing to replace it")
+            raise IndexFormatError(
+                f"{target} exists and is not a hunchwise index; refusing to replace it"
+            )
         if _exchange(tmp, target):
             shutil.rmtree(tmp, ignore_errors=True)  # tmp now holds the old index
             return

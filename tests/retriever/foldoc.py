@@ -72,13 +72,15 @@ def read_foldoc() -> list[dict[str, Any]]:
             continue
         seen.add(names[0])
         text = " ".join(body.split())
-        records.append({
-            "id": f"foldoc-{off}",
-            "title": names[0],
-            "text": CROSS_REF.sub(lambda m: m.group(1), text),
-            "links": [link_name(r) for r in CROSS_REF.findall(body)],
-            "aliases": names[1:],
-        })
+        records.append(
+            {
+                "id": f"foldoc-{off}",
+                "title": names[0],
+                "text": CROSS_REF.sub(lambda m: m.group(1), text),
+                "links": [link_name(r) for r in CROSS_REF.findall(body)],
+                "aliases": names[1:],
+            }
+        )
     return records
 
 
@@ -94,7 +96,9 @@ def foldoc_words() -> list[str]:
     return [vocab[min(int(rng.paretovariate(1.1)) - 1, len(vocab) - 1)] for _ in range(400_000)]
 
 
-def synthetic_articles(n: int, seed: int = 0, words: list[str] | None = None) -> Iterator[dict[str, Any]]:
+def synthetic_articles(
+    n: int, seed: int = 0, words: list[str] | None = None
+) -> Iterator[dict[str, Any]]:
     """`n` articles whose text is FOLDOC word runs, lightly perturbed so the vocabulary keeps growing."""
     words = words if words is not None else foldoc_words()
     rng = random.Random(seed)
@@ -113,7 +117,9 @@ def synthetic_articles(n: int, seed: int = 0, words: list[str] | None = None) ->
             "id": f"a{i}",
             "title": f"{' '.join(title_words).title()} {i}",
             "text": " ".join(run),
-            "links": [f"{' '.join(words[(start + 7) % n_words : (start + 9) % n_words])} {rng.randrange(n)}"],
+            "links": [
+                f"{' '.join(words[(start + 7) % n_words : (start + 9) % n_words])} {rng.randrange(n)}"
+            ],
             "popularity": round(rng.random() * 100, 2),
         }
 

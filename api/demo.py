@@ -1,0 +1,139 @@
+"""The main job end to end on the demo corpus: index, train, evaluate, serve, ask once."""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import subprocess
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import httpx
+
+from corpus_demo import DEFAULT_DATA_DIR, generate_corpus
+from reranker import load_model, train
+from reranker.evaluate import evaluate
+from retriever import build_index
+
+
+@dataclass
+class DemoRun:
+    """Where the demo put things and what it measured."""
+
+    out: Path
+    index: Path
+    model: Path
+    report: Path
+    summary: str
+    metrics: dict[str, Any]
+    sample_request: dict[str, Any] = field(default_factory=dict)
+    sample_response: dict[str, Any] = field(default_factory=dict)
+
+
+def _say(message: str) -> None:
+    print(message, flush=True)
+
+
+def sample_clue(data_dir: Path) -> str:
+    """The first few sentences of the first test clue: what an application sees mid-clue."""
+    with open(data_dir / "questions_test.jsonl", encoding="utf-8") as fh:
+        clue = str(json.loads(fh.readline())["clue"])
+    words = clue.split()
+    return " ".join(words[: max(8, int(len(words) * 0.6))])
+
+
+def prepare(out: Path, *, articles: int | None = None, seed: int = 7) -> Path:
+    """The demo data folder: the committed one, or a freshly generated corpus of `articles`."""
+    if articles is None:
+        return Path(DEFAULT_DATA_DIR)
+    data = out / "data"
+    _say(f"generating an invented corpus of {articles} articles into {data} ...")
+    generate_corpus(data, n_articles=articles, n_questions=max(1200, articles // 20), seed=seed)
+    return data
+
+
+def run_demo(out: str | Path, *, articles: int | None = None, ablation: bool = True) -> DemoRun:
+    """Build the demo index, train the reranker, evaluate it on held-out clues and write a report."""
+    out = Path(out).resolve()
+    out.mkdir(parents=True, exist_ok=True)
+    data = prepare(out, articles=articles)
+    _say(f"[1/3] indexing {data / 'articles.jsonl'} -> {out / 'index'}")
+    index = build_index(data / "articles.jsonl", out / "index", progress=True)
+    c = index.manifest["counts"]
+    _say(f"      {c['articles']} articles, {c['terms']} terms, "
+         f"{index.manifest['build']['unresolved_links']} unresolved links")
+    _say(f"[2/3] training on {data / 'questions_train.jsonl'} -> {out / 'model.json'}")
+    res = train(index, [data / "questions_train.jsonl"], out / "model.json", progress=True)
+    a = res.artifact
+    _say(f"      {a['training']['clues']} clues, {a['training']['rows']} candidate rows, C={a['C']}, "
+         f"calibration={a['calibration']['method']}, threshold={a['decision']['threshold']:.2f}")
+    _say(f"[3/3] evaluating on held-out {data / 'questions_test.jsonl'} -> {out / 'report'}")
+    model = load_model(out / "model.json", index=index)
+    ev = evaluate(index, model, [data / "questions_test.jsonl"], out / "report", run_ablation=ablation,
+                  progress=True)
+    return DemoRun(out=out, index=out / "index", model=out / "model.json", report=ev.paths["report"],
+                   summary=ev.summary, metrics=ev.metrics)
+
+
+def free_port(host: str = "127.0.0.1") -> int:
+    """A TCP port nobody listens on right now."""
+    with socket.socket() as s:
+        s.bind((host, 0))
+        return int(s.getsockname()[1])
+
+
+def serve_and_ask(run: DemoRun, data: Path, *, host: str = "127.0.0.1", port: int = 0,
+                  wait: bool = True) -> DemoRun:
+    """Start `hunchwise serve` on loopback, send one sample clue, print both, then keep serving."""
+    port = port or free_port(host)
+    cmd = [sys.executable, "-m", "api.cli", "serve", "--index", str(run.index), "--model", str(run.model),
+           "--host", host, "--port", str(port), "--log-dir", str(run.out / "logs")]
+    proc = subprocess.Popen(cmd, env={**os.environ, "PYTHONUNBUFFERED": "1"})
+    base = f"http://{host}:{port}"
+    try:
+        deadline = time.monotonic() + 60
+        with httpx.Client(base_url=base, timeout=10) as client:
+            while True:
+                try:
+                    if client.get("/readyz").status_code == 200:
+                        break
+                except httpx.TransportError:
+                    pass
+                if proc.poll() is not None or time.monotonic() > deadline:
+                    raise RuntimeError(f"the server did not start (command: {' '.join(cmd)})")
+                time.sleep(0.2)
+            body = {"clue": sample_clue(data), "k": 5}
+            reply = client.post("/v1/rank", json=body)
+            reply.raise_for_status()
+        run.sample_request, run.sample_response = body, reply.json()
+        _say(f"\nservice running at {base} (API docs: {base}/docs)")
+        _say(f"sample request:  POST {base}/v1/rank\n{json.dumps(body, indent=2)}")
+        _say(f"sample response:\n{json.dumps(_trim(run.sample_response), indent=2)}")
+        _say("\ntry it yourself:\n"
+             f"  curl -s {base}/v1/rank -H 'content-type: application/json' "
+             f"-d '{json.dumps({'clue': body['clue'][:60], 'k': 3})}'")
+        if wait:
+            _say("\nPress Ctrl-C to stop the service.")
+            proc.wait()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        if proc.poll() is None:
+            proc.terminate()
+            try:
+                proc.wait(timeout=15)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+    return run
+
+
+def _trim(response: dict[str, Any]) -> dict[str, Any]:
+    """The response with at most three candidates, to keep the terminal readable."""
+    out = dict(response)
+    if isinstance(out.get("candidates"), list):
+        out["candidates"] = out["candidates"][:3]
+    return out

@@ -1,0 +1,1 @@
+"""Tests for hunchwise, one folder per package."""

@@ -1,0 +1,1 @@
+"""Tests of the HTTP service: in-process, against real uvicorn, fuzzed and under load."""

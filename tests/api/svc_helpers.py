@@ -1,0 +1,126 @@
+"""Helpers of the service tests: run `hunchwise serve` as a real process on loopback, read logs."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import httpx
+
+ADMIN_TOKEN = "test-admin-token-0123456789"
+HOST = "127.0.0.1"
+
+
+def admin_headers(token: str = ADMIN_TOKEN) -> dict[str, str]:
+    """Authorization header for the admin endpoints."""
+    return {"Authorization": f"Bearer {token}"}
+
+
+def read_jsonl(path: Path) -> list[dict[str, Any]]:
+    """Every line of a JSON-lines file, parsed (fails on any broken line)."""
+    return [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines()]
+
+
+def free_port() -> int:
+    """A TCP port on loopback that nothing listens on right now."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind((HOST, 0))
+        return int(s.getsockname()[1])
+
+
+def cli(args: Sequence[str], *, timeout: float = 300) -> subprocess.CompletedProcess[str]:
+    """Run `hunchwise ARGS` (as python -m api.cli) and fail the test on a non-zero exit."""
+    proc = subprocess.run(
+        [sys.executable, "-m", "api.cli", *args], capture_output=True, text=True, timeout=timeout
+    )
+    if proc.returncode != 0:
+        raise AssertionError(f"hunchwise {' '.join(args)} exited {proc.returncode}:\n{proc.stderr}")
+    return proc
+
+
+@dataclass
+class Server:
+    """A running `hunchwise serve` process."""
+
+    url: str
+    proc: subprocess.Popen[bytes]
+    output: Path
+
+    def log_text(self) -> str:
+        """What the server printed so far."""
+        return self.output.read_text(encoding="utf-8", errors="replace")
+
+
+def _clean_env(extra: dict[str, str]) -> dict[str, str]:
+    env = {k: v for k, v in os.environ.items()
+           if not k.startswith("HUNCHWISE_") and k != "PROMETHEUS_MULTIPROC_DIR"}
+    env.update(extra)
+    return env
+
+
+def wait_ready(server: Server, workers: int, timeout: float) -> None:
+    """Wait until /readyz answers 200 and `workers` distinct worker pids have answered."""
+    deadline = time.monotonic() + timeout
+    pids: set[int] = set()
+    while time.monotonic() < deadline:
+        if server.proc.poll() is not None:
+            raise AssertionError(f"server exited with {server.proc.returncode}:\n{server.log_text()}")
+        try:
+            # A new connection each time, so the kernel can hand it to any worker.
+            with httpx.Client(base_url=server.url, timeout=5) as c:
+                if c.get("/readyz").status_code == 200:
+                    pids.add(int(c.get("/v1/info").json()["worker_pid"]))
+        except httpx.TransportError:
+            pass
+        if len(pids) >= workers:
+            return
+        time.sleep(0.05)
+    raise AssertionError(f"server not ready after {timeout} s (pids seen {pids}):\n{server.log_text()}")
+
+
+@contextlib.contextmanager
+def serve(
+    args: Sequence[str],
+    workdir: Path,
+    *,
+    workers: int = 1,
+    env: dict[str, str] | None = None,
+    ready_timeout: float = 90,
+) -> Iterator[Server]:
+    """Start `hunchwise serve ARGS` on a free loopback port; stop it with SIGINT afterwards."""
+    port = free_port()
+    output = workdir / f"server-{port}.out"
+    cmd = [sys.executable, "-m", "api.cli", "serve", *args, "--host", HOST, "--port", str(port),
+           "--workers", str(workers)]
+    with open(output, "wb") as out:
+        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT,
+                                env=_clean_env(env or {}), start_new_session=True)
+    server = Server(f"http://{HOST}:{port}", proc, output)
+    try:
+        wait_ready(server, workers, ready_timeout)
+        yield server
+    finally:
+        stop(server)
+
+
+def stop(server: Server, timeout: float = 30) -> int:
+    """Clean shutdown (SIGINT, as Ctrl-C); kill the process group only if it hangs."""
+    if server.proc.poll() is None:
+        server.proc.send_signal(signal.SIGINT)
+        try:
+            server.proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            os.killpg(server.proc.pid, signal.SIGKILL)
+            server.proc.wait(timeout=10)
+            raise AssertionError(f"server did not stop on SIGINT:\n{server.log_text()}") from None
+    return int(server.proc.returncode)

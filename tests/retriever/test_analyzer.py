@@ -1,0 +1,72 @@
+"""The analyzer: normalization, case folding, token pattern, stopwords, stemming, stored config."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import snowballstemmer
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS, CountVectorizer
+
+from retriever import Analyzer, AnalyzerConfig, build_index, load_index
+
+
+def test_unicode_normalization_and_case_folding() -> None:
+    a = Analyzer(stopwords="none", stemmer=None)
+    # NFKC turns the "fi" ligature into two letters; casefold turns sharp s into "ss"
+    # (Unicode Standard, CaseFolding.txt); accents are stripped as scikit-learn does.
+    assert a.tokens("ﬁle STRASSE Straße Café ＡＢＣ") == ["file", "strasse", "strasse", "cafe", "abc"]
+    keep = Analyzer(stopwords="none", stemmer=None, strip_accents=False)
+    assert keep.tokens("Café") == ["café"]
+
+
+def test_token_pattern_matches_scikit_learn() -> None:
+    # Reference: scikit-learn's CountVectorizer default token_pattern r"(?u)\b\w\w+\b".
+    text = "a bb, c-dd e_f 42 x9 don't"
+    sk = CountVectorizer(lowercase=True).build_tokenizer()
+    assert Analyzer(stopwords="none", stemmer=None, strip_accents=False).words(text) == sk(text)
+
+
+def test_stopwords_default_are_scikit_learns() -> None:
+    a = Analyzer(stemmer=None)
+    text = "the river and the sea were there"
+    # Reference: sklearn.feature_extraction.text.ENGLISH_STOP_WORDS.
+    assert a.tokens(text) == [w for w in text.split() if w not in ENGLISH_STOP_WORDS]
+    assert Analyzer(stemmer=None, stopwords="none").tokens(text) == text.split()
+    assert Analyzer(stemmer=None, stopwords=("river",)).tokens("the river") == ["the"]
+    with pytest.raises(ValueError):
+        Analyzer(stopwords="klingon")
+
+
+def test_snowball_stemming() -> None:
+    # Reference: the Snowball English stemmer as packaged by snowballstemmer.
+    ref = snowballstemmer.stemmer("english")
+    words = ["running", "runners", "generously", "connection", "ponies"]
+    assert Analyzer(stopwords="none").tokens(" ".join(words)) == ref.stemWords(words)
+    assert Analyzer(stopwords="none", stemmer=None).tokens("running") == ["running"]
+    with pytest.raises(ValueError):
+        Analyzer(stemmer="elvish")
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.text(alphabet=st.sampled_from("abcé THE and runs ran Ünï-ß.,"), max_size=80))
+def test_term_table_equals_tokens(text: str) -> None:
+    # The build's cached word table must give exactly the tokens `tokens` gives.
+    a = Analyzer()
+    table = a.term_table()
+    ids = a.term_ids(text, table)
+    assert [table.terms[i] for i in ids if i >= 0] == a.tokens(text)
+
+
+def test_config_round_trip_and_manifest(tmp_path: Path) -> None:
+    cfg = AnalyzerConfig(stopwords=("foo", "bar"), stemmer=None, normalization="NFC")
+    assert AnalyzerConfig.from_dict(cfg.to_dict()) == cfg
+    with pytest.raises(ValueError, match="unknown analyzer settings"):
+        AnalyzerConfig.from_dict({"colour": "blue"})
+    with pytest.raises(ValueError):
+        Analyzer(normalization="NFX")
+    idx = build_index([{"id": "1", "title": "T", "text": "foo baz"}], tmp_path / "i", analyzer=cfg)
+    assert idx.manifest["analyzer"]["stopwords"] == ["foo", "bar"]
+    assert load_index(tmp_path / "i").analyzer.tokens("foo baz") == ["baz"]
