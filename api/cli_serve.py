@@ -23,7 +23,7 @@ ENV_PREFIX = "HUNCHWISE_"
 METRICS_ENV = "PROMETHEUS_MULTIPROC_DIR"
 
 
-def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def register(sub: argparse._SubParsersAction) -> None:
     """Add the serve sub-command."""
     p = sub.add_parser("serve", help="serve the JSON API (rank, feedback, entries, admin)")
     p.add_argument("--index", type=Path, required=True, help="index folder to serve")

@@ -32,16 +32,14 @@ def library_error(request: Request, exc: Exception) -> SafeJSONResponse:
     if isinstance(exc, UnknownDocumentError):
         return SafeJSONResponse({"detail": str(exc)}, status_code=404)
     if isinstance(exc, CorpusError):
+        # Records of a request body are numbered from 1 by the reader; the body list from 0.
+        loc: list[str | int] = ["body"]
         if exc.line:
-            # Records of a request body are numbered from 1 by the reader; the body list from 0.
-            loc: list[str | int] = ["body", exc.line - 1]
-            if exc.field:
-                loc.append(exc.field)
-            return SafeJSONResponse(
-                {"detail": [{"type": "value_error", "loc": loc, "msg": exc.reason}]},
-                status_code=422,
-            )
-        return SafeJSONResponse({"detail": str(exc)}, status_code=422)
+            loc.append(exc.line - 1)
+        if exc.field:
+            loc.append(exc.field)
+        error = {"type": "value_error", "loc": loc, "msg": exc.reason}
+        return SafeJSONResponse({"detail": [error]}, status_code=422)
     if isinstance(exc, ModelFormatError | ModelMismatchError):
         return SafeJSONResponse({"detail": str(exc)}, status_code=409)
     if isinstance(exc, IndexFormatError):

@@ -15,7 +15,7 @@ from typing import Annotated, Any, Literal, cast
 from fastapi import APIRouter, Body, Depends, HTTPException, Request, Response
 
 from reranker import Payoff, Ranking, RerankerError, rank_clue, rank_clues
-from retriever import IndexFormatError, RetrieverError, UnknownDocumentError
+from retriever import IndexFormatError, RetrieverError
 
 from . import schemas as s
 from .deps import (
@@ -224,7 +224,9 @@ def feedback(body: s.FeedbackRequest, runtime: RuntimeDep) -> s.FeedbackResponse
         # An id is expected; a title or alias that names exactly one article is taken too.
         answer = runtime.serving.current.index.resolve(answer)
         if answer is None:
-            raise field_error(("body", "answer"), f"no article with id {body.answer!r} in the index")
+            raise field_error(
+                ("body", "answer"), f"no article with id {body.answer!r} in the index"
+            )
     recorded = runtime.served_log is not None
     if runtime.served_log is not None:
         runtime.served_log.append(
@@ -380,6 +382,7 @@ def put_entries(
             f"List should have at most {settings.max_entries_per_call} items (got {len(articles)})",
             "too_long",
         )
+    _check_titles(runtime, articles)
     try:
         change = runtime.serving.put_entries([a.model_dump() for a in articles])
     except IndexFormatError as exc:
@@ -387,9 +390,25 @@ def put_entries(
     return _change(change, runtime)
 
 
+def _check_titles(runtime: Runtime, articles: list[s.ArticleIn]) -> None:
+    """A title may not move to another id (the reader would name no list position for it)."""
+    index = runtime.serving.current.index
+    wanted = {a.title.strip(): i for i, a in enumerate(articles)}
+    new_ids = {a.id for a in articles}
+    for doc_id, title in zip(index.ids, index.titles, strict=True):
+        i = wanted.get(title)
+        if i is not None and doc_id not in new_ids:
+            raise field_error(
+                ("body", i, "title"), f"title {title!r} already belongs to article {doc_id!r}"
+            )
+
+
 @admin.delete("/entries/{doc_id:path}", response_model=s.ChangeOut, responses={**_404, **_409})
 def delete_entry(doc_id: str, runtime: RuntimeDep) -> s.ChangeOut:
     """Remove one article and serve the updated index."""
+    current = runtime.serving.current.index
+    if current.n_docs == 1 and doc_id in current.ids:
+        raise HTTPException(409, "cannot remove the last article: an index needs at least one")
     try:
         change = runtime.serving.remove_entry(doc_id)
     except IndexFormatError as exc:

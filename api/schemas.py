@@ -51,7 +51,8 @@ FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    # Strict: JSON types are not coerced (false is not 0, "5" is not 5), as the schema says.
+    model_config = ConfigDict(extra="forbid", strict=True)
 
 
 class PayoffIn(_Strict):

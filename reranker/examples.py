@@ -41,6 +41,21 @@ class PrefixPlan:
             cuts = [max(1, math.ceil(f * n_words - 1e-9)) for f in self.fractions]
         return sorted(set(cuts) | {n_words})
 
+    def label(self, kept: int, n_words: int) -> float:
+        """The share of the clue a cut stands for, for grouping in reports.
+
+        Fraction plans give the plan's own fraction (the smallest one that keeps `kept`
+        words), so every clue's "40%" prefix groups together whatever its length; the
+        every-N-words plan rounds the true share up to a tenth. The whole clue is 1.0.
+        """
+        if kept >= n_words:
+            return 1.0
+        if not self.every_words:
+            for f in sorted(self.fractions):
+                if max(1, math.ceil(f * n_words - 1e-9)) == kept:
+                    return float(f)
+        return math.ceil(kept / n_words * 10 - 1e-9) / 10
+
 
 @dataclass(frozen=True)
 class MetadataColumns:
@@ -107,7 +122,7 @@ class TrainingTable:
     y: np.ndarray  # int8, shape (n,): 1 for the gold answer
     group: np.ndarray  # int64, shape (n,): one id per clue prefix
     clue_id: np.ndarray  # int64, shape (n,): one id per clue (cross-validation groups)
-    fraction: np.ndarray  # float64, shape (n,): share of the clue's words revealed
+    fraction: np.ndarray  # float64, shape (n,): share of the clue revealed (PrefixPlan.label)
     score: np.ndarray  # float64, shape (n,): BM25 score
     rank: np.ndarray  # int64, shape (n,)
     row: np.ndarray  # int64, shape (n,): index row of the candidate
@@ -176,7 +191,7 @@ def build_table(
             continue
         for m in cuts:
             texts.append(" ".join(words[:m]))
-            owners.append((n_clues, m / len(words), gold, c.metadata))
+            owners.append((n_clues, plan.label(m, len(words)), gold, c.metadata))
         n_clues += 1
     hits_all = []
     step = 512

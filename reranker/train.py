@@ -16,6 +16,7 @@ from .decision import Payoff, simulate_commits, tune_threshold
 from .examples import MetadataColumns, PrefixPlan, TrainingTable, build_table
 from .features import FEATURE_SET_VERSION, FeatureRegistry
 from .logs import LogReport, read_logs
+from .metrics import candidate_metrics, clue_metrics
 from .model import Reranker, save_model
 
 
@@ -119,6 +120,7 @@ def train(
             "skipped_lines": report.skipped,
             "served_without_feedback": report.served_without_feedback,
         },
+        metrics=_oof_metrics(table, model.oof_proba_),
         decision={
             "threshold": tuned["threshold"],
             "break_even": payoff.break_even,
@@ -133,3 +135,11 @@ def train(
     model.metadata_ = meta
     model.threshold_ = float(tuned["threshold"])
     return TrainResult(model, artifact, table, report, notes)
+
+
+def _oof_metrics(table: TrainingTable, oof: np.ndarray) -> dict[str, Any]:
+    """Cross-validated (out-of-fold) figures of the training data, stored in the artifact."""
+    full = table.fraction == 1.0
+    clue = clue_metrics(table.group[full], table.y[full], oof[full], table.score[full])
+    clue.pop("top_candidate_reliability", None)
+    return {"out_of_fold": True, "candidate": candidate_metrics(table.y, oof), "clue": clue}

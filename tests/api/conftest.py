@@ -5,25 +5,18 @@ from __future__ import annotations
 import contextlib
 import json
 import shutil
-import warnings
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
 import pytest
-from starlette.exceptions import StarletteDeprecationWarning
-
-with warnings.catch_warnings():
-    # Starlette warns at import when only httpx (not httpx2) is installed; harmless here.
-    warnings.simplefilter("ignore", StarletteDeprecationWarning)
-    from fastapi.testclient import TestClient
 
 from api.app import create_app
-from tests.api.svc_helpers import ADMIN_TOKEN
 from api.settings import ServiceSettings
 from corpus_demo.pipeline import generate_corpus
 from reranker import train
 from retriever import build_index, load_index
+from tests.api.svc_helpers import ADMIN_TOKEN, TestClient
 
 N_ARTICLES = 400
 N_QUESTIONS = 300
@@ -50,7 +43,9 @@ def index_dir(demo: dict[str, Path], tmp_path_factory: pytest.TempPathFactory) -
 
 
 @pytest.fixture(scope="session")
-def model_path(index_dir: Path, demo: dict[str, Path], tmp_path_factory: pytest.TempPathFactory) -> Path:
+def model_path(
+    index_dir: Path, demo: dict[str, Path], tmp_path_factory: pytest.TempPathFactory
+) -> Path:
     """A reranker trained on the demo's training questions."""
     out = tmp_path_factory.mktemp("model") / "model.json"
     train(load_index(index_dir), [demo["train"]], out)
@@ -116,7 +111,9 @@ def make_client(
 
 
 @pytest.fixture
-def client(make_client: Callable[..., contextlib.AbstractContextManager[TestClient]]) -> Iterator[TestClient]:
+def client(
+    make_client: Callable[..., contextlib.AbstractContextManager[TestClient]],
+) -> Iterator[TestClient]:
     """A client of an app serving the session index and model, with a served log."""
     with make_client() as c:
         yield c

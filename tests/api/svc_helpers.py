@@ -10,12 +10,21 @@ import socket
 import subprocess
 import sys
 import time
+import warnings
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import httpx
+from starlette.exceptions import StarletteDeprecationWarning
+
+with warnings.catch_warnings():
+    # Starlette warns at import when only httpx (not httpx2) is installed; harmless here.
+    warnings.simplefilter("ignore", StarletteDeprecationWarning)
+    from fastapi.testclient import TestClient
+
+__all__ = ["TestClient"]
 
 ADMIN_TOKEN = "test-admin-token-0123456789"
 HOST = "127.0.0.1"
@@ -62,8 +71,11 @@ class Server:
 
 
 def _clean_env(extra: dict[str, str]) -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items()
-           if not k.startswith("HUNCHWISE_") and k != "PROMETHEUS_MULTIPROC_DIR"}
+    env = {
+        k: v
+        for k, v in os.environ.items()
+        if not k.startswith("HUNCHWISE_") and k != "PROMETHEUS_MULTIPROC_DIR"
+    }
     env.update(extra)
     return env
 
@@ -74,7 +86,9 @@ def wait_ready(server: Server, workers: int, timeout: float) -> None:
     pids: set[int] = set()
     while time.monotonic() < deadline:
         if server.proc.poll() is not None:
-            raise AssertionError(f"server exited with {server.proc.returncode}:\n{server.log_text()}")
+            raise AssertionError(
+                f"server exited with {server.proc.returncode}:\n{server.log_text()}"
+            )
         try:
             # A new connection each time, so the kernel can hand it to any worker.
             with httpx.Client(base_url=server.url, timeout=5) as c:
@@ -85,7 +99,9 @@ def wait_ready(server: Server, workers: int, timeout: float) -> None:
         if len(pids) >= workers:
             return
         time.sleep(0.05)
-    raise AssertionError(f"server not ready after {timeout} s (pids seen {pids}):\n{server.log_text()}")
+    raise AssertionError(
+        f"server not ready after {timeout} s (pids seen {pids}):\n{server.log_text()}"
+    )
 
 
 @contextlib.contextmanager
@@ -100,11 +116,27 @@ def serve(
     """Start `hunchwise serve ARGS` on a free loopback port; stop it with SIGINT afterwards."""
     port = free_port()
     output = workdir / f"server-{port}.out"
-    cmd = [sys.executable, "-m", "api.cli", "serve", *args, "--host", HOST, "--port", str(port),
-           "--workers", str(workers)]
+    cmd = [
+        sys.executable,
+        "-m",
+        "api.cli",
+        "serve",
+        *args,
+        "--host",
+        HOST,
+        "--port",
+        str(port),
+        "--workers",
+        str(workers),
+    ]
     with open(output, "wb") as out:
-        proc = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT,
-                                env=_clean_env(env or {}), start_new_session=True)
+        proc = subprocess.Popen(
+            cmd,
+            stdout=out,
+            stderr=subprocess.STDOUT,
+            env=_clean_env(env or {}),
+            start_new_session=True,
+        )
     server = Server(f"http://{HOST}:{port}", proc, output)
     try:
         wait_ready(server, workers, ready_timeout)

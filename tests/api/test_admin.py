@@ -12,12 +12,20 @@ import pytest
 from retriever import load_index
 from tests.api.svc_helpers import ADMIN_TOKEN, admin_headers
 
-ADMIN_CALLS = [("post", "/v1/admin/reload", None), ("post", "/v1/admin/entries", []),
-               ("delete", "/v1/admin/entries/a000001", None)]
-NEW = {"id": "zz-new-1", "title": "Quorvantle (lighthouse)",
-       "text": "The lighthouse Quorvantle stands on the cliff of Mirrowdeep above the grey shoals.",
-       "links": [], "aliases": ["Quorvantle Light"], "popularity": 3.0,
-       "metadata": {"kind": "lighthouse"}}
+ADMIN_CALLS: list[tuple[str, str, Any]] = [
+    ("post", "/v1/admin/reload", None),
+    ("post", "/v1/admin/entries", []),
+    ("delete", "/v1/admin/entries/a000001", None),
+]
+NEW = {
+    "id": "zz-new-1",
+    "title": "Quorvantle (lighthouse)",
+    "text": "The lighthouse Quorvantle stands on the cliff of Mirrowdeep above the grey shoals.",
+    "links": [],
+    "aliases": ["Quorvantle Light"],
+    "popularity": 3.0,
+    "metadata": {"kind": "lighthouse"},
+}
 
 
 def _call(client: Any, method: str, path: str, body: Any, headers: dict[str, str]) -> Any:
@@ -27,19 +35,28 @@ def _call(client: Any, method: str, path: str, body: Any, headers: dict[str, str
 
 
 @pytest.mark.parametrize(("method", "path", "body"), ADMIN_CALLS)
-def test_admin_refuses_missing_or_wrong_tokens(client: Any, method: str, path: str, body: Any) -> None:
+def test_admin_refuses_missing_or_wrong_tokens(
+    client: Any, method: str, path: str, body: Any
+) -> None:
     r = _call(client, method, path, body, {})
     assert r.status_code == 401 and "missing admin token" in r.json()["detail"]
     assert r.headers["www-authenticate"] == "Bearer"
-    for bad in ("Bearer wrong-token", f"Bearer {ADMIN_TOKEN}x", f"Basic {ADMIN_TOKEN}",
-                f"Bearer {ADMIN_TOKEN[:-1]}", "Bearer", f"bearer{ADMIN_TOKEN}"):
+    for bad in (
+        "Bearer wrong-token",
+        f"Bearer {ADMIN_TOKEN}x",
+        f"Basic {ADMIN_TOKEN}",
+        f"Bearer {ADMIN_TOKEN[:-1]}",
+        "Bearer",
+        f"bearer{ADMIN_TOKEN}",
+    ):
         r = _call(client, method, path, body, {"Authorization": bad})
         assert r.status_code == 401, (bad, r.text)
 
 
 @pytest.mark.parametrize(("method", "path", "body"), ADMIN_CALLS)
-def test_admin_is_disabled_without_a_token(make_client: Any, method: str, path: str,
-                                           body: Any) -> None:
+def test_admin_is_disabled_without_a_token(
+    make_client: Any, method: str, path: str, body: Any
+) -> None:
     with make_client(admin_token=None) as c:
         r = _call(c, method, path, body, admin_headers())
         assert r.status_code == 403 and "disabled" in r.json()["detail"]
@@ -50,7 +67,10 @@ def test_token_from_file(make_client: Any, tmp_path: Path) -> None:
     token_file = tmp_path / "token"
     token_file.write_text("file-token-abcdef\n")
     with make_client(admin_token=None, admin_token_file=token_file) as c:
-        assert c.post("/v1/admin/reload", headers=admin_headers("file-token-abcdef")).status_code == 200
+        assert (
+            c.post("/v1/admin/reload", headers=admin_headers("file-token-abcdef")).status_code
+            == 200
+        )
         assert c.post("/v1/admin/reload", headers=admin_headers()).status_code == 401
 
 
@@ -81,18 +101,21 @@ def test_add_replace_and_delete_entries(make_client: Any, own_index: Path) -> No
     assert load_index(own_index).n_docs == before["articles"]
 
 
-@pytest.mark.parametrize(("articles", "field"), [
-    ([{**NEW, "title": ""}], "body.0.title"),
-    ([{**NEW, "id": "  "}], "body.0.id"),
-    ([{k: v for k, v in NEW.items() if k != "text"}], "body.0.text"),
-    ([{**NEW, "links": "x"}], "body.0.links"),
-    ([{**NEW, "popularity": -2}], "body.0.popularity"),
-    ([{**NEW, "metadata": []}], "body.0.metadata"),
-    ([{**NEW, "colour": "red"}], "body.0.colour"),
-    ([NEW, {**NEW, "id": "zz-new-2"}], "body.1.title"),  # duplicate title within the call
-    ([NEW, NEW], "body.1.id"),  # duplicate id within the call
-    ([], "body"),
-])
+@pytest.mark.parametrize(
+    ("articles", "field"),
+    [
+        ([{**NEW, "title": ""}], "body.0.title"),
+        ([{**NEW, "id": "  "}], "body.0.id"),
+        ([{k: v for k, v in NEW.items() if k != "text"}], "body.0.text"),
+        ([{**NEW, "links": "x"}], "body.0.links"),
+        ([{**NEW, "popularity": -2}], "body.0.popularity"),
+        ([{**NEW, "metadata": []}], "body.0.metadata"),
+        ([{**NEW, "colour": "red"}], "body.0.colour"),
+        ([NEW, {**NEW, "id": "zz-new-2"}], "body.1.title"),  # duplicate title within the call
+        ([NEW, NEW], "body.1.id"),  # duplicate id within the call
+        ([], "body"),
+    ],
+)
 def test_bad_articles_are_rejected_naming_the_field(
     make_client: Any, own_index: Path, articles: list[dict[str, Any]], field: str
 ) -> None:
@@ -114,7 +137,10 @@ def test_title_taken_by_another_article_is_422(make_client: Any, own_index: Path
 
 
 def test_reload_swaps_the_model_and_a_bad_file_keeps_the_old_one(
-    make_client: Any, model_path: Path, other_model_path: Path, tmp_path: Path,
+    make_client: Any,
+    model_path: Path,
+    other_model_path: Path,
+    tmp_path: Path,
     test_questions: list[dict[str, Any]],
 ) -> None:
     served = tmp_path / "served-model.json"

@@ -58,8 +58,9 @@ CASES: list[tuple[str, Any, int, str]] = [
 @pytest.fixture
 def small_limits(make_client: Any) -> Iterator[Any]:
     """A client whose limits are small enough to hit."""
-    with make_client(max_clue_chars=200, max_k=10, default_k=5, max_batch=5,
-                     max_body_bytes=4096) as c:
+    with make_client(
+        max_clue_chars=200, max_k=10, default_k=5, max_batch=5, max_body_bytes=4096
+    ) as c:
         yield c
 
 
@@ -79,11 +80,19 @@ def test_unknown_answer_is_rejected_naming_the_field(small_limits: Any) -> None:
     assert r.status_code == 404
 
 
-@pytest.mark.parametrize("raw", [
-    b"{", b"not json", b'{"clue": "river",}', b"\xff\xfe\x00", b'{"clue": "\\ud800 river"}',
-    b'{"clue": "river", "payoff": {"reward": NaN}}', b'{"clue": "river", "k": Infinity}',
-    b'{"clue": "river", "metadata": {"w": NaN}}',
-])
+@pytest.mark.parametrize(
+    "raw",
+    [
+        b"{",
+        b"not json",
+        b'{"clue": "river",}',
+        b"\xff\xfe\x00",
+        b'{"clue": "\\ud800 river"}',
+        b'{"clue": "river", "payoff": {"reward": NaN}}',
+        b'{"clue": "river", "k": Infinity}',
+        b'{"clue": "river", "metadata": {"w": NaN}}',
+    ],
+)
 def test_malformed_or_non_finite_json_is_4xx(small_limits: Any, raw: bytes) -> None:
     r = small_limits.post("/v1/rank", content=raw, headers={"Content-Type": "application/json"})
     assert 400 <= r.status_code < 500, r.text
@@ -91,8 +100,11 @@ def test_malformed_or_non_finite_json_is_4xx(small_limits: Any, raw: bytes) -> N
 
 
 def test_wrong_content_type_is_4xx(small_limits: Any) -> None:
-    r = small_limits.post("/v1/rank", content=b"clue=river",
-                          headers={"Content-Type": "application/x-www-form-urlencoded"})
+    r = small_limits.post(
+        "/v1/rank",
+        content=b"clue=river",
+        headers={"Content-Type": "application/x-www-form-urlencoded"},
+    )
     assert r.status_code == 422
 
 
@@ -105,13 +117,18 @@ def test_oversize_body_is_413_by_length_and_by_chunks(small_limits: Any) -> None
         for i in range(0, len(big), 1000):
             yield big[i : i + 1000]
 
-    r = small_limits.post("/v1/rank", content=chunks(), headers={"Content-Type": "application/json"})
+    r = small_limits.post(
+        "/v1/rank", content=chunks(), headers={"Content-Type": "application/json"}
+    )
     assert r.status_code == 413 and "4096 bytes" in r.json()["detail"]
 
 
 def test_bad_content_length_is_400(small_limits: Any) -> None:
-    r = small_limits.post("/v1/rank", content=b'{"clue": "river"}',
-                          headers={"Content-Type": "application/json", "Content-Length": "abc"})
+    r = small_limits.post(
+        "/v1/rank",
+        content=b'{"clue": "river"}',
+        headers={"Content-Type": "application/json", "Content-Length": "abc"},
+    )
     assert r.status_code == 400
 
 

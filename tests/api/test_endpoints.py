@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import json
-from datetime import datetime
+from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -15,8 +15,18 @@ from reranker import read_logs
 from retriever import load_index
 from tests.api.svc_helpers import read_jsonl
 
-SERVED_KEYS = {"kind", "request_id", "time", "clue", "k", "complete", "index_version",
-               "model_version", "candidates", "decision"}
+SERVED_KEYS = {
+    "kind",
+    "request_id",
+    "time",
+    "clue",
+    "k",
+    "complete",
+    "index_version",
+    "model_version",
+    "candidates",
+    "decision",
+}
 
 
 @pytest.fixture(scope="module")
@@ -31,8 +41,11 @@ def okapi(index_dir: Path, demo: dict[str, Path]) -> tuple[BM25Okapi, dict[str, 
 
 
 def test_rank_returns_candidates_by_probability_with_reference_bm25(
-    client: Any, test_questions: list[dict[str, Any]], okapi: tuple[BM25Okapi, dict[str, int]],
-    index_dir: Path, model_path: Path,
+    client: Any,
+    test_questions: list[dict[str, Any]],
+    okapi: tuple[BM25Okapi, dict[str, int]],
+    index_dir: Path,
+    model_path: Path,
 ) -> None:
     bm, row_of = okapi
     idx = load_index(index_dir)
@@ -80,9 +93,14 @@ def test_payoff_sets_the_break_even_threshold(
         assert expected == 0.25
     for q in test_questions[:5]:
         for complete in (False, True):
-            body = client.post("/v1/rank", json={
-                "clue": q["clue"], "payoff": {"reward": reward, "penalty": penalty},
-                "complete": complete}).json()
+            body = client.post(
+                "/v1/rank",
+                json={
+                    "clue": q["clue"],
+                    "payoff": {"reward": reward, "penalty": penalty},
+                    "complete": complete,
+                },
+            ).json()
             d = body["decision"]
             assert d["threshold"] == pytest.approx(expected)
             top = body["candidates"][0]
@@ -103,8 +121,11 @@ def test_without_a_model_ranks_by_bm25_and_says_so(
         assert all(x["probability"] is None for x in body["candidates"])
         assert body["decision"]["action"] == "wait"
         assert c.get("/readyz").json() == {
-            "ready": True, "index_version": body["index_version"], "model_version": None,
-            "model_configured": False}
+            "ready": True,
+            "index_version": body["index_version"],
+            "model_version": None,
+            "model_configured": False,
+        }
         assert c.get("/v1/info").json()["features"] == []
 
 
@@ -119,7 +140,8 @@ def test_batch_matches_single_requests(client: Any, test_questions: list[dict[st
         single = client.post("/v1/rank", json={"clue": clue, "k": 4}).json()
         assert [c["id"] for c in res["candidates"]] == [c["id"] for c in single["candidates"]]
         assert [c["probability"] for c in res["candidates"]] == pytest.approx(
-            [c["probability"] for c in single["candidates"]])
+            [c["probability"] for c in single["candidates"]]
+        )
         assert res["decision"] == single["decision"]
 
 
@@ -130,16 +152,21 @@ def test_served_log_has_the_trainer_shape(
     rid = client.post("/v1/rank", json={"clue": q["clue"], "k": 5}).json()["request_id"]
     batch = client.post("/v1/rank/batch", json={"clues": [q["clue"], "harbour"], "k": 3}).json()
     assert client.post("/v1/feedback", json={"request_id": rid, "answer": q["gold"]}).json() == {
-        "request_id": rid, "answer": q["gold"], "recorded": True}
+        "request_id": rid,
+        "answer": q["gold"],
+        "recorded": True,
+    }
     other = batch["results"][1]["request_id"]
-    assert client.post("/v1/feedback", json={"request_id": other, "answer": None}).status_code == 200
+    assert (
+        client.post("/v1/feedback", json={"request_id": other, "answer": None}).status_code == 200
+    )
     lines = read_jsonl(tmp_path / "log" / "served.jsonl")
     served = [x for x in lines if x["kind"] == "served"]
     assert len(served) == 3 and len(lines) == 5
     for rec in served:
         assert set(rec) == SERVED_KEYS
         # ISO-8601 in UTC (datetime.fromisoformat reads the 'Z' suffix since Python 3.11).
-        assert datetime.fromisoformat(rec["time"]).utcoffset().total_seconds() == 0
+        assert datetime.fromisoformat(rec["time"]).utcoffset() == timedelta(0)
         assert isinstance(rec["k"], int) and rec["complete"] is False
         for c in rec["candidates"]:
             assert set(c) == {"id", "title", "score", "rank", "probability", "features"}
@@ -147,12 +174,17 @@ def test_served_log_has_the_trainer_shape(
         assert set(rec["decision"]) == {"action", "id", "probability", "threshold", "reason"}
     assert served[0]["request_id"] == rid and served[0]["k"] == 5
     fb = [x for x in lines if x["kind"] == "feedback"]
-    assert fb[0] == {"kind": "feedback", "request_id": rid, "time": fb[0]["time"],
-                     "answer": q["gold"]}
+    assert fb[0] == {
+        "kind": "feedback",
+        "request_id": rid,
+        "time": fb[0]["time"],
+        "answer": q["gold"],
+    }
     # The trainer's reader joins feedback to what was served, by request id.
     labelled = read_logs([tmp_path / "log" / "served.jsonl"])
     assert sorted((c.clue, c.answer) for c in labelled) == sorted(
-        [(q["clue"], q["gold"]), ("harbour", None)])
+        [(q["clue"], q["gold"]), ("harbour", None)]
+    )
 
 
 def test_feedback_twice_is_logged_twice_and_last_wins(
@@ -187,8 +219,9 @@ def test_entry_returns_the_stored_record(client: Any, demo: dict[str, Path]) -> 
     for rec in read_jsonl(demo["articles"])[:20]:
         body = client.get(f"/v1/entries/{rec['id']}").json()
         assert {k: body[k] for k in ("id", "title", "text", "links", "aliases", "metadata")} == {
-            k: rec.get(k, [] if k in ("links", "aliases") else {}) for k in
-            ("id", "title", "text", "links", "aliases", "metadata")}
+            k: rec.get(k, [] if k in ("links", "aliases") else {})
+            for k in ("id", "title", "text", "links", "aliases", "metadata")
+        }
         assert body["popularity"] == rec.get("popularity")
     r = client.get("/v1/entries/no-such-article")
     assert r.status_code == 404 and "no-such-article" in r.json()["detail"]
@@ -205,9 +238,19 @@ def test_health_ready_info_docs(client: Any, index_dir: Path) -> None:
     docs = client.get("/docs")
     assert docs.status_code == 200 and "swagger" in docs.text.lower()
     paths = client.get("/openapi.json").json()["paths"]
-    assert {"/v1/rank", "/v1/rank/batch", "/v1/feedback", "/v1/entries/{doc_id}", "/v1/info",
-            "/healthz", "/readyz", "/metrics", "/v1/admin/reload", "/v1/admin/entries",
-            "/v1/admin/entries/{doc_id}"} <= set(paths)
+    assert {
+        "/v1/rank",
+        "/v1/rank/batch",
+        "/v1/feedback",
+        "/v1/entries/{doc_id}",
+        "/v1/info",
+        "/healthz",
+        "/readyz",
+        "/metrics",
+        "/v1/admin/reload",
+        "/v1/admin/entries",
+        "/v1/admin/entries/{doc_id}",
+    } <= set(paths)
 
 
 def test_metrics_count_requests_by_endpoint(client: Any) -> None:
@@ -218,13 +261,19 @@ def test_metrics_count_requests_by_endpoint(client: Any) -> None:
     text = client.get("/metrics").text
     # Parsed with prometheus_client's reference parser of the text exposition format.
     families = {f.name: f for f in text_string_to_metric_families(text)}
-    counts = {(s.labels["endpoint"], s.labels["status"]): s.value
-              for s in families["hunchwise_http_requests"].samples if s.name.endswith("_total")}
+    counts = {
+        (s.labels["endpoint"], s.labels["status"]): s.value
+        for s in families["hunchwise_http_requests"].samples
+        if s.name.endswith("_total")
+    }
     assert counts[("/v1/rank", "200")] == 3
     assert counts[("/v1/rank", "422")] == 1
     assert counts[("/v1/entries/{doc_id:path}", "404")] == 1
-    buckets = [s for s in families["hunchwise_http_request_duration_seconds"].samples
-               if s.name.endswith("_count") and s.labels["endpoint"] == "/v1/rank"]
+    buckets = [
+        s
+        for s in families["hunchwise_http_request_duration_seconds"].samples
+        if s.name.endswith("_count") and s.labels["endpoint"] == "/v1/rank"
+    ]
     assert buckets[0].value == 4
 
 

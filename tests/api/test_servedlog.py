@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 import multiprocessing as mp
 import threading
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -17,13 +19,15 @@ def _writer(folder: str, who: int, n: int, max_bytes: int) -> None:
     log = ServedLog(folder, max_bytes=max_bytes, backups=10_000)
     for i in range(n):
         # Lines of varying length, some batches of several lines written at once.
-        recs = [{"kind": "feedback", "who": who, "i": i, "j": j, "pad": "x" * ((i * 7) % 90)}
-                for j in range(1 + i % 3)]
+        recs = [
+            {"kind": "feedback", "who": who, "i": i, "j": j, "pad": "x" * ((i * 7) % 90)}
+            for j in range(1 + i % 3)
+        ]
         log.append(recs)
     log.close()
 
 
-def _all_lines(folder: Path) -> list[dict[str, object]]:
+def _all_lines(folder: Path) -> list[dict[str, Any]]:
     files = ServedLog(folder, max_bytes=10**9, backups=10_000).files()
     return [json.loads(line) for f in files for line in f.read_text(encoding="ascii").splitlines()]
 
@@ -45,8 +49,12 @@ def test_rotation_by_size_keeps_order_and_count(tmp_path: Path) -> None:
         log.append([{"i": i, "pad": "y" * 40}])
     log.close()
     files = log.files()
-    assert [f.name for f in files] == ["served.3.jsonl", "served.2.jsonl", "served.1.jsonl",
-                                       "served.jsonl"]
+    assert [f.name for f in files] == [
+        "served.3.jsonl",
+        "served.2.jsonl",
+        "served.1.jsonl",
+        "served.jsonl",
+    ]
     assert all(f.stat().st_size <= 2000 for f in files)
     kept = [json.loads(line)["i"] for f in files for line in f.read_text().splitlines()]
     # Oldest first, contiguous, ending at the last line written; older files were dropped.
@@ -58,8 +66,10 @@ def test_threads_and_processes_lose_nothing(tmp_path: Path) -> None:
     procs = [ctx.Process(target=_writer, args=(str(tmp_path), w, 300, 16_000)) for w in range(3)]
     for p in procs:
         p.start()
-    threads = [threading.Thread(target=_writer, args=(str(tmp_path), 10 + w, 300, 16_000))
-               for w in range(3)]
+    threads = [
+        threading.Thread(target=_writer, args=(str(tmp_path), 10 + w, 300, 16_000))
+        for w in range(3)
+    ]
     for t in threads:
         t.start()
     for t in threads:
@@ -69,11 +79,13 @@ def test_threads_and_processes_lose_nothing(tmp_path: Path) -> None:
         assert p.exitcode == 0
     lines = _all_lines(tmp_path)
     seen = [(r["who"], r["i"], r["j"]) for r in lines]
-    expected = [(w, i, j) for w in (0, 1, 2, 10, 11, 12) for i in range(300) for j in range(1 + i % 3)]
+    expected = [
+        (w, i, j) for w in (0, 1, 2, 10, 11, 12) for i in range(300) for j in range(1 + i % 3)
+    ]
     assert sorted(seen) == sorted(expected)  # each line exactly once
     assert len(list(tmp_path.glob("served*.jsonl"))) > 5  # rotation happened under the load
     # A batch is one write: its lines stay together, in order.
-    for a, b in zip(lines, lines[1:], strict=False):
+    for a, b in itertools.pairwise(lines):
         if b["j"] > 0:
             assert (a["who"], a["i"], a["j"]) == (b["who"], b["i"], b["j"] - 1)
 
@@ -87,10 +99,17 @@ def test_request_ids_validate_across_instances_sharing_a_secret(tmp_path: Path) 
     other = RequestIds(shared_secret(None, tmp_path / "elsewhere"))
     assert not any(other.valid(i) for i in ids)
     rid = ids[0]
-    for bad in (rid[:-1] + ("0" if rid[-1] != "0" else "1"), rid.upper(), rid + "0", "", "x.y",
-                rid.replace(".", "-")):
+    for bad in (
+        rid[:-1] + ("0" if rid[-1] != "0" else "1"),
+        rid.upper(),
+        rid + "0",
+        "",
+        "x.y",
+        rid.replace(".", "-"),
+    ):
         assert not b.valid(bad)
     assert RequestIds(b"configured-secret-123").valid(
-        RequestIds(shared_secret("configured-secret-123", None)).new())
+        RequestIds(shared_secret("configured-secret-123", None)).new()
+    )
     with pytest.raises(ValueError):
         RequestIds(b"short")

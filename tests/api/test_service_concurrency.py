@@ -21,12 +21,21 @@ pytestmark = [pytest.mark.slow, pytest.mark.server]
 
 CLIENTS = 16  # parallel clients, each with its own connection
 ROUNDS = 20  # rank + feedback pairs per client
-NEW_ENTRY = {"id": "zz-beacon", "title": "Ulvenmark (beacon)",
-             "text": "The beacon Ulvenmark burns on the headland of Tessarine every winter night."}
+NEW_ENTRY = {
+    "id": "zz-beacon",
+    "title": "Ulvenmark (beacon)",
+    "text": "The beacon Ulvenmark burns on the headland of Tessarine every winter night.",
+}
 
 
-async def _client(url: str, n: int, questions: list[dict[str, Any]], sent: dict[str, Any],
-                  errors: list[str], versions: Counter[str]) -> None:
+async def _client(
+    url: str,
+    n: int,
+    questions: list[dict[str, Any]],
+    sent: dict[str, Any],
+    errors: list[str],
+    versions: Counter[str],
+) -> None:
     async with httpx.AsyncClient(base_url=url, timeout=60) as c:
         for i in range(ROUNDS):
             q = questions[(n * ROUNDS + i) % len(questions)]
@@ -37,7 +46,9 @@ async def _client(url: str, n: int, questions: list[dict[str, Any]], sent: dict[
             body = r.json()
             versions[body["model_version"]] += 1
             answer = q["gold"] if i % 4 else None
-            f = await c.post("/v1/feedback", json={"request_id": body["request_id"], "answer": answer})
+            f = await c.post(
+                "/v1/feedback", json={"request_id": body["request_id"], "answer": answer}
+            )
             if f.status_code != 200:
                 errors.append(f"feedback {f.status_code}: {f.text}")
                 continue
@@ -51,8 +62,9 @@ async def _reload_midway(url: str, swap: Any, results: list[httpx.Response]) -> 
         results.append(await c.post("/v1/admin/reload", headers=admin_headers()))
 
 
-async def _load(url: str, questions: list[dict[str, Any]], swap: Any) -> tuple[
-        dict[str, Any], list[str], Counter[str], list[httpx.Response]]:
+async def _load(
+    url: str, questions: list[dict[str, Any]], swap: Any
+) -> tuple[dict[str, Any], list[str], Counter[str], list[httpx.Response]]:
     sent: dict[str, Any] = {}
     errors: list[str] = []
     versions: Counter[str] = Counter()
@@ -78,7 +90,10 @@ def _every_worker(url: str, check: Any, workers: int = 2, timeout: float = 20) -
 
 
 def test_two_workers_under_load_with_a_reload(
-    index_dir: Path, model_path: Path, other_model_path: Path, test_questions: list[dict[str, Any]],
+    index_dir: Path,
+    model_path: Path,
+    other_model_path: Path,
+    test_questions: list[dict[str, Any]],
     tmp_path: Path,
 ) -> None:
     idx = tmp_path / "idx"
@@ -94,8 +109,18 @@ def test_two_workers_under_load_with_a_reload(
         shutil.copy(other_model_path, tmp)
         os.replace(tmp, served_model)
 
-    args = ["--index", str(idx), "--model", str(served_model), "--log-dir", str(logs),
-            "--log-max-bytes", "200000", "--log-backups", "1000"]
+    args = [
+        "--index",
+        str(idx),
+        "--model",
+        str(served_model),
+        "--log-dir",
+        str(logs),
+        "--log-max-bytes",
+        "200000",
+        "--log-backups",
+        "1000",
+    ]
     with serve(args, tmp_path, workers=2, env={"HUNCHWISE_ADMIN_TOKEN": ADMIN_TOKEN}) as server:
         sent, errors, versions, reloads = asyncio.run(_load(server.url, test_questions, swap))
         assert errors == []
@@ -109,19 +134,30 @@ def test_two_workers_under_load_with_a_reload(
         with httpx.Client(base_url=server.url, timeout=60) as c:
             r = c.post("/v1/admin/entries", json=[NEW_ENTRY], headers=admin_headers())
             assert r.status_code == 200, r.text
-        seen = _every_worker(server.url, lambda c, info: c.get("/v1/entries/zz-beacon").status_code
-                             == 200 and info["index_version"] == r.json()["index_version"])
+        seen = _every_worker(
+            server.url,
+            lambda c, info: (
+                c.get("/v1/entries/zz-beacon").status_code == 200
+                and info["index_version"] == r.json()["index_version"]
+            ),
+        )
         assert len(seen) == 2
         # /metrics sums the workers' samples (prometheus_client multiprocess mode).
         with httpx.Client(base_url=server.url, timeout=10) as c:
             fams = {f.name: f for f in text_string_to_metric_families(c.get("/metrics").text)}
-        ranked = [s.value for s in fams["hunchwise_http_requests"].samples
-                  if s.labels["endpoint"] == "/v1/rank" and s.labels["status"] == "200"]
+        ranked = [
+            s.value
+            for s in fams["hunchwise_http_requests"].samples
+            if s.labels["endpoint"] == "/v1/rank" and s.labels["status"] == "200"
+        ]
         assert ranked == [CLIENTS * ROUNDS]
         assert stop(server) == 0
 
-    lines = [json.loads(x) for f in sorted(logs.glob("served*.jsonl"))
-             for x in f.read_text(encoding="ascii").splitlines()]
+    lines = [
+        json.loads(x)
+        for f in sorted(logs.glob("served*.jsonl"))
+        for x in f.read_text(encoding="ascii").splitlines()
+    ]
     assert len(list(logs.glob("served*.jsonl"))) > 1  # rotated while both workers wrote
     feedback = Counter(x["request_id"] for x in lines if x["kind"] == "feedback")
     assert set(feedback) == set(sent) and set(feedback.values()) == {1}

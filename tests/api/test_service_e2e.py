@@ -52,31 +52,55 @@ def test_index_train_serve_feedback_retrain_reload(
                 ids = [x["id"] for x in body["candidates"]]
                 # Every fifth answer says "none of these" when the gold is not shown.
                 answer = q["gold"] if (q["gold"] in ids or n % 5) else None
-                fb = c.post("/v1/feedback", json={"request_id": body["request_id"], "answer": answer})
+                fb = c.post(
+                    "/v1/feedback", json={"request_id": body["request_id"], "answer": answer}
+                )
                 assert fb.status_code == 200, fb.text
                 sent[body["request_id"]] = answer
             # The metrics text parses with prometheus_client's own parser and counts our calls.
             fams = {f.name: f for f in text_string_to_metric_families(c.get("/metrics").text)}
-            ranks = [s.value for s in fams["hunchwise_http_requests"].samples
-                     if s.labels["endpoint"] == "/v1/rank" and s.labels["status"] == "200"]
+            ranks = [
+                s.value
+                for s in fams["hunchwise_http_requests"].samples
+                if s.labels["endpoint"] == "/v1/rank" and s.labels["status"] == "200"
+            ]
             assert ranks == [len(questions)]
 
             # Retrain from what was served plus the original labelled clues.
             lines = read_jsonl(logs / "served.jsonl")
             assert {x["request_id"]: x["answer"] for x in lines if x["kind"] == "feedback"} == sent
             model2 = tmp_path / "model2.json"
-            cli(["train", "--index", str(idx), "--log", str(logs / "served.jsonl"),
-                 "--log", str(demo["train"]), "--out", str(model2)])
+            cli(
+                [
+                    "train",
+                    "--index",
+                    str(idx),
+                    "--log",
+                    str(logs / "served.jsonl"),
+                    "--log",
+                    str(demo["train"]),
+                    "--out",
+                    str(model2),
+                ]
+            )
             v2 = json.loads(model2.read_text())["model_version"]
             assert v2 != v1
             _replace(model2, served_model)
             # Until the reload the old model keeps answering.
-            assert c.post("/v1/rank", json={"clue": questions[0]["clue"]}).json()["model_version"] == v1
-            assert c.post("/v1/admin/reload", headers={"Authorization": "Bearer nope"}).status_code == 401
+            assert (
+                c.post("/v1/rank", json={"clue": questions[0]["clue"]}).json()["model_version"]
+                == v1
+            )
+            assert (
+                c.post("/v1/admin/reload", headers={"Authorization": "Bearer nope"}).status_code
+                == 401
+            )
             r = c.post("/v1/admin/reload", headers=admin_headers())
             assert r.status_code == 200, r.text
             assert r.json()["model_version"] == v2 and r.json()["previous_model_version"] == v1
-            after = c.post("/v1/rank", json={"clue": questions[0]["clue"], "include_features": True})
+            after = c.post(
+                "/v1/rank", json={"clue": questions[0]["clue"], "include_features": True}
+            )
             assert after.json()["model_version"] == v2
             assert c.get("/readyz").json()["model_version"] == v2
             final_id = after.json()["request_id"]

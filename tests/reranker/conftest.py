@@ -43,7 +43,7 @@ def _jsonl() -> Callable[[Path, Iterable[Any]], Path]:
 
 # -- the five-article corpus whose feature values are worked out by hand in test_builtin -------
 # No stemming and no stopwords, so every token is a lower-cased word of two or more letters.
-TINY_ANALYZER = {"stemmer": None, "stopwords": "none"}
+TINY_ANALYZER: dict[str, Any] = {"stemmer": None, "stopwords": "none"}
 TINY_RECORDS: list[dict[str, Any]] = [
     {
         "id": "a1",
@@ -93,9 +93,32 @@ def tiny_index(tmp_path_factory: pytest.TempPathFactory) -> Index:
 
 # -- a small invented world: enough clues for 5-fold grouped CV, trains in a few seconds -------
 SYLLABLES = (
-    "ka lo mi ren dus tor vel shi pan gor eth ul zar bri nok fae qui sol mar tev "
-    "bel cran dro fen hul"
-).split()
+    "ka",
+    "lo",
+    "mi",
+    "ren",
+    "dus",
+    "tor",
+    "vel",
+    "shi",
+    "pan",
+    "gor",
+    "eth",
+    "ul",
+    "zar",
+    "bri",
+    "nok",
+    "fae",
+    "qui",
+    "sol",
+    "mar",
+    "tev",
+    "bel",
+    "cran",
+    "dro",
+    "fen",
+    "hul",
+)
 KINDS = ("river", "town", "song", "ship", "painter")
 SOURCES = ("Alpha", "Beta", "Gamma")
 
@@ -178,9 +201,7 @@ def make_world(folder: Path, *, seed: int = 11, n_articles: int = 80, n_clues: i
     write_jsonl(folder / "train.jsonl", clues[:n_train] + unresolved)
     write_jsonl(folder / "test.jsonl", clues[n_train:])
     index = build_index(folder / "articles.jsonl", folder / "index")
-    return World(
-        folder / "articles.jsonl", folder / "train.jsonl", folder / "test.jsonl", index, 2
-    )
+    return World(folder / "articles.jsonl", folder / "train.jsonl", folder / "test.jsonl", index, 2)
 
 
 @pytest.fixture(scope="session")

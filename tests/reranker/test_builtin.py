@@ -56,8 +56,9 @@ def test_bm25_score_equals_rank_bm25_okapi(tiny_index: Index) -> None:
     # Reference: rank_bm25's BM25Okapi (k1=1.5, b=0.75, epsilon=0.25, its defaults, which the
     # index uses) on the same analyzed body tokens. The feature is the score the hit carries.
     assert tiny_index.title_weight == 0.0
-    corpus = [tiny_index.analyzer.tokens(r) for r in
-              [tiny_index.document(i).text for i in tiny_index.ids]]
+    corpus = [
+        tiny_index.analyzer.tokens(r) for r in [tiny_index.document(i).text for i in tiny_index.ids]
+    ]
     ref = BM25Okapi(corpus).get_scores(tiny_index.analyzer.tokens(CLUE))
     hits = tiny_index.search(CLUE, k=5)
     got = B.bm25_score(candidate_set(tiny_index, CLUE, hits))

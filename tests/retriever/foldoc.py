@@ -55,11 +55,12 @@ def read_foldoc() -> list[dict[str, Any]]:
     Entries sharing a byte range are one article; dictd's own `00-database-*` entries and
     later entries repeating an earlier title are left out (titles must be unique).
     """
-    data = gzip.open(FOLDOC_DICT).read()
+    with gzip.open(FOLDOC_DICT) as fh:
+        data = fh.read()
     heads: dict[tuple[int, int], list[str]] = defaultdict(list)
     for line in FOLDOC_INDEX.read_text(encoding="utf-8").splitlines():
-        word, off, length = line.split("\t")
-        heads[(b64_number(off), b64_number(length))].append(word)
+        word, b64_off, b64_len = line.split("\t")
+        heads[(b64_number(b64_off), b64_number(b64_len))].append(word)
     records: list[dict[str, Any]] = []
     seen: set[str] = set()
     for (off, length), words in sorted(heads.items()):
@@ -87,7 +88,8 @@ def read_foldoc() -> list[dict[str, Any]]:
 def foldoc_words() -> list[str]:
     """Words of FOLDOC's entries, in order, or invented words when FOLDOC is missing."""
     if FOLDOC_DICT.exists():
-        text = gzip.open(FOLDOC_DICT).read().decode("utf-8", "replace")
+        with gzip.open(FOLDOC_DICT) as fh:
+            text = fh.read().decode("utf-8", "replace")
         return re.findall(r"[A-Za-z][a-z]+", text)
     rng = random.Random(7)
     syll = ["ka", "ro", "mi", "tes", "lun", "dor", "ax", "vel", "qui", "zen", "pra", "sto"]
@@ -99,7 +101,7 @@ def foldoc_words() -> list[str]:
 def synthetic_articles(
     n: int, seed: int = 0, words: list[str] | None = None
 ) -> Iterator[dict[str, Any]]:
-    """`n` articles whose text is FOLDOC word runs, lightly perturbed so the vocabulary keeps growing."""
+    """`n` articles of FOLDOC word runs, lightly perturbed so the vocabulary keeps growing."""
     words = words if words is not None else foldoc_words()
     rng = random.Random(seed)
     n_words = len(words)
@@ -118,7 +120,8 @@ def synthetic_articles(
             "title": f"{' '.join(title_words).title()} {i}",
             "text": " ".join(run),
             "links": [
-                f"{' '.join(words[(start + 7) % n_words : (start + 9) % n_words])} {rng.randrange(n)}"
+                " ".join(words[(start + 7) % n_words : (start + 9) % n_words])
+                + f" {rng.randrange(n)}"
             ],
             "popularity": round(rng.random() * 100, 2),
         }

@@ -10,7 +10,7 @@ from typing import Any
 from retriever import Index, build_index
 
 # No stopwords, no stemming: tokens are exactly the lower-case words, as rank_bm25 is fed.
-PLAIN = {"stopwords": "none", "stemmer": None}
+PLAIN: dict[str, Any] = {"stopwords": "none", "stemmer": None}
 
 
 def write_jsonl(path: Path, records: Iterable[dict[str, Any]]) -> Path:

@@ -17,7 +17,13 @@ def test_unicode_normalization_and_case_folding() -> None:
     a = Analyzer(stopwords="none", stemmer=None)
     # NFKC turns the "fi" ligature into two letters; casefold turns sharp s into "ss"
     # (Unicode Standard, CaseFolding.txt); accents are stripped as scikit-learn does.
-    assert a.tokens("ﬁle STRASSE Straße Café ＡＢＣ") == ["file", "strasse", "strasse", "cafe", "abc"]
+    assert a.tokens("ﬁle STRASSE Straße Café ＡＢＣ") == [
+        "file",
+        "strasse",
+        "strasse",
+        "cafe",
+        "abc",
+    ]
     keep = Analyzer(stopwords="none", stemmer=None, strip_accents=False)
     assert keep.tokens("Café") == ["café"]
 

@@ -1,4 +1,4 @@
-"""Building and updating index folders: contents, in-links, updates equal to fresh builds, safety."""
+"""Building and updating index folders: contents, in-links, updates equal fresh builds, safety."""
 
 from __future__ import annotations
 
@@ -46,7 +46,12 @@ def test_inlinks_and_unresolved(tmp_path: Path, small_records: list[dict[str, An
     # Counted by hand from the fixture: m1 <- m2 (title), m3 (alias); m2 <- m3 (id);
     # m3 <- m1, m4 (case-folded title); m4 <- m1, m5 (twice, counted once); m5 <- m2.
     assert dict(zip(idx.ids, idx.inlinks.tolist(), strict=True)) == {
-        "m1": 2, "m2": 1, "m3": 2, "m4": 2, "m5": 1}
+        "m1": 2,
+        "m2": 1,
+        "m3": 2,
+        "m4": 2,
+        "m5": 1,
+    }
     assert idx.manifest["counts"]["unresolved_links"] == 1  # "Nowhere Land"
 
 
@@ -89,14 +94,19 @@ def test_update_equals_fresh_build(tmp_path: Path, title_weight: float) -> None:
         a, b = _by_id(updated, clue), _by_id(fresh, clue)
         assert a.keys() == b.keys()
         assert np.allclose([a[d] for d in a], [b[d] for d in a], rtol=1e-12, atol=0)
-        assert [h.doc_id for h in updated.search(clue, 10)] == [h.doc_id for h in fresh.search(clue, 10)]
+        assert [h.doc_id for h in updated.search(clue, 10)] == [
+            h.doc_id for h in fresh.search(clue, 10)
+        ]
     assert updated.document("a3").text == replaced[0]["text"]
     assert dict(zip(updated.ids, updated.inlinks.tolist(), strict=True)) == dict(
-        zip(fresh.ids, fresh.inlinks.tolist(), strict=True))
+        zip(fresh.ids, fresh.inlinks.tolist(), strict=True)
+    )
     assert updated.manifest["build"]["removed"] == 4
 
 
-def test_update_errors_leave_index_alone(tmp_path: Path, small_records: list[dict[str, Any]]) -> None:
+def test_update_errors_leave_index_alone(
+    tmp_path: Path, small_records: list[dict[str, Any]]
+) -> None:
     idx = build_index(small_records, tmp_path / "idx")
     before = idx.manifest["index_version"]
     with pytest.raises(CorpusError, match="unknown article ids"):
@@ -116,8 +126,10 @@ def test_bad_corpus_does_not_touch_existing_index(
     good = build_index(small_records, out)
     hits = good.search("reed marsh")
     bad = tmp_path / "bad.jsonl"
-    bad.write_text('{"id": "a", "title": "A", "text": "x"}\n{"id": "a", "title": "B", "text": "y"}\n')
-    with pytest.raises(CorpusError, match="line 2.*duplicate id"):
+    bad.write_text(
+        '{"id": "a", "title": "A", "text": "x"}\n{"id": "a", "title": "B", "text": "y"}\n'
+    )
+    with pytest.raises(CorpusError, match=r"line 2.*duplicate id"):
         build_index(bad, out)
     again = load_index(out)
     assert again.search("reed marsh") == hits
@@ -129,7 +141,9 @@ def test_bad_corpus_does_not_touch_existing_index(
     assert "duplicate id" in skipped.manifest["build"]["problems"][0]
 
 
-def test_refuses_to_replace_a_foreign_folder(tmp_path: Path, small_records: list[dict[str, Any]]) -> None:
+def test_refuses_to_replace_a_foreign_folder(
+    tmp_path: Path, small_records: list[dict[str, Any]]
+) -> None:
     target = tmp_path / "photos"
     target.mkdir()
     (target / "keep.txt").write_text("mine")

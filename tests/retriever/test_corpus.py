@@ -21,12 +21,17 @@ def _write_delimited(path: Path, records: list[dict[str, Any]], delimiter: str) 
         w = csv.writer(fh, delimiter=delimiter)
         w.writerow(cols)
         for r in records:
-            w.writerow([
-                r["id"], r["title"], r["text"], json.dumps(r.get("links", [])),
-                "|".join(r.get("aliases", [])),
-                "" if r.get("popularity") is None else r["popularity"],
-                json.dumps(r["metadata"]) if "metadata" in r else "",
-            ])
+            w.writerow(
+                [
+                    r["id"],
+                    r["title"],
+                    r["text"],
+                    json.dumps(r.get("links", [])),
+                    "|".join(r.get("aliases", [])),
+                    "" if r.get("popularity") is None else r["popularity"],
+                    json.dumps(r["metadata"]) if "metadata" in r else "",
+                ]
+            )
     return path
 
 
@@ -44,8 +49,10 @@ def test_all_formats_give_the_same_articles(
     gz = tmp_path / "c.jsonl.gz"
     gz.write_bytes(gzip.compress(paths[0].read_bytes()))
     paths.append(gz)
-    rows = [{**{"links": [], "aliases": [], "popularity": None, "metadata": None}, **r}
-            for r in small_records]
+    rows = [
+        {**{"links": [], "aliases": [], "popularity": None, "metadata": None}, **r}
+        for r in small_records
+    ]
     rows = [{**r, "metadata": json.dumps(r["metadata"]) if r["metadata"] else None} for r in rows]
     pq.write_table(pa.Table.from_pylist(rows), tmp_path / "c.parquet")
     paths.append(tmp_path / "c.parquet")
@@ -99,8 +106,9 @@ def test_bad_lines_name_file_line_and_field(
 
 def test_bad_encoding(tmp_path: Path) -> None:
     path = tmp_path / "latin.jsonl"
-    path.write_bytes(b'{"id": "a", "title": "A", "text": "ok"}\n{"id": "b", "title": "B", '
-                     b'"text": "caf\xe9"}\n')
+    path.write_bytes(
+        b'{"id": "a", "title": "A", "text": "ok"}\n{"id": "b", "title": "B", "text": "caf\xe9"}\n'
+    )
     with pytest.raises(CorpusError, match=r"line 2: not valid UTF-8"):
         list(read_articles(path))
     csv_path = tmp_path / "latin.csv"

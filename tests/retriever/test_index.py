@@ -155,8 +155,11 @@ def test_load_errors(tmp_path: Path) -> None:
 
 @pytest.mark.parametrize("damage", ["delete", "truncate", "garbage"])
 def test_missing_or_corrupt_array(tmp_path: Path, damage: str) -> None:
-    idx = build_index([{"id": str(i), "title": f"t{i}", "text": " ".join(d)}
-                       for i, d in enumerate(DOCS)], tmp_path / "idx", **PLAIN)
+    idx = build_index(
+        [{"id": str(i), "title": f"t{i}", "text": " ".join(d)} for i, d in enumerate(DOCS)],
+        tmp_path / "idx",
+        **PLAIN,
+    )
     array = idx.path / "body_weight.npy"
     del idx
     if damage == "delete":

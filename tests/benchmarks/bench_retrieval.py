@@ -1,0 +1,320 @@
+"""Benchmark: hunchwise retrieval against rank_bm25 and bm25s (numpy and numba) on one corpus.
+
+Run:  python -m tests.benchmarks.bench_retrieval --sizes 10000,100000 [--out results.md]
+
+Every system builds, saves, loads and queries in its own subprocess so that each peak RSS is
+clean. The corpus is FOLDOC text (Debian's dict-foldoc) cut into runs and lightly perturbed
+(see tests/retriever/foldoc.py); the queries are 20-40 word clue-like windows of articles.
+Not a test: it prints numbers and ratios measured in the same run, and asserts nothing.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import random
+import resource
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+from tests.retriever.foldoc import clue_from, foldoc_words, synthetic_articles
+
+SYSTEMS = ["hunchwise", "bm25s-numpy", "bm25s-numba", "rank_bm25"]
+N_QUERIES = 300
+
+
+def _peak_rss_mib() -> float:
+    own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss  # hunchwise's counting workers
+    return (own + kids) / 1024
+
+
+def _dir_bytes(path: Path) -> int:
+    return sum(p.stat().st_size for p in path.rglob("*") if p.is_file())
+
+
+def _latencies(search: Any, clues: list[str]) -> tuple[float, float]:
+    times = []
+    for clue in clues:
+        t = time.perf_counter()
+        search(clue)
+        times.append(time.perf_counter() - t)
+    times.sort()
+    return statistics.median(times) * 1e3, times[int(0.95 * (len(times) - 1))] * 1e3
+
+
+def _texts(corpus: Path) -> list[str]:
+    with open(corpus, encoding="utf-8") as fh:
+        return [json.loads(line)["text"] for line in fh]
+
+
+def _bm25s_tokens(texts: list[str], stemmer: Any) -> Any:
+    import bm25s
+    from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS
+
+    return bm25s.tokenize(
+        texts, stopwords=sorted(ENGLISH_STOP_WORDS), stemmer=stemmer, show_progress=False
+    )
+
+
+def _import(system: str) -> float:
+    """Import the system's modules up front, so build and load times exclude imports."""
+    t = time.perf_counter()
+    if system == "hunchwise":
+        import retriever
+    elif system.startswith("bm25s"):
+        import bm25s  # noqa: F401
+        import Stemmer  # noqa: F401
+        from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS  # noqa: F401
+    else:
+        import rank_bm25  # noqa: F401
+
+        import retriever  # noqa: F401
+    return time.perf_counter() - t
+
+
+def work_build(system: str, corpus: Path, folder: Path) -> dict[str, Any]:
+    """Build (reading the corpus file) and save; returns seconds and size."""
+    _import(system)
+    t = time.perf_counter()
+    if system == "hunchwise":
+        from retriever import build_index
+
+        build_index(corpus, folder)
+    elif system.startswith("bm25s"):
+        import bm25s
+        import Stemmer
+
+        texts = _texts(corpus)
+        retriever = bm25s.BM25(method="robertson", backend=system.split("-")[1])
+        retriever.index(_bm25s_tokens(texts, Stemmer.Stemmer("english")), show_progress=False)
+        retriever.save(str(folder))
+    else:
+        from rank_bm25 import BM25Okapi
+
+        from retriever import Analyzer
+
+        an = Analyzer()
+        BM25Okapi([an.tokens(t) for t in _texts(corpus)])
+    seconds = time.perf_counter() - t
+    size = _dir_bytes(folder) if folder.exists() else 0
+    return {"build_s": seconds, "size_mib": size / 2**20, "build_rss_mib": _peak_rss_mib()}
+
+
+def work_query(system: str, corpus: Path, folder: Path, clues: list[str]) -> dict[str, Any]:
+    """Load from disk, first query, single-query latencies, batch throughput."""
+    out: dict[str, Any] = {"import_s": _import(system)}
+    t = time.perf_counter()
+    if system == "hunchwise":
+        from retriever import load_index
+
+        idx = load_index(folder)
+        out["load_s"] = time.perf_counter() - t
+        t = time.perf_counter()
+        idx.search(clues[0], 10)
+        out["first_query_s"] = time.perf_counter() - t
+
+        def one(c: str) -> Any:
+            return idx.search(c, 10)
+
+        def batch(cs: list[str]) -> Any:
+            return idx.search_many(cs, 10)
+
+    elif system.startswith("bm25s"):
+        import bm25s
+        import Stemmer
+
+        stemmer = Stemmer.Stemmer("english")
+        backend = system.split("-")[1]
+        retriever = bm25s.BM25.load(str(folder), mmap=True)
+        out["load_s"] = time.perf_counter() - t
+        t = time.perf_counter()
+        retriever.backend = backend
+        if backend == "numba":
+            retriever.activate_numba_scorer()
+        out["warmup_s"] = time.perf_counter() - t
+
+        def run(cs: list[str]) -> Any:
+            toks = _bm25s_tokens(cs, stemmer)
+            return retriever.retrieve(toks, k=10, show_progress=False, n_threads=1)
+
+        t = time.perf_counter()
+        run(clues[:1])
+        out["first_query_s"] = time.perf_counter() - t
+
+        def one(c: str) -> Any:
+            return run([c])
+
+        batch = run
+    else:
+        from rank_bm25 import BM25Okapi
+
+        from retriever import Analyzer
+
+        an = Analyzer()
+        bm = BM25Okapi([an.tokens(t) for t in _texts(corpus)])
+        out["load_s"] = time.perf_counter() - t
+        import numpy as np
+
+        def one(c: str) -> Any:
+            scores = bm.get_scores(an.tokens(c))
+            return np.argsort(-scores)[:10]
+
+        def batch(cs: list[str]) -> Any:
+            return [one(c) for c in cs]
+
+        t = time.perf_counter()
+        one(clues[0])
+        out["first_query_s"] = time.perf_counter() - t
+    out["p50_ms"], out["p95_ms"] = _latencies(one, clues)
+    t = time.perf_counter()
+    batch(clues)
+    out["batch_qps"] = len(clues) / (time.perf_counter() - t)
+    out["query_rss_mib"] = _peak_rss_mib()
+    out["queries"] = len(clues)
+    return out
+
+
+def _spawn(args: list[str]) -> dict[str, Any]:
+    res = subprocess.run(
+        [sys.executable, "-m", "tests.benchmarks.bench_retrieval", *args],
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    if res.returncode != 0:
+        raise RuntimeError(res.stderr[-2000:])
+    result: dict[str, Any] = json.loads(res.stdout.strip().splitlines()[-1])
+    return result
+
+
+def run_size(n: int, tmp: Path, words: list[str]) -> dict[str, dict[str, Any]]:
+    """All systems on one corpus size."""
+    corpus = tmp / f"corpus-{n}.jsonl"
+    with open(corpus, "w", encoding="utf-8") as fh:
+        for rec in synthetic_articles(n, seed=n, words=words):
+            fh.write(json.dumps(rec) + "\n")
+    rng = random.Random(n)
+    texts = []
+    with open(corpus, encoding="utf-8") as fh:
+        for i, line in enumerate(fh):
+            if i % max(1, n // 2000) == 0:
+                texts.append(json.loads(line)["text"])
+    clues = [clue_from(rng.choice(texts), rng, words) for _ in range(N_QUERIES)]
+    queries = tmp / f"queries-{n}.json"
+    queries.write_text(json.dumps(clues))
+    results: dict[str, dict[str, Any]] = {}
+    for system in SYSTEMS:
+        folder = tmp / f"{system}-{n}"
+        if system == "rank_bm25":
+            few = 30 if n <= 100_000 else 5
+            if n > 200_000:
+                results[system] = {"skipped": "too slow and too large at this size"}
+                continue
+            (tmp / f"few-{n}.json").write_text(json.dumps(clues[:few]))
+            res = _spawn(
+                ["--work", "query", system, str(corpus), str(folder), str(tmp / f"few-{n}.json")]
+            )
+        else:
+            res = _spawn(["--work", "build", system, str(corpus), str(folder)])
+            res.update(_spawn(["--work", "query", system, str(corpus), str(folder), str(queries)]))
+        results[system] = res
+        shown = {k: round(v, 4) if isinstance(v, float) else v for k, v in res.items()}
+        print(
+            f"  {n:>8} {system:<12} {json.dumps(shown)}",
+            flush=True,
+        )
+    return results
+
+
+def _fmt(v: Any, digits: int = 2) -> str:
+    return "-" if v is None else f"{v:.{digits}f}"
+
+
+def table(all_results: dict[int, dict[str, dict[str, Any]]]) -> str:
+    """Markdown table of every measurement plus hunchwise / best-bm25s ratios."""
+    cols = [
+        "build_s",
+        "size_mib",
+        "build_rss_mib",
+        "import_s",
+        "load_s",
+        "first_query_s",
+        "p50_ms",
+        "p95_ms",
+        "batch_qps",
+        "query_rss_mib",
+    ]
+    lines = ["| articles | system | " + " | ".join(cols) + " |", "|---|---|" + "---|" * len(cols)]
+    for n, res in all_results.items():
+        for system, r in res.items():
+            if "skipped" in r:
+                lines.append(f"| {n} | {system} | " + " | ".join("-" for _ in cols) + " |")
+                continue
+            lines.append(
+                f"| {n} | {system} | "
+                + " | ".join(
+                    _fmt(r.get(c), 3 if c.endswith("_s") or c.endswith("_ms") else 1) for c in cols
+                )
+                + " |"
+            )
+    lines += [
+        "",
+        "| articles | ratio (hunchwise / peer) | build_s vs bm25s (target <= 0.5) | "
+        "p50 vs fastest bm25s (<= 1) | batch_qps vs fastest (>= 1) | build RSS vs bm25s (<= 1) |",
+        "|---|---|---|---|---|---|",
+    ]
+    for n, res in all_results.items():
+        hw = res["hunchwise"]
+        peers = [res[s] for s in ("bm25s-numpy", "bm25s-numba") if "p50_ms" in res.get(s, {})]
+        fastest = min(peers, key=lambda r: r["p50_ms"])
+        name = next(s for s in ("bm25s-numpy", "bm25s-numba") if res.get(s) is fastest)
+        best_batch = max(p["batch_qps"] for p in peers)
+        best_build = min(p["build_s"] for p in peers)
+        min_rss = min(p["build_rss_mib"] for p in peers)
+        lines.append(
+            f"| {n} | fastest single query: {name} | {hw['build_s'] / best_build:.2f} | "
+            f"{hw['p50_ms'] / fastest['p50_ms']:.2f} | {hw['batch_qps'] / best_batch:.2f} | "
+            f"{hw['build_rss_mib'] / min_rss:.2f} |"
+        )
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the benchmark (or, with --work, one measurement in this process)."""
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--sizes", default="10000,100000")
+    p.add_argument("--out", type=Path, help="also write the markdown table here")
+    p.add_argument("--work", nargs="+", help=argparse.SUPPRESS)
+    args = p.parse_args(argv)
+    if args.work:
+        kind, system, corpus, folder, *rest = args.work
+        if kind == "build":
+            res = work_build(system, Path(corpus), Path(folder))
+        else:
+            res = work_query(
+                system, Path(corpus), Path(folder), json.loads(Path(rest[0]).read_text())
+            )
+        print(json.dumps(res))
+        return 0
+    words = foldoc_words()
+    results: dict[int, dict[str, dict[str, Any]]] = {}
+    with tempfile.TemporaryDirectory(prefix="hw-bench-") as tmp:
+        for n in (int(s) for s in args.sizes.split(",")):
+            results[n] = run_size(n, Path(tmp), words)
+    md = table(results)
+    print(md)
+    if args.out:
+        args.out.write_text(md + "\n")
+    return 0
+
+
+if __name__ == "__main__":
+    os.environ.setdefault("TQDM_DISABLE", "1")
+    sys.exit(main())

@@ -1,0 +1,275 @@
+"""Load benchmark of `hunchwise serve`: POST /v1/rank on a 100k-article index, loopback only.
+
+Not a test: it prints a table. For 1 and 2 workers it measures
+  * closed-loop throughput: C connections sending back to back (Debian's `wrk` when
+    installed, else an asyncio httpx client), requests/s and latency percentiles;
+  * open-loop latency at a fixed rate (default 300 req/s, the target): requests are sent on a
+    schedule and latency counts from the scheduled time, so a stall is not hidden
+    (coordinated omission);
+  * the server's resident memory (parent plus workers, psutil).
+Peer measured in the same run: the library call `rank_clue` in one thread, without HTTP.
+
+    python tests/benchmarks/bench_service.py [--articles 100000] [--work runs/bench-service]
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import json
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import httpx
+import numpy as np
+import psutil
+
+ROOT = Path(__file__).resolve().parents[2]
+HOST = "127.0.0.1"
+LUA = """
+counter = 0
+request = function()
+  counter = counter + 1
+  return wrk.format("POST", "/v1/rank", {["Content-Type"] = "application/json"},
+                    bodies[(counter %% #bodies) + 1])
+end
+done = function(summary, latency, requests)
+  local e = summary.errors
+  io.write(string.format("RESULT %%d %%d %%d %%.1f %%.1f %%.1f %%.1f\\n", summary.requests,
+    summary.duration, e.status + e.connect + e.read + e.write + e.timeout,
+    latency:percentile(50), latency:percentile(95), latency:percentile(99), latency.max))
+end
+bodies = {%s}
+"""
+
+
+def run(cmd: list[str]) -> None:
+    """Run a command from the repo root, failing loudly."""
+    print("$", " ".join(cmd), flush=True)
+    subprocess.run(cmd, cwd=ROOT, check=True)
+
+
+def prepare(work: Path, articles: int) -> tuple[Path, Path, list[str]]:
+    """Corpus, index and model in `work` (reused when already there)."""
+    data, index, model = work / "data", work / "index", work / "model.json"
+    py = [sys.executable, "-m"]
+    if not (data / "articles.jsonl").exists():
+        run([*py, "corpus_demo.generate", "--articles", str(articles), "--questions", "2000",
+             "--out", str(data), "--no-progress"])
+    if not (index / "manifest.json").exists():
+        run([*py, "api.cli", "index", "build", str(data / "articles.jsonl"), "--out", str(index),
+             "--json"])
+    if not model.exists():
+        run([*py, "api.cli", "train", "--index", str(index), "--log",
+             str(data / "questions_train.jsonl"), "--out", str(model)])
+    lines = (data / "questions_test.jsonl").read_text(encoding="utf-8").splitlines()
+    return index, model, [json.loads(x)["clue"] for x in lines if x.strip()]
+
+
+def library_peer(index: Path, model: Path, clues: list[str], seconds: float) -> float:
+    """Clues ranked per second by rank_clue itself, one thread, no HTTP."""
+    from reranker import load_model, rank_clue
+    from retriever import load_index
+
+    idx = load_index(index)
+    m = load_model(model, index=idx)
+    for c in clues[:20]:
+        rank_clue(idx, m, c, k=20, include_features=True)
+    n, start = 0, time.perf_counter()
+    while time.perf_counter() - start < seconds:
+        rank_clue(idx, m, clues[n % len(clues)], k=20, include_features=True)
+        n += 1
+    return n / (time.perf_counter() - start)
+
+
+def free_port() -> int:
+    """An unused loopback port."""
+    with socket.socket() as s:
+        s.bind((HOST, 0))
+        return int(s.getsockname()[1])
+
+
+def start_server(index: Path, model: Path, workers: int, logs: Path) -> tuple[subprocess.Popen[bytes], str]:
+    """`hunchwise serve` with `workers` workers; returns once every worker has answered."""
+    port = free_port()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("HUNCHWISE_")}
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "api.cli", "serve", "--index", str(index), "--model", str(model),
+         "--host", HOST, "--port", str(port), "--workers", str(workers), "--log-dir", str(logs)],
+        cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+        start_new_session=True)
+    url = f"http://{HOST}:{port}"
+    pids: set[int] = set()
+    deadline = time.monotonic() + 180
+    while len(pids) < workers:
+        if proc.poll() is not None or time.monotonic() > deadline:
+            raise RuntimeError(f"server with {workers} workers did not start")
+        try:
+            with httpx.Client(base_url=url, timeout=5) as c:
+                if c.get("/readyz").status_code == 200:
+                    pids.add(c.get("/v1/info").json()["worker_pid"])
+        except httpx.TransportError:
+            time.sleep(0.2)
+    return proc, url
+
+
+def stop_server(proc: subprocess.Popen[bytes]) -> None:
+    """SIGINT, as an operator would; kill only if it hangs."""
+    proc.send_signal(signal.SIGINT)
+    try:
+        proc.wait(timeout=30)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait()
+
+
+def memory_mib(proc: subprocess.Popen[bytes]) -> tuple[float, float, float]:
+    """Server memory, MiB: RSS of parent + workers, PSS of the same (shared pages split), and
+    the largest worker's RSS (0 with one worker: then the parent serves)."""
+    parent = psutil.Process(proc.pid)
+    procs = [parent] + [p for p in parent.children(recursive=True)
+                        if "resource_tracker" not in " ".join(p.cmdline())]
+    info = [p.memory_full_info() for p in procs]
+    rss = sum(i.rss for i in info)
+    pss = sum(getattr(i, "pss", i.rss) for i in info)
+    worker = max((i.rss for i in info[1:]), default=0)
+    return rss / 2**20, pss / 2**20, worker / 2**20
+
+
+def bodies(clues: list[str]) -> list[str]:
+    """Request bodies: the held-out clues, k=20."""
+    return [json.dumps({"clue": c, "k": 20}) for c in clues]
+
+
+def wrk_load(url: str, clues: list[str], conns: int, seconds: float, work: Path) -> dict[str, float]:
+    """Closed loop with wrk (C, cheap on the shared CPU)."""
+    script = work / "rank.lua"
+    script.write_text(LUA % ",\n".join(json.dumps(b) for b in bodies(clues)), encoding="utf-8")
+    out = subprocess.run(["wrk", "-t1", f"-c{conns}", f"-d{max(1, round(seconds))}s", "-s", str(script), url],
+                         capture_output=True, text=True, check=True).stdout
+    line = next(x for x in out.splitlines() if x.startswith("RESULT"))
+    n, dur_us, errors, p50, p95, p99, mx = (float(v) for v in line.split()[1:])
+    return {"rps": n / (dur_us / 1e6), "p50": p50 / 1e3, "p95": p95 / 1e3, "p99": p99 / 1e3,
+            "max": mx / 1e3, "errors": errors, "n": n}
+
+
+async def _closed(url: str, payloads: list[str], conns: int, seconds: float) -> dict[str, float]:
+    lat: list[float] = []
+    errors = 0
+    stop_at = time.perf_counter() + seconds
+
+    async def one(i: int) -> None:
+        nonlocal errors
+        async with httpx.AsyncClient(base_url=url, timeout=30) as c:
+            n = i
+            while time.perf_counter() < stop_at:
+                t = time.perf_counter()
+                r = await c.post("/v1/rank", content=payloads[n % len(payloads)],
+                                 headers={"Content-Type": "application/json"})
+                lat.append(time.perf_counter() - t)
+                errors += r.status_code != 200
+                n += conns
+
+    start = time.perf_counter()
+    await asyncio.gather(*[one(i) for i in range(conns)])
+    return _summary(lat, errors, time.perf_counter() - start)
+
+
+async def _open(url: str, payloads: list[str], rate: float, seconds: float) -> dict[str, float]:
+    lat: list[float] = []
+    errors = 0
+    limits = httpx.Limits(max_connections=256, max_keepalive_connections=256)
+    async with httpx.AsyncClient(base_url=url, timeout=30, limits=limits) as c:
+
+        async def one(i: int, due: float) -> None:
+            nonlocal errors
+            r = await c.post("/v1/rank", content=payloads[i % len(payloads)],
+                             headers={"Content-Type": "application/json"})
+            lat.append(time.perf_counter() - due)  # from the schedule: stalls count
+            errors += r.status_code != 200
+
+        # Tasks are created on schedule, so only the requests in flight exist at any time.
+        tasks = []
+        start = time.perf_counter()
+        for i in range(int(rate * seconds)):
+            due = start + i / rate
+            delay = due - time.perf_counter()
+            if delay > 0:
+                await asyncio.sleep(delay)
+            tasks.append(asyncio.create_task(one(i, due)))
+        await asyncio.gather(*tasks)
+        return _summary(lat, errors, time.perf_counter() - start)
+
+
+def _summary(lat: list[float], errors: int, seconds: float) -> dict[str, float]:
+    a = np.asarray(lat) * 1e3
+    return {"rps": len(a) / seconds, "p50": float(np.percentile(a, 50)),
+            "p95": float(np.percentile(a, 95)), "p99": float(np.percentile(a, 99)),
+            "max": float(a.max()), "errors": float(errors), "n": float(len(a))}
+
+
+def main() -> int:
+    """Run the benchmark and print the table."""
+    p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
+    p.add_argument("--articles", type=int, default=100_000)
+    p.add_argument("--work", type=Path, default=ROOT / "runs" / "bench-service",
+                   help="folder for corpus, index and model (kept and reused)")
+    p.add_argument("--workers", default="1,2", help="worker counts to measure (default 1,2)")
+    p.add_argument("--connections", type=int, default=8, help="closed-loop connections (default 8)")
+    p.add_argument("--seconds", type=float, default=15, help="length of each load run")
+    p.add_argument("--rate", type=float, default=300, help="open-loop rate, req/s (default 300)")
+    p.add_argument("--tool", choices=["auto", "wrk", "httpx"], default="auto")
+    args = p.parse_args()
+    work = args.work.resolve()
+    work.mkdir(parents=True, exist_ok=True)
+    index, model, clues = prepare(work, args.articles)
+    tool = "wrk" if args.tool == "wrk" or (args.tool == "auto" and shutil.which("wrk")) else "httpx"
+    peer = library_peer(index, model, clues, 5)
+    print(f"\npeer: rank_clue in one thread, no HTTP: {peer:.0f} clues/s "
+          f"({1e3 / peer:.2f} ms each)\n", flush=True)
+    payloads = bodies(clues)
+    rows: list[dict[str, Any]] = []
+    for workers in [int(w) for w in args.workers.split(",")]:
+        logs = Path(tempfile.mkdtemp(prefix="bench-logs-", dir=work))
+        proc, url = start_server(index, model, workers, logs)
+        try:
+            with httpx.Client(base_url=url, timeout=30) as c:  # warm up every worker's caches
+                for b in payloads[:100]:
+                    c.post("/v1/rank", content=b, headers={"Content-Type": "application/json"})
+            if tool == "wrk":
+                closed = wrk_load(url, clues, args.connections, args.seconds, work)
+            else:
+                closed = asyncio.run(_closed(url, payloads, args.connections, args.seconds))
+            rows.append({"workers": workers, "mode": f"closed, {args.connections} conns ({tool})",
+                         **closed, "mem": memory_mib(proc)})
+            opened = asyncio.run(_open(url, payloads, args.rate, args.seconds))
+            rows.append({"workers": workers, "mode": f"open, {args.rate:.0f} req/s (httpx)",
+                         **opened, "mem": memory_mib(proc)})
+        finally:
+            stop_server(proc)
+            shutil.rmtree(logs, ignore_errors=True)
+    print(f"\nPOST /v1/rank, k=20, model loaded, {args.articles} articles, "
+          f"{os.cpu_count()} CPUs shared by server and load generator")
+    head = (f"{'workers':>7}  {'load':<28} {'req/s':>7} {'p50 ms':>7} {'p95 ms':>7} "
+            f"{'p99 ms':>7} {'max ms':>7} {'errors':>6} {'RSS MiB':>8} {'PSS MiB':>8} "
+            f"{'worker RSS':>10} {'vs peer':>7}")
+    print(head)
+    print("-" * len(head))
+    for r in rows:
+        rss, pss, worker = r["mem"]
+        print(f"{r['workers']:>7}  {r['mode']:<28} {r['rps']:>7.0f} {r['p50']:>7.1f} "
+              f"{r['p95']:>7.1f} {r['p99']:>7.1f} {r['max']:>7.1f} {r['errors']:>6.0f} "
+              f"{rss:>8.0f} {pss:>8.0f} {worker or float('nan'):>10.0f} {r['rps'] / peer:>7.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,115 @@
+"""`hunchwise train` and `hunchwise evaluate`, run as real subprocesses on the small world."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tests.reranker.conftest import REPO, World
+
+HERE = Path(__file__).resolve().parent
+
+
+def hunchwise(*args: str | Path) -> subprocess.CompletedProcess[str]:
+    """Run the `hunchwise` entry point (api.cli:main) in a fresh interpreter."""
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(HERE), str(REPO)]))
+    return subprocess.run(
+        [sys.executable, "-m", "api.cli", *map(str, args)],
+        capture_output=True,
+        text=True,
+        env=env,
+        cwd=REPO,
+        timeout=300,
+    )
+
+
+@pytest.mark.slow
+def test_train_then_evaluate(world: World, tmp_path: Path) -> None:
+    model = tmp_path / "model.json"
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log, "--out", model,
+        "--feature", "userfeatures:title_chars", "--reward", "1", "--penalty", "3", "--json",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    summary = json.loads(out.stdout)
+    art = json.loads(model.read_text())
+    assert summary["model_version"] == art["model_version"]
+    assert summary["unresolved_answers"] == world.n_unresolved_train
+    assert "user:title_chars" in art["feature_names"]
+    assert art["decision"]["break_even"] == 0.75
+
+    report = tmp_path / "report"
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", world.test_log, "--model", model,
+        "--report", report, "--feature", "userfeatures:title_chars", "--no-ablation",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    assert "top-1 accuracy" in out.stdout and str(report / "report.html") in out.stdout
+    assert (report / "metrics.json").exists() and (report / "report.html").exists()
+    assert list(report.glob("*.png"))
+    metrics = json.loads((report / "metrics.json").read_text())
+    assert metrics["data"]["model_version"] == art["model_version"]
+
+    # Without the user feature the model cannot load: one-line error naming the feature.
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", world.test_log, "--model", model,
+        "--report", tmp_path / "r2", "--no-ablation",
+    )  # fmt: skip
+    assert out.returncode != 0
+    assert out.stderr.count("\n") == 1 and "user:title_chars" in out.stderr
+
+
+@pytest.mark.slow
+def test_bad_log_line_is_a_one_line_error_and_skip_bad_counts(world: World, tmp_path: Path) -> None:
+    lines = world.train_log.read_text().splitlines()
+    log = tmp_path / "log.jsonl"
+    log.write_text("\n".join([*lines[:10], '{"clue": 3, "answer": "w001"}', *lines[10:]]) + "\n")
+    model = tmp_path / "model.json"
+    out = hunchwise("train", "--index", world.index.path, "--log", log, "--out", model)
+    assert out.returncode != 0
+    assert out.stderr.count("\n") == 1
+    assert out.stderr.startswith("hunchwise: error: ")
+    assert f"{log}, line 11, field 'clue': must be a string" in out.stderr
+    assert not model.exists()
+
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", log, "--out", model, "--skip-bad",
+        "--features", "bm25_score,matched_terms",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    assert any(line.split()[:2] == ["skipped_lines", "1"] for line in out.stdout.splitlines()), (
+        out.stdout
+    )
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", log, "--model", model,
+        "--report", tmp_path / "rep", "--no-ablation", "--skip-bad", "--json",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    assert json.loads(out.stdout)["metrics"]["data"]["skipped_lines"] == 1
+
+
+@pytest.mark.slow
+def test_bad_options_and_missing_files(world: World, tmp_path: Path) -> None:
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", tmp_path / "none.jsonl",
+        "--out", tmp_path / "m.json",
+    )  # fmt: skip
+    assert out.returncode != 0 and "file not found" in out.stderr
+    assert out.stderr.count("\n") == 1
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log,
+        "--out", tmp_path / "m.json", "--prefixes", "0.5,2",
+    )  # fmt: skip
+    assert out.returncode == 2 and "prefix fractions" in out.stderr
+    (tmp_path / "junk.json").write_text("{not json")
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", world.test_log,
+        "--model", tmp_path / "junk.json", "--report", tmp_path / "rep",
+    )  # fmt: skip
+    assert out.returncode != 0 and "not valid JSON" in out.stderr
+    assert out.stderr.count("\n") == 1

@@ -1,0 +1,136 @@
+"""When to answer: break-even thresholds, decide(), committing word by word, tuning."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+
+from reranker import Payoff, decide
+from reranker.decision import ABSTAIN, ANSWER, WAIT, simulate_commits, tune_threshold
+
+
+def test_break_even_worked_example() -> None:
+    # Answering at probability p pays p * reward - (1 - p) * penalty; abstaining pays 0.
+    # Equal when p = penalty / (reward + penalty): reward 1, penalty 3 -> 3/4.
+    assert Payoff(1, 3).break_even == 0.75
+    assert Payoff(1, 1).break_even == 0.5
+    assert Payoff(4, 0).break_even == 0.0  # no penalty: always worth answering
+    p = Payoff(2, 5).break_even
+    assert p * 2 - (1 - p) * 5 == pytest.approx(0.0)
+
+
+@pytest.mark.parametrize(("reward", "penalty"), [(0, 1), (-1, 1), (1, -0.5)])
+def test_payoff_validation(reward: float, penalty: float) -> None:
+    with pytest.raises(ValueError, match="reward > 0 and penalty >= 0"):
+        Payoff(reward, penalty)
+
+
+def test_decide_answer_wait_abstain() -> None:
+    d = decide("a1", 0.8, 0.75)
+    assert (d.action, d.doc_id, d.probability, d.threshold) == (ANSWER, "a1", 0.8, 0.75)
+    assert "0.800 >= threshold 0.750" in d.reason
+    assert decide("a1", 0.75, 0.75).action == ANSWER  # at the threshold, answering breaks even
+    d = decide("a1", 0.6, 0.75)
+    assert (d.action, d.doc_id, d.probability) == (WAIT, None, 0.6)
+    assert "0.600 < threshold 0.750" in d.reason
+    assert decide("a1", 0.6, 0.75, complete=True).action == ABSTAIN
+    assert decide("a1", 0.9, 0.75, complete=True).action == ANSWER
+    d = decide(None, None, 0.5)
+    assert d.action == WAIT and "no candidates" in d.reason
+    assert decide(None, None, 0.5, complete=True).action == ABSTAIN
+    d = decide("a1", None, 0.5)
+    assert d.action == WAIT and d.doc_id is None and "BM25 only" in d.reason
+
+
+# Three clues, one row per prefix: (clue, fraction revealed, top probability, top is right).
+#   clue 7: 0.2 -> 0.3 wrong, 0.6 -> 0.8 right, 1.0 -> 0.9 right
+#   clue 3: 0.5 -> 0.9 wrong, 1.0 -> 0.95 right
+#   clue 5: 0.5 -> 0.1 wrong, 1.0 -> 0.2 wrong
+ROWS = [
+    (7, 0.2, 0.3, 0),
+    (7, 0.6, 0.8, 1),
+    (7, 1.0, 0.9, 1),
+    (3, 0.5, 0.9, 0),
+    (3, 1.0, 0.95, 1),
+    (5, 0.5, 0.1, 0),
+    (5, 1.0, 0.2, 0),
+]
+
+
+def _arrays(
+    rows: list[tuple[int, float, float, int]],
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    c, f, p, r = zip(*rows, strict=True)
+    return np.array(c), np.array(f), np.array(p), np.array(r, dtype=bool)
+
+
+def test_simulate_commits_by_hand() -> None:
+    # Threshold 0.75, payoff +1 / -1:
+    #   clue 7 commits at 0.6 (p 0.8 >= 0.75), right: +1
+    #   clue 3 commits at 0.5 (p 0.9), wrong: -1
+    #   clue 5 never clears 0.75: 0
+    # mean payoff 0/3; commit rate 2/3; accuracy 1/2; mean fraction at commit (0.6 + 0.5) / 2.
+    # On the full clue only: clue 7 (0.9, right) +1, clue 3 (0.95, right) +1, clue 5 0 -> 2/3.
+    rows = list(ROWS)
+    np.random.default_rng(0).shuffle(rows)  # input order must not matter
+    res = simulate_commits(*_arrays(rows), threshold=0.75, payoff=Payoff(1, 1))
+    assert res["mean_payoff"] == pytest.approx(0.0)
+    assert res["commit_rate"] == pytest.approx(2 / 3)
+    assert res["accuracy_when_committed"] == pytest.approx(0.5)
+    assert res["mean_fraction_at_commit"] == pytest.approx(0.55)
+    assert res["full_clue_mean_payoff"] == pytest.approx(2 / 3)
+    assert res["full_clue_commit_rate"] == pytest.approx(2 / 3)
+    assert res["n_clues"] == 3 and res["threshold"] == 0.75
+    # With penalty 3 the wrong early commit of clue 3 costs 3: (1 - 3 + 0) / 3.
+    res = simulate_commits(*_arrays(ROWS), threshold=0.75, payoff=Payoff(1, 3))
+    assert res["mean_payoff"] == pytest.approx(-2 / 3)
+
+
+def test_simulate_commits_when_nothing_clears() -> None:
+    res = simulate_commits(*_arrays(ROWS), threshold=0.99, payoff=Payoff())
+    assert res["mean_payoff"] == 0 and res["commit_rate"] == 0
+    assert res["mean_fraction_at_commit"] == 1.0 and res["accuracy_when_committed"] == 0.0
+    with pytest.raises(ValueError, match="at least one"):
+        empty = np.array([])
+        simulate_commits(empty, empty, empty, empty, 0.5, Payoff())
+
+
+def _brute_force_payoff(rows: list[tuple[int, float, float, int]], t: float, pay: Payoff) -> float:
+    """Mean payoff by walking each clue's prefixes in order (the definition, written plainly)."""
+    total = 0.0
+    clues = sorted({r[0] for r in rows})
+    for c in clues:
+        for _, _, p, right in sorted((r for r in rows if r[0] == c), key=lambda r: r[1]):
+            if p >= t:
+                total += pay.reward if right else -pay.penalty
+                break
+    return total / len(clues)
+
+
+def test_tune_threshold_by_hand() -> None:
+    # grid 0.5: clue 7 +1 (at 0.6), clue 3 -1 (at 0.5)            -> 0
+    #      0.85: clue 7 +1 (at 1.0, p 0.9), clue 3 -1 (at 0.5)     -> 0
+    #      0.92: clue 7 never, clue 3 +1 (at 1.0, p 0.95)          -> 1/3
+    #      0.97: nobody commits                                    -> 0
+    grid = np.array([0.5, 0.85, 0.92, 0.97])
+    best = tune_threshold(*_arrays(ROWS), payoff=Payoff(1, 1), grid=grid)
+    assert best["threshold"] == 0.92
+    assert best["mean_payoff"] == pytest.approx(1 / 3)
+    for t in grid:
+        got = simulate_commits(*_arrays(ROWS), float(t), Payoff(1, 1))["mean_payoff"]
+        assert got == pytest.approx(_brute_force_payoff(ROWS, float(t), Payoff(1, 1)))
+
+
+def test_tune_threshold_matches_brute_force_on_random_prefixes() -> None:
+    rng = np.random.default_rng(4)
+    rows = []
+    for c, k in itertools.product(range(40), range(4)):
+        rows.append((c, (k + 1) / 4, float(rng.random()), int(rng.random() < 0.6)))
+    pay = Payoff(1, 2)
+    grid = np.linspace(0.05, 0.99, 95)
+    best = tune_threshold(*_arrays(rows), payoff=pay, grid=grid)
+    brute = [_brute_force_payoff(rows, float(t), pay) for t in grid]
+    assert best["mean_payoff"] == pytest.approx(max(brute))
+    assert best["threshold"] == pytest.approx(grid[int(np.argmax(brute))])

@@ -1,0 +1,120 @@
+"""The index and search commands, run as the real console script and through api.cli.main."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from api.cli import main
+from retriever import build_index, load_index
+
+from .helpers import write_jsonl
+
+EXE = shutil.which("hunchwise")
+
+
+def run(*args: str) -> subprocess.CompletedProcess[str]:
+    """Run the installed `hunchwise` script."""
+    assert EXE is not None, "the hunchwise console script is not installed (pip install -e .)"
+    return subprocess.run([EXE, *args], capture_output=True, text=True, timeout=120)
+
+
+@pytest.mark.slow
+def test_build_info_search_add_remove(tmp_path: Path, small_records: list[dict[str, Any]]) -> None:
+    corpus = write_jsonl(tmp_path / "c.jsonl", small_records)
+    out = tmp_path / "idx"
+    res = run("index", "build", str(corpus), "--out", str(out), "--title-weight", "0.5")
+    assert res.returncode == 0, res.stderr
+    summary = res.stdout.strip()
+    assert "5 articles" in summary and "terms" in summary and "1 unresolved links" in summary
+    assert " s, " in summary and "on disk" in summary
+    info = run("index", "info", str(out), "--json")
+    assert json.loads(info.stdout)["bm25"]["title_weight"] == 0.5
+    assert "articles" in run("index", "info", str(out)).stdout
+    hits = json.loads(
+        run("search", str(out), "reed baskets from the marsh", "-k", "2", "--json").stdout
+    )
+    assert len(hits) == 2 and hits[0]["id"] == "m5" and hits[0]["rank"] == 1
+    table = run("search", str(out), "reed basket")
+    assert table.returncode == 0 and "Reed basket" in table.stdout
+    none = run("search", str(out), "zzzz qqqq")
+    assert none.returncode == 0 and "no candidates" in none.stdout
+    more = write_jsonl(
+        tmp_path / "more.jsonl", [{"id": "m6", "title": "Heron", "text": "A tall bird."}]
+    )
+    added = run("index", "add", str(out), str(more), "--json")
+    assert added.returncode == 0 and json.loads(added.stdout)["articles"] == 6
+    removed = run("index", "remove", str(out), "m6", "m1")
+    assert removed.returncode == 0 and "4 articles" in removed.stdout
+    assert sorted(load_index(out).ids) == ["m2", "m3", "m4", "m5"]
+
+
+@pytest.mark.parametrize(
+    ("args", "needle"),
+    [
+        (["search", "{missing}", "x"], "no such index folder"),
+        (["index", "info", "{empty}"], "not a hunchwise index"),
+        (["index", "build", "{bad}", "--out", "{out}"], "line 2"),
+        (["index", "remove", "{out}", "nope"], "unknown article ids"),
+        (["search", "{out}", "x", "-k", "0"], "-k must be at least 1"),
+    ],
+)
+def test_errors_are_one_line_and_non_zero(
+    tmp_path: Path, small_records: list[dict[str, Any]], args: list[str], needle: str
+) -> None:
+    out = tmp_path / "idx"
+    build_index(small_records, out)
+    (tmp_path / "empty").mkdir()
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text('{"id": "a", "title": "A", "text": "x"}\n{"id": "b", "text": "y"}\n')
+    paths = {"missing": tmp_path / "none", "empty": tmp_path / "empty", "bad": bad, "out": out}
+    res = run(*[a.format(**{k: str(v) for k, v in paths.items()}) for a in args])
+    assert res.returncode != 0
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and needle in lines[0] and "Traceback" not in res.stderr
+    assert load_index(out).n_docs == 5
+
+
+def test_skip_bad_via_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    bad = tmp_path / "bad.jsonl"
+    bad.write_text(
+        '{"id": "a", "title": "A", "text": "river song"}\n{broken\n{"id": "b", "title": "B"}\n'
+    )
+    out = tmp_path / "idx"
+    assert main(["index", "build", str(bad), "--out", str(out)]) != 0
+    assert "line 2" in capsys.readouterr().err and not out.exists()
+    assert main(["index", "build", str(bad), "--out", str(out), "--skip-bad", "--json"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["articles"] == 1 and summary["skipped_lines"] == 2
+    assert "line 2" in summary["problems"][0] and "line 3" in summary["problems"][1]
+    assert main(["search", str(out), "river song", "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)[0]["id"] == "a"
+
+
+def test_damaged_index_is_reported_by_main(
+    tmp_path: Path, small_records: list[dict[str, Any]], capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "idx"
+    assert (
+        main(
+            [
+                "index",
+                "build",
+                str(write_jsonl(tmp_path / "c.jsonl", small_records)),
+                "--out",
+                str(out),
+                "--json",
+            ]
+        )
+        == 0
+    )
+    capsys.readouterr()
+    (out / "body_docs.npy").unlink()
+    assert main(["search", str(out), "reed"]) != 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "body_docs.npy is missing" in err[0]
