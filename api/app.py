@@ -14,7 +14,7 @@ from . import routes, schemas
 from .deps import Runtime
 from .handlers import BodyLimitMiddleware, SafeJSONResponse, install_handlers
 from .metrics import Metrics, MetricsMiddleware
-from .settings import ServiceSettings
+from .settings import ServiceSettings, settings_from_env
 
 DESCRIPTION = """\
 Rank the articles of your own encyclopedia-style corpus for a free-text clue: BM25
@@ -116,4 +116,4 @@ def _document_limits(app: FastAPI, settings: ServiceSettings) -> None:
 
 def app_from_env() -> FastAPI:
     """Factory for uvicorn workers: settings come from the HUNCHWISE_* environment."""
-    return create_app(ServiceSettings())  # type: ignore[call-arg]
+    return create_app(settings_from_env())

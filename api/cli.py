@@ -6,25 +6,12 @@ import argparse
 import sys
 from collections.abc import Callable, Sequence
 
-from reranker.errors import RerankerError
-from retriever.errors import RetrieverError
-
-from . import cli_index
+from . import cli_demo, cli_index, cli_model, cli_serve
 from .console import fail
 
-# Each module adds its sub-commands; a sub-command stores its handler as `func`.
-COMMAND_MODULES = [cli_index]
-
-
-def _optional_modules() -> list[object]:
-    mods: list[object] = []
-    for name in ("cli_model", "cli_serve", "cli_demo"):
-        try:
-            mods.append(__import__(f"api.{name}", fromlist=["register"]))
-        except ModuleNotFoundError as exc:
-            if exc.name != f"api.{name}":
-                raise
-    return mods
+# Each module adds its sub-commands; a sub-command stores its handler as `func`. The modules
+# import the heavy libraries inside their handlers, so `hunchwise --help` answers at once.
+COMMAND_MODULES = [cli_index, cli_model, cli_serve, cli_demo]
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -35,8 +22,8 @@ def build_parser() -> argparse.ArgumentParser:
         "calibrated probabilities, and a JSON service.",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
-    for mod in [*COMMAND_MODULES, *_optional_modules()]:
-        mod.register(sub)  # type: ignore[attr-defined]
+    for mod in COMMAND_MODULES:
+        mod.register(sub)
     return parser
 
 
@@ -47,10 +34,15 @@ def main(argv: Sequence[str] | None = None) -> int:
     func: Callable[[argparse.Namespace], int] = args.func
     try:
         return func(args)
-    except (RetrieverError, RerankerError, ValueError, OSError) as exc:
-        return fail(str(exc))
     except KeyboardInterrupt:
         return fail("interrupted", 130)
+    except Exception as exc:
+        from reranker.errors import RerankerError
+        from retriever.errors import RetrieverError
+
+        if isinstance(exc, RetrieverError | RerankerError | ValueError | OSError):
+            return fail(str(exc))
+        raise
 
 
 if __name__ == "__main__":

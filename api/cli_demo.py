@@ -5,39 +5,59 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from .demo import prepare, run_demo, serve_and_ask
 
-
-def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def register(sub: argparse._SubParsersAction) -> None:
     """Add the demo sub-command."""
     p = sub.add_parser(
         "demo",
         help="index the demo corpus, train, evaluate, then serve it and send a sample clue",
-        description="Runs the main job end to end on the invented corpus in corpus_demo/: builds the "
+        description="Runs the main job end to end on the invented corpus in corpus_demo/: "
+        "builds the "
         "BM25 index, trains the reranker on the training clues, evaluates it on held-out clues "
         "(report with ablation and calibration), then starts the service on 127.0.0.1 and shows "
         "one request and its response.",
     )
-    p.add_argument("--out", type=Path, default=Path("hunchwise-demo"),
-                   help="folder for the index, model, report and served log (default ./hunchwise-demo)")
+    p.add_argument(
+        "--out",
+        type=Path,
+        default=Path("hunchwise-demo"),
+        help="folder for the index, model, report and served log (default ./hunchwise-demo)",
+    )
     p.add_argument("--no-serve", action="store_true", help="stop after the evaluation report")
-    p.add_argument("--port", type=int, default=8000, help="port for the service (default 8000; 0: any free)")
-    p.add_argument("--articles", type=int, default=None,
-                   help="generate a fresh corpus of this many articles instead of the committed one")
+    p.add_argument(
+        "--port", type=int, default=8000, help="port for the service (default 8000; 0: any free)"
+    )
+    p.add_argument(
+        "--articles",
+        type=int,
+        default=None,
+        help="generate a fresh corpus of this many articles instead of the committed one",
+    )
     p.add_argument("--no-ablation", action="store_true", help="skip the feature ablation (faster)")
     p.set_defaults(func=cmd_demo)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Run the demo and say what to try next."""
+    from .demo import prepare, run_demo, serve_and_ask
+
     run = run_demo(args.out, articles=args.articles, ablation=not args.no_ablation)
     print()
     print(run.summary)
     print(f"\neverything is in {run.out}:")
-    print(f"  index   {run.index}\n  model   {run.model}\n  report  {run.report}  (open it in a browser)")
+    print(
+        f"  index   {run.index}\n  model   {run.model}\n"
+        f"  report  {run.report}  (open it in a browser)"
+    )
     if args.no_serve:
-        print(f"\nnext: hunchwise serve --index {run.index} --model {run.model} --log-dir {run.out / 'logs'}")
+        print(
+            f"\nnext: hunchwise serve --index {run.index} --model {run.model} "
+            f"--log-dir {run.out / 'logs'}"
+        )
         return 0
-    serve_and_ask(run, prepare(run.out, articles=None) if args.articles is None else run.out / "data",
-                  port=args.port)
+    serve_and_ask(
+        run,
+        prepare(run.out, articles=None) if args.articles is None else run.out / "data",
+        port=args.port,
+    )
     return 0

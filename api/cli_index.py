@@ -6,15 +6,15 @@ import argparse
 import sys
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from retriever import ReadReport, build_index, load_index, update_index
-from retriever.store import folder_size
+if TYPE_CHECKING:
+    from retriever import ReadReport
 
 from .console import format_table, human_bytes, print_json
 
 
-def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg,unused-ignore]
+def register(sub: argparse._SubParsersAction) -> None:
     """Add the index and search sub-commands."""
     index = sub.add_parser("index", help="build, inspect and update a BM25 index folder")
     isub = index.add_subparsers(dest="index_command", metavar="ACTION", required=True)
@@ -101,6 +101,9 @@ def _show_progress(args: argparse.Namespace) -> bool:
 
 
 def _summary(index_dir: Path, seconds: float, report: ReadReport) -> dict[str, Any]:
+    from retriever import load_index
+    from retriever.store import folder_size
+
     idx = load_index(index_dir)
     counts, build = idx.manifest["counts"], idx.manifest["build"]
     return {
@@ -133,6 +136,8 @@ def _print_summary(s: dict[str, Any], as_json: bool) -> None:
 
 def cmd_build(args: argparse.Namespace) -> int:
     """Build an index folder from a corpus file."""
+    from retriever import ReadReport, build_index
+
     started = time.perf_counter()
     report = ReadReport()
     build_index(
@@ -156,6 +161,9 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 def cmd_info(args: argparse.Namespace) -> int:
     """Print an index's manifest."""
+    from retriever import load_index
+    from retriever.store import folder_size
+
     idx = load_index(args.index)
     if args.json:
         print_json(idx.manifest)
@@ -180,6 +188,8 @@ def cmd_info(args: argparse.Namespace) -> int:
 
 def cmd_add(args: argparse.Namespace) -> int:
     """Add or replace articles."""
+    from retriever import ReadReport, update_index
+
     started = time.perf_counter()
     report = ReadReport()
     update_index(
@@ -195,6 +205,8 @@ def cmd_add(args: argparse.Namespace) -> int:
 
 def cmd_remove(args: argparse.Namespace) -> int:
     """Remove articles by id."""
+    from retriever import ReadReport, update_index
+
     started = time.perf_counter()
     report = ReadReport()
     update_index(args.index, remove=args.ids, report=report)
@@ -204,6 +216,8 @@ def cmd_remove(args: argparse.Namespace) -> int:
 
 def cmd_search(args: argparse.Namespace) -> int:
     """Print BM25 candidates for one clue."""
+    from retriever import load_index
+
     if args.k < 1:
         raise ValueError("-k must be at least 1")
     idx = load_index(args.index)

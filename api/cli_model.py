@@ -4,10 +4,10 @@ from __future__ import annotations
 
 import argparse
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from reranker import Payoff, PrefixPlan, load_model, train
-from reranker.evaluate import evaluate
-from retriever import load_index
+if TYPE_CHECKING:
+    from reranker import Payoff
 
 from .console import format_table, print_json
 
@@ -64,7 +64,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--prefixes",
         type=_fractions,
-        default=PrefixPlan().fractions,
+        default=None,
         metavar="F,F,...",
         help="shares of each clue's words that become examples (default 0.2,0.4,0.6,0.8,1)",
     )
@@ -112,6 +112,8 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _payoff(args: argparse.Namespace) -> Payoff | None:
+    from reranker import Payoff
+
     if args.reward is None and args.penalty is None:
         return None
     return Payoff(
@@ -122,6 +124,9 @@ def _payoff(args: argparse.Namespace) -> Payoff | None:
 
 def cmd_train(args: argparse.Namespace) -> int:
     """Train and save a model; print its headline numbers."""
+    from reranker import PrefixPlan, train
+    from retriever import load_index
+
     index = load_index(args.index)
     features = [f.strip() for f in args.features.split(",") if f.strip()] if args.features else None
     res = train(
@@ -129,7 +134,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         args.log,
         args.out,
         k=args.k or 20,
-        plan=PrefixPlan(args.prefixes, args.every_words),
+        plan=PrefixPlan(args.prefixes or PrefixPlan().fractions, args.every_words),
         features=features,
         user_features=args.feature,
         metadata_features=args.meta_feature,
@@ -164,6 +169,10 @@ def cmd_train(args: argparse.Namespace) -> int:
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
     """Evaluate a model and write the report folder."""
+    from reranker import load_model
+    from reranker.evaluate import evaluate
+    from retriever import load_index
+
     index = load_index(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
     ev = evaluate(

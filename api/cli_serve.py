@@ -11,12 +11,13 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import gc
+import multiprocessing
 import os
 import secrets
 import shutil
 import tempfile
 from collections.abc import Iterator
+from multiprocessing.connection import Connection
 from pathlib import Path
 
 ENV_PREFIX = "HUNCHWISE_"
@@ -93,31 +94,53 @@ def _state_folder(given: Path | None) -> Iterator[Path]:
         shutil.rmtree(folder, ignore_errors=True)
 
 
-def _check(args: argparse.Namespace) -> None:
-    """Fail fast, in the parent, on anything a worker would fail on at startup."""
-    from .settings import ServiceSettings
+def _check_files() -> str:
+    """Load the index, model and token as a worker will; return a one-line summary."""
+    from .settings import settings_from_env
     from .state import load_pair
 
+    settings = settings_from_env()
+    settings.resolved_admin_token()
+    index, model = load_pair(settings)
+    what = f"model {model.version}" if model is not None else "no model: BM25 order only"
+    return f"serving index {index.version} ({index.n_docs} articles), {what}"
+
+
+def _check_child(conn: Connection) -> None:
+    from reranker import RerankerError
+    from retriever import RetrieverError
+
+    try:
+        conn.send(("ok", _check_files()))
+    except (RetrieverError, RerankerError, ValueError, OSError) as exc:
+        conn.send(("error", str(exc)))
+    finally:
+        conn.close()
+
+
+def _check(args: argparse.Namespace) -> None:
+    """Fail fast, in the parent, on anything a worker would fail on at startup.
+
+    The loading happens in a forked child: the parent only supervises workers, and memory
+    it had used for a whole index would stay with it (CPython keeps freed arenas).
+    """
     if args.workers < 1:
         raise ValueError("--workers must be at least 1")
     if not 0 <= args.port <= 65535:
         raise ValueError("--port must be between 0 and 65535")
-    from reranker import RerankerError
-
-    settings = ServiceSettings()  # type: ignore[call-arg]
-    settings.resolved_admin_token()
+    ctx = multiprocessing.get_context("fork")
+    receiver, sender = ctx.Pipe(duplex=False)
+    child = ctx.Process(target=_check_child, args=(sender,), name="hunchwise-check")
+    child.start()
+    sender.close()
     try:
-        index, model = load_pair(settings)
-    except RerankerError as exc:  # the CLI's error printer knows ValueError, not RerankerError
-        raise ValueError(str(exc)) from exc
-    print(
-        f"serving index {index.version} ({index.n_docs} articles), "
-        + (f"model {model.version}" if model is not None else "no model: BM25 order only")
-        + f", {args.workers} worker(s) on http://{args.host}:{args.port}",
-        flush=True,
-    )
-    del index, model
-    gc.collect()
+        status, message = receiver.recv()
+    except EOFError:
+        status, message = "error", f"checking the index and model failed (exit {child.exitcode})"
+    child.join()
+    if status != "ok":
+        raise ValueError(message)
+    print(f"{message}, {args.workers} worker(s) on http://{args.host}:{args.port}", flush=True)
 
 
 def cmd_serve(args: argparse.Namespace) -> int:

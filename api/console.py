@@ -17,10 +17,16 @@ def format_table(headers: Sequence[str], rows: Sequence[Sequence[Any]]) -> str:
     """A plain aligned text table; numbers are right-aligned."""
     cells = [[_fmt(v) for v in row] for row in rows]
     widths = [max([len(h)] + [len(r[i]) for r in cells]) for i, h in enumerate(headers)]
-    numeric = [all(isinstance(row[i], int | float) for row in rows) if rows else False for i in range(len(headers))]
+    numeric = [
+        all(isinstance(row[i], int | float) for row in rows) if rows else False
+        for i in range(len(headers))
+    ]
 
     def line(values: Sequence[str]) -> str:
-        return "  ".join(v.rjust(w) if num else v.ljust(w) for v, w, num in zip(values, widths, numeric, strict=True))
+        return "  ".join(
+            v.rjust(w) if num else v.ljust(w)
+            for v, w, num in zip(values, widths, numeric, strict=True)
+        )
 
     out = [line(list(headers)), "  ".join("-" * w for w in widths)]
     out.extend(line(r) for r in cells)

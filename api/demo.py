@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import shlex
 import socket
 import subprocess
 import sys
@@ -57,26 +58,43 @@ def prepare(out: Path, *, articles: int | None = None, seed: int = 7) -> Path:
 
 
 def run_demo(out: str | Path, *, articles: int | None = None, ablation: bool = True) -> DemoRun:
-    """Build the demo index, train the reranker, evaluate it on held-out clues and write a report."""
+    """Build the demo index, train the reranker, evaluate it on held-out clues, write a report."""
     out = Path(out).resolve()
     out.mkdir(parents=True, exist_ok=True)
     data = prepare(out, articles=articles)
     _say(f"[1/3] indexing {data / 'articles.jsonl'} -> {out / 'index'}")
     index = build_index(data / "articles.jsonl", out / "index", progress=True)
     c = index.manifest["counts"]
-    _say(f"      {c['articles']} articles, {c['terms']} terms, "
-         f"{index.manifest['build']['unresolved_links']} unresolved links")
+    _say(
+        f"      {c['articles']} articles, {c['terms']} terms, "
+        f"{index.manifest['build']['unresolved_links']} unresolved links"
+    )
     _say(f"[2/3] training on {data / 'questions_train.jsonl'} -> {out / 'model.json'}")
     res = train(index, [data / "questions_train.jsonl"], out / "model.json", progress=True)
     a = res.artifact
-    _say(f"      {a['training']['clues']} clues, {a['training']['rows']} candidate rows, C={a['C']}, "
-         f"calibration={a['calibration']['method']}, threshold={a['decision']['threshold']:.2f}")
+    _say(
+        f"      {a['training']['clues']} clues, {a['training']['rows']} candidate rows, "
+        f"C={a['C']}, "
+        f"calibration={a['calibration']['method']}, threshold={a['decision']['threshold']:.2f}"
+    )
     _say(f"[3/3] evaluating on held-out {data / 'questions_test.jsonl'} -> {out / 'report'}")
     model = load_model(out / "model.json", index=index)
-    ev = evaluate(index, model, [data / "questions_test.jsonl"], out / "report", run_ablation=ablation,
-                  progress=True)
-    return DemoRun(out=out, index=out / "index", model=out / "model.json", report=ev.paths["report"],
-                   summary=ev.summary, metrics=ev.metrics)
+    ev = evaluate(
+        index,
+        model,
+        [data / "questions_test.jsonl"],
+        out / "report",
+        run_ablation=ablation,
+        progress=True,
+    )
+    return DemoRun(
+        out=out,
+        index=out / "index",
+        model=out / "model.json",
+        report=ev.paths["report"],
+        summary=ev.summary,
+        metrics=ev.metrics,
+    )
 
 
 def free_port(host: str = "127.0.0.1") -> int:
@@ -86,12 +104,27 @@ def free_port(host: str = "127.0.0.1") -> int:
         return int(s.getsockname()[1])
 
 
-def serve_and_ask(run: DemoRun, data: Path, *, host: str = "127.0.0.1", port: int = 0,
-                  wait: bool = True) -> DemoRun:
+def serve_and_ask(
+    run: DemoRun, data: Path, *, host: str = "127.0.0.1", port: int = 0, wait: bool = True
+) -> DemoRun:
     """Start `hunchwise serve` on loopback, send one sample clue, print both, then keep serving."""
     port = port or free_port(host)
-    cmd = [sys.executable, "-m", "api.cli", "serve", "--index", str(run.index), "--model", str(run.model),
-           "--host", host, "--port", str(port), "--log-dir", str(run.out / "logs")]
+    cmd = [
+        sys.executable,
+        "-m",
+        "api.cli",
+        "serve",
+        "--index",
+        str(run.index),
+        "--model",
+        str(run.model),
+        "--host",
+        host,
+        "--port",
+        str(port),
+        "--log-dir",
+        str(run.out / "logs"),
+    ]
     proc = subprocess.Popen(cmd, env={**os.environ, "PYTHONUNBUFFERED": "1"})
     base = f"http://{host}:{port}"
     try:
@@ -106,16 +139,19 @@ def serve_and_ask(run: DemoRun, data: Path, *, host: str = "127.0.0.1", port: in
                 if proc.poll() is not None or time.monotonic() > deadline:
                     raise RuntimeError(f"the server did not start (command: {' '.join(cmd)})")
                 time.sleep(0.2)
-            body = {"clue": sample_clue(data), "k": 5}
+            clue = sample_clue(data)
+            body: dict[str, Any] = {"clue": clue, "k": 5}
             reply = client.post("/v1/rank", json=body)
             reply.raise_for_status()
         run.sample_request, run.sample_response = body, reply.json()
         _say(f"\nservice running at {base} (API docs: {base}/docs)")
         _say(f"sample request:  POST {base}/v1/rank\n{json.dumps(body, indent=2)}")
         _say(f"sample response:\n{json.dumps(_trim(run.sample_response), indent=2)}")
-        _say("\ntry it yourself:\n"
-             f"  curl -s {base}/v1/rank -H 'content-type: application/json' "
-             f"-d '{json.dumps({'clue': body['clue'][:60], 'k': 3})}'")
+        _say(
+            "\ntry it yourself:\n"
+            f"  curl -s {base}/v1/rank -H 'content-type: application/json' "
+            f"-d {shlex.quote(json.dumps({'clue': clue[:60], 'k': 3}))}"
+        )
         if wait:
             _say("\nPress Ctrl-C to stop the service.")
             proc.wait()

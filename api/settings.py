@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from fastapi import Request
-from pydantic import Field, SecretStr, model_validator
+from pydantic import Field, SecretStr, ValidationError, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -83,6 +83,19 @@ class ServiceSettings(BaseSettings):
         if not token:
             raise ValueError("HUNCHWISE_ADMIN_TOKEN is set but empty")
         return token
+
+
+def settings_from_env() -> ServiceSettings:
+    """Settings from the HUNCHWISE_* environment; errors name the variable, never its value."""
+    try:
+        return ServiceSettings()  # type: ignore[call-arg]
+    except ValidationError as exc:
+        problems = []
+        for err in exc.errors(include_input=False, include_url=False):
+            name = "_".join(str(p) for p in err["loc"]).upper()
+            where = f"HUNCHWISE_{name}: " if name else ""
+            problems.append(where + err["msg"].removeprefix("Value error, "))
+        raise ValueError("bad service settings: " + "; ".join(problems)) from None
 
 
 def get_settings(request: Request) -> ServiceSettings:

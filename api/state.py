@@ -100,7 +100,8 @@ class Serving:
             self.state_dir.mkdir(parents=True, exist_ok=True)
         # Read the marker before loading: a change made while we load is then seen as newer.
         generation = int(read_marker(self.state_dir)["generation"])
-        index, model = load_pair(settings)
+        with self._folder_lock(fcntl.LOCK_SH):
+            index, model = load_pair(settings)
         self.current = Loaded(index, model, generation, utc_now())
         self._local_lock = threading.Lock()
         self._stop = threading.Event()
@@ -109,18 +110,23 @@ class Serving:
 
     # -- cross-worker coordination -------------------------------------
     @contextlib.contextmanager
+    def _folder_lock(self, mode: int) -> Iterator[None]:
+        """flock on the shared lock file: LOCK_EX to change the files, LOCK_SH to read them."""
+        if self.state_dir is None:
+            yield
+            return
+        fd = os.open(self.state_dir / ADMIN_LOCK, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(fd, mode)
+            yield
+        finally:
+            fcntl.flock(fd, fcntl.LOCK_UN)
+            os.close(fd)
+
+    @contextlib.contextmanager
     def _admin_lock(self) -> Iterator[None]:
-        with self._local_lock:
-            if self.state_dir is None:
-                yield
-                return
-            fd = os.open(self.state_dir / ADMIN_LOCK, os.O_RDWR | os.O_CREAT, 0o644)
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX)
-                yield
-            finally:
-                fcntl.flock(fd, fcntl.LOCK_UN)
-                os.close(fd)
+        with self._local_lock, self._folder_lock(fcntl.LOCK_EX):
+            yield
 
     def _stat_marker(self) -> tuple[int, int] | None:
         if self.state_dir is None:
@@ -174,12 +180,14 @@ class Serving:
                 return False
             cur = self.current
             try:
-                index = cur.index
-                if marker.get("index_version") != cur.index.version:
-                    index = load_index(self.settings.index_dir)
-                model = cur.model
-                if marker.get("model_version") != cur.model_version:
-                    _, model = load_pair(self.settings, index)
+                # Shared lock: no sibling swaps the index folder while this worker reads it.
+                with self._folder_lock(fcntl.LOCK_SH):
+                    index = cur.index
+                    if marker.get("index_version") != cur.index.version:
+                        index = load_index(self.settings.index_dir)
+                    model = cur.model
+                    if marker.get("model_version") != cur.model_version:
+                        _, model = load_pair(self.settings, index)
             except Exception as exc:  # any failure keeps the old pair serving
                 log.error(
                     "worker %d: reload for generation %d failed, still serving the old files: %s",

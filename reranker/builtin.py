@@ -196,11 +196,12 @@ def _matched(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
 
 
 def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
-    tids = cs.index.term_ids(cs.tokens)[0]
     n = len(cs)
+    indptr, docs = cs.index.body.indptr, cs.index.body.docs
+    tids = cs.index.term_ids(cs.tokens)[0]
+    tids = tids[indptr[tids + 1] > indptr[tids]]  # terms of the article text (not title-only ones)
     if tids.size == 0 or n == 0:
         return np.zeros(n), np.zeros(n), int(tids.size)
-    indptr, docs = cs.index.body.indptr, cs.index.body.docs
     starts, ends = indptr[tids].tolist(), indptr[tids + 1].tolist()
     rows = cs.rows.astype(docs.dtype)
     hits = np.empty((tids.size, n), dtype=bool)

@@ -25,7 +25,7 @@ class FeatureError(RerankerError):
 
 
 class ModelFormatError(RerankerError):
-    """Raised when a model file is missing, not JSON, or not a hunchwise model of a known version."""
+    """Raised when a model file is missing, not JSON, or not a known hunchwise model version."""
 
 
 class ModelMismatchError(RerankerError):

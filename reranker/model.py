@@ -105,18 +105,28 @@ def apply_calibrator(cal: dict[str, Any], p: np.ndarray) -> np.ndarray:
     return p
 
 
-def choose_calibration(
-    p: np.ndarray, y: np.ndarray, groups: np.ndarray, n_folds: int
-) -> tuple[str, dict[str, float]]:
-    """Pick the calibration with the lowest grouped-CV log-loss on out-of-fold probabilities."""
+def cross_calibrate(
+    p: np.ndarray, y: np.ndarray, groups: np.ndarray, n_folds: int, methods: tuple[str, ...]
+) -> tuple[str, dict[str, float], np.ndarray]:
+    """Cross-fitted calibration of out-of-fold probabilities: (best method, log-losses, its output).
+
+    Each fold's probabilities are calibrated by a calibrator fitted on the other folds, so
+    the output is honest held-out evidence (used to tune the decision threshold).
+    """
     splits = grouped_folds(y, groups, n_folds)
-    scores = {"none": float(log_loss(y, np.clip(p, _EPS, 1 - _EPS), labels=[0, 1]))}
-    for method in ("platt", "isotonic"):
-        out = np.zeros_like(p)
-        for train, test in splits:
-            out[test] = apply_calibrator(fit_calibrator(method, p[train], y[train]), p[test])
+    scores: dict[str, float] = {}
+    outputs: dict[str, np.ndarray] = {}
+    for method in methods:
+        if method == "none":
+            out = p
+        else:
+            out = np.zeros_like(p)
+            for train, test in splits:
+                out[test] = apply_calibrator(fit_calibrator(method, p[train], y[train]), p[test])
         scores[method] = float(log_loss(y, out, labels=[0, 1]))
-    return min(scores, key=lambda m: (scores[m], m != "none")), scores
+        outputs[method] = out
+    best = min(scores, key=lambda m: (scores[m], m != "none"))
+    return best, scores, outputs[best]
 
 
 def _check_calibrator(cal: dict[str, Any], source: str) -> None:
@@ -154,7 +164,7 @@ class Reranker:
     code_features_: list[str]
     metadata_: Any
     threshold_: float
-    index_note_: str
+    index_note_: str | None = None
 
     def __init__(
         self,
@@ -208,12 +218,13 @@ class Reranker:
         self.scale_ = scaler.scale_.astype(np.float64)
         self.coef_ = sign * lr.coef_[0].astype(np.float64)
         self.intercept_ = float(sign * lr.intercept_[0])
-        if self.calibration == "auto":
-            method, self.calibration_scores_ = choose_calibration(raw_oof, y, groups, self.n_folds)
-        else:
-            method, self.calibration_scores_ = self.calibration, {}
+        methods = (
+            ("none", "platt", "isotonic") if self.calibration == "auto" else (self.calibration,)
+        )
+        method, self.calibration_scores_, self.oof_proba_ = cross_calibrate(
+            raw_oof, y, groups, self.n_folds, methods
+        )
         self.calibrator_ = fit_calibrator(method, raw_oof, y)
-        self.oof_proba_ = apply_calibrator(self.calibrator_, raw_oof)
         return self
 
     def raw_probability(self, X: np.ndarray) -> np.ndarray:

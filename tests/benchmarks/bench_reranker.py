@@ -29,12 +29,16 @@ def _pct(values: list[float], q: float) -> float:
 
 def main() -> None:
     """Parse options, build everything in a temporary folder, print a markdown table."""
-    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
     ap.add_argument("--articles", type=int, default=100_000, help="corpus size (default 100000)")
     ap.add_argument("--questions", type=int, default=2000, help="clues to generate (default 2000)")
     ap.add_argument("--queries", type=int, default=500, help="clues to time (default 500)")
     ap.add_argument("--k", type=int, default=20, help="candidates per clue (default 20)")
-    ap.add_argument("--work", type=Path, default=None, help="folder to keep the data in (default: temporary)")
+    ap.add_argument(
+        "--work", type=Path, default=None, help="folder to keep the data in (default: temporary)"
+    )
     args = ap.parse_args()
 
     with tempfile.TemporaryDirectory() as tmp:
@@ -67,12 +71,22 @@ def main() -> None:
             q_ms.append((t1 - t0) * 1e3)
             f_ms.append((t2 - t1) * 1e3)
             e_ms.append((t3 - t2) * 1e3)
-    rows = [("BM25 query (top-20)", q_ms), ("features + probabilities", f_ms), ("rank_clue end to end", e_ms)]
-    print(f"\n{args.articles} articles, {len(clues)} clues, k={args.k}; build {build_s:.1f} s, train {train_s:.1f} s\n")
+    rows = [
+        ("BM25 query (top-20)", q_ms),
+        ("features + probabilities", f_ms),
+        ("rank_clue end to end", e_ms),
+    ]
+    print(
+        f"\n{args.articles} articles, {len(clues)} clues, k={args.k}; "
+        f"build {build_s:.1f} s, train {train_s:.1f} s\n"
+    )
     print("| step | p50 ms | p95 ms | mean ms |")
     print("|---|---|---|---|")
     for name, vals in rows:
-        print(f"| {name} | {_pct(vals, 0.5):.3f} | {_pct(vals, 0.95):.3f} | {statistics.fmean(vals):.3f} |")
+        print(
+            f"| {name} | {_pct(vals, 0.5):.3f} | {_pct(vals, 0.95):.3f} "
+            f"| {statistics.fmean(vals):.3f} |"
+        )
     share = statistics.fmean(f_ms) / statistics.fmean(q_ms)
     print(f"\nfeaturizing + scoring / BM25 query time (mean): {share:.2f}")
 

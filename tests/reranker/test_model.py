@@ -196,7 +196,16 @@ def test_stored_calibrator_is_fit_on_out_of_fold_probabilities(
         lr = LogisticRegression(C=np.inf, tol=1e-10, max_iter=1000)
         z = logit(np.clip(raw, EPS, 1 - EPS))[:, None]
         expected = lr.fit(z, table.y).predict_proba(z)[:, 1]
-    np.testing.assert_allclose(m.oof_proba_, expected, atol=1e-5)
+    np.testing.assert_allclose(apply_calibrator(m.calibrator_, raw), expected, atol=1e-5)
+    # The held-out probabilities used to tune the threshold are cross-fitted: each fold is
+    # calibrated by a calibrator that never saw it.
+    folds = GroupKFold(n_splits=5).split(table.X, table.y, table.clue_id)
+    crossed = np.zeros_like(raw)
+    for train, test in folds:
+        crossed[test] = apply_calibrator(
+            fit_calibrator(method, raw[train], table.y[train]), raw[test]
+        )
+    np.testing.assert_allclose(m.oof_proba_, crossed, atol=1e-9)
     # Serving applies the same calibrator to the fitted pipeline's probabilities.
     fitted = reference_pipeline(1.0).fit(table.X, table.y).predict_proba(table.X)[:, 1]
     np.testing.assert_allclose(
