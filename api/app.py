@@ -10,7 +10,7 @@ import anyio
 from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
-from . import routes, schemas
+from . import routes, routes_admin, schemas
 from .deps import Runtime
 from .handlers import BodyLimitMiddleware, SafeJSONResponse, install_handlers
 from .metrics import Metrics, MetricsMiddleware
@@ -19,8 +19,26 @@ from .settings import ServiceSettings, settings_from_env
 DESCRIPTION = """\
 Rank the articles of your own encyclopedia-style corpus for a free-text clue: BM25
 candidates, calibrated probabilities from the reranker model, and a decision (answer,
-wait for more words, or abstain). Rank requests and feedback go to a served log that
-`hunchwise train` reads back.
+wait for more words, or abstain once `complete` is true). Without a model the candidates
+come in BM25 order with null probabilities, and the reply says so.
+
+**Served log.** With `--log-dir`, every ranked clue (batch clues one line each) and every
+feedback is appended to `served.jsonl` as one JSON line, rotated by size to
+`served.1.jsonl`, `served.2.jsonl`, ... `hunchwise train --log served.jsonl` reads it back.
+
+**Feedback.** Request ids are signed (HMAC), so any worker accepts the id of any other and
+rejects made-up ones with 404. Feedback for the same request twice is accepted and logged
+twice; the trainer uses the last one. A title or alias naming one article is accepted as
+the answer and logged as that article's id.
+
+**Several workers.** An admin call reaches one worker. It changes the files, then writes a
+generation marker in the shared state folder; every worker looks at the marker about every
+0.5 s and loads the index and model again into a fresh container, swapped in one
+assignment. Requests in flight finish on the container they started with. `/metrics`
+sums all workers (prometheus_client multiprocess mode).
+
+**Admin** endpoints need `Authorization: Bearer <token>` (HUNCHWISE_ADMIN_TOKEN or
+`--admin-token-file`); without a configured token they answer 403.
 """
 
 _COMMON: dict[int | str, dict[str, Any]] = {
@@ -69,7 +87,7 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.runtime = None
     app.include_router(routes.router, responses=_COMMON)
-    app.include_router(routes.admin, responses={**_COMMON, **_ADMIN})
+    app.include_router(routes_admin.admin, responses={**_COMMON, **_ADMIN})
     install_handlers(app)
     _document_limits(app, settings)
     if settings.cors_origins:

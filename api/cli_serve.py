@@ -3,8 +3,8 @@
 The parent process checks the index, model and token first (so mistakes are reported as a
 one-line error, not a traceback per worker), then hands every setting to the workers
 through HUNCHWISE_* environment variables. It also prepares what the workers share: the
-state folder (generation marker, admin lock, request-id key), a request-id secret, and
-the folder of prometheus_client's multiprocess mode.
+state folder (generation marker, admin lock, the key that signs request ids) and the
+folder of prometheus_client's multiprocess mode.
 """
 
 from __future__ import annotations
@@ -13,7 +13,6 @@ import argparse
 import contextlib
 import multiprocessing
 import os
-import secrets
 import shutil
 import tempfile
 from collections.abc import Iterator
@@ -38,7 +37,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--state-dir",
         type=Path,
-        help="folder the workers share (default: a temporary folder removed on exit)",
+        help="folder the workers share: reload marker, locks, request-id key (default: a "
+        "temporary folder removed on exit; keep one to accept feedback across restarts)",
     )
     p.add_argument(
         "--admin-token-file",
@@ -75,9 +75,6 @@ def _environment(args: argparse.Namespace, state_dir: Path) -> dict[str, str]:
         env["LOG_BACKUPS"] = str(args.log_backups)
     if args.cors_origin:
         env["CORS_ORIGINS"] = "[" + ",".join(f'"{o}"' for o in args.cors_origin) + "]"
-    if not os.environ.get(ENV_PREFIX + "REQUEST_SECRET"):
-        # Shared by all workers of this run; set it yourself to accept feedback across restarts.
-        env["REQUEST_SECRET"] = secrets.token_hex(32)
     return {ENV_PREFIX + k: v for k, v in env.items()}
 
 

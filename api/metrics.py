@@ -23,6 +23,9 @@ from prometheus_client.multiprocess import MultiProcessCollector
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 MULTIPROC_ENV = "PROMETHEUS_MULTIPROC_DIR"
+# prometheus_client picks in-memory or file-backed values when it is imported; decide how to
+# render from the same moment, not from the environment at render time.
+MULTIPROCESS = bool(os.environ.get(MULTIPROC_ENV))
 # The *_created series double the output and mean nothing in multiprocess mode.
 disable_created_metrics()
 # Latency buckets in seconds, dense where a loopback rank request lands (about 1-50 ms).
@@ -89,7 +92,7 @@ class Metrics:
     @staticmethod
     def multiprocess() -> bool:
         """True when samples are shared between worker processes through files."""
-        return bool(os.environ.get(MULTIPROC_ENV))
+        return MULTIPROCESS
 
     def render(self) -> bytes:
         """The text exposition format, summed over all workers in multiprocess mode."""

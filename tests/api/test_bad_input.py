@@ -4,9 +4,12 @@ from __future__ import annotations
 
 import json
 from collections.abc import Iterator
+from pathlib import Path
 from typing import Any
 
 import pytest
+
+from api.settings import ServiceSettings, get_settings
 
 GOOD_ID = "0" * 32 + "." + "0" * 24  # well-formed but not signed by the server
 
@@ -18,6 +21,9 @@ def _fields(detail: Any) -> list[str]:
     return [".".join(str(p) for p in e["loc"]) for e in detail]
 
 
+# Statuses as RFC 9110 defines them: 404 Not Found (15.5.5) for an id the server never
+# issued, 422 Unprocessable Content (15.5.21) for well-formed JSON with bad fields, 413
+# Content Too Large (15.5.14), 400 Bad Request (15.5.1) for a broken Content-Length.
 # (path, JSON body, status, text that must appear in a field name or the message)
 CASES: list[tuple[str, Any, int, str]] = [
     ("/v1/rank", {"clue": ""}, 422, "body.clue"),
@@ -149,3 +155,13 @@ def test_non_ascii_clue_round_trips(small_limits: Any) -> None:
     clue = "Fluss über dem Tal — 川"
     r = small_limits.post("/v1/rank", json={"clue": clue})
     assert r.status_code == 200 and r.json()["clue"] == clue
+
+
+def test_settings_dependency_can_be_overridden(make_client: Any, index_dir: Path) -> None:
+    with make_client() as c:
+        assert c.post("/v1/rank", json={"clue": "river", "k": 5}).status_code == 200
+        tight = ServiceSettings(index_dir=index_dir, max_k=3, default_k=2)
+        c.app.dependency_overrides[get_settings] = lambda: tight
+        r = c.post("/v1/rank", json={"clue": "river", "k": 5})
+        assert r.status_code == 422 and _fields(r.json()["detail"]) == ["body.k"]
+        assert c.post("/v1/rank", json={"clue": "river"}).json()["k"] == 2

@@ -62,14 +62,46 @@ def prepare(work: Path, articles: int) -> tuple[Path, Path, list[str]]:
     data, index, model = work / "data", work / "index", work / "model.json"
     py = [sys.executable, "-m"]
     if not (data / "articles.jsonl").exists():
-        run([*py, "corpus_demo.generate", "--articles", str(articles), "--questions", "2000",
-             "--out", str(data), "--no-progress"])
+        run(
+            [
+                *py,
+                "corpus_demo.generate",
+                "--articles",
+                str(articles),
+                "--questions",
+                "2000",
+                "--out",
+                str(data),
+                "--no-progress",
+            ]
+        )
     if not (index / "manifest.json").exists():
-        run([*py, "api.cli", "index", "build", str(data / "articles.jsonl"), "--out", str(index),
-             "--json"])
+        run(
+            [
+                *py,
+                "api.cli",
+                "index",
+                "build",
+                str(data / "articles.jsonl"),
+                "--out",
+                str(index),
+                "--json",
+            ]
+        )
     if not model.exists():
-        run([*py, "api.cli", "train", "--index", str(index), "--log",
-             str(data / "questions_train.jsonl"), "--out", str(model)])
+        run(
+            [
+                *py,
+                "api.cli",
+                "train",
+                "--index",
+                str(index),
+                "--log",
+                str(data / "questions_train.jsonl"),
+                "--out",
+                str(model),
+            ]
+        )
     lines = (data / "questions_test.jsonl").read_text(encoding="utf-8").splitlines()
     return index, model, [json.loads(x)["clue"] for x in lines if x.strip()]
 
@@ -97,15 +129,37 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def start_server(index: Path, model: Path, workers: int, logs: Path) -> tuple[subprocess.Popen[bytes], str]:
+def start_server(
+    index: Path, model: Path, workers: int, logs: Path
+) -> tuple[subprocess.Popen[bytes], str]:
     """`hunchwise serve` with `workers` workers; returns once every worker has answered."""
     port = free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("HUNCHWISE_")}
     proc = subprocess.Popen(
-        [sys.executable, "-m", "api.cli", "serve", "--index", str(index), "--model", str(model),
-         "--host", HOST, "--port", str(port), "--workers", str(workers), "--log-dir", str(logs)],
-        cwd=ROOT, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-        start_new_session=True)
+        [
+            sys.executable,
+            "-m",
+            "api.cli",
+            "serve",
+            "--index",
+            str(index),
+            "--model",
+            str(model),
+            "--host",
+            HOST,
+            "--port",
+            str(port),
+            "--workers",
+            str(workers),
+            "--log-dir",
+            str(logs),
+        ],
+        cwd=ROOT,
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+        start_new_session=True,
+    )
     url = f"http://{HOST}:{port}"
     pids: set[int] = set()
     deadline = time.monotonic() + 180
@@ -135,8 +189,11 @@ def memory_mib(proc: subprocess.Popen[bytes]) -> tuple[float, float, float]:
     """Server memory, MiB: RSS of parent + workers, PSS of the same (shared pages split), and
     the largest worker's RSS (0 with one worker: then the parent serves)."""
     parent = psutil.Process(proc.pid)
-    procs = [parent] + [p for p in parent.children(recursive=True)
-                        if "resource_tracker" not in " ".join(p.cmdline())]
+    procs = [parent] + [
+        p
+        for p in parent.children(recursive=True)
+        if "resource_tracker" not in " ".join(p.cmdline())
+    ]
     info = [p.memory_full_info() for p in procs]
     rss = sum(i.rss for i in info)
     pss = sum(getattr(i, "pss", i.rss) for i in info)
@@ -144,21 +201,44 @@ def memory_mib(proc: subprocess.Popen[bytes]) -> tuple[float, float, float]:
     return rss / 2**20, pss / 2**20, worker / 2**20
 
 
+def cpu_seconds(proc: subprocess.Popen[bytes]) -> float:
+    """User + system CPU time used so far by the server (parent and workers)."""
+    parent = psutil.Process(proc.pid)
+    total = 0.0
+    for p in [parent, *parent.children(recursive=True)]:
+        t = p.cpu_times()
+        total += t.user + t.system
+    return total
+
+
 def bodies(clues: list[str]) -> list[str]:
     """Request bodies: the held-out clues, k=20."""
     return [json.dumps({"clue": c, "k": 20}) for c in clues]
 
 
-def wrk_load(url: str, clues: list[str], conns: int, seconds: float, work: Path) -> dict[str, float]:
+def wrk_load(
+    url: str, clues: list[str], conns: int, seconds: float, work: Path
+) -> dict[str, float]:
     """Closed loop with wrk (C, cheap on the shared CPU)."""
     script = work / "rank.lua"
     script.write_text(LUA % ",\n".join(json.dumps(b) for b in bodies(clues)), encoding="utf-8")
-    out = subprocess.run(["wrk", "-t1", f"-c{conns}", f"-d{max(1, round(seconds))}s", "-s", str(script), url],
-                         capture_output=True, text=True, check=True).stdout
+    out = subprocess.run(
+        ["wrk", "-t1", f"-c{conns}", f"-d{max(1, round(seconds))}s", "-s", str(script), url],
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout
     line = next(x for x in out.splitlines() if x.startswith("RESULT"))
     n, dur_us, errors, p50, p95, p99, mx = (float(v) for v in line.split()[1:])
-    return {"rps": n / (dur_us / 1e6), "p50": p50 / 1e3, "p95": p95 / 1e3, "p99": p99 / 1e3,
-            "max": mx / 1e3, "errors": errors, "n": n}
+    return {
+        "rps": n / (dur_us / 1e6),
+        "p50": p50 / 1e3,
+        "p95": p95 / 1e3,
+        "p99": p99 / 1e3,
+        "max": mx / 1e3,
+        "errors": errors,
+        "n": n,
+    }
 
 
 async def _closed(url: str, payloads: list[str], conns: int, seconds: float) -> dict[str, float]:
@@ -172,8 +252,11 @@ async def _closed(url: str, payloads: list[str], conns: int, seconds: float) -> 
             n = i
             while time.perf_counter() < stop_at:
                 t = time.perf_counter()
-                r = await c.post("/v1/rank", content=payloads[n % len(payloads)],
-                                 headers={"Content-Type": "application/json"})
+                r = await c.post(
+                    "/v1/rank",
+                    content=payloads[n % len(payloads)],
+                    headers={"Content-Type": "application/json"},
+                )
                 lat.append(time.perf_counter() - t)
                 errors += r.status_code != 200
                 n += conns
@@ -204,8 +287,13 @@ class _Conn:
 
 async def _open(url: str, payloads: list[str], rate: float, seconds: float) -> dict[str, float]:
     host, port = url.rsplit("//", 1)[1].split(":")
-    raws = [(f"POST /v1/rank HTTP/1.1\r\nHost: {host}\r\nContent-Type: application/json\r\n"
-             f"Content-Length: {len(p.encode())}\r\n\r\n{p}").encode() for p in payloads]
+    raws = [
+        (
+            f"POST /v1/rank HTTP/1.1\r\nHost: {host}\r\nContent-Type: application/json\r\n"
+            f"Content-Length: {len(p.encode())}\r\n\r\n{p}"
+        ).encode()
+        for p in payloads
+    ]
     idle: asyncio.Queue[_Conn] = asyncio.Queue()
     for _ in range(64):
         idle.put_nowait(_Conn(*await asyncio.open_connection(host, int(port))))
@@ -238,17 +326,27 @@ async def _open(url: str, payloads: list[str], rate: float, seconds: float) -> d
 
 def _summary(lat: list[float], errors: int, seconds: float) -> dict[str, float]:
     a = np.asarray(lat) * 1e3
-    return {"rps": len(a) / seconds, "p50": float(np.percentile(a, 50)),
-            "p95": float(np.percentile(a, 95)), "p99": float(np.percentile(a, 99)),
-            "max": float(a.max()), "errors": float(errors), "n": float(len(a))}
+    return {
+        "rps": len(a) / seconds,
+        "p50": float(np.percentile(a, 50)),
+        "p95": float(np.percentile(a, 95)),
+        "p99": float(np.percentile(a, 99)),
+        "max": float(a.max()),
+        "errors": float(errors),
+        "n": float(len(a)),
+    }
 
 
 def main() -> int:
     """Run the benchmark and print the table."""
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     p.add_argument("--articles", type=int, default=100_000)
-    p.add_argument("--work", type=Path, default=ROOT / "runs" / "bench-service",
-                   help="folder for corpus, index and model (kept and reused)")
+    p.add_argument(
+        "--work",
+        type=Path,
+        default=ROOT / "runs" / "bench-service",
+        help="folder for corpus, index and model (kept and reused)",
+    )
     p.add_argument("--workers", default="1,2", help="worker counts to measure (default 1,2)")
     p.add_argument("--connections", type=int, default=8, help="closed-loop connections (default 8)")
     p.add_argument("--seconds", type=float, default=15, help="length of each load run")
@@ -260,8 +358,11 @@ def main() -> int:
     index, model, clues = prepare(work, args.articles)
     tool = "wrk" if args.tool == "wrk" or (args.tool == "auto" and shutil.which("wrk")) else "httpx"
     peer = library_peer(index, model, clues, 5)
-    print(f"\npeer: rank_clue in one thread, no HTTP: {peer:.0f} clues/s "
-          f"({1e3 / peer:.2f} ms each)\n", flush=True)
+    print(
+        f"\npeer: rank_clue in one thread, no HTTP: {peer:.0f} clues/s ({1e3 / peer:.2f} ms "
+        f"each); load average before the run: {os.getloadavg()[0]:.2f}\n",
+        flush=True,
+    )
     payloads = bodies(clues)
     rows: list[dict[str, Any]] = []
     for workers in [int(w) for w in args.workers.split(",")]:
@@ -271,30 +372,59 @@ def main() -> int:
             with httpx.Client(base_url=url, timeout=30) as c:  # warm up every worker's caches
                 for b in payloads[:100]:
                     c.post("/v1/rank", content=b, headers={"Content-Type": "application/json"})
+            cpu = cpu_seconds(proc)
             if tool == "wrk":
                 closed = wrk_load(url, clues, args.connections, args.seconds, work)
             else:
                 closed = asyncio.run(_closed(url, payloads, args.connections, args.seconds))
-            rows.append({"workers": workers, "mode": f"closed, {args.connections} conns ({tool})",
-                         **closed, "mem": memory_mib(proc)})
+            mode = f"closed, {args.connections} conns ({tool})"
+            rows.append(
+                {
+                    "workers": workers,
+                    "mode": mode,
+                    **closed,
+                    "mem": memory_mib(proc),
+                    "cpu": (cpu_seconds(proc) - cpu) / closed["n"],
+                }
+            )
+            cpu = cpu_seconds(proc)
             opened = asyncio.run(_open(url, payloads, args.rate, args.seconds))
-            rows.append({"workers": workers, "mode": f"open, {args.rate:.0f} req/s (asyncio)",
-                         **opened, "mem": memory_mib(proc)})
+            mode = f"open, {args.rate:.0f} req/s (asyncio)"
+            rows.append(
+                {
+                    "workers": workers,
+                    "mode": mode,
+                    **opened,
+                    "mem": memory_mib(proc),
+                    "cpu": (cpu_seconds(proc) - cpu) / opened["n"],
+                }
+            )
         finally:
             stop_server(proc)
             shutil.rmtree(logs, ignore_errors=True)
-    print(f"\nPOST /v1/rank, k=20, model loaded, {args.articles} articles, "
-          f"{os.cpu_count()} CPUs shared by server and load generator")
-    head = (f"{'workers':>7}  {'load':<28} {'req/s':>7} {'p50 ms':>7} {'p95 ms':>7} "
-            f"{'p99 ms':>7} {'max ms':>7} {'errors':>6} {'RSS MiB':>8} {'PSS MiB':>8} "
-            f"{'worker RSS':>10} {'vs peer':>7}")
+    print(
+        f"\nPOST /v1/rank, k=20, model loaded, {args.articles} articles, "
+        f"{os.cpu_count()} CPUs shared by server and load generator"
+    )
+    head = (
+        f"{'workers':>7}  {'load':<28} {'req/s':>7} {'p50 ms':>7} {'p95 ms':>7} "
+        f"{'p99 ms':>7} {'max ms':>7} {'errors':>6} {'RSS MiB':>8} {'PSS MiB':>8} "
+        f"{'worker RSS':>10} {'CPU ms/req':>10} {'vs peer':>7}"
+    )
     print(head)
     print("-" * len(head))
     for r in rows:
         rss, pss, worker = r["mem"]
-        print(f"{r['workers']:>7}  {r['mode']:<28} {r['rps']:>7.0f} {r['p50']:>7.1f} "
-              f"{r['p95']:>7.1f} {r['p99']:>7.1f} {r['max']:>7.1f} {r['errors']:>6.0f} "
-              f"{rss:>8.0f} {pss:>8.0f} {worker or float('nan'):>10.0f} {r['rps'] / peer:>7.2f}")
+        print(
+            f"{r['workers']:>7}  {r['mode']:<28} {r['rps']:>7.0f} {r['p50']:>7.1f} "
+            f"{r['p95']:>7.1f} {r['p99']:>7.1f} {r['max']:>7.1f} {r['errors']:>6.0f} "
+            f"{rss:>8.0f} {pss:>8.0f} {worker or float('nan'):>10.0f} {r['cpu'] * 1e3:>10.2f} "
+            f"{r['rps'] / peer:>7.2f}"
+        )
+    print(
+        "CPU ms/req: server CPU time (all its processes) per request, robust to other load; "
+        "vs peer: req/s over the peer's clues/s."
+    )
     return 0
 
 

@@ -1,0 +1,94 @@
+"""Rankings turned into JSON replies and served-log records."""
+
+from __future__ import annotations
+
+import math
+from typing import Any, Literal, cast
+
+from fastapi import Response
+from pydantic import BaseModel
+
+from reranker import Ranking
+
+from . import schemas as s
+
+Action = Literal["answer", "wait", "abstain"]
+
+
+def json_reply(model: BaseModel) -> Response:
+    """A model's JSON as the response body, bypassing FastAPI's re-validation."""
+    # The reply is built from our own validated values; serializing it straight to bytes
+    # (pydantic-core) skips FastAPI's second validation pass, a large share of a rank call.
+    return Response(model.__pydantic_serializer__.to_json(model), media_type="application/json")
+
+
+def finite(features: dict[str, float]) -> dict[str, float | None]:
+    """Features with NaN/inf as None (JSON has no such numbers); the same dict when all finite."""
+    # One C-level sum finds the common all-finite case without a Python loop per value.
+    if math.isfinite(sum(features.values())):
+        return features  # type: ignore[return-value]
+    return {k: v if math.isfinite(v) else None for k, v in features.items()}
+
+
+def rank_result(request_id: str, r: Ranking, include_features: bool) -> s.RankResult:
+    """The reply part for one ranked clue."""
+    cands = [
+        s.CandidateOut(
+            id=c.doc_id,
+            title=c.title,
+            qualifier=c.qualifier,
+            score=c.score,
+            rank=c.rank,
+            probability=c.probability,
+            features=finite(c.features) if include_features else None,
+        )
+        for c in r.candidates
+    ]
+    d = r.decision
+    decision = s.DecisionOut(
+        action=cast(Action, d.action),
+        id=d.doc_id,
+        probability=d.probability,
+        threshold=d.threshold,
+        reason=d.reason,
+    )
+    return s.RankResult(request_id=request_id, clue=r.clue, candidates=cands, decision=decision)
+
+
+def served_record(
+    request_id: str, r: Ranking, k: int, complete: bool, when: str, metadata: dict[str, Any] | None
+) -> dict[str, Any]:
+    """One 'served' line of the served log."""
+    # The shape the trainer reads back (reranker.logs.read_logs); keep it stable.
+    d = r.decision
+    record: dict[str, Any] = {
+        "kind": "served",
+        "request_id": request_id,
+        "time": when,
+        "clue": r.clue,
+        "k": k,
+        "complete": complete,
+        "index_version": r.index_version,
+        "model_version": r.model_version,
+        "candidates": [
+            {
+                "id": c.doc_id,
+                "title": c.title,
+                "score": c.score,
+                "rank": c.rank,
+                "probability": c.probability,
+                "features": finite(c.features),
+            }
+            for c in r.candidates
+        ],
+        "decision": {
+            "action": d.action,
+            "id": d.doc_id,
+            "probability": d.probability,
+            "threshold": d.threshold,
+            "reason": d.reason,
+        },
+    }
+    if metadata:
+        record["metadata"] = metadata
+    return record

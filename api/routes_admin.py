@@ -1,0 +1,101 @@
+"""Admin endpoints behind the bearer token: reload, add/replace and delete entries."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Body, Depends, HTTPException
+
+from reranker import RerankerError
+from retriever import IndexFormatError, RetrieverError
+
+from . import schemas as s
+from .deps import Runtime, RuntimeDep, SettingsDep, field_error, require_admin
+from .state import Change
+
+admin = APIRouter(prefix="/v1/admin", tags=["admin"], dependencies=[Depends(require_admin)])
+_404: dict[int | str, dict[str, Any]] = {404: {"description": "not found", "model": s.ErrorOut}}
+_409: dict[int | str, dict[str, Any]] = {
+    409: {"description": "change not applied; the old files keep serving", "model": s.ErrorOut}
+}
+
+
+def _change(c: Change, runtime: Runtime) -> s.ChangeOut:
+    return s.ChangeOut(
+        generation=c.generation,
+        index_version=c.index_version,
+        model_version=c.model_version,
+        previous_index_version=c.previous_index_version,
+        previous_model_version=c.previous_model_version,
+        articles=runtime.serving.current.index.n_docs,
+    )
+
+
+def _not_applied(runtime: Runtime, what: str, exc: Exception) -> HTTPException:
+    cur = runtime.serving.current
+    return HTTPException(
+        409,
+        f"{what} failed, still serving index {cur.index.version} and model "
+        f"{cur.model_version or '(none)'}: {exc}",
+    )
+
+
+@admin.post("/reload", response_model=s.ChangeOut, responses=_409)
+def reload(runtime: RuntimeDep) -> s.ChangeOut:
+    """Read the index folder and the model file again and swap them in (all workers follow)."""
+    try:
+        change = runtime.serving.reload()
+    except (RetrieverError, RerankerError, OSError, ValueError) as exc:
+        runtime.metrics.reloads.labels("admin", "failed").inc()
+        raise _not_applied(runtime, "reload", exc) from exc
+    runtime.metrics.reloads.labels("admin", "ok").inc()
+    return _change(change, runtime)
+
+
+@admin.post("/entries", response_model=s.ChangeOut, responses=_409)
+def put_entries(
+    articles: Annotated[
+        list[s.ArticleIn], Body(min_length=1, description="articles to add or replace")
+    ],
+    runtime: RuntimeDep,
+    settings: SettingsDep,
+) -> s.ChangeOut:
+    """Add articles, or replace those with the same id, and serve the updated index."""
+    if len(articles) > settings.max_entries_per_call:
+        raise field_error(
+            ("body",),
+            f"List should have at most {settings.max_entries_per_call} items (got {len(articles)})",
+            "too_long",
+        )
+    _check_titles(runtime, articles)
+    try:
+        change = runtime.serving.put_entries([a.model_dump() for a in articles])
+    except IndexFormatError as exc:
+        raise _not_applied(runtime, "updating the index", exc) from exc
+    return _change(change, runtime)
+
+
+def _check_titles(runtime: Runtime, articles: list[s.ArticleIn]) -> None:
+    """A title may not move to another id (the reader would name no list position for it)."""
+    index = runtime.serving.current.index
+    wanted = {a.title.strip(): i for i, a in enumerate(articles)}
+    new_ids = {a.id for a in articles}
+    for doc_id, title in zip(index.ids, index.titles, strict=True):
+        i = wanted.get(title)
+        if i is not None and doc_id not in new_ids:
+            raise field_error(
+                ("body", i, "title"), f"title {title!r} already belongs to article {doc_id!r}"
+            )
+
+
+@admin.delete("/entries/{doc_id:path}", response_model=s.ChangeOut, responses={**_404, **_409})
+def delete_entry(doc_id: str, runtime: RuntimeDep) -> s.ChangeOut:
+    """Remove one article and serve the updated index."""
+    current = runtime.serving.current.index
+    if current.n_docs == 1 and doc_id in current.ids:
+        raise HTTPException(409, "cannot remove the last article: an index needs at least one")
+    try:
+        change = runtime.serving.remove_entry(doc_id)
+    except IndexFormatError as exc:
+        raise _not_applied(runtime, "updating the index", exc) from exc
+    return _change(change, runtime)

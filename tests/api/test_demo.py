@@ -1,0 +1,83 @@
+"""The README's first quick-start line (`hunchwise demo`), run for real as a user would."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+pytestmark = pytest.mark.slow
+
+ENV = {**os.environ, "PYTHONUNBUFFERED": "1"}
+
+
+def _hunchwise() -> list[str]:
+    # The console script when installed, else the same entry point through the interpreter.
+    exe = Path(sys.executable).with_name("hunchwise")
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "api.cli"]
+
+
+def test_demo_without_serving_builds_trains_evaluates_and_reports(tmp_path: Path) -> None:
+    out = tmp_path / "demo"
+    proc = subprocess.run(
+        [*_hunchwise(), "demo", "--no-serve", "--out", str(out)],
+        capture_output=True,
+        text=True,
+        env=ENV,
+        timeout=900,
+    )
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    text = proc.stdout
+    for heading in ("clue level", "candidate level", "feature ablation", "top_candidate_ece"):
+        assert heading in text
+    assert "next: hunchwise serve" in text
+    metrics = json.loads((out / "report" / "metrics.json").read_text())
+    model = json.loads((out / "model.json").read_text())
+    assert model["format"] == "hunchwise-model"
+    # The reranked model must beat both yardsticks on held-out clues (log-loss, candidate level).
+    cand = metrics["candidate"]
+    assert cand["model"]["log_loss"] < cand["bm25_only"]["log_loss"] < cand["all_wrong"]["log_loss"]
+    assert metrics["clue"]["top1_reranked"] >= metrics["clue"]["top1_bm25"]
+    html = (out / "report" / "report.html").read_text()
+    assert "data:image/png;base64," in html
+
+
+def test_demo_serves_answers_a_sample_clue_and_stops_on_ctrl_c(tmp_path: Path) -> None:
+    out = tmp_path / "demo"
+    proc = subprocess.Popen(
+        [*_hunchwise(), "demo", "--out", str(out), "--port", "0", "--no-ablation"],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=ENV,
+    )
+    lines: list[str] = []
+    deadline = time.monotonic() + 900
+    try:
+        assert proc.stdout is not None
+        for line in proc.stdout:
+            lines.append(line)
+            if "Press Ctrl-C" in line or time.monotonic() > deadline:
+                break
+        text = "".join(lines)
+        assert "Press Ctrl-C" in text, text[-3000:]
+        assert "sample response:" in text
+        response = json.loads(
+            text.split("sample response:\n", 1)[1].split("\n\ntry it yourself", 1)[0]
+        )
+        assert response["candidates"], response
+        assert response["decision"]["action"] in ("answer", "wait")
+        assert 0.0 <= response["candidates"][0]["probability"] <= 1.0
+        assert "curl -s http://127.0.0.1:" in text
+        proc.send_signal(signal.SIGINT)
+        assert proc.wait(timeout=60) == 0
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()

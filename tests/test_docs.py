@@ -1,0 +1,44 @@
+"""The README keeps its promises: a one-paragraph job, two quick-start lines, CI runs line 2."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def quick_start_lines() -> list[str]:
+    """Command lines in the README's quick-start code block."""
+    readme = (ROOT / "README.md").read_text()
+    section = readme.split("## Quick start", 1)[1].split("\n## ", 1)[0]
+    block = re.search(r"```sh\n(.*?)```", section, re.S)
+    assert block, "the quick start has no ```sh block"
+    return [line for line in block.group(1).splitlines() if line.strip()]
+
+
+def test_quick_start_has_exactly_two_command_lines() -> None:
+    lines = quick_start_lines()
+    assert len(lines) == 2
+    assert "hunchwise demo" in lines[0]
+    assert "pytest" in lines[1]
+
+
+def test_ci_runs_the_readme_test_command_verbatim() -> None:
+    ci = (ROOT / ".ci" / "run").read_text()
+    assert quick_start_lines()[1] in ci.splitlines()
+
+
+def test_readme_opens_with_one_paragraph_stating_the_job() -> None:
+    body = (ROOT / "README.md").read_text().split("\n", 1)[1].strip()
+    first = body.split("\n\n", 1)[0]
+    assert "\n" not in first.strip()
+    for word in ("BM25", "calibrated", "probability", "HTTP", "retrain"):
+        assert word in first
+
+
+def test_readme_has_no_unfilled_placeholders() -> None:
+    readme = (ROOT / "README.md").read_text()
+    assert not re.search(r"^[A-Z_]{6,}$", readme, re.M), (
+        "a section placeholder is still in the README"
+    )
