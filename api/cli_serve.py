@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import json
 import multiprocessing
 import os
 import shutil
@@ -34,6 +35,13 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--port", type=int, default=8000, help="port (default 8000; 0: any free port)")
     p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
     p.add_argument("--log-dir", type=Path, help="folder of the served log served.jsonl")
+    p.add_argument(
+        "--feature",
+        action="append",
+        default=[],
+        metavar="MODULE:FUNCTION",
+        help="user feature function the model was trained with (repeatable)",
+    )
     p.add_argument(
         "--state-dir",
         type=Path,
@@ -67,6 +75,8 @@ def _environment(args: argparse.Namespace, state_dir: Path) -> dict[str, str]:
         env["MODEL_PATH"] = str(args.model.resolve())
     if args.log_dir is not None:
         env["LOG_DIR"] = str(args.log_dir.resolve())
+    if args.feature:
+        env["USER_FEATURES"] = json.dumps(args.feature)
     if args.admin_token_file is not None:
         env["ADMIN_TOKEN_FILE"] = str(args.admin_token_file.resolve())
     if args.log_max_bytes is not None:

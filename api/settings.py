@@ -18,6 +18,10 @@ class ServiceSettings(BaseSettings):
     model_path: Path | None = Field(
         default=None, description="reranker model file; without one the server ranks by BM25"
     )
+    user_features: list[str] = Field(
+        default_factory=list,
+        description="user feature functions ('package.module:function') the model was trained with",
+    )
     log_dir: Path | None = Field(
         default=None, description="folder of the served log (served.jsonl); None: no log"
     )

@@ -69,7 +69,11 @@ def load_pair(
 ) -> tuple[Index, Reranker | None]:
     """Load the index folder (unless given) and the model file bound to it."""
     idx = index if index is not None else load_index(settings.index_dir)
-    model = None if settings.model_path is None else load_model(settings.model_path, index=idx)
+    model = (
+        None
+        if settings.model_path is None
+        else load_model(settings.model_path, index=idx, user_features=settings.user_features)
+    )
     return idx, model
 
 

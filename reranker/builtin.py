@@ -78,8 +78,9 @@ def score_ratio_to_top(cs: CandidateSet) -> np.ndarray:
 @feature("retrieval")
 def score_zscore(cs: CandidateSet) -> np.ndarray:
     """Score standardized over the clue's candidates."""
-    sd = cs.scores.std()
-    return (cs.scores - cs.scores.mean()) / sd if sd > 0 else np.zeros_like(cs.scores)
+    centred = cs.scores - cs.scores.mean()
+    sd = float(np.sqrt(np.dot(centred, centred) / centred.size)) if centred.size else 0.0
+    return centred / sd if sd > 0 else np.zeros_like(cs.scores)
 
 
 @feature("retrieval")
@@ -241,25 +242,21 @@ def log_doc_length(cs: CandidateSet) -> np.ndarray:
 @feature("overlap")
 def qualifier_frequency(cs: CandidateSet) -> np.ndarray:
     """log1p of how many titles in the corpus share the candidate's qualifier (0 if none)."""
-    counts = _qualifier_counts(cs.index)
-    return np.array(
-        [
-            np.log1p(counts.get(cs.index.qualifiers[r], 0)) if cs.index.qualifiers[r] else 0.0
-            for r in cs.rows.tolist()
-        ]
-    )
+    return _qualifier_table(cs.index)[cs.rows]
 
 
-def _qualifier_counts(index: Index) -> dict[str, int]:
+def _qualifier_table(index: Index) -> np.ndarray:
+    """Per row: log1p(number of titles with the row's qualifier), 0 when unqualified."""
     cache = index_cache(index)
-    counts: dict[str, int] | None = cache.get("qualifier_counts")
-    if counts is None:
-        counts = {}
+    table: np.ndarray | None = cache.get("qualifier_frequency")
+    if table is None:
+        counts: dict[str, int] = {}
         for q in index.qualifiers:
             if q:
                 counts[q] = counts.get(q, 0) + 1
-        cache["qualifier_counts"] = counts
-    return counts
+        table = np.log1p(np.array([counts.get(q, 0) if q else 0 for q in index.qualifiers], float))
+        cache["qualifier_frequency"] = table
+    return table
 
 
 # The score-only model, the yardstick every other feature set must beat.

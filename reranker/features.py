@@ -128,6 +128,7 @@ class FeatureRegistry:
 
     def __init__(self, features: Iterable[Feature] = ()) -> None:
         self._features: dict[str, Feature] = {}
+        self._resolved: dict[tuple[str, ...], list[Feature]] = {}
         for f in features:
             self.add(f)
 
@@ -135,6 +136,7 @@ class FeatureRegistry:
         """Register a feature; names must be unique."""
         if feature.name in self._features:
             raise FeatureError(f"a feature named {feature.name!r} is already registered")
+        self._resolved.clear()
         self._features[feature.name] = feature
 
     def __contains__(self, name: object) -> bool:
@@ -160,17 +162,23 @@ class FeatureRegistry:
             out.setdefault(f.group, []).append(f.name)
         return out
 
+    def resolve(self, names: Sequence[str]) -> list[Feature]:
+        """The Feature objects of `names`, in order (remembered per list of names)."""
+        key = tuple(names)
+        found = self._resolved.get(key)
+        if found is None:
+            found = self._resolved[key] = [self[n] for n in key]
+        return found
+
     def matrix(self, cs: CandidateSet, names: Sequence[str]) -> np.ndarray:
         """Feature values of the candidates. float64, shape (n_candidates, len(names))."""
         n = len(cs)
-        out = np.empty((n, len(names)))
         if n == 0:
-            return out
-        for j, name in enumerate(names):
-            f = self[name]
-            # Built-ins are called directly (their shapes are fixed by tests); this loop is
-            # over features, not candidates, and per-call checks would cost more than the work.
-            out[:, j] = f.func(cs) if f.trusted else f.compute(cs)
+            return np.empty((0, len(names)))
+        # Built-ins are called directly (their shapes are fixed by tests); this loop is over
+        # features, not candidates, and per-call checks would cost more than the work.
+        cols = [f.func(cs) if f.trusted else f.compute(cs) for f in self.resolve(names)]
+        out = np.column_stack(cols)
         if not np.isfinite(out).all():
             bad = [names[int(j)] for j in np.flatnonzero(~np.isfinite(out).all(axis=0))]
             raise FeatureError(f"features {bad} returned NaN or infinite values")

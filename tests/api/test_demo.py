@@ -50,34 +50,43 @@ def test_demo_without_serving_builds_trains_evaluates_and_reports(tmp_path: Path
 
 def test_demo_serves_answers_a_sample_clue_and_stops_on_ctrl_c(tmp_path: Path) -> None:
     out = tmp_path / "demo"
-    proc = subprocess.Popen(
-        [*_hunchwise(), "demo", "--out", str(out), "--port", "0", "--no-ablation"],
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-        env=ENV,
-    )
+    errors = tmp_path / "stderr.txt"
+    with (
+        open(errors, "w") as err,
+        subprocess.Popen(
+            [*_hunchwise(), "demo", "--out", str(out), "--port", "0", "--no-ablation"],
+            stdout=subprocess.PIPE,
+            stderr=err,
+            text=True,
+            env=ENV,
+        ) as proc,
+    ):
+        try:
+            text = _read_until_serving(proc)
+            assert "Press Ctrl-C" in text, text[-2000:] + errors.read_text()[-3000:]
+            reply = text.split("sample response:\n", 1)[1].split("\n\ntry it yourself", 1)[0]
+            response = json.loads(reply)
+            assert response["candidates"], response
+            assert response["decision"]["action"] in ("answer", "wait")
+            assert 0.0 <= response["candidates"][0]["probability"] <= 1.0
+            assert "curl -s http://127.0.0.1:" in text
+            proc.send_signal(signal.SIGINT)
+            assert proc.wait(timeout=60) == 0
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+                proc.wait()
+    served = (out / "logs" / "served.jsonl").read_text().splitlines()
+    assert len(served) == 1 and json.loads(served[0])["kind"] == "served"
+
+
+def _read_until_serving(proc: subprocess.Popen[str]) -> str:
+    """The demo's output up to its 'Press Ctrl-C' line (or its end, if it stops early)."""
+    assert proc.stdout is not None
     lines: list[str] = []
     deadline = time.monotonic() + 900
-    try:
-        assert proc.stdout is not None
-        for line in proc.stdout:
-            lines.append(line)
-            if "Press Ctrl-C" in line or time.monotonic() > deadline:
-                break
-        text = "".join(lines)
-        assert "Press Ctrl-C" in text, text[-3000:]
-        assert "sample response:" in text
-        response = json.loads(
-            text.split("sample response:\n", 1)[1].split("\n\ntry it yourself", 1)[0]
-        )
-        assert response["candidates"], response
-        assert response["decision"]["action"] in ("answer", "wait")
-        assert 0.0 <= response["candidates"][0]["probability"] <= 1.0
-        assert "curl -s http://127.0.0.1:" in text
-        proc.send_signal(signal.SIGINT)
-        assert proc.wait(timeout=60) == 0
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
+    for line in proc.stdout:
+        lines.append(line)
+        if "Press Ctrl-C" in line or time.monotonic() > deadline:
+            break
+    return "".join(lines)
