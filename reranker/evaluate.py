@@ -224,4 +224,29 @@ def evaluate(
         labels=table.y,
         unresolved=table.unresolved,
     )
-    return Evaluation(metrics, rows, paths, summary_text(metrics, rows))
+    summary = summary_text(metrics, rows) + "\n\n" + decision_text(metrics["decision"], prefix_rows)
+    return Evaluation(metrics, rows, paths, summary)
+
+
+def decision_text(d: dict[str, Any], prefix_rows: list[dict[str, Any]]) -> str:
+    """Terminal lines on answering early versus waiting for the whole clue."""
+    pay = d["payoff"]
+    lines = [
+        f"decision (threshold {d['threshold']:.2f}, reward {pay['reward']:g}, "
+        f"penalty {pay['penalty']:g}, abstain 0)",
+        f"  answer at the first prefix that clears it: commit rate {d['commit_rate']:.3f}, "
+        f"accuracy {d['accuracy_when_committed']:.3f}, mean payoff {d['mean_payoff']:.3f}, "
+        f"mean share of the clue seen {d['mean_fraction_at_commit']:.2f}",
+        f"  always wait for the whole clue:           commit rate "
+        f"{d['full_clue_commit_rate']:.3f}, mean payoff {d['full_clue_mean_payoff']:.3f}",
+        "",
+        "share seen  clues  top-1   commit  accuracy if committed  mean payoff",
+    ]
+    for r in prefix_rows:
+        acc = r["accuracy_when_committed"]
+        lines.append(
+            f"{r['fraction']:>10.2f}  {r['n_clues']:>5}  {r['top1_accuracy']:.3f}   "
+            f"{r['commit_rate']:.3f}   {'n/a' if acc is None else f'{acc:.3f}':>21}  "
+            f"{r['mean_payoff']:>11.3f}"
+        )
+    return "\n".join(lines)
