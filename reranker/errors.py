@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from retriever.errors import located
+
 
 class RerankerError(Exception):
     """Base class of every error the reranker raises on purpose."""
@@ -12,12 +14,7 @@ class LabelledLogError(RerankerError):
 
     def __init__(self, message: str, *, file: str = "", line: int = 0, field: str = "") -> None:
         self.file, self.line, self.field, self.reason = file, line, field, message
-        where = file or "<records>"
-        if line:
-            where += f", line {line}"
-        if field:
-            where += f", field '{field}'"
-        super().__init__(f"{where}: {message}")
+        super().__init__(located(message, file, line, field))
 
 
 class FeatureError(RerankerError):

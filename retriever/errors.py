@@ -7,20 +7,22 @@ class RetrieverError(Exception):
     """Base class of every error the retrieval core raises on purpose."""
 
 
+def located(message: str, file: str = "", line: int = 0, field: str = "") -> str:
+    """'FILE, line N, field 'F': message', the form every bad-input error takes."""
+    where = file or "<records>"
+    if line:
+        where += f", line {line}"
+    if field:
+        where += f", field '{field}'"
+    return f"{where}: {message}"
+
+
 class CorpusError(RetrieverError):
     """Raised when a corpus file has a bad record; names the file, line and field."""
 
     def __init__(self, message: str, *, file: str = "", line: int = 0, field: str = "") -> None:
-        self.file = file
-        self.line = line
-        self.field = field
-        self.reason = message
-        where = file or "<records>"
-        if line:
-            where += f", line {line}"
-        if field:
-            where += f", field '{field}'"
-        super().__init__(f"{where}: {message}")
+        self.file, self.line, self.field, self.reason = file, line, field, message
+        super().__init__(located(message, file, line, field))
 
 
 class IndexFormatError(RetrieverError):
