@@ -36,7 +36,7 @@ BLOCKLIST = frozenset({
     "here", "hero", "horse", "house", "iris", "kara", "karen", "kevin", "kind", "kira",
     "lava", "lemon", "level", "liar", "lima", "linen", "lion", "lira", "lost", "luna",
     "mara", "maria", "master", "mayor", "mean", "melon", "mira", "mora", "more", "morning",
-    "nora", "opera", "orin", "paris", "pasta", "pizza", "polar", "pork", "rain", "ran",
+    "nora", "opera", "orin", "pasta", "pizza", "polar", "pork", "rain", "ran",
     "raven", "rest", "rich", "river", "ross", "salt", "santa", "sara", "saturn", "seven",
     "silver", "sister", "skin", "soda", "spain", "stone", "stora", "story", "sun", "table",
     "tara", "taste", "terra", "thin", "thor", "tiger", "tora", "trust", "vera", "vista",
