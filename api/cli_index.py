@@ -9,7 +9,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from retriever import ReadReport
+    from retriever import Index, ReadReport
 
 from .console import format_table, human_bytes, print_json
 
@@ -100,11 +100,10 @@ def _show_progress(args: argparse.Namespace) -> bool:
     return not args.json and sys.stderr.isatty()
 
 
-def _summary(index_dir: Path, seconds: float, report: ReadReport) -> dict[str, Any]:
-    from retriever import load_index
+def _summary(idx: Index, seconds: float, report: ReadReport) -> dict[str, Any]:
     from retriever.store import folder_size
 
-    idx = load_index(index_dir)
+    index_dir = idx.path
     counts, build = idx.manifest["counts"], idx.manifest["build"]
     return {
         "index": str(index_dir),
@@ -140,7 +139,7 @@ def cmd_build(args: argparse.Namespace) -> int:
 
     started = time.perf_counter()
     report = ReadReport()
-    build_index(
+    idx = build_index(
         args.corpus,
         args.out,
         k1=args.k1,
@@ -155,7 +154,7 @@ def cmd_build(args: argparse.Namespace) -> int:
         progress=_show_progress(args),
         report=report,
     )
-    _print_summary(_summary(args.out, time.perf_counter() - started, report), args.json)
+    _print_summary(_summary(idx, time.perf_counter() - started, report), args.json)
     return 0
 
 
@@ -188,29 +187,21 @@ def cmd_info(args: argparse.Namespace) -> int:
 
 def cmd_add(args: argparse.Namespace) -> int:
     """Add or replace articles."""
-    from retriever import ReadReport, update_index
-
-    started = time.perf_counter()
-    report = ReadReport()
-    update_index(
-        args.index,
-        add=args.corpus,
-        skip_bad=args.skip_bad,
-        progress=_show_progress(args),
-        report=report,
-    )
-    _print_summary(_summary(args.index, time.perf_counter() - started, report), args.json)
-    return 0
+    return _update(args, add=args.corpus, skip_bad=args.skip_bad)
 
 
 def cmd_remove(args: argparse.Namespace) -> int:
     """Remove articles by id."""
+    return _update(args, remove=args.ids)
+
+
+def _update(args: argparse.Namespace, **change: Any) -> int:
     from retriever import ReadReport, update_index
 
     started = time.perf_counter()
     report = ReadReport()
-    update_index(args.index, remove=args.ids, report=report)
-    _print_summary(_summary(args.index, time.perf_counter() - started, report), args.json)
+    idx = update_index(args.index, progress=_show_progress(args), report=report, **change)
+    _print_summary(_summary(idx, time.perf_counter() - started, report), args.json)
     return 0
 
 

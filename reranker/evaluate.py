@@ -20,7 +20,7 @@ from .examples import PrefixPlan, TrainingTable, build_table
 from .logs import LogReport, read_logs
 from .model import Reranker, grouped_folds, oof_proba
 from .report import summary_text, write_report
-from .train import prefix_tops
+from .train import prefix_tops, top_rows
 
 GROUP_ORDER = (
     "retrieval",
@@ -182,9 +182,7 @@ def evaluate(
         tops["clue"], tops["fraction"], tops["prob"], tops["right"], threshold, payoff
     )
     top_row = np.zeros(table.y.size, dtype=bool)
-    order = np.lexsort((-prob, table.group))
-    first = np.r_[True, table.group[order][1:] != table.group[order][:-1]]
-    top_row[order[first]] = True
+    top_row[top_rows(table.group, prob)] = True
     committed = top_row & (prob >= threshold)
     prefix_rows = M.by_prefix(table.fraction, table.group, table.y, prob, committed, payoff)
     metrics: dict[str, Any] = {

@@ -99,14 +99,18 @@ class MetadataColumns:
 
 
 def candidate_set(
-    index: Index, clue: str, hits: Sequence[Any], metadata: dict[str, Any] | None = None
+    index: Index,
+    clue: str,
+    hits: Sequence[Any],
+    metadata: dict[str, Any] | None = None,
+    tokens: list[str] | None = None,
 ) -> CandidateSet:
-    """The CandidateSet of a clue from its BM25 hits."""
+    """The CandidateSet of a clue from its BM25 hits (`tokens`: the clue already analyzed)."""
     return CandidateSet(
         index=index,
         clue=clue,
         words=index.analyzer.words(clue),
-        tokens=index.analyzer.tokens(clue),
+        tokens=index.analyzer.tokens(clue) if tokens is None else tokens,
         rows=np.fromiter((h.row for h in hits), np.int64, len(hits)),
         scores=np.fromiter((h.score for h in hits), np.float64, len(hits)),
         ranks=np.fromiter((h.rank for h in hits), np.int64, len(hits)),
@@ -193,21 +197,21 @@ def build_table(
             texts.append(" ".join(words[:m]))
             owners.append((n_clues, plan.label(m, len(words)), gold, c.metadata))
         n_clues += 1
-    hits_all = []
-    step = 512
-    for start in tqdm(
-        range(0, len(texts), step), desc="candidates", unit=" batches", disable=not progress
-    ):
-        hits_all.extend(index.search_many(texts[start : start + step], k=k))
+    # Each prefix is analyzed once: its tokens serve the search and the features.
+    tokens_all = [index.analyzer.tokens(t) for t in texts]
+    hits_all = [
+        index.search_tokens(t, k)
+        for t in tqdm(tokens_all, desc="candidates", unit=" prefixes", disable=not progress)
+    ]
     names = list(feature_names)
     all_names = names + metadata.names
     blocks: list[np.ndarray] = []
     cols: dict[str, list[np.ndarray]] = {
         n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row")
     }
-    for g, (text, hits, (cid, frac, gold, meta)) in enumerate(
+    for g, (text, tokens, hits, (cid, frac, gold, meta)) in enumerate(
         tqdm(
-            zip(texts, hits_all, owners, strict=True),
+            zip(texts, tokens_all, hits_all, owners, strict=True),
             total=len(texts),
             desc="features",
             unit=" prefixes",
@@ -217,7 +221,7 @@ def build_table(
     ):
         if not hits:
             continue
-        cs = candidate_set(index, text, hits, meta)
+        cs = candidate_set(index, text, hits, meta, tokens)
         x = registry.matrix(cs, names)
         if metadata.names:
             x = np.hstack([x, np.tile(metadata.row(meta), (len(cs), 1))])

@@ -11,8 +11,6 @@ from typing import Any
 
 from .errors import LabelledLogError
 
-NONE_OF_THESE = None  # a feedback answer of null: the right entry was not among the candidates
-
 
 @dataclass(frozen=True)
 class LabelledClue:

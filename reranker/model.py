@@ -164,7 +164,6 @@ class Reranker:
     code_features_: list[str]
     metadata_: Any
     threshold_: float
-    index_note_: str | None = None
 
     def __init__(
         self,
@@ -225,6 +224,16 @@ class Reranker:
             raw_oof, y, groups, self.n_folds, methods
         )
         self.calibrator_ = fit_calibrator(method, raw_oof, y)
+        return self
+
+    def bind(
+        self, registry: Any, code_features: list[str], metadata: Any, threshold: float
+    ) -> Reranker:
+        """Attach what serving needs: the features to compute, metadata columns, the threshold."""
+        self.registry_ = registry
+        self.code_features_ = list(code_features)
+        self.metadata_ = metadata
+        self.threshold_ = float(threshold)
         return self
 
     def raw_probability(self, X: np.ndarray) -> np.ndarray:

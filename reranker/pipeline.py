@@ -77,17 +77,10 @@ def load_model(
         )
     if model.feature_names_ != code_names + meta.names:
         raise ModelMismatchError(f"{path}: metadata columns must come after the computed features")
-    model.registry_ = reg
-    model.code_features_ = code_names
-    model.metadata_ = meta
-    model.threshold_ = float((data.get("decision") or {}).get("threshold", 0.5))
+    model.bind(reg, code_names, meta, (data.get("decision") or {}).get("threshold", 0.5))
     if index is not None:
         for kind in ("base", "qualifier", "aliases"):  # warm the title tables before serving
             name_tokens(index, kind)
-    if index is not None and data.get("index_version") not in (None, index.version):
-        model.index_note_ = (
-            f"trained on index {data.get('index_version')}, serving index {index.version}"
-        )
     return model
 
 
@@ -107,6 +100,7 @@ def _rank_hits(
     index: Index,
     model: Reranker | None,
     clue: str,
+    tokens: list[str],
     hits: list[Hit],
     *,
     payoff: Payoff | None,
@@ -115,7 +109,7 @@ def _rank_hits(
     metadata: dict[str, Any] | None,
     registry: FeatureRegistry | None,
 ) -> Ranking:
-    cs = candidate_set(index, clue, hits, metadata)
+    cs = candidate_set(index, clue, hits, metadata, tokens)
     probs: np.ndarray | None = None
     x, names = np.zeros((len(hits), 0)), list[str]()
     if model is not None or include_features:
@@ -168,12 +162,13 @@ def rank_clue(
     registry: FeatureRegistry | None = None,
 ) -> Ranking:
     """Rank one clue's candidates by calibrated probability (by BM25 when there is no model)."""
-    hits = index.search(clue, k=k)
+    tokens = index.analyzer.tokens(clue)  # analyzed once, for the search and the features
     return _rank_hits(
         index,
         model,
         clue,
-        hits,
+        tokens,
+        index.search_tokens(tokens, k),
         payoff=payoff,
         complete=complete,
         include_features=include_features,
@@ -193,19 +188,20 @@ def rank_clues(
     include_features: bool = False,
     registry: FeatureRegistry | None = None,
 ) -> list[Ranking]:
-    """`rank_clue` for many clues, with one batch search."""
-    all_hits = index.search_many(list(clues), k=k)
+    """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many)."""
+    all_tokens = [index.analyzer.tokens(c) for c in clues]
     return [
         _rank_hits(
             index,
             model,
             c,
-            h,
+            t,
+            index.search_tokens(t, k),
             payoff=payoff,
             complete=complete,
             include_features=include_features,
             metadata=None,
             registry=registry,
         )
-        for c, h in zip(clues, all_hits, strict=True)
+        for c, t in zip(clues, all_tokens, strict=True)
     ]

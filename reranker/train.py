@@ -35,11 +35,15 @@ def top_of_groups(
     group: np.ndarray, prob: np.ndarray, y: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per group: (group id, top candidate's probability, whether the top candidate is right)."""
+    idx = top_rows(group, prob)
+    return group[idx], prob[idx], y[idx].astype(bool)
+
+
+def top_rows(group: np.ndarray, prob: np.ndarray) -> np.ndarray:
+    """Row of the most probable candidate of each group, in group order."""
     order = np.lexsort((-prob, group))
     g = group[order]
-    first = np.r_[True, g[1:] != g[:-1]]
-    idx = order[first]
-    return group[idx], prob[idx], y[idx].astype(bool)
+    return order[np.r_[True, g[1:] != g[:-1]]]
 
 
 def prefix_tops(table: TrainingTable, prob: np.ndarray) -> dict[str, np.ndarray]:
@@ -132,10 +136,7 @@ def train(
         },
     )
     # Ready to serve as load_model would leave it, so rank_clue and evaluate take it directly.
-    model.registry_ = reg
-    model.code_features_ = names
-    model.metadata_ = meta
-    model.threshold_ = float(tuned["threshold"])
+    model.bind(reg, names, meta, tuned["threshold"])
     return TrainResult(model, artifact, table, report, notes)
 
 
