@@ -8,11 +8,12 @@ from __future__ import annotations
 
 import importlib
 import weakref
+from collections import Counter
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 from importlib.metadata import entry_points
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -46,24 +47,36 @@ class CandidateSet:
         """Distinct analyzed tokens of the clue."""
         return frozenset(self.tokens)
 
-    def _cached(self, kind: str) -> list[frozenset[str]]:
-        table = name_tokens(self.index, kind)
-        return [table[r] for r in self.rows.tolist()]
+    @cached_property
+    def row_list(self) -> list[int]:
+        """The candidates' index rows as Python ints."""
+        rows: list[int] = self.rows.tolist()
+        return rows
+
+    @cached_property
+    def names(self) -> list[RowNames]:
+        """Qualifier and analyzed name tokens of each candidate (see `row_names`)."""
+        return row_names(self.index, self.row_list)
+
+    @cached_property
+    def qualifiers(self) -> list[str]:
+        """Each candidate's title qualifier ('' when unqualified)."""
+        return [e.qualifier for e in self.names]
 
     @cached_property
     def base_tokens(self) -> list[frozenset[str]]:
         """Analyzed tokens of each candidate's title without its qualifier."""
-        return self._cached("base")
+        return [frozenset(e.base) for e in self.names]
 
     @cached_property
     def qualifier_tokens(self) -> list[frozenset[str]]:
         """Analyzed tokens of each candidate's qualifier (empty when unqualified)."""
-        return self._cached("qualifier")
+        return [frozenset(e.qualifier_tokens) for e in self.names]
 
     @cached_property
     def alias_tokens(self) -> list[frozenset[str]]:
         """Analyzed tokens of all of each candidate's aliases, one frozenset per candidate."""
-        return self._cached("aliases")
+        return [frozenset(e.aliases) for e in self.names]
 
 
 _CACHES: weakref.WeakKeyDictionary[Index, dict[Any, Any]] = weakref.WeakKeyDictionary()
@@ -77,25 +90,68 @@ def index_cache(index: Index) -> dict[Any, Any]:
     return cache
 
 
-def name_tokens(index: Index, kind: str) -> list[frozenset[str]]:
-    """Analyzed tokens of every row's base title, qualifier or aliases, computed once per index."""
+class RowNames(NamedTuple):
+    """What the name features need of one row; token tuples hold distinct tokens, in order.
+
+    Tuples rather than frozensets: a tuple of strings costs less memory and the garbage
+    collector stops tracking it, which matters when a large index has most rows cached.
+    """
+
+    qualifier: str
+    base: tuple[str, ...]
+    qualifier_tokens: tuple[str, ...]
+    aliases: tuple[str, ...]
+    qualifier_count: int  # titles in the corpus with this qualifier, 0 when unqualified
+
+
+def row_names(index: Index, rows: Sequence[int]) -> list[RowNames]:
+    """RowNames of `rows`; each row is analyzed on first use and remembered with the index.
+
+    Only the rows asked for are analyzed, so a large index costs nothing up front.
+    """
     cache = index_cache(index)
-    table: list[frozenset[str]] | None = cache.get(kind)
+    table: dict[int, RowNames] | None = cache.get("row_names")
     if table is None:
-        tokens_many = index.analyzer.tokens_many
-        if kind == "base":
-            table = [frozenset(t) for t in tokens_many(index.bases)]
-        elif kind == "qualifier":
-            table = [frozenset(t) for t in tokens_many(index.qualifiers)]
-        elif kind == "aliases":
-            table = [frozenset(t) for t in tokens_many(" ".join(a) for a in index.aliases)]
-        else:
-            raise ValueError(f"unknown name kind {kind!r}")
-        cache[kind] = table
-    return table
+        table = cache["row_names"] = {}
+    get = table.get
+    out = [get(r) for r in rows]
+    if None in out:
+        _analyze_rows(index, table, list(dict.fromkeys(r for r, e in zip(rows, out) if e is None)))
+        return [table[r] for r in rows]
+    return out  # type: ignore[return-value]
+
+
+def _analyze_rows(index: Index, table: dict[int, RowNames], rows: list[int]) -> None:
+    quals = [index.qualifiers[r] for r in rows]
+    texts = [index.bases[r] for r in rows] + quals + [" ".join(index.aliases[r]) for r in rows]
+    toks = index.analyzer.tokens_many(texts)
+    counts = qualifier_counts(index)
+    m = len(rows)
+    for j, r in enumerate(rows):
+        q = quals[j]
+        table[r] = RowNames(
+            q,
+            tuple(dict.fromkeys(toks[j])),
+            tuple(dict.fromkeys(toks[m + j])),
+            tuple(dict.fromkeys(toks[2 * m + j])),
+            counts.get(q, 0) if q else 0,
+        )
+
+
+def qualifier_counts(index: Index) -> dict[str, int]:
+    """How many titles carry each qualifier (one pass over the qualifiers, once per index)."""
+    cache = index_cache(index)
+    counts: dict[str, int] | None = cache.get("qualifier_counts")
+    if counts is None:
+        counter = Counter(index.qualifiers)
+        counter.pop("", None)
+        counts = cache["qualifier_counts"] = dict(counter)
+    return counts
 
 
 FeatureFunc = Callable[[CandidateSet], Any]
+# Below this many of the fused features in one request, the features run one by one.
+_MIN_FUSED = 6
 
 
 @dataclass(frozen=True)
@@ -123,12 +179,36 @@ class Feature:
         return values
 
 
+@dataclass(frozen=True)
+class FusedFeatures:
+    """Features computed together by one function that shares intermediate arrays.
+
+    `func` returns the columns of `features`, in that order, as one float64 (n, m) matrix
+    equal to calling each feature's own function (tests/reranker/test_builtin.py checks it).
+    """
+
+    features: tuple[Feature, ...]
+    func: Callable[[CandidateSet], np.ndarray]
+
+
+@dataclass(frozen=True)
+class _Plan:
+    """How the registry computes one list of names: fused columns, then the others."""
+
+    features: list[Feature]
+    fused_pos: list[int]  # positions in the output filled from the fused matrix ...
+    fused_cols: list[int]  # ... from these columns of it
+    others: list[tuple[int, Feature]]
+    all_fused: bool  # the output is the fused matrix itself
+
+
 class FeatureRegistry:
     """The features the running code can compute, by name, in a stable order."""
 
-    def __init__(self, features: Iterable[Feature] = ()) -> None:
+    def __init__(self, features: Iterable[Feature] = (), *, fused: FusedFeatures | None = None) -> None:
         self._features: dict[str, Feature] = {}
-        self._resolved: dict[tuple[str, ...], list[Feature]] = {}
+        self._plans: dict[tuple[str, ...], _Plan] = {}
+        self._fused = fused
         for f in features:
             self.add(f)
 
@@ -136,7 +216,7 @@ class FeatureRegistry:
         """Register a feature; names must be unique."""
         if feature.name in self._features:
             raise FeatureError(f"a feature named {feature.name!r} is already registered")
-        self._resolved.clear()
+        self._plans.clear()
         self._features[feature.name] = feature
 
     def __contains__(self, name: object) -> bool:
@@ -164,21 +244,43 @@ class FeatureRegistry:
 
     def resolve(self, names: Sequence[str]) -> list[Feature]:
         """The Feature objects of `names`, in order (remembered per list of names)."""
+        return self._plan(names).features
+
+    def _plan(self, names: Sequence[str]) -> _Plan:
         key = tuple(names)
-        found = self._resolved.get(key)
-        if found is None:
-            found = self._resolved[key] = [self[n] for n in key]
-        return found
+        plan = self._plans.get(key)
+        if plan is None:
+            feats = [self[n] for n in key]
+            col = {id(f): j for j, f in enumerate(self._fused.features)} if self._fused else {}
+            fused = [(i, col[id(f)]) for i, f in enumerate(feats) if id(f) in col]
+            if len(fused) < _MIN_FUSED:  # computing every fused column for a few costs more
+                fused = []
+            taken = {i for i, _ in fused}
+            plan = self._plans[key] = _Plan(
+                feats,
+                [i for i, _ in fused],
+                [j for _, j in fused],
+                [(i, f) for i, f in enumerate(feats) if i not in taken],
+                len(fused) == len(col) == len(feats) and all(i == j for i, j in fused),
+            )
+        return plan
 
     def matrix(self, cs: CandidateSet, names: Sequence[str]) -> np.ndarray:
         """Feature values of the candidates. float64, shape (n_candidates, len(names))."""
         n = len(cs)
+        plan = self._plan(names)
         if n == 0:
             return np.empty((0, len(names)))
-        # Built-ins are called directly (their shapes are fixed by tests); this loop is over
-        # features, not candidates, and per-call checks would cost more than the work.
-        cols = [f.func(cs) if f.trusted else f.compute(cs) for f in self.resolve(names)]
-        out = np.column_stack(cols)
+        if plan.all_fused and self._fused is not None:
+            out = self._fused.func(cs)
+        else:
+            out = np.empty((n, len(names)))
+            if plan.fused_pos and self._fused is not None:
+                out[:, plan.fused_pos] = self._fused.func(cs)[:, plan.fused_cols]
+            # Built-ins are called directly (their shapes are fixed by tests); this loop is
+            # over features, not candidates, and per-call checks would cost more than the work.
+            for j, f in plan.others:
+                out[:, j] = f.func(cs) if f.trusted else f.compute(cs)
         if not np.isfinite(out).all():
             bad = [names[int(j)] for j in np.flatnonzero(~np.isfinite(out).all(axis=0))]
             raise FeatureError(f"features {bad} returned NaN or infinite values")
@@ -188,7 +290,7 @@ class FeatureRegistry:
         self, specs: Sequence[str] = (), *, entry_point_group: str = ENTRY_POINT_GROUP
     ) -> FeatureRegistry:
         """A copy with features from installed entry points and `module:function` paths added."""
-        reg = FeatureRegistry(self._features.values())
+        reg = FeatureRegistry(self._features.values(), fused=self._fused)
         for ep in entry_points(group=entry_point_group):
             reg.add(_as_feature(ep.name, ep.load()))
         for spec in specs:

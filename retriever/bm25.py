@@ -76,8 +76,7 @@ def term_weights(
 ) -> np.ndarray:
     """BM25 weight of each posting; all inputs are per posting. float64, shape (n_postings,).
 
-    Kept in float64: float32 weights lose the 1e-5 relative agreement with rank_bm25 when
-    positive and floored negative IDFs nearly cancel in a score.
+    The index stores them as float32 unless some are negative (see build.weight_dtype).
     """
     tf = np.asarray(tf, dtype=np.float64)
     if avgdl > 0:

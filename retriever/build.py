@@ -5,7 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 import time
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -14,66 +14,108 @@ import numpy as np
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
-from . import bm25, store
+from . import bm25, columns, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
-from .counting import CHUNK, TermCounter, count_articles, default_workers
+from .counting import TermCounter, count_articles, default_workers
 from .index import Index, load_index
+from .ingest import Keys, ingest
 from .links import NameResolver, count_inlinks
 
+# Postings per slice when computing weights: bounds the float64 temporaries (~5 x 8 bytes
+# per posting) whatever the corpus size.
+_WEIGHT_SLICE = 1 << 21
 
-def _field_arrays(tf: sp.csc_matrix, params: bm25.BM25Params) -> dict[str, np.ndarray]:
-    """Postings (term-major), BM25 weights and per-term maximum weight of one field."""
-    n_docs = tf.shape[0]
-    tf.sort_indices()
-    doc_len = np.asarray(tf.sum(axis=1)).ravel().astype(np.int64)
-    avgdl = float(doc_len.sum()) / n_docs if n_docs else 0.0
-    df = np.diff(tf.indptr)
-    # The IDF (and the okapi floor's mean) is over the terms this field contains, as in
-    # rank_bm25; the shared vocabulary also holds terms seen only in the other field.
-    present = df > 0
-    term_idf = np.zeros(df.size, dtype=np.float64)
-    term_idf[present] = bm25.idf(df[present], n_docs, params)
-    docs = tf.indices.astype(np.int32)
-    weight = bm25.term_weights(
-        tf.data, doc_len[docs], np.repeat(term_idf, df), avgdl, params.k1, params.b
-    )
-    return {
-        "indptr": tf.indptr.astype(np.int64),
-        "docs": docs,
-        "tf": tf.data.astype(np.int32),
-        "weight": weight,
-        "doc_len": doc_len.astype(np.int32),
-    }
+
+class _Field:
+    """Term-major counts of one field and its per-term IDF."""
+
+    def __init__(self, tf: sp.csc_matrix, params: bm25.BM25Params) -> None:
+        self.tf = tf
+        n_docs = tf.shape[0]
+        if not tf.has_sorted_indices:
+            tf.sort_indices()
+        self.doc_len = np.bincount(tf.indices, weights=tf.data, minlength=n_docs).astype(np.int64)
+        self.avgdl = float(self.doc_len.sum()) / n_docs if n_docs else 0.0
+        self.df = np.diff(tf.indptr)
+        # The IDF (and the okapi floor's mean) is over the terms this field contains, as in
+        # rank_bm25; the shared vocabulary also holds terms seen only in the other field.
+        present = self.df > 0
+        self.idf = np.zeros(self.df.size, dtype=np.float64)
+        self.idf[present] = bm25.idf(self.df[present], n_docs, params)
+
+    def weights(self, params: bm25.BM25Params, dtype: type[np.floating[Any]]) -> np.ndarray:
+        """BM25 weight of every posting, in term-major order, computed slice by slice."""
+        tf = self.tf
+        out = np.empty(tf.nnz, dtype=dtype)
+        posting_term = np.repeat(np.arange(self.df.size, dtype=np.int32), self.df)
+        for s in range(0, tf.nnz, _WEIGHT_SLICE):
+            e = min(tf.nnz, s + _WEIGHT_SLICE)
+            docs = tf.indices[s:e]
+            out[s:e] = bm25.term_weights(
+                tf.data[s:e],
+                self.doc_len[docs],
+                self.idf[posting_term[s:e]],
+                self.avgdl,
+                params.k1,
+                params.b,
+            )
+        return out
+
+    def save(self, folder: Path, prefix: str, weights: np.ndarray) -> None:
+        """Write this field's postings arrays."""
+        store.save_array(folder, f"{prefix}_indptr", self.tf.indptr.astype(np.int64))
+        store.save_array(folder, f"{prefix}_docs", self.tf.indices.astype(np.int32, copy=False))
+        store.save_array(folder, f"{prefix}_tf", self.tf.data.astype(np.int32, copy=False))
+        store.save_array(folder, f"{prefix}_weight", weights)
+
+
+def weight_dtype(*idfs: np.ndarray) -> type[np.floating[Any]]:
+    """float32 when no IDF is negative (so no weight is), else float64.
+
+    Positive weights summed in float32 stay within ~1e-6 relative of float64 and halve
+    memory and scan time. Negative weights (the okapi floor on tiny corpora whose mean IDF is
+    negative) can cancel positive ones, and float32 then loses the 1e-5 relative agreement
+    with rank_bm25, so those indexes keep float64.
+    """
+    if any(i.size and float(i.min()) < 0 for i in idfs):
+        return np.float64
+    return np.float32
 
 
 def _term_major(
     counter: TermCounter, order: np.ndarray | None
 ) -> tuple[list[str], list[sp.csc_matrix]]:
     """Sorted vocabulary of the used terms and each field's (articles x terms) CSC counts."""
-    body = counter.matrix("body", order)
-    title = counter.matrix("title")
-    used = (np.diff(body.tocsc().indptr) > 0) | (np.diff(title.tocsc().indptr) > 0)
+    n_terms = len(counter.terms)
+    used = np.zeros(n_terms, dtype=bool)
+    rows = []
+    for name, field_order in (("body", order), ("title", None)):
+        m = counter.matrix(name, field_order)
+        counter.chunks[name] = []  # the stacked copy replaces the chunks
+        used |= np.bincount(m.indices, minlength=n_terms) > 0
+        rows.append(m)
     names = np.asarray(counter.terms, dtype=object)
     used_ids = np.flatnonzero(used)
     # Sorted and without unused terms: the same corpus always gives the same index.
     ranked = used_ids[np.argsort(names[used_ids].astype(str), kind="stable")]
-    new_id = np.full(len(counter.terms), -1, dtype=np.int64)
-    new_id[ranked] = np.arange(ranked.size)
+    new_id = np.full(n_terms, -1, dtype=np.int32)
+    new_id[ranked] = np.arange(ranked.size, dtype=np.int32)
     mats = []
-    for m in (body, title):
-        m = m.tocsr()
-        mats.append(
-            sp.csr_matrix(
-                (m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], ranked.size)
-            ).tocsc()
+    while rows:
+        m = rows.pop(0)
+        remapped = sp.csr_matrix(
+            (m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], ranked.size)
         )
+        del m
+        mats.append(remapped.tocsc())
+        del remapped
     return [str(t) for t in names[ranked]], mats
 
 
 def _write(
-    out: Path,
-    articles: list[Article],
+    tmp: Path,
+    keys: Keys,
     counter: TermCounter,
     body_order: np.ndarray | None,
     analyzer: Analyzer,
@@ -81,86 +123,64 @@ def _write(
     checksum: str,
     build: dict[str, Any],
     started: float,
-) -> Index:
+) -> None:
+    """Write everything but the article store into the temporary index folder `tmp`."""
     # `body_order[i]` is the counted row that becomes row i (updates count rows out of order).
     all_terms, (tf_body, tf_title) = _term_major(counter, body_order)
-    b = _field_arrays(tf_body, params)
-    t = _field_arrays(tf_title, params)
-    ids = [a.id for a in articles]
-    titles = [a.title for a in articles]
-    resolver = NameResolver(ids, titles, [a.aliases for a in articles])
-    inlinks, unresolved = count_inlinks(resolver, [a.links for a in articles], len(articles))
-    split = [split_title(title) for title in titles]
-    with store.atomic_folder(out) as tmp:
-        for prefix, arrays in (("body", b), ("title", t)):
-            for name in ("indptr", "docs", "tf", "weight"):
-                store.save_array(tmp, f"{prefix}_{name}", arrays[name])
-        store.save_array(tmp, "title_len", t["doc_len"])
-        store.save_array(tmp, "doc_len", b["doc_len"])
-        store.save_array(tmp, "inlinks", inlinks)
-        popularity = [np.nan if a.popularity is None else a.popularity for a in articles]
-        store.save_array(tmp, "popularity", np.array(popularity, dtype=np.float64))
-        store.write_json(tmp / store.VOCAB, all_terms)
-        store.write_json(
-            tmp / store.KEYS,
-            {
-                "ids": ids,
-                "titles": titles,
-                "bases": [s[0] for s in split],
-                "qualifiers": [s[1] for s in split],
-                "aliases": [list(a.aliases) for a in articles],
-            },
-        )
-        store.write_store(tmp, articles)
-        build_info = {
-            **build,
+    body, title = _Field(tf_body, params), _Field(tf_title, params)
+    del tf_body, tf_title
+    dtype = weight_dtype(body.idf, title.idf)
+    for prefix, fld in (("body", body), ("title", title)):
+        fld.save(tmp, prefix, fld.weights(params, dtype))
+    store.save_array(tmp, "title_len", title.doc_len.astype(np.int32))
+    store.save_array(tmp, "doc_len", body.doc_len.astype(np.int32))
+    n_articles = len(keys)
+    body_postings, title_postings = int(body.tf.nnz), int(title.tf.nnz)
+    avgdl = body.avgdl
+    del body, title
+    resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
+    inlinks, unresolved = count_inlinks(resolver, keys.links, n_articles)
+    split = [split_title(title) for title in keys.titles]
+    store.save_array(tmp, "inlinks", inlinks)
+    store.save_array(tmp, "popularity", np.asarray(keys.popularity, dtype=np.float64))
+    columns.write_vocab(tmp, all_terms)
+    columns.write_strings(tmp, "ids", keys.ids, sort_index=True)
+    columns.write_strings(tmp, "titles", keys.titles)
+    columns.write_strings(tmp, "bases", (s[0] for s in split))
+    columns.write_strings(tmp, "qualifiers", (s[1] for s in split))
+    columns.write_strings(tmp, "aliases", (columns.JsonListColumn.encode(a) for a in keys.aliases))
+    build_info = {
+        **build,
+        "unresolved_links": unresolved,
+        "ambiguous_aliases": len(resolver.ambiguous_aliases),
+        "seconds": round(time.perf_counter() - started, 3),
+    }
+    created = datetime.now(UTC).isoformat(timespec="seconds")
+    stamp = [checksum, params.to_dict(), analyzer.config.to_dict()]
+    version = hashlib.sha256(json.dumps(stamp, sort_keys=True).encode()).hexdigest()[:12]
+    manifest = {
+        "format": store.FORMAT_NAME,
+        "format_version": store.FORMAT_VERSION,
+        "index_version": version,
+        "created_at": created,
+        "corpus_checksum": checksum,
+        "analyzer": analyzer.config.to_dict(),
+        "bm25": params.to_dict(),
+        "counts": {
+            "articles": n_articles,
+            "terms": len(all_terms),
+            "body_postings": body_postings,
+            "title_postings": title_postings,
+            "avgdl": avgdl,
+            "qualified_titles": sum(1 for s in split if s[1]),
             "unresolved_links": unresolved,
-            "ambiguous_aliases": len(resolver.ambiguous_aliases),
-            "seconds": round(time.perf_counter() - started, 3),
-        }
-        created = datetime.now(UTC).isoformat(timespec="seconds")
-        stamp = [checksum, params.to_dict(), analyzer.config.to_dict()]
-        version = hashlib.sha256(json.dumps(stamp, sort_keys=True).encode()).hexdigest()[:12]
-        manifest = {
-            "format": store.FORMAT_NAME,
-            "format_version": store.FORMAT_VERSION,
-            "index_version": version,
-            "created_at": created,
-            "corpus_checksum": checksum,
-            "analyzer": analyzer.config.to_dict(),
-            "bm25": params.to_dict(),
-            "counts": {
-                "articles": len(articles),
-                "terms": len(all_terms),
-                "body_postings": int(b["docs"].size),
-                "title_postings": int(t["docs"].size),
-                "avgdl": float(b["doc_len"].mean()) if len(articles) else 0.0,
-                "qualified_titles": sum(1 for s in split if s[1]),
-                "unresolved_links": unresolved,
-            },
-            "build": build_info,
-        }
-        build_info["bytes_on_disk"] = store.folder_size(tmp)
-        # Written last: its presence marks a whole index.
-        store.write_json(tmp / store.MANIFEST, manifest)
-    return load_index(out)
-
-
-def _chunks(
-    articles: Iterable[Article], keep: list[Article]
-) -> Iterator[tuple[list[str], list[str]]]:
-    """(bodies, titles) in chunks, remembering every article in `keep`."""
-    bodies: list[str] = []
-    titles: list[str] = []
-    for art in articles:
-        keep.append(art)
-        bodies.append(art.text)
-        titles.append(art.title)
-        if len(bodies) >= CHUNK:
-            yield bodies, titles
-            bodies, titles = [], []
-    if bodies:
-        yield bodies, titles
+        },
+        "weights": np.dtype(dtype).name,
+        "build": build_info,
+    }
+    build_info["bytes_on_disk"] = store.folder_size(tmp)
+    # Written last: its presence marks a whole index.
+    store.write_json(tmp / store.MANIFEST, manifest)
 
 
 def _resolve_settings(
@@ -219,21 +239,32 @@ def build_index(
         blob = json.dumps(records, sort_keys=True, default=str).encode()
         checksum = hashlib.sha256(blob).hexdigest()
         source, hint = records, len(records)
-    articles: list[Article] = []
-    it = read_articles(source, skip_bad=skip_bad, report=report)
-    bar = tqdm(it, desc="indexing", unit=" articles", disable=not progress, mininterval=0.5)
     n_workers = default_workers(hint) if workers is None else max(1, int(workers))
-    counter = count_articles(_chunks(bar, articles), an, n_workers)
-    if not articles:
-        where = str(corpus) if isinstance(corpus, str | Path) else ""
-        raise CorpusError("the corpus has no valid articles", file=where)
-    build = {"skipped_lines": report.skipped, "problems": report.problems[:5], "workers": n_workers}
-    return _write(Path(out_dir), articles, counter, None, an, p, checksum, build, started)
+    out = Path(out_dir)
+    with (
+        tqdm(desc="indexing", unit=" articles", disable=not progress, mininterval=0.5) as bar,
+        store.atomic_folder(out) as tmp,
+    ):
+        with store.open_store(tmp) as fh:
+            state = ingest(
+                source, an, fh, workers=n_workers, skip_bad=skip_bad, report=report, bar=bar
+            )
+        if not state.keys:
+            where = str(corpus) if isinstance(corpus, str | Path) else ""
+            raise CorpusError("the corpus has no valid articles", file=where)
+        store.save_array(tmp, store.STORE_OFFSETS, state.store_offsets())
+        build = {
+            "skipped_lines": report.skipped,
+            "problems": report.problems[:5],
+            "workers": n_workers,
+        }
+        _write(tmp, state.keys, state.counter, None, an, p, checksum, build, started)
+    return load_index(out)
 
 
 def _existing_counts(index: Index, keep_rows: np.ndarray) -> tuple[sp.csr_matrix, list[str]]:
     """Doc-major term counts of some rows of an index (its body field), with the term names."""
-    vocab = json.loads((index.path / store.VOCAB).read_text(encoding="utf-8"))
+    vocab = index.vocab.terms.tolist()
     n_postings = int(index.manifest["counts"]["body_postings"])
     body_tf = store.open_array(index.path, "body_tf", "int32", n_postings)
     tf = sp.csc_matrix(
@@ -260,7 +291,7 @@ def update_index(
     started = time.perf_counter()
     old = load_index(index_dir)
     report = report if report is not None else ReadReport()
-    missing = [d for d in remove if d not in old._row_by_id]
+    missing = [d for d in remove if d not in old.ids]
     if missing:
         raise CorpusError(f"cannot remove unknown article ids: {missing[:10]}", field="id")
     new_articles = list(read_articles(add, skip_bad=skip_bad, report=report)) if add else []
@@ -324,4 +355,7 @@ def update_index(
     params = old.params
     order = np.asarray(source_pos, dtype=np.int64)
     del old  # release the memory maps before the folder is swapped
-    return _write(Path(index_dir), final, counter, order, an, params, checksum, build, started)
+    with store.atomic_folder(Path(index_dir)) as tmp:
+        store.write_store(tmp, final)
+        _write(tmp, Keys.of(final), counter, order, an, params, checksum, build, started)
+    return load_index(index_dir)

@@ -5,8 +5,8 @@ from __future__ import annotations
 import multiprocessing
 import os
 from collections import deque
-from collections.abc import Iterable, Sequence
-from typing import Any
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from typing import Any, TypeVar
 
 import numpy as np
 import scipy.sparse as sp
@@ -14,7 +14,6 @@ import scipy.sparse as sp
 from .analyzer import Analyzer, AnalyzerConfig, TermTable
 
 CHUNK = 4_000  # articles per task: big enough to amortize pickling, small enough to stream
-ChunkResult = tuple[int, list[str], np.ndarray, np.ndarray, np.ndarray, np.ndarray]
 
 
 def default_workers(n_hint: int) -> int:
@@ -28,6 +27,10 @@ def default_workers(n_hint: int) -> int:
     return max(1, min(2, cores))
 
 
+Csr = tuple[np.ndarray, np.ndarray, np.ndarray]  # indptr, term ids (local), counts
+ChunkResult = tuple[int, list[str], Csr, Csr]
+
+
 def _ids_of(
     analyzer: Analyzer, table: TermTable, texts: Sequence[str]
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -38,14 +41,27 @@ def _ids_of(
         before = len(flat)
         flat.extend(analyzer.term_ids(text, table))
         lens[i] = len(flat) - before
-    ids = np.asarray(flat, dtype=np.int32)
+    ids = np.asarray(flat, dtype=np.int64)
     if ids.size == 0:
-        return ids, np.zeros(len(texts), dtype=np.int32)
+        return ids, np.zeros(len(texts), dtype=np.int64)
     keep = ids >= 0
     # Words per text minus the stopwords among them.
     rows = np.repeat(np.arange(len(texts)), lens)
-    kept_lens = np.bincount(rows[keep], minlength=len(texts)).astype(np.int32)
+    kept_lens = np.bincount(rows[keep], minlength=len(texts))
     return ids[keep], kept_lens
+
+
+def count_texts(analyzer: Analyzer, table: TermTable, texts: Sequence[str]) -> Csr:
+    """Doc-major term counts of `texts` as CSR parts; term ids are `table`'s."""
+    ids, lens = _ids_of(analyzer, table, texts)
+    indptr = np.zeros(len(texts) + 1, dtype=np.int64)
+    if ids.size == 0:
+        return indptr, np.zeros(0, np.int32), np.zeros(0, np.int32)
+    rows = np.repeat(np.arange(len(texts), dtype=np.int64), lens)
+    width = int(ids.max()) + 1
+    keys, counts = np.unique(rows * width + ids, return_counts=True)  # sorted by (row, term)
+    np.cumsum(np.bincount(keys // width, minlength=len(texts)), out=indptr[1:])
+    return indptr, (keys % width).astype(np.int32), counts.astype(np.int32)
 
 
 class _Worker:
@@ -62,15 +78,58 @@ def _init_worker(config: dict[str, Any]) -> None:
     _Worker.sent = 0
 
 
-def _count_chunk(chunk: tuple[list[str], list[str]]) -> ChunkResult:
+def worker_state() -> tuple[Analyzer, TermTable]:
+    """This process's analyzer and word table (set up by the pool initializer)."""
     analyzer, table = _Worker.analyzer, _Worker.table
     if analyzer is None or table is None:
         raise RuntimeError("counting worker used before initialization")
-    body_ids, body_lens = _ids_of(analyzer, table, chunk[0])
-    title_ids, title_lens = _ids_of(analyzer, table, chunk[1])
-    new_terms = table.terms[_Worker.sent :]
+    return analyzer, table
+
+
+def new_terms() -> tuple[int, list[str]]:
+    """(process id, terms this process's table gained since it last reported)."""
+    table = worker_state()[1]
+    fresh = table.terms[_Worker.sent :]
     _Worker.sent = len(table.terms)
-    return os.getpid(), new_terms, body_ids, body_lens, title_ids, title_lens
+    return os.getpid(), fresh
+
+
+def _count_chunk(chunk: tuple[list[str], list[str]]) -> ChunkResult:
+    analyzer, table = worker_state()
+    body = count_texts(analyzer, table, chunk[0])
+    title = count_texts(analyzer, table, chunk[1])
+    return (*new_terms(), body, title)
+
+
+T = TypeVar("T")
+R = TypeVar("R")
+
+
+def run_chunks(
+    task: Callable[[T], R], chunks: Iterable[T], analyzer: Analyzer, workers: int
+) -> Iterator[R]:
+    """Results of `task` on each chunk, in order; in `workers` processes when more than one.
+
+    Tasks see the analyzer and a word table through `worker_state()`. fork shares the
+    already-imported modules; results come back in submission order, so the vocabulary
+    and every count are the same as with one process.
+    """
+    config = analyzer.config.to_dict()
+    if workers <= 1:
+        _init_worker(config)
+        for chunk in chunks:
+            yield task(chunk)
+        return
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+    ctx = multiprocessing.get_context(method)
+    with ctx.Pool(workers, initializer=_init_worker, initargs=(config,)) as pool:
+        pending: deque[Any] = deque()
+        for chunk in chunks:
+            pending.append(pool.apply_async(task, (chunk,)))
+            while len(pending) > 2 * workers:
+                yield pending.popleft().get()
+        while pending:
+            yield pending.popleft().get()
 
 
 class TermCounter:
@@ -94,11 +153,19 @@ class TermCounter:
 
     def add_result(self, result: ChunkResult) -> None:
         """Merge one counted chunk (its term ids are local to the process that counted it)."""
-        pid, new_terms, body_ids, body_lens, title_ids, title_lens = result
+        pid, fresh, body, title = result
+        self.add_parts(pid, fresh, {"body": body, "title": title})
+
+    def add_parts(self, pid: int, fresh: list[str], parts: dict[str, Csr]) -> None:
+        """Merge CSR parts counted by process `pid`, which reported `fresh` new terms."""
         known = self._maps.get(pid, np.zeros(0, dtype=np.int64))
-        mapping = self._maps[pid] = np.concatenate([known, self._global_ids(new_terms)])
-        for name, ids, lens in (("body", body_ids, body_lens), ("title", title_ids, title_lens)):
-            self.chunks[name].append(_csr(mapping[ids], lens))
+        mapping = self._maps[pid] = np.concatenate([known, self._global_ids(fresh)])
+        for name, (indptr, local, counts) in parts.items():
+            cols = mapping[local].astype(np.int32)
+            width = int(cols.max()) + 1 if cols.size else 0
+            self.chunks[name].append(
+                sp.csr_matrix((counts, cols, indptr), shape=(indptr.size - 1, width))
+            )
 
     def add_counts(self, field: str, matrix: sp.csr_matrix, names: Sequence[str]) -> None:
         """Append already-counted articles (rows of `matrix`, columns named by `names`)."""
@@ -133,38 +200,11 @@ class TermCounter:
         return tf[order] if order is not None else tf
 
 
-def _csr(ids: np.ndarray, lens: np.ndarray) -> sp.csr_matrix:
-    """Doc-major counts of one chunk; columns are global term ids (width fixed later)."""
-    rows = np.repeat(np.arange(len(lens), dtype=np.int32), lens)
-    n_cols = int(ids.max()) + 1 if ids.size else 0
-    m = sp.csr_matrix(
-        (np.ones(ids.size, dtype=np.int32), (rows, ids.astype(np.int32))), shape=(len(lens), n_cols)
-    )
-    m.sum_duplicates()
-    return m
-
-
 def count_articles(
     chunks: Iterable[tuple[list[str], list[str]]], analyzer: Analyzer, workers: int
 ) -> TermCounter:
     """Count (bodies, titles) chunks, in `workers` processes when more than one."""
     counter = TermCounter()
-    config = analyzer.config.to_dict()
-    if workers <= 1:
-        _init_worker(config)
-        for chunk in chunks:
-            counter.add_result(_count_chunk(chunk))
-        return counter
-    # fork shares the already-imported modules; results are merged in submission order, so
-    # the vocabulary and every count are the same as with one process.
-    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
-    ctx = multiprocessing.get_context(method)
-    with ctx.Pool(workers, initializer=_init_worker, initargs=(config,)) as pool:
-        pending: deque[Any] = deque()
-        for chunk in chunks:
-            pending.append(pool.apply_async(_count_chunk, (chunk,)))
-            while len(pending) > 2 * workers:
-                counter.add_result(pending.popleft().get())
-        while pending:
-            counter.add_result(pending.popleft().get())
+    for result in run_chunks(_count_chunk, chunks, analyzer, workers):
+        counter.add_result(result)
     return counter

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import threading
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -12,7 +11,7 @@ from typing import Any
 
 import numpy as np
 
-from . import scoring, store
+from . import columns, scoring, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .errors import IndexFormatError, UnknownDocumentError
@@ -50,13 +49,13 @@ class Document:
 class _Field:
     """Term-major postings of one field: CSR arrays over the shared vocabulary."""
 
-    def __init__(self, folder: Path, prefix: str, n_terms: int, n_postings: int) -> None:
+    def __init__(
+        self, folder: Path, prefix: str, n_terms: int, n_postings: int, dtype: str
+    ) -> None:
         # Plain ndarray views of the memory maps: slicing a np.memmap costs far more.
         self.indptr = np.asarray(store.open_array(folder, f"{prefix}_indptr", "int64", n_terms + 1))
         self.docs = np.asarray(store.open_array(folder, f"{prefix}_docs", "int32", n_postings))
-        self.weight = np.asarray(
-            store.open_array(folder, f"{prefix}_weight", "float64", n_postings)
-        )
+        self.weight = np.asarray(store.open_array(folder, f"{prefix}_weight", dtype, n_postings))
         if int(self.indptr[-1]) != n_postings or (n_terms and int(self.indptr[0]) != 0):
             raise IndexFormatError(
                 f"{folder}: {prefix}_indptr does not match the postings; rebuild the index"
@@ -75,11 +74,19 @@ class Index:
             self.n_terms: int = int(counts["terms"])
             self.analyzer = Analyzer(AnalyzerConfig.from_dict(self.manifest["analyzer"]))
             self.params = BM25Params(**self.manifest["bm25"])
-            vocab = json.loads((self.path / store.VOCAB).read_text(encoding="utf-8"))
-            keys = json.loads((self.path / store.KEYS).read_text(encoding="utf-8"))
-            self.body = _Field(self.path, "body", self.n_terms, int(counts["body_postings"]))
+            self.vocab = columns.Vocab(self.path, self.n_terms)
+            n = self.n_docs
+            self.ids = columns.StringColumn(self.path, "ids", n)
+            self.titles = columns.StringColumn(self.path, "titles", n)
+            self.bases = columns.StringColumn(self.path, "bases", n)
+            self.qualifiers = columns.StringColumn(self.path, "qualifiers", n)
+            self.aliases = columns.JsonListColumn(columns.StringColumn(self.path, "aliases", n))
+            dtype = str(self.manifest["weights"])
+            if dtype not in ("float32", "float64"):
+                raise IndexFormatError(f"{self.path}: unknown weight type {dtype!r}; rebuild")
+            self.body = _Field(self.path, "body", self.n_terms, int(counts["body_postings"]), dtype)
             self.title_field = _Field(
-                self.path, "title", self.n_terms, int(counts["title_postings"])
+                self.path, "title", self.n_terms, int(counts["title_postings"]), dtype
             )
         except (KeyError, TypeError, ValueError, FileNotFoundError) as exc:
             if isinstance(exc, IndexFormatError):
@@ -87,21 +94,9 @@ class Index:
             raise IndexFormatError(
                 f"{self.path}: the index is incomplete or damaged ({exc!r}); rebuild it"
             ) from exc
-        if len(vocab) != self.n_terms or any(
-            len(keys[k]) != self.n_docs for k in ("ids", "titles")
-        ):
-            raise IndexFormatError(
-                f"{self.path}: vocabulary or keys do not match the manifest; rebuild the index"
-            )
         self.title_weight = (
             self.params.title_weight if title_weight is None else float(title_weight)
         )
-        self._vocab: dict[str, int] = {term: i for i, term in enumerate(vocab)}
-        self.ids: list[str] = keys["ids"]
-        self.titles: list[str] = keys["titles"]
-        self.bases: list[str] = keys["bases"]
-        self.qualifiers: list[str] = keys["qualifiers"]
-        self.aliases: list[list[str]] = keys["aliases"]
         self.doc_len = store.open_array(self.path, "doc_len", "int32", self.n_docs)
         self.inlinks = store.open_array(self.path, "inlinks", "int32", self.n_docs)
         self.popularity = store.open_array(self.path, "popularity", "float64", self.n_docs)
@@ -121,14 +116,10 @@ class Index:
 
     def row_of(self, doc_id: str) -> int:
         """Row of an article id; raises UnknownDocumentError."""
-        row = self._row_by_id.get(doc_id)
+        row = self.ids.find(doc_id)
         if row is None:
             raise UnknownDocumentError(doc_id)
         return row
-
-    @cached_property
-    def _row_by_id(self) -> dict[str, int]:
-        return {doc_id: row for row, doc_id in enumerate(self.ids)}
 
     def resolve(self, name: str) -> str | None:
         """Article id that `name` (id, title, normalized title or alias) refers to, or None."""
@@ -160,20 +151,17 @@ class Index:
     # -- scoring --------------------------------------------------------
     def term_ids(self, tokens: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """Known query terms as (term ids, counts in the query); unknown tokens are dropped."""
-        counts: dict[int, int] = {}
-        get = self._vocab.get
-        for tok in tokens:
-            tid = get(tok)
-            if tid is not None:
-                counts[tid] = counts.get(tid, 0) + 1
-        return np.fromiter(counts.keys(), np.int64, len(counts)), np.fromiter(
-            counts.values(), np.float64, len(counts)
-        )
+        ids = self.vocab.lookup(tokens)
+        # Distinct known ids in first-seen order, with their counts.
+        known = ids[ids >= 0]
+        uniq, first, qtf = np.unique(known, return_index=True, return_counts=True)
+        order = np.argsort(first, kind="stable")
+        return uniq[order], qtf[order].astype(np.float64)
 
     def _buffer(self) -> np.ndarray:
         buf = getattr(self._local, "buf", None)
         if buf is None:
-            buf = self._local.buf = np.zeros(self.n_docs, dtype=np.float64)
+            buf = self._local.buf = np.zeros(self.n_docs, dtype=self.body.weight.dtype)
         return buf
 
     def _plan(self, tokens: Sequence[str]) -> scoring.Plan | None:
@@ -187,11 +175,11 @@ class Index:
 
     def score_tokens(self, tokens: Sequence[str]) -> np.ndarray:
         """BM25 score of every article for already-analyzed tokens. float64, shape (n_docs,)."""
-        scores = np.zeros(self.n_docs, dtype=np.float64)
+        scores = np.zeros(self.n_docs, dtype=self.body.weight.dtype)
         plan = self._plan(tokens)
         if plan is not None:
             scoring.accumulate(scores, plan)
-        return scores
+        return scores.astype(np.float64)
 
     def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
         """Top-k articles for already-analyzed tokens, best first (ties by row).

@@ -69,7 +69,7 @@ def _ranges(start: np.ndarray, length: np.ndarray) -> np.ndarray:
 
 
 def accumulate(buf: np.ndarray, p: Plan, *, use_kernel: bool = True) -> None:
-    """Add every planned posting's weight x factor into `buf` (float64, one slot per article)."""
+    """Add every planned posting's weight x factor into `buf` (float32, one slot per article)."""
     for fld, start, end, factor in zip(p.fields, p.start, p.end, p.factor, strict=True):
         if start.size == 0:
             continue
@@ -78,7 +78,7 @@ def accumulate(buf: np.ndarray, p: Plan, *, use_kernel: bool = True) -> None:
             # end back to the next range's (lower) start, so they are empty and cost nothing.
             bounds = np.empty(2 * start.size, dtype=np.int32)
             bounds[0::2], bounds[1::2] = start, end
-            x = np.zeros(2 * start.size - 1, dtype=np.float64)
+            x = np.zeros(2 * start.size - 1, dtype=buf.dtype)
             x[0::2] = factor
             _matvec(buf.size, x.size, bounds, fld.docs, fld.weight, x, buf)
         else:

@@ -19,12 +19,10 @@ from .corpus import Article
 from .errors import IndexFormatError
 
 FORMAT_NAME = "hunchwise-index"
-FORMAT_VERSION = 2
+FORMAT_VERSION = 3
 MANIFEST = "manifest.json"
 STORE = "store.jsonl"
 STORE_OFFSETS = "store_offsets"
-KEYS = "keys.json"
-VOCAB = "vocab.json"
 
 
 def write_json(path: Path, data: Any) -> None:
@@ -67,6 +65,15 @@ def open_array(folder: Path, name: str, dtype: str, length: int | None = None) -
             f"length {length}; the index is damaged, rebuild it"
         )
     return np.asarray(arr)  # plain ndarray view of the map: slicing a memmap subclass is slow
+
+
+@contextlib.contextmanager
+def open_store(folder: Path) -> Iterator[Any]:
+    """The article store file of a folder being written, opened for appending bytes."""
+    with open(folder / STORE, "wb") as fh:
+        yield fh
+        fh.flush()
+        os.fsync(fh.fileno())
 
 
 def write_store(folder: Path, articles: Iterable[Article]) -> int:

@@ -61,7 +61,8 @@ def test_workers_do_not_change_the_index(tmp_path: Path) -> None:
     two = build_index(records, tmp_path / "two", workers=2)
     for name in ("body_indptr", "body_docs", "body_weight", "title_docs", "doc_len", "inlinks"):
         assert np.array_equal(np.load(one.path / f"{name}.npy"), np.load(two.path / f"{name}.npy"))
-    assert (one.path / "vocab.json").read_bytes() == (two.path / "vocab.json").read_bytes()
+    for name in ("terms.bin", "terms_offsets.npy", "vocab_keys.npy", "ids.bin"):
+        assert (one.path / name).read_bytes() == (two.path / name).read_bytes()
 
 
 def _by_id(idx: Any, clue: str) -> dict[str, float]:

@@ -1,0 +1,241 @@
+"""Memory-mapped string columns and the term vocabulary of an index folder.
+
+Ids, titles and terms are stored as one UTF-8 blob per column plus an offsets array, so
+opening an index parses nothing: a million-article index opens in milliseconds and worker
+processes share the pages. Written by hand because numpy has no variable-length string
+array that memory-maps; each piece is a few lines over numpy.
+"""
+
+from __future__ import annotations
+
+import bisect
+import itertools
+import json
+import mmap
+from collections.abc import Iterable, Iterator, Sequence
+from pathlib import Path
+from typing import overload
+
+import numpy as np
+
+from .errors import IndexFormatError
+
+# Terms up to this many UTF-8 bytes live in a fixed-width sorted array searched in C; longer
+# ones (rare: URLs, chemical names) in a small dict. 32 covers ordinary words with room.
+MAX_KEY_BYTES = 32
+
+
+def _paths(folder: Path, name: str) -> tuple[Path, Path]:
+    return folder / f"{name}.bin", folder / f"{name}_offsets.npy"
+
+
+def write_strings(
+    folder: Path, name: str, values: Iterable[str], *, sort_index: bool = False
+) -> int:
+    """Write a string column (`name.bin` + `name_offsets.npy`); returns how many strings.
+
+    With `sort_index`, also writes `name_order.npy` (rows in sorted order of their values)
+    so that `StringColumn.find` is a binary search.
+    """
+    encoded = [v.encode("utf-8") for v in values]
+    offsets = np.zeros(len(encoded) + 1, dtype=np.int64)
+    np.cumsum([len(e) for e in encoded], out=offsets[1:])
+    blob, offs = _paths(folder, name)
+    with open(blob, "wb") as fh:
+        fh.write(b"".join(encoded))
+    np.save(offs, offsets, allow_pickle=False)
+    if sort_index:
+        order = sorted(range(len(encoded)), key=encoded.__getitem__)
+        np.save(folder / f"{name}_order.npy", np.asarray(order, dtype=np.int64), allow_pickle=False)
+    return len(encoded)
+
+
+class StringColumn(Sequence[str]):
+    """Read-only strings by row from a memory-mapped blob (list-like: index, slice, iterate)."""
+
+    def __init__(self, folder: Path, name: str, length: int) -> None:
+        from . import store  # store imports this module
+
+        blob, _ = _paths(folder, name)
+        self._offsets = store.open_array(folder, f"{name}_offsets", "int64", length + 1)
+        if not blob.exists():
+            raise IndexFormatError(f"{folder}: {blob.name} is missing; rebuild the index")
+        size = blob.stat().st_size
+        if size != int(self._offsets[-1]):
+            raise IndexFormatError(
+                f"{folder}: {blob.name} is {size} bytes, expected {int(self._offsets[-1])}; "
+                "the index is damaged, rebuild it"
+            )
+        self._bytes: mmap.mmap | bytes = b""
+        if size:
+            with open(blob, "rb") as fh:
+                self._bytes = mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
+        self._len = length
+        order_path = folder / f"{name}_order.npy"
+        self._order = (
+            store.open_array(folder, f"{name}_order", "int64", length)
+            if order_path.exists()
+            else None
+        )
+
+    def __len__(self) -> int:
+        return self._len
+
+    def _at(self, row: int) -> str:
+        start, end = self._offsets[row : row + 2].tolist()
+        return self._bytes[start:end].decode("utf-8")
+
+    @overload
+    def __getitem__(self, row: int) -> str: ...
+    @overload
+    def __getitem__(self, row: slice) -> list[str]: ...
+    def __getitem__(self, row: int | slice) -> str | list[str]:
+        if isinstance(row, slice):
+            return [self._at(r) for r in range(*row.indices(self._len))]
+        r = int(row)
+        if r < 0:
+            r += self._len
+        if not 0 <= r < self._len:
+            raise IndexError(f"row {row} out of range for {self._len} strings")
+        return self._at(r)
+
+    def __iter__(self) -> Iterator[str]:
+        data = self._bytes[:]
+        offs = self._offsets.tolist()
+        for start, end in itertools.pairwise(offs):
+            yield data[start:end].decode("utf-8")
+
+    def tolist(self) -> list[str]:
+        """Every string, decoded."""
+        return list(self)
+
+    def find(self, value: str) -> int | None:
+        """Row holding `value` (binary search; needs the sorted order written at build)."""
+        if self._order is None:
+            for r, v in enumerate(self):
+                if v == value:
+                    return r
+            return None
+        order = self._order
+        key = value.encode("utf-8")
+
+        def at(i: int) -> bytes:
+            start, end = self._offsets[order[i] : order[i] + 2].tolist()
+            return self._bytes[start:end]
+
+        pos = bisect.bisect_left(range(self._len), key, key=at)
+        if pos < self._len and at(pos) == key:
+            return int(order[pos])
+        return None
+
+    def __contains__(self, value: object) -> bool:
+        return isinstance(value, str) and self.find(value) is not None
+
+
+class JsonListColumn(Sequence[list[str]]):
+    """A column of string lists (aliases), one JSON array per row; '' stands for []."""
+
+    def __init__(self, strings: StringColumn) -> None:
+        self._strings = strings
+
+    def __len__(self) -> int:
+        return len(self._strings)
+
+    @staticmethod
+    def encode(values: Sequence[str]) -> str:
+        """Row form of one list."""
+        return json.dumps(list(values), ensure_ascii=False) if values else ""
+
+    @staticmethod
+    def _decode(text: str) -> list[str]:
+        return json.loads(text) if text else []
+
+    @overload
+    def __getitem__(self, row: int) -> list[str]: ...
+    @overload
+    def __getitem__(self, row: slice) -> list[list[str]]: ...
+    def __getitem__(self, row: int | slice) -> list[str] | list[list[str]]:
+        if isinstance(row, slice):
+            return [self._decode(t) for t in self._strings[row]]
+        return self._decode(self._strings[row])
+
+    def __iter__(self) -> Iterator[list[str]]:
+        for text in self._strings:
+            yield self._decode(text)
+
+
+def write_vocab(folder: Path, terms: Sequence[str]) -> None:
+    """Write the vocabulary: term names by id, plus the lookup arrays `Vocab` searches."""
+    write_strings(folder, "terms", terms)
+    encoded = [t.encode("utf-8") for t in terms]
+    short = [i for i, e in enumerate(encoded) if len(e) <= MAX_KEY_BYTES]
+    width = max((len(encoded[i]) for i in short), default=1)
+    keys = np.array([encoded[i] for i in short], dtype=f"S{width}")
+    order = np.argsort(keys, kind="stable")
+    np.save(folder / "vocab_keys.npy", keys[order], allow_pickle=False)
+    np.save(
+        folder / "vocab_ids.npy",
+        np.asarray(short, dtype=np.int32)[order],
+        allow_pickle=False,
+    )
+    long_terms = {terms[i]: i for i, e in enumerate(encoded) if len(e) > MAX_KEY_BYTES}
+    (folder / "vocab_long.json").write_text(json.dumps(long_terms, ensure_ascii=False), "utf-8")
+
+
+class Vocab:
+    """Term -> id lookup without building a Python dict of the whole vocabulary."""
+
+    def __init__(self, folder: Path, n_terms: int) -> None:
+        from . import store
+
+        self.terms = StringColumn(folder, "terms", n_terms)
+        keys_path = folder / "vocab_keys.npy"
+        if not keys_path.exists():
+            raise IndexFormatError(f"{folder}: vocab_keys.npy is missing; rebuild the index")
+        try:
+            self._keys = np.load(keys_path, mmap_mode="r", allow_pickle=False)
+        except (ValueError, OSError, EOFError) as exc:
+            raise IndexFormatError(f"{folder}: vocab_keys.npy is corrupt ({exc}); rebuild") from exc
+        if self._keys.dtype.kind != "S" or self._keys.ndim != 1:
+            raise IndexFormatError(f"{folder}: vocab_keys.npy has the wrong type; rebuild")
+        self._keys = np.asarray(self._keys)
+        self._ids = store.open_array(folder, "vocab_ids", "int32", self._keys.shape[0])
+        try:
+            self._long: dict[str, int] = json.loads((folder / "vocab_long.json").read_text("utf-8"))
+        except (OSError, ValueError) as exc:
+            raise IndexFormatError(f"{folder}: vocab_long.json is unreadable; rebuild") from exc
+        if self._keys.shape[0] + len(self._long) != n_terms:
+            raise IndexFormatError(
+                f"{folder}: the vocabulary holds {self._keys.shape[0] + len(self._long)} terms, "
+                f"the manifest says {n_terms}; rebuild the index"
+            )
+        self._width = self._keys.dtype.itemsize
+
+    def __len__(self) -> int:
+        return len(self.terms)
+
+    def lookup(self, tokens: Sequence[str]) -> np.ndarray:
+        """Term id of each token, -1 where unknown. int64, shape (len(tokens),)."""
+        out = np.full(len(tokens), -1, dtype=np.int64)
+        if not tokens:
+            return out
+        enc = [t.encode("utf-8") for t in tokens]
+        width = self._width
+        short = [i for i, e in enumerate(enc) if len(e) <= width]
+        if len(short) != len(enc):
+            for i, e in enumerate(enc):
+                if len(e) > width:
+                    out[i] = self._long.get(tokens[i], -1)
+        if short and self._keys.size:
+            q = np.array([enc[i] for i in short], dtype=f"S{width}")
+            pos = np.searchsorted(self._keys, q)
+            pos = np.minimum(pos, self._keys.size - 1)
+            hit = self._keys[pos] == q
+            idx = np.asarray(short, dtype=np.int64)
+            out[idx[hit]] = self._ids[pos[hit]]
+        return out
+
+    def get(self, term: str) -> int | None:
+        """Id of one term, or None."""
+        tid = int(self.lookup([term])[0])
+        return None if tid < 0 else tid

@@ -1,0 +1,246 @@
+"""Read, validate, store and count a corpus in one pass, in worker processes for big corpora.
+
+The parent process only reads raw lines and merges results; parsing, validation, encoding
+the article store and counting terms all happen in the workers, so on two cores the parent
+is never the bottleneck. The parent keeps only what in-link counting and the key columns
+need (ids, titles, aliases, links, popularity), never the article texts.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import IO, Any
+
+import numpy as np
+
+from .analyzer import Analyzer
+from .corpus import Article, CorpusError, ReadReport, detect_format, iter_raw, validate_record
+from .counting import CHUNK, Csr, TermCounter, count_texts, new_terms, run_chunks, worker_state
+
+# One raw item: (line number, JSONL bytes | parsed record | Article | ("error", reason, field)).
+RawItem = tuple[int, Any]
+Meta = tuple[int, str, str, tuple[str, ...], tuple[str, ...], float | None]
+
+
+@dataclass
+class Keys:
+    """Per-article fields the parent keeps, in row order."""
+
+    ids: list[str] = field(default_factory=list)
+    titles: list[str] = field(default_factory=list)
+    aliases: list[tuple[str, ...]] = field(default_factory=list)
+    links: list[tuple[str, ...]] = field(default_factory=list)
+    popularity: list[float] = field(default_factory=list)
+
+    def __len__(self) -> int:
+        return len(self.ids)
+
+    def append(self, meta: Meta) -> None:
+        """Add one article's keys."""
+        _, doc_id, title, aliases, links, pop = meta
+        self.ids.append(doc_id)
+        self.titles.append(title)
+        self.aliases.append(aliases)
+        self.links.append(links)
+        self.popularity.append(np.nan if pop is None else pop)
+
+    @classmethod
+    def of(cls, articles: Iterable[Article]) -> Keys:
+        """Keys of already-validated articles."""
+        keys = cls()
+        for a in articles:
+            keys.append((0, a.id, a.title, a.aliases, a.links, a.popularity))
+        return keys
+
+
+@dataclass
+class ChunkOut:
+    """What a worker returns for one chunk of raw items."""
+
+    pid: int
+    fresh: list[str]
+    metas: list[Meta]  # good articles, in line order
+    errors: list[tuple[int, str, str]]  # (line, reason, field) of bad items
+    store: bytes  # the good articles' store lines, concatenated
+    store_lens: np.ndarray
+    body: Csr
+    title: Csr
+
+
+def _record_line(art: Article) -> bytes:
+    return json.dumps(art.to_record(), ensure_ascii=False, separators=(",", ":")).encode() + b"\n"
+
+
+def _parse(raw: Any, file: str, line: int) -> Article:
+    if isinstance(raw, Article):
+        return raw
+    if isinstance(raw, tuple):  # an error the reader already found
+        raise CorpusError(raw[1], file=file, line=line, field=raw[2])
+    if isinstance(raw, bytes):
+        try:
+            text = raw.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            msg = f"not valid UTF-8 ({exc.reason} at byte {exc.start})"
+            raise CorpusError(msg, file=file, line=line) from exc
+        try:
+            raw = json.loads(text)
+        except json.JSONDecodeError as exc:
+            msg = f"malformed JSON: {exc.msg} (column {exc.colno})"
+            raise CorpusError(msg, file=file, line=line) from exc
+    return validate_record(raw, file=file, line=line)
+
+
+def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
+    """Parse, validate, encode and count one chunk (runs in a worker)."""
+    file, items = task
+    analyzer, table = worker_state()
+    metas: list[Meta] = []
+    errors: list[tuple[int, str, str]] = []
+    lines: list[bytes] = []
+    bodies: list[str] = []
+    titles: list[str] = []
+    for line, raw in items:
+        try:
+            art = _parse(raw, file, line)
+        except CorpusError as exc:
+            errors.append((line, exc.reason, exc.field))
+            continue
+        metas.append((line, art.id, art.title, art.aliases, art.links, art.popularity))
+        lines.append(_record_line(art))
+        bodies.append(art.text)
+        titles.append(art.title)
+    body = count_texts(analyzer, table, bodies)
+    title = count_texts(analyzer, table, titles)
+    pid, fresh = new_terms()
+    lens = np.fromiter(map(len, lines), np.int64, len(lines))
+    return ChunkOut(pid, fresh, metas, errors, b"".join(lines), lens, body, title)
+
+
+def _raw_items(source: str | Path | Iterable[Mapping[str, Any] | Article]) -> Iterator[RawItem]:
+    if not isinstance(source, str | Path):
+        yield from enumerate(source, 1)
+        return
+    path = Path(source)
+    if path.exists() and detect_format(path) == "jsonl":
+        import gzip
+
+        opener = gzip.open if path.suffix.lower() == ".gz" else open
+        with opener(path, "rb") as fh:
+            for n, raw in enumerate(fh, 1):
+                if raw.strip():
+                    yield n, raw
+        return
+    for n, rec in iter_raw(path):
+        yield n, ("error", rec.reason, rec.field) if isinstance(rec, CorpusError) else rec
+
+
+def _tasks(file: str, items: Iterable[RawItem], bar: Any) -> Iterator[tuple[str, list[RawItem]]]:
+    chunk: list[RawItem] = []
+    for item in items:
+        chunk.append(item)
+        if len(chunk) >= CHUNK:
+            bar.update(len(chunk))
+            yield file, chunk
+            chunk = []
+    if chunk:
+        bar.update(len(chunk))
+        yield file, chunk
+
+
+def _keep_rows(csr: Csr, keep: np.ndarray) -> Csr:
+    indptr, cols, counts = csr
+    lens = np.diff(indptr)[keep]
+    starts = indptr[:-1][keep]
+    idx = (np.repeat(starts - np.cumsum(lens) + lens, lens) + np.arange(int(lens.sum()))).astype(
+        np.int64
+    )
+    out_ptr = np.zeros(lens.size + 1, dtype=np.int64)
+    np.cumsum(lens, out=out_ptr[1:])
+    return out_ptr, cols[idx], counts[idx]
+
+
+class Ingest:
+    """Running state of one ingest: seen names, keys, store file, counts and problems."""
+
+    def __init__(self, file: str, store_fh: IO[bytes], skip_bad: bool, report: ReadReport):
+        self.file, self.store_fh, self.skip_bad, self.report = file, store_fh, skip_bad, report
+        self.keys = Keys()
+        self.counter = TermCounter()
+        self.offsets: list[np.ndarray] = [np.zeros(1, dtype=np.int64)]
+        self._end = 0
+        self._seen_ids: dict[str, int] = {}
+        self._seen_titles: dict[str, int] = {}
+
+    def _duplicate(self, meta: Meta) -> CorpusError | None:
+        line, doc_id, title = meta[0], meta[1], meta[2]
+        if doc_id in self._seen_ids:
+            first = self._seen_ids[doc_id]
+            msg = f"duplicate id {doc_id!r} (first seen on line {first})"
+            return CorpusError(msg, file=self.file, line=line, field="id")
+        if title in self._seen_titles:
+            first = self._seen_titles[title]
+            msg = f"duplicate title {title!r} (first seen on line {first})"
+            return CorpusError(msg, file=self.file, line=line, field="title")
+        self._seen_ids[doc_id] = line
+        self._seen_titles[title] = line
+        return None
+
+    def add(self, out: ChunkOut) -> None:
+        """Merge one chunk, or raise its first problem when bad lines are not skipped."""
+        problems = [
+            (line, CorpusError(reason, file=self.file, line=line, field=fld))
+            for line, reason, fld in out.errors
+        ]
+        keep = np.ones(len(out.metas), dtype=bool)
+        for i, meta in enumerate(out.metas):
+            dup = self._duplicate(meta)
+            if dup is not None:
+                keep[i] = False
+                problems.append((meta[0], dup))
+        problems.sort(key=lambda p: p[0])
+        if problems and not self.skip_bad:
+            raise problems[0][1]
+        for _, exc in problems:
+            self.report.note(exc)
+        store, lens, body, title = out.store, out.store_lens, out.body, out.title
+        if not keep.all():
+            starts = np.concatenate([[0], np.cumsum(lens)[:-1]])
+            store = b"".join(
+                store[s : s + n] for s, n, k in zip(starts, lens, keep, strict=True) if k
+            )
+            lens = lens[keep]
+            body, title = _keep_rows(body, keep), _keep_rows(title, keep)
+        for meta, k in zip(out.metas, keep.tolist(), strict=True):
+            if k:
+                self.keys.append(meta)
+        self.report.articles += int(keep.sum())
+        self.store_fh.write(store)
+        self.offsets.append(self._end + np.cumsum(lens))
+        self._end += int(lens.sum())
+        self.counter.add_parts(out.pid, out.fresh, {"body": body, "title": title})
+
+    def store_offsets(self) -> np.ndarray:
+        """Byte offsets of every stored line, plus the end."""
+        return np.concatenate(self.offsets)
+
+
+def ingest(
+    source: str | Path | Iterable[Mapping[str, Any] | Article],
+    analyzer: Analyzer,
+    store_fh: IO[bytes],
+    *,
+    workers: int,
+    skip_bad: bool,
+    report: ReadReport,
+    bar: Any,
+) -> Ingest:
+    """Read, validate, store (into `store_fh`) and count every article of `source`."""
+    file = str(source) if isinstance(source, str | Path) else "<records>"
+    state = Ingest(file, store_fh, skip_bad, report)
+    tasks = _tasks(file, _raw_items(source), bar)
+    for out in run_chunks(ingest_chunk, tasks, analyzer, workers):
+        state.add(out)
+    return state

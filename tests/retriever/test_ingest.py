@@ -1,0 +1,83 @@
+"""Building from a file: the worker-side reader reports and skips exactly like read_articles."""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from retriever import CorpusError, ReadReport, build_index, read_articles
+from retriever.counting import CHUNK
+
+from .foldoc import synthetic_articles
+from .test_corpus import BAD_LINES
+
+
+@pytest.mark.parametrize(("line", "lineno", "field", "reason"), BAD_LINES)
+def test_build_fails_with_the_same_error_as_the_reader(
+    tmp_path: Path, line: str, lineno: int, field: str | None, reason: str
+) -> None:
+    path = tmp_path / "bad.jsonl"
+    path.write_text('{"id": "a1", "title": "First", "text": "ok"}\n' + line + "\n")
+    with pytest.raises(CorpusError) as read_err:
+        list(read_articles(path))
+    with pytest.raises(CorpusError) as build_err:
+        build_index(path, tmp_path / "idx")
+    assert str(build_err.value) == str(read_err.value)
+    assert (build_err.value.line, build_err.value.field) == (lineno, field or "")
+    assert not (tmp_path / "idx").exists()
+
+
+def _messy_corpus(path: Path) -> tuple[list[dict[str, object]], list[int]]:
+    """Good records with bad lines and duplicates spread over several chunks."""
+    records = list(synthetic_articles(3 * CHUNK, seed=7))
+    lines = [json.dumps(r) for r in records]
+    bad_at = {5: "{oops", CHUNK + 3: '{"id": "x"}', 2 * CHUNK + 11: "[1]"}
+    # Duplicates of articles from earlier chunks (one id, one title).
+    dups = {
+        CHUNK + 50: json.dumps({**records[2], "title": "a fresh title"}),
+        2 * CHUNK + 70: json.dumps({**records[CHUNK + 1], "id": "fresh-id"}),
+    }
+    out, bad_lines = [], []
+    for i, text in enumerate(lines):
+        for extra in (bad_at.get(i), dups.get(i)):
+            if extra is not None:
+                out.append(extra)
+                bad_lines.append(len(out))
+        out.append(text)
+    path.write_text("\n".join(out) + "\n")
+    return records, bad_lines
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_skip_bad_drops_exactly_the_bad_lines(tmp_path: Path, workers: int) -> None:
+    path = tmp_path / "messy.jsonl"
+    records, bad_lines = _messy_corpus(path)
+    expected = ReadReport()
+    kept = list(read_articles(path, skip_bad=True, report=expected))
+    report = ReadReport()
+    idx = build_index(path, tmp_path / "idx", skip_bad=True, report=report, workers=workers)
+    assert report == expected
+    assert report.skipped == len(bad_lines)
+    assert all(
+        re.search(rf"line {n}\b", p) for n, p in zip(bad_lines, report.problems, strict=True)
+    )
+    assert idx.ids.tolist() == [a.id for a in kept] == [r["id"] for r in records]
+    # Same index as one built from the good records alone.
+    clean = build_index(records, tmp_path / "clean", workers=1)
+    for name in ("body_docs", "body_weight", "body_indptr", "title_docs", "doc_len"):
+        assert np.array_equal(
+            np.load(idx.path / f"{name}.npy"), np.load(clean.path / f"{name}.npy")
+        )
+    assert (idx.path / "store.jsonl").read_bytes() == (clean.path / "store.jsonl").read_bytes()
+    assert idx.document_at(CHUNK + 1).text == records[CHUNK + 1]["text"]
+
+
+def test_first_bad_line_wins_across_chunks(tmp_path: Path) -> None:
+    path = tmp_path / "messy.jsonl"
+    _, bad_lines = _messy_corpus(path)
+    with pytest.raises(CorpusError, match=rf"line {bad_lines[0]}: malformed JSON"):
+        build_index(path, tmp_path / "idx", workers=2)
