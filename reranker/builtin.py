@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 
 import numpy as np
 
 from retriever import Index
 
-from .features import CandidateSet, Feature, FeatureRegistry, index_cache
+from .features import CandidateSet, Feature, FeatureRegistry, FusedFeatures, index_cache
 
 _FEATURES: list[Feature] = []
 
@@ -198,20 +198,48 @@ def _matched(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
 
 def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
     n = len(cs)
-    indptr, docs = cs.index.body.indptr, cs.index.body.docs
-    tids = cs.index.term_ids(cs.tokens)[0]
-    tids = tids[indptr[tids + 1] > indptr[tids]]  # terms of the article text (not title-only ones)
-    if tids.size == 0 or n == 0:
-        return np.zeros(n), np.zeros(n), int(tids.size)
-    starts, ends = indptr[tids].tolist(), indptr[tids + 1].tolist()
-    rows = cs.rows.astype(docs.dtype)
-    hits = np.empty((tids.size, n), dtype=bool)
-    for i, (s, e) in enumerate(zip(starts, ends, strict=True)):
-        posting = docs[s:e]  # sorted rows, so membership is a binary search
-        hits[i] = posting.take(posting.searchsorted(rows), mode="clip") == rows
-    df = np.asarray(ends, dtype=np.float64) - np.asarray(starts, dtype=np.float64)
-    rarity = np.log(max(cs.index.n_docs, 1) / df)
-    return hits.sum(axis=0).astype(np.float64), rarity @ hits, int(tids.size)
+    terms = _body_terms(cs.index, cs.tokens)
+    if not terms or n == 0:
+        return np.zeros(n), np.zeros(n), len(terms)
+    docs = cs.index.body.docs
+    rows = cs.rows.astype(docs.dtype)  # the postings' dtype, so no posting list is converted
+    # One binary search per clue term (a loop over terms, not candidates or the corpus): each
+    # posting list is sorted by row, so searching for row and row + 1 gives slots that differ
+    # by exactly 1 where the candidate holds the term and 0 where it does not.
+    needles = np.concatenate((rows, rows + 1))
+    slots = np.array([docs[start:end].searchsorted(needles) for start, end, _ in terms])
+    hits = slots[:, n:] - slots[:, :n]
+    rarity = np.array([r for _, _, r in terms])
+    return hits.sum(axis=0).astype(np.float64), rarity @ hits, len(terms)
+
+
+# Remembered (token -> posting range) lookups per index; cleared when it grows past this.
+_MAX_CACHED_TERMS = 200_000
+
+
+def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[int, int, float]]:
+    """(posting start, end, log(N/df)) of each distinct token found in article text, in order.
+
+    Tokens absent from the vocabulary, or only in titles, are left out. Lookups are
+    remembered per index, so a clue costs dict lookups instead of a vocabulary search.
+    """
+    cache = index_cache(index)
+    known: dict[str, tuple[int, int, float] | None] | None = cache.get("body_terms")
+    if known is None or len(known) > _MAX_CACHED_TERMS:
+        known = cache["body_terms"] = {}
+    distinct = list(dict.fromkeys(tokens))
+    new = [t for t in distinct if t not in known]
+    if new:
+        indptr = index.body.indptr
+        found = [(t, index.term_ids([t])[0]) for t in new]
+        tids = np.array([int(ids[0]) if ids.size else 0 for _, ids in found], dtype=np.int64)
+        starts, ends = indptr[tids], indptr[tids + 1]
+        rarity = np.log(max(index.n_docs, 1) / np.maximum(ends - starts, 1).astype(np.float64))
+        for (t, ids), s, e, r in zip(
+            found, starts.tolist(), ends.tolist(), rarity.tolist(), strict=True
+        ):
+            known[t] = (s, e, r) if ids.size and e > s else None
+    return [r for r in map(known.__getitem__, distinct) if r is not None]
 
 
 @feature("overlap")
@@ -242,27 +270,127 @@ def log_doc_length(cs: CandidateSet) -> np.ndarray:
 @feature("overlap")
 def qualifier_frequency(cs: CandidateSet) -> np.ndarray:
     """log1p of how many titles in the corpus share the candidate's qualifier (0 if none)."""
-    return _qualifier_table(cs.index)[cs.rows]
+    return np.log1p(np.array([e.qualifier_count for e in cs.names], dtype=np.float64))
 
 
-def _qualifier_table(index: Index) -> np.ndarray:
-    """Per row: log1p(number of titles with the row's qualifier), 0 when unqualified."""
+# -- all of the above at once -------------------------------------------------------------
+# The functions above define the features and are what the unit tests check by hand. Serving
+# computes them together: one (feature, candidate) array is filled row by row, sharing the
+# sorted scores, the softmax, the gathered per-row values and the name-token matches, which
+# costs a fraction of calling 27 functions. test_builtin checks it equals them column by column.
+FUSED_NAMES = (
+    "bm25_score", "bm25_rank", "inverse_rank", "gap_to_next", "gap_to_best_rival",
+    "score_ratio_to_top", "score_zscore", "score_softmax",
+    "clue_words", "log_clue_words", "score_x_clue_words", "softmax_x_log_words",
+    "inlinks", "log_inlinks", "log_inlinks_vs_best", "log_popularity", "popularity_missing",
+    "has_qualifier", "qualifier_in_clue", "qualifier_overlap",
+    "title_overlap", "alias_overlap",
+    "matched_terms", "matched_fraction", "matched_rarity", "log_doc_length",
+    "qualifier_frequency",
+)  # fmt: skip
+
+
+def _row_arrays(index: Index) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Plain-array views of the index's in-links, popularity and document lengths."""
     cache = index_cache(index)
-    table: np.ndarray | None = cache.get("qualifier_frequency")
-    if table is None:
-        counts: dict[str, int] = {}
-        for q in index.qualifiers:
-            if q:
-                counts[q] = counts.get(q, 0) + 1
-        table = np.log1p(np.array([counts.get(q, 0) if q else 0 for q in index.qualifiers], float))
-        cache["qualifier_frequency"] = table
-    return table
+    arrays: tuple[np.ndarray, np.ndarray, np.ndarray] | None = cache.get("row_arrays")
+    if arrays is None:
+        arrays = cache["row_arrays"] = (
+            np.asarray(index.inlinks),
+            np.asarray(index.popularity, dtype=np.float64),
+            np.asarray(index.doc_len),
+        )
+    return arrays
+
+
+def fused_builtins(cs: CandidateSet) -> np.ndarray:
+    """Every feature of FUSED_NAMES, in that order. float64, shape (n, len(FUSED_NAMES))."""
+    n = len(cs)
+    f = np.empty((len(FUSED_NAMES), n))  # one contiguous row per feature, transposed at the end
+    if n == 0:
+        return f.T.copy()
+    s, rows = cs.scores, cs.rows
+    # retrieval
+    f[0] = s
+    f[1] = cs.ranks
+    np.divide(1.0, f[1], out=f[2])
+    np.subtract(s[:-1], s[1:], out=f[3, :-1])
+    f[3, -1] = 0.0
+    listed = s.tolist()
+    best = max(listed)
+    lead = listed.index(best)  # the first best, as a stable sort would put it
+    np.subtract(s, best, out=f[4])  # everyone's best rival is the leader ...
+    np.exp(f[4], out=f[7])  # (softmax numerators, before the leader's entry changes)
+    if n > 1:  # ... except the leader's, which is the best of the others
+        f[4, lead] = best - max(listed[:lead] + listed[lead + 1 :])
+    if best > 0:
+        np.divide(s, best, out=f[5])
+    else:
+        f[5] = 0.0
+    centred = s - s.mean()
+    sd = float(np.sqrt(np.dot(centred, centred) / n))
+    if sd > 0:
+        np.divide(centred, sd, out=f[6])
+    else:
+        f[6] = 0.0
+    f[7] /= f[7].sum()
+    # clue length
+    words = len(cs.words)
+    log_words = np.log1p(words)
+    f[8] = float(words)
+    f[9] = log_words
+    np.multiply(s, words, out=f[10])
+    np.multiply(f[7], log_words, out=f[11])
+    # popularity
+    inl, pop, doc_len = _row_arrays(cs.index)
+    f[12] = inl[rows]
+    np.log1p(f[12], out=f[13])
+    np.subtract(f[13], f[13].max(), out=f[14])
+    p = pop[rows]
+    missing = np.isnan(p)
+    f[16] = missing
+    p[missing] = 0.0
+    np.log1p(p, out=f[15])
+    # qualifier and leakage: a few set operations per candidate (20 or so, not the corpus)
+    names = cs.names
+    common = cs.token_set.intersection
+    values = []
+    for _, base, qual, alias, _count in names:
+        in_clue = len(common(qual)) if qual else 0
+        values.append(
+            (
+                1.0 if qual else 0.0,
+                1.0 if in_clue else 0.0,
+                in_clue / len(qual) if qual else 0.0,
+                len(common(base)) / len(base) if base else 0.0,
+                len(common(alias)) / len(alias) if alias else 0.0,
+            )
+        )
+    f[17:22].T[...] = values
+    # overlap
+    count, rarity, known = _matched(cs)
+    f[22] = count
+    if known:
+        np.divide(count, known, out=f[23])
+    else:
+        f[23] = 0.0
+    f[24] = rarity
+    f[25] = doc_len[rows]
+    np.log1p(f[25], out=f[25])
+    f[26] = [e.qualifier_count for e in names]
+    np.log1p(f[26], out=f[26])
+    return f.T.copy()
 
 
 # The score-only model, the yardstick every other feature set must beat.
 SCORE_ONLY = ("bm25_score",)
 
+_BY_NAME = {f.name: f for f in _FEATURES}
+if set(FUSED_NAMES) - set(_BY_NAME):
+    raise ValueError(f"fused features without a function: {set(FUSED_NAMES) - set(_BY_NAME)}")
+_FUSED = FusedFeatures(tuple(_BY_NAME[n] for n in FUSED_NAMES), fused_builtins)
+
 
 def default_registry() -> FeatureRegistry:
     """A registry of the built-in features."""
-    return FeatureRegistry(_FEATURES)
+    return FeatureRegistry(_FEATURES, fused=_FUSED)

@@ -116,7 +116,8 @@ def row_names(index: Index, rows: Sequence[int]) -> list[RowNames]:
     get = table.get
     out = [get(r) for r in rows]
     if None in out:
-        _analyze_rows(index, table, list(dict.fromkeys(r for r, e in zip(rows, out) if e is None)))
+        missing = [r for r, e in zip(rows, out, strict=True) if e is None]
+        _analyze_rows(index, table, list(dict.fromkeys(missing)))
         return [table[r] for r in rows]
     return out  # type: ignore[return-value]
 
@@ -205,7 +206,9 @@ class _Plan:
 class FeatureRegistry:
     """The features the running code can compute, by name, in a stable order."""
 
-    def __init__(self, features: Iterable[Feature] = (), *, fused: FusedFeatures | None = None) -> None:
+    def __init__(
+        self, features: Iterable[Feature] = (), *, fused: FusedFeatures | None = None
+    ) -> None:
         self._features: dict[str, Feature] = {}
         self._plans: dict[tuple[str, ...], _Plan] = {}
         self._fused = fused

@@ -15,7 +15,7 @@ from .builtin import default_registry
 from .decision import Decision, Payoff, decide
 from .errors import ModelMismatchError
 from .examples import MetadataColumns, candidate_set
-from .features import FEATURE_SET_VERSION, FeatureRegistry, name_tokens
+from .features import FEATURE_SET_VERSION, FeatureRegistry, qualifier_counts
 from .model import Reranker, read_model
 
 
@@ -79,8 +79,9 @@ def load_model(
         raise ModelMismatchError(f"{path}: metadata columns must come after the computed features")
     model.bind(reg, code_names, meta, (data.get("decision") or {}).get("threshold", 0.5))
     if index is not None:
-        for kind in ("base", "qualifier", "aliases"):  # warm the title tables before serving
-            name_tokens(index, kind)
+        # One pass over the qualifiers before serving; titles are analyzed per row when first
+        # seen among the candidates, so a large index costs nothing more here.
+        qualifier_counts(index)
     return model
 
 

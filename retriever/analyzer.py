@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import importlib.util
 import re
 import unicodedata
 from collections.abc import Iterable
@@ -9,7 +10,6 @@ from dataclasses import asdict, dataclass, field
 from typing import Any, Literal, cast
 
 import snowballstemmer
-from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS, strip_accents_unicode
 
 # scikit-learn's default token pattern: runs of two or more word characters.
 DEFAULT_TOKEN_PATTERN = r"(?u)\b\w\w+\b"
@@ -45,6 +45,44 @@ class AnalyzerConfig:
         if isinstance(values.get("stopwords"), list):
             values["stopwords"] = tuple(values["stopwords"])
         return cls(**values)
+
+
+def _sklearn_stop_words() -> frozenset[str]:
+    """scikit-learn's English stop-word list, read without importing sklearn.feature_extraction.
+
+    That package pulls in pandas and most of scipy (~130 MB resident) in every indexing worker
+    and query process; the list itself lives in a plain module that is run on its own here.
+    """
+    spec = importlib.util.find_spec("sklearn")
+    for folder in (spec.submodule_search_locations or []) if spec else []:
+        path = f"{folder}/feature_extraction/_stop_words.py"
+        file_spec = importlib.util.spec_from_file_location("_hunchwise_sklearn_stop_words", path)
+        if file_spec is None or file_spec.loader is None:
+            continue
+        module = importlib.util.module_from_spec(file_spec)
+        try:
+            file_spec.loader.exec_module(module)
+        except OSError:
+            continue
+        words = getattr(module, "ENGLISH_STOP_WORDS", None)
+        if words:
+            return frozenset(words)
+    from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS  # layout changed: import
+
+    return frozenset(ENGLISH_STOP_WORDS)
+
+
+ENGLISH_STOP_WORDS = _sklearn_stop_words()
+
+
+def strip_accents_unicode(text: str) -> str:
+    """Drop combining marks after NFKD decomposition (the same rule as scikit-learn's function
+    of this name, written out to avoid importing sklearn.feature_extraction; a test compares
+    the two)."""
+    if text.isascii():
+        return text
+    decomposed = unicodedata.normalize("NFKD", text)
+    return "".join(c for c in decomposed if not unicodedata.combining(c))
 
 
 def _stopword_set(spec: str | tuple[str, ...]) -> frozenset[str]:

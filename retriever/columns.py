@@ -23,6 +23,7 @@ from .errors import IndexFormatError
 # Terms up to this many UTF-8 bytes live in a fixed-width sorted array searched in C; longer
 # ones (rare: URLs, chemical names) in a small dict. 32 covers ordinary words with room.
 MAX_KEY_BYTES = 32
+_CACHE_LIMIT = 200_000  # remembered token lookups per open index (~20 MB at most)
 
 
 def _paths(folder: Path, name: str) -> tuple[Path, Path]:
@@ -210,29 +211,43 @@ class Vocab:
                 f"the manifest says {n_terms}; rebuild the index"
             )
         self._width = self._keys.dtype.itemsize
+        self._cache: dict[str, int] = {}
 
     def __len__(self) -> int:
         return len(self.terms)
 
     def lookup(self, tokens: Sequence[str]) -> np.ndarray:
-        """Term id of each token, -1 where unknown. int64, shape (len(tokens),)."""
-        out = np.full(len(tokens), -1, dtype=np.int64)
-        if not tokens:
-            return out
+        """Term id of each token, -1 where unknown. int64, shape (len(tokens),).
+
+        Recently seen tokens come from a bounded dict; the rest from one vectorized binary
+        search over the sorted keys (clue words repeat a lot, so most lookups are hits).
+        """
+        cache = self._cache
+        found = [cache.get(t, -2) for t in tokens]
+        if -2 in found:
+            missing = [t for t, f in zip(tokens, found, strict=True) if f == -2]
+            if len(cache) + len(missing) > _CACHE_LIMIT:
+                cache.clear()
+            for tok, tid in zip(missing, self._search(missing).tolist(), strict=True):
+                cache[tok] = tid
+            found = [cache[t] for t in tokens]
+        return np.asarray(found, dtype=np.int64)
+
+    def _search(self, tokens: Sequence[str]) -> np.ndarray:
         enc = [t.encode("utf-8") for t in tokens]
-        width = self._width
-        short = [i for i, e in enumerate(enc) if len(e) <= width]
-        if len(short) != len(enc):
+        out = np.full(len(enc), -1, dtype=np.int64)
+        n_keys, width = self._keys.size, self._width
+        if n_keys and enc:
+            q = np.array(enc, dtype=self._keys.dtype)  # longer tokens get cut: checked below
+            pos = np.searchsorted(self._keys, q)
+            np.minimum(pos, n_keys - 1, out=pos)
+            lengths = np.fromiter(map(len, enc), np.int64, len(enc))
+            hit = (self._keys[pos] == q) & (lengths <= width)
+            out[hit] = self._ids[pos[hit]]
+        if self._long:
             for i, e in enumerate(enc):
                 if len(e) > width:
                     out[i] = self._long.get(tokens[i], -1)
-        if short and self._keys.size:
-            q = np.array([enc[i] for i in short], dtype=f"S{width}")
-            pos = np.searchsorted(self._keys, q)
-            pos = np.minimum(pos, self._keys.size - 1)
-            hit = self._keys[pos] == q
-            idx = np.asarray(short, dtype=np.int64)
-            out[idx[hit]] = self._ids[pos[hit]]
         return out
 
     def get(self, term: str) -> int | None:

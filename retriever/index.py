@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import threading
+from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import cached_property
@@ -151,12 +152,11 @@ class Index:
     # -- scoring --------------------------------------------------------
     def term_ids(self, tokens: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """Known query terms as (term ids, counts in the query); unknown tokens are dropped."""
-        ids = self.vocab.lookup(tokens)
-        # Distinct known ids in first-seen order, with their counts.
-        known = ids[ids >= 0]
-        uniq, first, qtf = np.unique(known, return_index=True, return_counts=True)
-        order = np.argsort(first, kind="stable")
-        return uniq[order], qtf[order].astype(np.float64)
+        counts = Counter(tokens)  # distinct tokens in first-seen order
+        ids = self.vocab.lookup(list(counts))
+        known = ids >= 0
+        qtf = np.fromiter(counts.values(), np.float64, len(counts))
+        return ids[known], qtf[known]
 
     def _buffer(self) -> np.ndarray:
         buf = getattr(self._local, "buf", None)

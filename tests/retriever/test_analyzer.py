@@ -76,3 +76,25 @@ def test_config_round_trip_and_manifest(tmp_path: Path) -> None:
     idx = build_index([{"id": "1", "title": "T", "text": "foo baz"}], tmp_path / "i", analyzer=cfg)
     assert idx.manifest["analyzer"]["stopwords"] == ["foo", "bar"]
     assert load_index(tmp_path / "i").analyzer.tokens("foo baz") == ["baz"]
+
+
+def test_stop_words_and_accent_stripping_equal_scikit_learns() -> None:
+    # Reference: scikit-learn's ENGLISH_STOP_WORDS and strip_accents_unicode, which the
+    # analyzer reproduces without importing sklearn.feature_extraction.
+    import random
+
+    from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS as SK_STOP
+    from sklearn.feature_extraction.text import strip_accents_unicode as sk_strip
+
+    from retriever.analyzer import ENGLISH_STOP_WORDS, strip_accents_unicode
+
+    assert frozenset(SK_STOP) == ENGLISH_STOP_WORDS
+    rng = random.Random(3)
+    alphabet = "aeiouçñøåéèêëìíîïòóôõöùúûüÿǅﬁ①²Ⅻ한글日本語ΑΒΓάέήίΐ" + "".join(
+        chr(c) for c in range(0x300, 0x36F, 7)
+    )
+    samples = ["plain ascii", "", "Crème brûlée", "naïve café", "Ǆemal ﬁne"] + [
+        "".join(rng.choice(alphabet) for _ in range(rng.randint(1, 30))) for _ in range(500)
+    ]
+    for s in samples:
+        assert strip_accents_unicode(s) == sk_strip(s), s
