@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import os
 import threading
 from collections import Counter
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
@@ -202,16 +204,39 @@ class Index:
         """Top-k articles for a free-text clue, best first."""
         return self.search_tokens(self.analyzer.tokens(clue), k)
 
-    def search_many(self, clues: Sequence[str], k: int = 20) -> list[list[Hit]]:
-        """`search` for each clue, in order."""
+    def search_many(
+        self, clues: Sequence[str], k: int = 20, *, threads: int | None = None
+    ) -> list[list[Hit]]:
+        """`search` for each clue, in order, on `threads` threads (default: up to 2 cores
+        for batches of 64 clues or more; the scoring kernels release the GIL)."""
+        if threads is None:
+            threads = min(_cores(), 2) if len(clues) >= 64 else 1
         tokens = self.analyzer.tokens
-        return [self.search_tokens(tokens(c), k) for c in clues]
+        if threads <= 1 or len(clues) < 2:
+            return [self.search_tokens(tokens(c), k) for c in clues]
+        if k < 1:
+            raise ValueError(f"k must be at least 1, got {k}")
+        step = -(-len(clues) // threads)
+        shards = [clues[i : i + step] for i in range(0, len(clues), step)]
+
+        def run(shard: Sequence[str]) -> list[list[Hit]]:
+            return [self.search_tokens(tokens(c), k) for c in shard]
+
+        with ThreadPoolExecutor(len(shards), thread_name_prefix="hunchwise-search") as pool:
+            return [hits for part in pool.map(run, shards) for hits in part]
 
     def __len__(self) -> int:
         return self.n_docs
 
     def __repr__(self) -> str:
         return f"Index({str(self.path)!r}, articles={self.n_docs}, terms={self.n_terms})"
+
+
+def _cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return os.cpu_count() or 1
 
 
 def load_index(folder: str | Path, *, title_weight: float | None = None) -> Index:

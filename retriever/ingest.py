@@ -9,6 +9,7 @@ need (ids, titles, aliases, links, popularity), never the article texts.
 from __future__ import annotations
 
 import json
+from collections import deque
 from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,7 +23,8 @@ from .counting import CHUNK, Csr, TermCounter, count_texts, new_terms, run_chunk
 
 # One raw item: (line number, JSONL bytes | parsed record | Article | ("error", reason, field)).
 RawItem = tuple[int, Any]
-Meta = tuple[int, str, str, tuple[str, ...], tuple[str, ...], float | None]
+# (line, position in the chunk, id, title, aliases, links, popularity)
+Meta = tuple[int, int, str, str, tuple[str, ...], tuple[str, ...], float | None]
 
 
 @dataclass
@@ -40,7 +42,7 @@ class Keys:
 
     def append(self, meta: Meta) -> None:
         """Add one article's keys."""
-        _, doc_id, title, aliases, links, pop = meta
+        _, _, doc_id, title, aliases, links, pop = meta
         self.ids.append(doc_id)
         self.titles.append(title)
         self.aliases.append(aliases)
@@ -52,7 +54,7 @@ class Keys:
         """Keys of already-validated articles."""
         keys = cls()
         for a in articles:
-            keys.append((0, a.id, a.title, a.aliases, a.links, a.popularity))
+            keys.append((0, 0, a.id, a.title, a.aliases, a.links, a.popularity))
         return keys
 
 
@@ -64,8 +66,7 @@ class ChunkOut:
     fresh: list[str]
     metas: list[Meta]  # good articles, in line order
     errors: list[tuple[int, str, str]]  # (line, reason, field) of bad items
-    store: bytes  # the good articles' store lines, concatenated
-    store_lens: np.ndarray
+    encoded: dict[int, bytes]  # store lines of good items that were not raw JSONL lines
     body: Csr
     title: Csr
 
@@ -99,24 +100,24 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     analyzer, table = worker_state()
     metas: list[Meta] = []
     errors: list[tuple[int, str, str]] = []
-    lines: list[bytes] = []
+    encoded: dict[int, bytes] = {}
     bodies: list[str] = []
     titles: list[str] = []
-    for line, raw in items:
+    for pos, (line, raw) in enumerate(items):
         try:
             art = _parse(raw, file, line)
         except CorpusError as exc:
             errors.append((line, exc.reason, exc.field))
             continue
-        metas.append((line, art.id, art.title, art.aliases, art.links, art.popularity))
-        lines.append(_record_line(art))
+        metas.append((line, pos, art.id, art.title, art.aliases, art.links, art.popularity))
+        if not isinstance(raw, bytes):  # raw JSONL lines are stored as they are, by the parent
+            encoded[pos] = _record_line(art)
         bodies.append(art.text)
         titles.append(art.title)
     body = count_texts(analyzer, table, bodies)
     title = count_texts(analyzer, table, titles)
     pid, fresh = new_terms()
-    lens = np.fromiter(map(len, lines), np.int64, len(lines))
-    return ChunkOut(pid, fresh, metas, errors, b"".join(lines), lens, body, title)
+    return ChunkOut(pid, fresh, metas, errors, encoded, body, title)
 
 
 def _raw_items(source: str | Path | Iterable[Mapping[str, Any] | Article]) -> Iterator[RawItem]:
@@ -137,16 +138,21 @@ def _raw_items(source: str | Path | Iterable[Mapping[str, Any] | Article]) -> It
         yield n, ("error", rec.reason, rec.field) if isinstance(rec, CorpusError) else rec
 
 
-def _tasks(file: str, items: Iterable[RawItem], bar: Any) -> Iterator[tuple[str, list[RawItem]]]:
+def _tasks(
+    file: str, items: Iterable[RawItem], bar: Any, sent: deque[list[RawItem]]
+) -> Iterator[tuple[str, list[RawItem]]]:
+    """Chunks of raw items; each is also remembered in `sent` until its result is merged."""
     chunk: list[RawItem] = []
     for item in items:
         chunk.append(item)
         if len(chunk) >= CHUNK:
             bar.update(len(chunk))
+            sent.append(chunk)
             yield file, chunk
             chunk = []
     if chunk:
         bar.update(len(chunk))
+        sent.append(chunk)
         yield file, chunk
 
 
@@ -175,7 +181,7 @@ class Ingest:
         self._seen_titles: dict[str, int] = {}
 
     def _duplicate(self, meta: Meta) -> CorpusError | None:
-        line, doc_id, title = meta[0], meta[1], meta[2]
+        line, doc_id, title = meta[0], meta[2], meta[3]
         if doc_id in self._seen_ids:
             first = self._seen_ids[doc_id]
             msg = f"duplicate id {doc_id!r} (first seen on line {first})"
@@ -188,8 +194,9 @@ class Ingest:
         self._seen_titles[title] = line
         return None
 
-    def add(self, out: ChunkOut) -> None:
-        """Merge one chunk, or raise its first problem when bad lines are not skipped."""
+    def add(self, out: ChunkOut, items: list[RawItem]) -> None:
+        """Merge one chunk (`items` are its raw items), or raise its first problem when bad
+        lines are not skipped."""
         problems = [
             (line, CorpusError(reason, file=self.file, line=line, field=fld))
             for line, reason, fld in out.errors
@@ -205,19 +212,23 @@ class Ingest:
             raise problems[0][1]
         for _, exc in problems:
             self.report.note(exc)
-        store, lens, body, title = out.store, out.store_lens, out.body, out.title
+        body, title = out.body, out.title
         if not keep.all():
-            starts = np.concatenate([[0], np.cumsum(lens)[:-1]])
-            store = b"".join(
-                store[s : s + n] for s, n, k in zip(starts, lens, keep, strict=True) if k
-            )
-            lens = lens[keep]
             body, title = _keep_rows(body, keep), _keep_rows(title, keep)
+        lines = []
         for meta, k in zip(out.metas, keep.tolist(), strict=True):
             if k:
                 self.keys.append(meta)
-        self.report.articles += int(keep.sum())
-        self.store_fh.write(store)
+                pos = meta[1]
+                line = out.encoded.get(pos)
+                if line is None:
+                    line = items[pos][1]
+                    if not line.endswith(b"\n"):
+                        line += b"\n"
+                lines.append(line)
+        self.report.articles += len(lines)
+        self.store_fh.write(b"".join(lines))
+        lens = np.fromiter(map(len, lines), np.int64, len(lines))
         self.offsets.append(self._end + np.cumsum(lens))
         self._end += int(lens.sum())
         self.counter.add_parts(out.pid, out.fresh, {"body": body, "title": title})
@@ -240,7 +251,8 @@ def ingest(
     """Read, validate, store (into `store_fh`) and count every article of `source`."""
     file = str(source) if isinstance(source, str | Path) else "<records>"
     state = Ingest(file, store_fh, skip_bad, report)
-    tasks = _tasks(file, _raw_items(source), bar)
+    sent: deque[list[RawItem]] = deque()
+    tasks = _tasks(file, _raw_items(source), bar, sent)
     for out in run_chunks(ingest_chunk, tasks, analyzer, workers):
-        state.add(out)
+        state.add(out, sent.popleft())
     return state

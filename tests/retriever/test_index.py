@@ -71,6 +71,11 @@ def test_search_many_equals_single_searches(tmp_path: Path) -> None:
     idx = plain_index(tmp_path, DOCS)
     clues = ["dog", "red fox", "nothing here", "whale dog fox"]
     assert idx.search_many(clues, k=2) == [idx.search(c, k=2) for c in clues]
+    many = clues * 40  # big enough for the default to use threads
+    single = [idx.search(c, k=2) for c in many]
+    assert idx.search_many(many, k=2) == single
+    assert idx.search_many(many, k=2, threads=3) == single
+    assert idx.search_many(many, k=2, threads=1) == single
 
 
 WORDS = st.sampled_from([f"w{i}" for i in range(30)])
