@@ -166,19 +166,20 @@ class JsonListColumn(Sequence[list[str]]):
 
 
 def write_vocab(folder: Path, terms: Sequence[str]) -> None:
-    """Write the vocabulary: term names by id, plus the lookup arrays `Vocab` searches."""
+    """Write the vocabulary: term names by id, plus the lookup arrays `Vocab` searches.
+
+    `terms` must be sorted (code point order, which is also UTF-8 byte order), so the
+    fixed-width keys come out sorted without another sort.
+    """
     write_strings(folder, "terms", terms)
     encoded = [t.encode("utf-8") for t in terms]
     short = [i for i, e in enumerate(encoded) if len(e) <= MAX_KEY_BYTES]
     width = max((len(encoded[i]) for i in short), default=1)
     keys = np.array([encoded[i] for i in short], dtype=f"S{width}")
-    order = np.argsort(keys, kind="stable")
-    np.save(folder / "vocab_keys.npy", keys[order], allow_pickle=False)
-    np.save(
-        folder / "vocab_ids.npy",
-        np.asarray(short, dtype=np.int32)[order],
-        allow_pickle=False,
-    )
+    if keys.size > 1 and not bool(np.all(keys[1:] > keys[:-1])):
+        raise ValueError("write_vocab needs distinct terms in sorted order")
+    np.save(folder / "vocab_keys.npy", keys, allow_pickle=False)
+    np.save(folder / "vocab_ids.npy", np.asarray(short, dtype=np.int32), allow_pickle=False)
     long_terms = {terms[i]: i for i, e in enumerate(encoded) if len(e) > MAX_KEY_BYTES}
     (folder / "vocab_long.json").write_text(json.dumps(long_terms, ensure_ascii=False), "utf-8")
 

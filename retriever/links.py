@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
+from functools import cached_property
 
 import numpy as np
 
@@ -17,9 +18,6 @@ class NameResolver:
     ) -> None:
         self._by_id = {doc_id: row for row, doc_id in enumerate(ids)}
         self._by_title = {title: row for row, title in enumerate(titles)}
-        self._by_norm: dict[str, int] = {}
-        for row, title in enumerate(titles):
-            self._by_norm.setdefault(normalize_title(title), row)
         # An alias shared by several articles names none of them for sure; keep only unique ones.
         alias_rows: dict[str, set[int]] = {}
         for row, names in enumerate(aliases):
@@ -29,6 +27,14 @@ class NameResolver:
             name: next(iter(rows)) for name, rows in alias_rows.items() if len(rows) == 1
         }
         self.ambiguous_aliases = sorted(name for name, rows in alias_rows.items() if len(rows) > 1)
+
+    @cached_property
+    def _by_norm(self) -> dict[str, int]:
+        # Built on the first name that is neither an id nor an exact title.
+        table: dict[str, int] = {}
+        for title, row in self._by_title.items():
+            table.setdefault(normalize_title(title), row)
+        return table
 
     def row(self, name: str) -> int | None:
         """Row of the article `name` refers to, or None when nothing matches."""
@@ -63,16 +69,19 @@ def count_inlinks(
 
     Returns (counts int32 of shape (n_docs,), number of link strings that matched nothing).
     """
-    counts = np.zeros(n_docs, dtype=np.int32)
+    hits: list[int] = []
     unresolved = 0
+    row_of = resolver.row
     for source, names in enumerate(links):
+        if not names:
+            continue
         targets: set[int] = set()
         for name in names:
-            row = resolver.row(name)
+            row = row_of(name)
             if row is None:
                 unresolved += 1
             elif row != source:
                 targets.add(row)
-        for row in targets:
-            counts[row] += 1
+        hits.extend(targets)
+    counts = np.bincount(np.asarray(hits, dtype=np.int64), minlength=n_docs).astype(np.int32)
     return counts, unresolved
