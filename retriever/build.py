@@ -17,7 +17,7 @@ from tqdm.auto import tqdm
 from . import bm25, columns, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
-from .counting import TermCounter, count_articles, default_workers
+from .counting import TermCounter, count_articles, default_workers, no_gc
 from .index import Index, load_index
 from .ingest import Keys, ingest
 from .links import NameResolver, count_inlinks
@@ -242,6 +242,7 @@ def build_index(
     n_workers = default_workers(hint) if workers is None else max(1, int(workers))
     out = Path(out_dir)
     with (
+        no_gc(),
         tqdm(desc="indexing", unit=" articles", disable=not progress, mininterval=0.5) as bar,
         store.atomic_folder(out) as tmp,
     ):

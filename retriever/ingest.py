@@ -19,7 +19,16 @@ import numpy as np
 
 from .analyzer import Analyzer
 from .corpus import Article, CorpusError, ReadReport, detect_format, iter_raw, validate_record
-from .counting import CHUNK, Csr, TermCounter, count_texts, new_terms, run_chunks, worker_state
+from .counting import (
+    CHUNK,
+    Csr,
+    TermCounter,
+    count_texts,
+    new_terms,
+    no_gc,
+    run_chunks,
+    worker_state,
+)
 
 # One raw item: (line number, JSONL bytes | parsed record | Article | ("error", reason, field)).
 RawItem = tuple[int, Any]
@@ -103,17 +112,18 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     encoded: dict[int, bytes] = {}
     bodies: list[str] = []
     titles: list[str] = []
-    for pos, (line, raw) in enumerate(items):
-        try:
-            art = _parse(raw, file, line)
-        except CorpusError as exc:
-            errors.append((line, exc.reason, exc.field))
-            continue
-        metas.append((line, pos, art.id, art.title, art.aliases, art.links, art.popularity))
-        if not isinstance(raw, bytes):  # raw JSONL lines are stored as they are, by the parent
-            encoded[pos] = _record_line(art)
-        bodies.append(art.text)
-        titles.append(art.title)
+    with no_gc():
+        for pos, (line, raw) in enumerate(items):
+            try:
+                art = _parse(raw, file, line)
+            except CorpusError as exc:
+                errors.append((line, exc.reason, exc.field))
+                continue
+            metas.append((line, pos, art.id, art.title, art.aliases, art.links, art.popularity))
+            if not isinstance(raw, bytes):  # raw JSONL lines are stored as they are, by the parent
+                encoded[pos] = _record_line(art)
+            bodies.append(art.text)
+            titles.append(art.title)
     body = count_texts(analyzer, table, bodies)
     title = count_texts(analyzer, table, titles)
     pid, fresh = new_terms()
