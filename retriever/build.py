@@ -6,6 +6,7 @@ import hashlib
 import json
 import time
 from collections.abc import Iterable, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -113,6 +114,22 @@ def _term_major(
     return [str(t) for t in names[ranked]], mats
 
 
+def _write_keys(tmp: Path, keys: Keys) -> tuple[int, int, int]:
+    """In-links and the key columns; returns (unresolved links, ambiguous aliases,
+    qualified titles)."""
+    resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
+    inlinks, unresolved = count_inlinks(resolver, keys.links, len(keys))
+    store.save_array(tmp, "inlinks", inlinks)
+    store.save_array(tmp, "popularity", np.asarray(keys.popularity, dtype=np.float64))
+    split = [split_title(title) for title in keys.titles]
+    columns.write_strings(tmp, "ids", keys.ids, sort_index=True)
+    columns.write_strings(tmp, "titles", keys.titles)
+    columns.write_strings(tmp, "bases", (s[0] for s in split))
+    columns.write_strings(tmp, "qualifiers", (s[1] for s in split))
+    columns.write_strings(tmp, "aliases", (columns.JsonListColumn.encode(a) for a in keys.aliases))
+    return unresolved, len(resolver.ambiguous_aliases), sum(1 for s in split if s[1])
+
+
 def _write(
     tmp: Path,
     keys: Keys,
@@ -125,34 +142,30 @@ def _write(
     started: float,
 ) -> None:
     """Write everything but the article store into the temporary index folder `tmp`."""
-    # `body_order[i]` is the counted row that becomes row i (updates count rows out of order).
-    all_terms, (tf_body, tf_title) = _term_major(counter, body_order)
-    body, title = _Field(tf_body, params), _Field(tf_title, params)
-    del tf_body, tf_title
-    dtype = weight_dtype(body.idf, title.idf)
-    for prefix, fld in (("body", body), ("title", title)):
-        fld.save(tmp, prefix, fld.weights(params, dtype))
-    store.save_array(tmp, "title_len", title.doc_len.astype(np.int32))
-    store.save_array(tmp, "doc_len", body.doc_len.astype(np.int32))
+    # The key columns and in-links are plain Python work; the postings are numpy and scipy
+    # loops that release the GIL, so the two run side by side.
+    with ThreadPoolExecutor(1, thread_name_prefix="hunchwise-keys") as pool:
+        keys_job = pool.submit(_write_keys, tmp, keys)
+        # `body_order[i]` is the counted row that becomes row i (updates count rows out of
+        # order).
+        all_terms, (tf_body, tf_title) = _term_major(counter, body_order)
+        body, title = _Field(tf_body, params), _Field(tf_title, params)
+        del tf_body, tf_title
+        dtype = weight_dtype(body.idf, title.idf)
+        for prefix, fld in (("body", body), ("title", title)):
+            fld.save(tmp, prefix, fld.weights(params, dtype))
+        store.save_array(tmp, "title_len", title.doc_len.astype(np.int32))
+        store.save_array(tmp, "doc_len", body.doc_len.astype(np.int32))
+        body_postings, title_postings = int(body.tf.nnz), int(title.tf.nnz)
+        avgdl = body.avgdl
+        del body, title
+        columns.write_vocab(tmp, all_terms)
+        unresolved, ambiguous, qualified = keys_job.result()
     n_articles = len(keys)
-    body_postings, title_postings = int(body.tf.nnz), int(title.tf.nnz)
-    avgdl = body.avgdl
-    del body, title
-    resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
-    inlinks, unresolved = count_inlinks(resolver, keys.links, n_articles)
-    split = [split_title(title) for title in keys.titles]
-    store.save_array(tmp, "inlinks", inlinks)
-    store.save_array(tmp, "popularity", np.asarray(keys.popularity, dtype=np.float64))
-    columns.write_vocab(tmp, all_terms)
-    columns.write_strings(tmp, "ids", keys.ids, sort_index=True)
-    columns.write_strings(tmp, "titles", keys.titles)
-    columns.write_strings(tmp, "bases", (s[0] for s in split))
-    columns.write_strings(tmp, "qualifiers", (s[1] for s in split))
-    columns.write_strings(tmp, "aliases", (columns.JsonListColumn.encode(a) for a in keys.aliases))
     build_info = {
         **build,
         "unresolved_links": unresolved,
-        "ambiguous_aliases": len(resolver.ambiguous_aliases),
+        "ambiguous_aliases": ambiguous,
         "seconds": round(time.perf_counter() - started, 3),
     }
     created = datetime.now(UTC).isoformat(timespec="seconds")
@@ -172,7 +185,7 @@ def _write(
             "body_postings": body_postings,
             "title_postings": title_postings,
             "avgdl": avgdl,
-            "qualified_titles": sum(1 for s in split if s[1]),
+            "qualified_titles": qualified,
             "unresolved_links": unresolved,
         },
         "weights": np.dtype(dtype).name,
