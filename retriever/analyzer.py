@@ -15,6 +15,24 @@ import snowballstemmer
 DEFAULT_TOKEN_PATTERN = r"(?u)\b\w\w+\b"
 
 
+# Every ASCII character that is not a word character under re's Unicode \w, mapped to space.
+_ASCII_NON_WORD = str.maketrans(
+    {c: " " for c in map(chr, range(128)) if not (c.isalnum() or c == "_")}
+)
+_DEFAULT_RE = re.compile(DEFAULT_TOKEN_PATTERN)
+
+
+def _default_words(text: str) -> list[str]:
+    """`re.findall(DEFAULT_TOKEN_PATTERN, text)`, about 20% faster on ASCII text.
+
+    For ASCII the pattern's matches are exactly the runs of [A-Za-z0-9_] of length >= 2,
+    which str.translate and str.split find in C; other text goes to the regular expression.
+    """
+    if text.isascii():
+        return [w for w in text.translate(_ASCII_NON_WORD).split() if len(w) > 1]
+    return _DEFAULT_RE.findall(text)
+
+
 @dataclass(frozen=True)
 class AnalyzerConfig:
     """Everything that decides how text becomes tokens; stored in each index's manifest."""
@@ -109,6 +127,11 @@ class Analyzer:
             )
         self.config = config
         self._pattern = re.compile(config.token_pattern)
+        self._find = (
+            _default_words
+            if config.token_pattern == DEFAULT_TOKEN_PATTERN
+            else self._pattern.findall
+        )
         self._stopwords = _stopword_set(config.stopwords)
         if config.stemmer:
             try:
@@ -121,6 +144,8 @@ class Analyzer:
 
     def normalize(self, text: str) -> str:
         """Unicode-normalize, case-fold and optionally strip accents."""
+        if text.isascii():  # every normalization form and accent stripping leave ASCII as is
+            return text.lower() if self.config.casefold else text
         if self.config.normalization != "none":
             form = cast(Literal["NFC", "NFD", "NFKC", "NFKD"], self.config.normalization)
             text = unicodedata.normalize(form, text)
@@ -132,12 +157,12 @@ class Analyzer:
 
     def words(self, text: str) -> list[str]:
         """Normalized words before stopword removal and stemming."""
-        return self._pattern.findall(self.normalize(text))
+        return self._find(self.normalize(text))
 
     def tokens(self, text: str) -> list[str]:
         """Index terms of `text`: words minus stopwords, stemmed."""
         stop = self._stopwords
-        kept = [w for w in self._pattern.findall(self.normalize(text)) if w not in stop]
+        kept = [w for w in self._find(self.normalize(text)) if w not in stop]
         if self._stemmer is not None and kept:
             return list(self._stemmer.stemWords(kept))
         return kept
@@ -155,7 +180,7 @@ class Analyzer:
         lines = self.normalize("\n".join(items)).split("\n")
         if len(lines) != len(items):  # a normalization form changed the line structure: be safe
             return [self.tokens(t) for t in items]
-        stop, find = self._stopwords, self._pattern.findall
+        stop, find = self._stopwords, self._find
         kept = [[w for w in find(line) if w not in stop] for line in lines]
         if self._stemmer is None:
             return kept
@@ -172,7 +197,7 @@ class Analyzer:
 
     def term_ids(self, text: str, table: TermTable) -> list[int]:
         """Ids in `table` of `tokens(text)`, with -1 where a word is a stopword."""
-        return list(map(table.__getitem__, self._pattern.findall(self.normalize(text))))
+        return list(map(table.__getitem__, self._find(self.normalize(text))))
 
     def __repr__(self) -> str:
         return f"Analyzer({self.config!r})"

@@ -98,3 +98,16 @@ def test_stop_words_and_accent_stripping_equal_scikit_learns() -> None:
     ]
     for s in samples:
         assert strip_accents_unicode(s) == sk_strip(s), s
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.text(alphabet=st.characters(max_codepoint=127), max_size=80))
+def test_ascii_fast_paths_equal_the_general_ones(text: str) -> None:
+    # The ASCII shortcuts must give what re.findall and unicodedata give.
+    import re
+    import unicodedata
+
+    from retriever.analyzer import DEFAULT_TOKEN_PATTERN, _default_words
+
+    assert _default_words(text) == re.findall(DEFAULT_TOKEN_PATTERN, text)
+    assert Analyzer().normalize(text) == unicodedata.normalize("NFKC", text).casefold()
