@@ -194,10 +194,12 @@ class Index:
         if plan is None or plan.postings == 0:
             return []
         rows, scores = scoring.top_k(self._buffer(), plan, k)
-        ids, titles = self.ids, self.titles
+        ids, titles = self.ids.take(rows), self.titles.take(rows)
         return [
-            Hit(ids[r], titles[r], sc, i + 1, r)
-            for i, (r, sc) in enumerate(zip(rows.tolist(), scores.tolist(), strict=True))
+            Hit(doc_id, title, sc, i + 1, r)
+            for i, (doc_id, title, r, sc) in enumerate(
+                zip(ids, titles, rows.tolist(), scores.tolist(), strict=True)
+            )
         ]
 
     def search(self, clue: str, k: int = 20) -> list[Hit]:

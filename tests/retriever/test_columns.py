@@ -27,6 +27,10 @@ def test_strings_round_trip(tmp_path: Path) -> None:
     assert list(col) == VALUES and col.tolist() == VALUES
     assert [col[i] for i in range(len(VALUES))] == VALUES
     assert col[-1] == "alpha" and col[1:3] == VALUES[1:3]
+    assert col.take(np.array([4, 0, 4])) == [VALUES[4], VALUES[0], VALUES[4]]
+    assert col.take(np.array([], dtype=np.int64)) == []
+    with pytest.raises(IndexError):
+        col.take(np.array([len(VALUES)]))
     with pytest.raises(IndexError):
         col[len(VALUES)]
 
