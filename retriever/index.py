@@ -213,16 +213,16 @@ class Index:
         for batches of 64 clues or more; the scoring kernels release the GIL)."""
         if threads is None:
             threads = min(_cores(), 2) if len(clues) >= 64 else 1
-        tokens = self.analyzer.tokens
-        if threads <= 1 or len(clues) < 2:
-            return [self.search_tokens(tokens(c), k) for c in clues]
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
+        token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
+        if threads <= 1 or len(clues) < 2:
+            return [self.search_tokens(t, k) for t in token_lists]
         step = -(-len(clues) // threads)
-        shards = [clues[i : i + step] for i in range(0, len(clues), step)]
+        shards = [token_lists[i : i + step] for i in range(0, len(token_lists), step)]
 
-        def run(shard: Sequence[str]) -> list[list[Hit]]:
-            return [self.search_tokens(tokens(c), k) for c in shard]
+        def run(shard: list[list[str]]) -> list[list[Hit]]:
+            return [self.search_tokens(t, k) for t in shard]
 
         with ThreadPoolExecutor(len(shards), thread_name_prefix="hunchwise-search") as pool:
             return [hits for part in pool.map(run, shards) for hits in part]

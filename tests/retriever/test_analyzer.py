@@ -111,3 +111,10 @@ def test_ascii_fast_paths_equal_the_general_ones(text: str) -> None:
 
     assert _default_words(text) == re.findall(DEFAULT_TOKEN_PATTERN, text)
     assert Analyzer().normalize(text) == unicodedata.normalize("NFKC", text).casefold()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.text(max_size=40), max_size=8))
+def test_tokens_many_equals_tokens_of_each_text(texts: list[str]) -> None:
+    a = Analyzer()
+    assert a.tokens_many(texts) == [a.tokens(t) for t in texts]
