@@ -3,12 +3,20 @@
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from typing import Any
 
 import numpy as np
 
 from retriever import Index
 
-from .features import CandidateSet, Feature, FeatureRegistry, FusedFeatures, index_cache
+from .features import (
+    CandidateSet,
+    Feature,
+    FeatureRegistry,
+    FusedFeatures,
+    index_cache,
+    row_names,
+)
 
 _FEATURES: list[Feature] = []
 
@@ -201,45 +209,60 @@ def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
     terms = _body_terms(cs.index, cs.tokens)
     if not terms or n == 0:
         return np.zeros(n), np.zeros(n), len(terms)
-    docs = cs.index.body.docs
-    rows = cs.rows.astype(docs.dtype)  # the postings' dtype, so no posting list is converted
     # One binary search per clue term (a loop over terms, not candidates or the corpus): each
     # posting list is sorted by row, so searching for row and row + 1 gives slots that differ
-    # by exactly 1 where the candidate holds the term and 0 where it does not.
-    needles = np.concatenate((rows, rows + 1))
-    slots = np.array([docs[start:end].searchsorted(needles) for start, end, _ in terms])
+    # by exactly 1 where the candidate holds the term and 0 where it does not. The needles
+    # take the postings' dtype so that no posting list is converted.
+    needles = np.add(
+        cs.rows, _ROW_AND_NEXT, dtype=cs.index.body.docs.dtype, casting="unsafe"
+    ).ravel()
+    slots = np.array([posting.searchsorted(needles) for posting, _ in terms])
     hits = slots[:, n:] - slots[:, :n]
-    rarity = np.array([r for _, _, r in terms])
-    return hits.sum(axis=0).astype(np.float64), rarity @ hits, len(terms)
+    # One product gives both sums: row 0 counts the terms, row 1 adds their rarity.
+    both = np.array([[1.0] * len(terms), [r for _, r in terms]]) @ hits
+    return both[0], both[1], len(terms)
 
 
-# Remembered (token -> posting range) lookups per index; cleared when it grows past this.
+_ROW_AND_NEXT = np.array([[0], [1]])
+
+
+# Remembered (token -> posting list) lookups per index; cleared when it grows past this.
 _MAX_CACHED_TERMS = 200_000
 
 
-def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[int, int, float]]:
-    """(posting start, end, log(N/df)) of each distinct token found in article text, in order.
+def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[np.ndarray, float]]:
+    """(posting list, log(N/df)) of each distinct token found in article text, in order.
 
     Tokens absent from the vocabulary, or only in titles, are left out. Lookups are
     remembered per index, so a clue costs dict lookups instead of a vocabulary search.
     """
     cache = index_cache(index)
-    known: dict[str, tuple[int, int, float] | None] | None = cache.get("body_terms")
+    known: dict[str, tuple[np.ndarray, float] | None] | None = cache.get("body_terms")
     if known is None or len(known) > _MAX_CACHED_TERMS:
         known = cache["body_terms"] = {}
-    distinct = list(dict.fromkeys(tokens))
-    new = [t for t in distinct if t not in known]
-    if new:
-        indptr = index.body.indptr
-        found = [(t, index.term_ids([t])[0]) for t in new]
-        tids = np.array([int(ids[0]) if ids.size else 0 for _, ids in found], dtype=np.int64)
-        starts, ends = indptr[tids], indptr[tids + 1]
-        rarity = np.log(max(index.n_docs, 1) / np.maximum(ends - starts, 1).astype(np.float64))
-        for (t, ids), s, e, r in zip(
-            found, starts.tolist(), ends.tolist(), rarity.tolist(), strict=True
-        ):
-            known[t] = (s, e, r) if ids.size and e > s else None
-    return [r for r in map(known.__getitem__, distinct) if r is not None]
+    get = known.get
+    out, new = [], []
+    for t in dict.fromkeys(tokens):
+        found = get(t, _UNSEEN)
+        if found is _UNSEEN:
+            new.append(t)
+        elif found is not None:
+            out.append(found)
+    if not new:
+        return out
+    indptr, docs = index.body.indptr, index.body.docs
+    ids = [index.term_ids([t])[0] for t in new]
+    tids = np.array([int(i[0]) if i.size else 0 for i in ids], dtype=np.int64)
+    starts, ends = indptr[tids], indptr[tids + 1]
+    rarity = np.log(max(index.n_docs, 1) / np.maximum(ends - starts, 1).astype(np.float64))
+    for t, i, s, e, r in zip(
+        new, ids, starts.tolist(), ends.tolist(), rarity.tolist(), strict=True
+    ):
+        known[t] = (docs[s:e], r) if i.size and e > s else None
+    return [r for r in map(known.__getitem__, dict.fromkeys(tokens)) if r is not None]
+
+
+_UNSEEN: Any = object()
 
 
 @feature("overlap")
@@ -275,9 +298,12 @@ def qualifier_frequency(cs: CandidateSet) -> np.ndarray:
 
 # -- all of the above at once -------------------------------------------------------------
 # The functions above define the features and are what the unit tests check by hand. Serving
-# computes them together: one (feature, candidate) array is filled row by row, sharing the
-# sorted scores, the softmax, the gathered per-row values and the name-token matches, which
-# costs a fraction of calling 27 functions. test_builtin checks it equals them column by column.
+# computes them together, with as few array operations as possible (at 20 candidates each
+# numpy call costs more than the arithmetic): rows of one work array are filled block by
+# block, sharing the leader, the softmax, one gather of precomputed per-row values and the
+# name and term matches; one take() puts them in FUSED_NAMES order. Built-ins left out of
+# FUSED_NAMES still work, one function call each. tests/reranker/test_builtin_fused.py checks
+# that the result equals the functions above, column by column.
 FUSED_NAMES = (
     "bm25_score", "bm25_rank", "inverse_rank", "gap_to_next", "gap_to_best_rival",
     "score_ratio_to_top", "score_zscore", "score_softmax",
@@ -288,98 +314,112 @@ FUSED_NAMES = (
     "matched_terms", "matched_fraction", "matched_rarity", "log_doc_length",
     "qualifier_frequency",
 )  # fmt: skip
+# Rows of the work array, grouped so that each block is written by one operation.
+_WORK = (
+    "score_softmax", "bm25_score", "(score minus mean)", "gap_to_best_rival",
+    "score_ratio_to_top", "score_zscore", "softmax_x_log_words", "score_x_clue_words",
+    "bm25_rank", "inverse_rank", "gap_to_next", "clue_words", "log_clue_words",
+    # per row, from the row table (_ROW_VALUES order)
+    "inlinks", "log_inlinks", "log_popularity", "popularity_missing", "log_doc_length",
+    "has_qualifier", "qualifier_frequency", "(filled)",
+    "log_inlinks_vs_best",
+    # per row and clue: 0 unless a name token of the row is in the clue
+    "qualifier_in_clue", "qualifier_overlap", "title_overlap", "alias_overlap",
+    "matched_terms", "matched_fraction", "matched_rarity",
+)  # fmt: skip
+_ORDER = np.array([_WORK.index(name) for name in FUSED_NAMES])
+_ROW_VALUES = _WORK[13:21]
 
 
-def _row_arrays(index: Index) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Plain-array views of the index's in-links, popularity and document lengths."""
+def _row_values(index: Index, rows: np.ndarray) -> np.ndarray:
+    """The clue-independent values of `rows` (_ROW_VALUES order), by one gather.
+
+    Rows are filled the first time they are candidates; the table starts as zeros, which the
+    operating system hands out page by page as rows are touched, so a large index costs
+    nothing up front and no loop over the corpus ever runs.
+    """
     cache = index_cache(index)
-    arrays: tuple[np.ndarray, np.ndarray, np.ndarray] | None = cache.get("row_arrays")
-    if arrays is None:
-        arrays = cache["row_arrays"] = (
-            np.asarray(index.inlinks),
-            np.asarray(index.popularity, dtype=np.float64),
-            np.asarray(index.doc_len),
-        )
-    return arrays
+    table: np.ndarray | None = cache.get("row_values")
+    if table is None:
+        table = cache["row_values"] = np.zeros((len(index), len(_ROW_VALUES)))
+    values = table[rows]
+    if values[:, -1].all():
+        return values
+    new = np.unique(rows[values[:, -1] == 0])
+    names = row_names(index, new.tolist())
+    inl = np.asarray(index.inlinks[new], dtype=np.float64)
+    pop = np.asarray(index.popularity[new], dtype=np.float64)
+    missing = np.isnan(pop)
+    fill = np.empty((new.size, len(_ROW_VALUES)))
+    fill[:, 0] = inl
+    fill[:, 1] = np.log1p(inl)
+    fill[:, 2] = np.log1p(np.where(missing, 0.0, pop))
+    fill[:, 3] = missing
+    fill[:, 4] = np.log1p(np.asarray(index.doc_len[new], dtype=np.float64))
+    fill[:, 5] = [1.0 if e.qualifier_tokens else 0.0 for e in names]
+    fill[:, 6] = np.log1p(np.array([e.qualifier_count for e in names], dtype=np.float64))
+    fill[:, 7] = 1.0
+    table[new] = fill
+    return table[rows]
 
 
 def fused_builtins(cs: CandidateSet) -> np.ndarray:
     """Every feature of FUSED_NAMES, in that order. float64, shape (n, len(FUSED_NAMES))."""
     n = len(cs)
-    f = np.empty((len(FUSED_NAMES), n))  # one contiguous row per feature, transposed at the end
+    f = np.empty((len(_WORK), n))  # one contiguous row per feature
     if n == 0:
-        return f.T.copy()
-    s, rows = cs.scores, cs.rows
-    # retrieval
-    f[0] = s
-    f[1] = cs.ranks
-    np.divide(1.0, f[1], out=f[2])
-    np.subtract(s[:-1], s[1:], out=f[3, :-1])
-    f[3, -1] = 0.0
+        return f.T.take(_ORDER, axis=1)
+    s = cs.scores
     listed = s.tolist()
     best = max(listed)
     lead = listed.index(best)  # the first best, as a stable sort would put it
-    np.subtract(s, best, out=f[4])  # everyone's best rival is the leader ...
-    np.exp(f[4], out=f[7])  # (softmax numerators, before the leader's entry changes)
-    if n > 1:  # ... except the leader's, which is the best of the others
-        f[4, lead] = best - max(listed[:lead] + listed[lead + 1 :])
-    if best > 0:
-        np.divide(s, best, out=f[5])
-    else:
+    mean = np.add.reduce(s) / n
+    # retrieval and clue length; rows 1-3: the score, minus the mean, minus the best
+    np.subtract(s, np.array([[0.0], [mean], [best]]), out=f[1:4])
+    np.exp(f[3], out=f[0])  # softmax numerators, before the leader's entry below changes
+    f[0] /= np.add.reduce(f[0])
+    if n > 1:  # everyone's best rival is the leader, except the leader's: the best of the rest
+        f[3, lead] = best - max(listed[:lead] + listed[lead + 1 :])
+    sd = float(np.sqrt(np.dot(f[2], f[2]) / n))
+    # score / best and (score - mean) / sd, 0 where the divisor is not positive
+    np.divide(f[1:3], np.array([[best if best > 0 else 1.0], [sd if sd > 0 else 1.0]]), out=f[4:6])
+    if not best > 0:
+        f[4] = 0.0
+    if not sd > 0:
         f[5] = 0.0
-    centred = s - s.mean()
-    sd = float(np.sqrt(np.dot(centred, centred) / n))
-    if sd > 0:
-        np.divide(centred, sd, out=f[6])
-    else:
-        f[6] = 0.0
-    f[7] /= f[7].sum()
-    # clue length
     words = len(cs.words)
     log_words = np.log1p(words)
-    f[8] = float(words)
-    f[9] = log_words
-    np.multiply(s, words, out=f[10])
-    np.multiply(f[7], log_words, out=f[11])
-    # popularity
-    inl, pop, doc_len = _row_arrays(cs.index)
-    f[12] = inl[rows]
-    np.log1p(f[12], out=f[13])
-    np.subtract(f[13], f[13].max(), out=f[14])
-    p = pop[rows]
-    missing = np.isnan(p)
-    f[16] = missing
-    p[missing] = 0.0
-    np.log1p(p, out=f[15])
-    # qualifier and leakage: a few set operations per candidate (20 or so, not the corpus)
-    names = cs.names
-    common = cs.token_set.intersection
-    values = []
-    for _, base, qual, alias, _count in names:
+    np.multiply(f[0:2], np.array([[log_words], [float(words)]]), out=f[6:8])
+    f[8] = cs.ranks
+    np.divide(1.0, f[8], out=f[9])
+    np.subtract(s[:-1], s[1:], out=f[10, :-1])
+    f[10, -1] = 0.0
+    f[11:13] = ((float(words),), (log_words,))
+    # popularity, document length, qualifier: one gather from the row table
+    f[13:21] = _row_values(cs.index, cs.rows).T
+    np.subtract(f[14], np.maximum.reduce(f[14]), out=f[21])
+    # qualifier and title words in the clue: a set test per candidate (20 or so, not the
+    # corpus), and the fractions only for the few that share a word with the clue
+    f[22:26] = 0.0
+    clue = cs.token_set
+    disjoint, common = clue.isdisjoint, clue.intersection
+    for j, e in enumerate(cs.names):
+        if disjoint(e.tokens):
+            continue
+        qual, base, alias = e.qualifier_tokens, e.base, e.aliases
         in_clue = len(common(qual)) if qual else 0
-        values.append(
-            (
-                1.0 if qual else 0.0,
-                1.0 if in_clue else 0.0,
-                in_clue / len(qual) if qual else 0.0,
-                len(common(base)) / len(base) if base else 0.0,
-                len(common(alias)) / len(alias) if alias else 0.0,
-            )
+        f[22:26, j] = (
+            1.0 if in_clue else 0.0,
+            in_clue / len(qual) if qual else 0.0,
+            len(common(base)) / len(base) if base else 0.0,
+            len(common(alias)) / len(alias) if alias else 0.0,
         )
-    f[17:22].T[...] = values
-    # overlap
+    # term overlap
     count, rarity, known = _matched(cs)
-    f[22] = count
-    if known:
-        np.divide(count, known, out=f[23])
-    else:
-        f[23] = 0.0
-    f[24] = rarity
-    f[25] = doc_len[rows]
-    np.log1p(f[25], out=f[25])
-    f[26] = [e.qualifier_count for e in names]
-    np.log1p(f[26], out=f[26])
-    return f.T.copy()
+    f[26] = count
+    np.divide(count, known if known else 1, out=f[27])  # count is all 0 when nothing is known
+    f[28] = rarity
+    return f.T.take(_ORDER, axis=1)
 
 
 # The score-only model, the yardstick every other feature set must beat.

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from operator import attrgetter
 from typing import Any
 
 import numpy as np
@@ -104,18 +105,27 @@ def candidate_set(
     hits: Sequence[Any],
     metadata: dict[str, Any] | None = None,
     tokens: list[str] | None = None,
+    words: list[str] | None = None,
 ) -> CandidateSet:
-    """The CandidateSet of a clue from its BM25 hits (`tokens`: the clue already analyzed)."""
+    """The CandidateSet of a clue from its BM25 hits.
+
+    `tokens` and `words`: the clue already analyzed (`index.analyzer.tokens` and `.words`),
+    as the serving path does once per clue.
+    """
+    n = len(hits)
     return CandidateSet(
         index=index,
         clue=clue,
-        words=index.analyzer.words(clue),
+        words=index.analyzer.words(clue) if words is None else words,
         tokens=index.analyzer.tokens(clue) if tokens is None else tokens,
-        rows=np.fromiter((h.row for h in hits), np.int64, len(hits)),
-        scores=np.fromiter((h.score for h in hits), np.float64, len(hits)),
-        ranks=np.fromiter((h.rank for h in hits), np.int64, len(hits)),
+        rows=np.fromiter(map(_ROW, hits), np.int64, n),
+        scores=np.fromiter(map(_SCORE, hits), np.float64, n),
+        ranks=np.fromiter(map(_RANK, hits), np.int64, n),
         metadata=metadata or {},
     )
+
+
+_ROW, _SCORE, _RANK = attrgetter("row"), attrgetter("score"), attrgetter("rank")
 
 
 @dataclass
@@ -199,6 +209,7 @@ def build_table(
         n_clues += 1
     # Each prefix is analyzed once: its tokens serve the search and the features.
     tokens_all = [index.analyzer.tokens(t) for t in texts]
+    words_all = [index.analyzer.words(t) for t in texts]
     hits_all = [
         index.search_tokens(t, k)
         for t in tqdm(tokens_all, desc="candidates", unit=" prefixes", disable=not progress)
@@ -209,9 +220,9 @@ def build_table(
     cols: dict[str, list[np.ndarray]] = {
         n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row")
     }
-    for g, (text, tokens, hits, (cid, frac, gold, meta)) in enumerate(
+    for g, (text, tokens, words, hits, (cid, frac, gold, meta)) in enumerate(
         tqdm(
-            zip(texts, tokens_all, hits_all, owners, strict=True),
+            zip(texts, tokens_all, words_all, hits_all, owners, strict=True),
             total=len(texts),
             desc="features",
             unit=" prefixes",
@@ -221,7 +232,7 @@ def build_table(
     ):
         if not hits:
             continue
-        cs = candidate_set(index, text, hits, meta, tokens)
+        cs = candidate_set(index, text, hits, meta, tokens, words)
         x = registry.matrix(cs, names)
         if metadata.names:
             x = np.hstack([x, np.tile(metadata.row(meta), (len(cs), 1))])

@@ -7,6 +7,7 @@ one float per candidate. Each works on whole arrays of candidates at once.
 from __future__ import annotations
 
 import importlib
+import math
 import weakref
 from collections import Counter
 from collections.abc import Callable, Iterable, Sequence
@@ -79,14 +80,17 @@ class CandidateSet:
         return [frozenset(e.aliases) for e in self.names]
 
 
-_CACHES: weakref.WeakKeyDictionary[Index, dict[Any, Any]] = weakref.WeakKeyDictionary()
+_CACHES: dict[int, dict[Any, Any]] = {}
 
 
 def index_cache(index: Index) -> dict[Any, Any]:
     """A dict of derived values that lives as long as `index` (title tokens and the like)."""
-    cache = _CACHES.get(index)
+    # Keyed by id() with a finalizer instead of a WeakKeyDictionary: this runs several times
+    # per clue, and a plain dict lookup is much cheaper than building a weak reference.
+    cache = _CACHES.get(id(index))
     if cache is None:
-        cache = _CACHES[index] = {}
+        cache = _CACHES[id(index)] = {}
+        weakref.finalize(index, _CACHES.pop, id(index), None)
     return cache
 
 
@@ -102,6 +106,7 @@ class RowNames(NamedTuple):
     qualifier_tokens: tuple[str, ...]
     aliases: tuple[str, ...]
     qualifier_count: int  # titles in the corpus with this qualifier, 0 when unqualified
+    tokens: tuple[str, ...]  # all of the above tokens
 
 
 def row_names(index: Index, rows: Sequence[int]) -> list[RowNames]:
@@ -110,32 +115,33 @@ def row_names(index: Index, rows: Sequence[int]) -> list[RowNames]:
     Only the rows asked for are analyzed, so a large index costs nothing up front.
     """
     cache = index_cache(index)
-    table: dict[int, RowNames] | None = cache.get("row_names")
+    table: list[RowNames | None] | None = cache.get("row_names")
     if table is None:
-        table = cache["row_names"] = {}
-    get = table.get
-    out = [get(r) for r in rows]
+        table = cache["row_names"] = [None] * len(index)
+    out = [table[r] for r in rows]
     if None in out:
         missing = [r for r, e in zip(rows, out, strict=True) if e is None]
         _analyze_rows(index, table, list(dict.fromkeys(missing)))
-        return [table[r] for r in rows]
+        out = [table[r] for r in rows]
     return out  # type: ignore[return-value]
 
 
-def _analyze_rows(index: Index, table: dict[int, RowNames], rows: list[int]) -> None:
+def _analyze_rows(index: Index, table: list[RowNames | None], rows: list[int]) -> None:
     quals = [index.qualifiers[r] for r in rows]
     texts = [index.bases[r] for r in rows] + quals + [" ".join(index.aliases[r]) for r in rows]
-    toks = index.analyzer.tokens_many(texts)
+    toks = [tuple(dict.fromkeys(t)) for t in index.analyzer.tokens_many(texts)]
     counts = qualifier_counts(index)
     m = len(rows)
     for j, r in enumerate(rows):
+        base, qual, alias = toks[j], toks[m + j], toks[2 * m + j]
         q = quals[j]
         table[r] = RowNames(
             q,
-            tuple(dict.fromkeys(toks[j])),
-            tuple(dict.fromkeys(toks[m + j])),
-            tuple(dict.fromkeys(toks[2 * m + j])),
+            base,
+            qual,
+            alias,
             counts.get(q, 0) if q else 0,
+            tuple(dict.fromkeys(base + qual + alias)),
         )
 
 
@@ -284,7 +290,8 @@ class FeatureRegistry:
             # over features, not candidates, and per-call checks would cost more than the work.
             for j, f in plan.others:
                 out[:, j] = f.func(cs) if f.trusted else f.compute(cs)
-        if not np.isfinite(out).all():
+        # A finite sum means every value is finite (one reduction); otherwise look closer.
+        if not math.isfinite(np.add.reduce(out, axis=None)) and not np.isfinite(out).all():
             bad = [names[int(j)] for j in np.flatnonzero(~np.isfinite(out).all(axis=0))]
             raise FeatureError(f"features {bad} returned NaN or infinite values")
         return out

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -85,10 +86,17 @@ def load_model(
     return model
 
 
+@functools.cache
+def _builtins() -> FeatureRegistry:
+    """The built-in registry for model-less calls, made once (ours: nobody can add to it)."""
+    return default_registry()
+
+
 def _features_of(
-    model: Reranker | None, registry: FeatureRegistry, cs: Any
+    model: Reranker | None, registry: FeatureRegistry | None, cs: Any
 ) -> tuple[np.ndarray, list[str]]:
     if model is None:
+        registry = registry if registry is not None else _builtins()
         names = registry.names
         return registry.matrix(cs, names), names
     x = model.registry_.matrix(cs, model.code_features_)
@@ -102,6 +110,7 @@ def _rank_hits(
     model: Reranker | None,
     clue: str,
     tokens: list[str],
+    words: list[str],
     hits: list[Hit],
     *,
     payoff: Payoff | None,
@@ -110,27 +119,30 @@ def _rank_hits(
     metadata: dict[str, Any] | None,
     registry: FeatureRegistry | None,
 ) -> Ranking:
-    cs = candidate_set(index, clue, hits, metadata, tokens)
-    probs: np.ndarray | None = None
+    cs = candidate_set(index, clue, hits, metadata, tokens, words)
+    probs: list[float] | None = None
     x, names = np.zeros((len(hits), 0)), list[str]()
     if model is not None or include_features:
-        x, names = _features_of(model, registry or default_registry(), cs)
+        x, names = _features_of(model, registry, cs)
     if model is not None and hits:
-        probs = model.probability(x)
-    order = np.argsort(-probs, kind="stable") if probs is not None else np.arange(len(hits))
+        p = model.probability(x)
+        probs = p.tolist()
+        order = np.argsort(-p, kind="stable").tolist()
+    else:
+        order = list(range(len(hits)))
+    qualifiers = cs.qualifiers
+    values = x.tolist() if include_features else None
     cands = [
         ScoredCandidate(
-            doc_id=hits[i].doc_id,
-            title=hits[i].title,
-            qualifier=index.qualifiers[hits[i].row],
-            score=float(hits[i].score),
-            rank=hits[i].rank,
-            probability=None if probs is None else float(probs[i]),
-            features={n: float(v) for n, v in zip(names, x[i].tolist(), strict=True)}
-            if include_features
-            else {},
+            hits[i].doc_id,
+            hits[i].title,
+            qualifiers[i],
+            float(hits[i].score),
+            hits[i].rank,
+            None if probs is None else probs[i],
+            dict(zip(names, values[i], strict=True)) if values is not None else {},
         )
-        for i in order.tolist()
+        for i in order
     ]
     if payoff is not None:
         threshold = payoff.break_even
@@ -163,12 +175,15 @@ def rank_clue(
     registry: FeatureRegistry | None = None,
 ) -> Ranking:
     """Rank one clue's candidates by calibrated probability (by BM25 when there is no model)."""
-    tokens = index.analyzer.tokens(clue)  # analyzed once, for the search and the features
+    # Analyzed once, for the search and the features (words: the clue-length features).
+    analyzer = index.analyzer
+    tokens, words = analyzer.tokens(clue), analyzer.words(clue)
     return _rank_hits(
         index,
         model,
         clue,
         tokens,
+        words,
         index.search_tokens(tokens, k),
         payoff=payoff,
         complete=complete,
@@ -190,13 +205,15 @@ def rank_clues(
     registry: FeatureRegistry | None = None,
 ) -> list[Ranking]:
     """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many)."""
-    all_tokens = [index.analyzer.tokens(c) for c in clues]
+    analyzer = index.analyzer
+    analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]
     return [
         _rank_hits(
             index,
             model,
             c,
             t,
+            w,
             index.search_tokens(t, k),
             payoff=payoff,
             complete=complete,
@@ -204,5 +221,5 @@ def rank_clues(
             metadata=None,
             registry=registry,
         )
-        for c, t in zip(clues, all_tokens, strict=True)
+        for c, (t, w) in zip(clues, analyzed, strict=True)
     ]

@@ -26,6 +26,7 @@ from tests.reranker.conftest import World
 
 HERE = Path(__file__).resolve().parent
 USER = "userfeatures:title_chars"
+USER_NAME = "user:title_chars"
 
 
 @pytest.fixture
@@ -137,6 +138,31 @@ def test_bad_feature_values_name_the_feature(tiny_index: Index, func: str, needl
     with pytest.raises(FeatureError, match=needle) as err:
         reg.matrix(cs, ["bm25_score", f"user:{func}"])
     assert f"user:{func}" in str(err.value)
+
+
+@pytest.mark.usefixtures("on_path")
+@pytest.mark.parametrize(
+    "names",
+    [
+        # a user feature among enough built-ins for the fused path, in no particular order
+        [
+            "matched_rarity", USER_NAME, "score_zscore", "bm25_score", "title_overlap",
+            "inlinks", "qualifier_frequency", "gap_to_best_rival", "bm25_score",
+        ],
+        ["inlinks", USER_NAME, "bm25_score"],  # too few built-ins: computed one by one
+    ],
+)  # fmt: skip
+def test_matrix_puts_every_column_where_it_was_asked_for(
+    tiny_index: Index, names: list[str]
+) -> None:
+    reg = default_registry().with_user_features([USER])
+    clue = "grey stone river town"
+    hits = tiny_index.search(clue, k=5)
+    x = reg.matrix(candidate_set(tiny_index, clue, hits), names)
+    assert x.shape == (len(hits), len(names))
+    for j, name in enumerate(names):  # reference: each feature's function on its own
+        expected = reg[name].compute(candidate_set(tiny_index, clue, hits))
+        np.testing.assert_allclose(x[:, j], expected, rtol=1e-12, atol=1e-12, err_msg=name)
 
 
 def test_registry_rejects_duplicates_and_unknown_names() -> None:

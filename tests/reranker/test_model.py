@@ -11,7 +11,7 @@ from typing import Any
 
 import numpy as np
 import pytest
-from scipy.special import logit
+from scipy.special import expit, logit
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.isotonic import IsotonicRegression
 from sklearn.linear_model import LogisticRegression
@@ -76,6 +76,15 @@ def test_probabilities_equal_sklearn_pipeline(plain: Reranker, table: TrainingTa
     ref = reference_pipeline(plain.C_).fit(table.X, table.y).predict_proba(table.X)[:, 1]
     assert np.max(np.abs(plain.probability(table.X) - ref)) <= 1e-9
     np.testing.assert_allclose(plain.predict_proba(table.X).sum(axis=1), 1.0)
+
+
+def test_probability_is_the_standardized_logistic_formula(
+    plain: Reranker, table: TrainingTable
+) -> None:
+    # The stored numbers as the artifact describes them: expit(((X - mean) / scale) @ coef + b).
+    # Serving folds scale into the weights, which may only change the last bits.
+    z = ((table.X - plain.mean_) / plain.scale_) @ plain.coef_ + plain.intercept_
+    np.testing.assert_allclose(plain.raw_probability(table.X), expit(z), rtol=1e-12, atol=1e-15)
 
 
 def test_save_and_load_give_identical_probabilities(

@@ -51,6 +51,8 @@ def test_with_a_model_candidates_are_sorted_by_probability(
         x = np.array([[c.features[n] for n in model.feature_names_] for c in r.candidates])
         np.testing.assert_array_equal(model.probability(x), probs)
         assert r.model_version == model.version
+        # the qualifier served is the stored one (read from the per-row name cache)
+        assert all(c.qualifier == world.index.document(c.doc_id).qualifier for c in r.candidates)
 
 
 def test_include_features_returns_the_feature_values(world: World, model: Reranker) -> None:
