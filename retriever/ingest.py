@@ -8,6 +8,7 @@ need (ids, titles, aliases, links, popularity), never the article texts.
 
 from __future__ import annotations
 
+import gzip
 import json
 from collections import deque
 from collections.abc import Iterable, Iterator, Mapping
@@ -29,6 +30,7 @@ from .counting import (
     run_chunks,
     worker_state,
 )
+from .store import record_line
 
 # One raw item: (line number, JSONL bytes | parsed record | Article | ("error", reason, field)).
 RawItem = tuple[int, Any]
@@ -80,10 +82,6 @@ class ChunkOut:
     title: Csr
 
 
-def _record_line(art: Article) -> bytes:
-    return json.dumps(art.to_record(), ensure_ascii=False, separators=(",", ":")).encode() + b"\n"
-
-
 def _parse(raw: Any, file: str, line: int) -> Article:
     if isinstance(raw, Article):
         return raw
@@ -121,7 +119,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
                 continue
             metas.append((line, pos, art.id, art.title, art.aliases, art.links, art.popularity))
             if not isinstance(raw, bytes):  # raw JSONL lines are stored as they are, by the parent
-                encoded[pos] = _record_line(art)
+                encoded[pos] = record_line(art)
             bodies.append(art.text)
             titles.append(art.title)
     body = count_texts(analyzer, table, bodies)
@@ -136,8 +134,6 @@ def _raw_items(source: str | Path | Iterable[Mapping[str, Any] | Article]) -> It
         return
     path = Path(source)
     if path.exists() and detect_format(path) == "jsonl":
-        import gzip
-
         opener = gzip.open if path.suffix.lower() == ".gz" else open
         with opener(path, "rb") as fh:
             for n, raw in enumerate(fh, 1):

@@ -76,15 +76,17 @@ def open_store(folder: Path) -> Iterator[Any]:
         os.fsync(fh.fileno())
 
 
+def record_line(art: Article) -> bytes:
+    """One article as a line of the store."""
+    return json.dumps(art.to_record(), ensure_ascii=False, separators=(",", ":")).encode() + b"\n"
+
+
 def write_store(folder: Path, articles: Iterable[Article]) -> int:
     """Write the article store (one JSON line each) and its byte offsets; returns the count."""
     offsets = [0]
     with open(folder / STORE, "wb") as fh:
         for art in articles:
-            line = (
-                json.dumps(art.to_record(), ensure_ascii=False, separators=(",", ":")).encode()
-                + b"\n"
-            )
+            line = record_line(art)
             fh.write(line)
             offsets.append(offsets[-1] + len(line))
         fh.flush()
