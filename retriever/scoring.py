@@ -9,6 +9,7 @@ or the vocabulary, and no per-article or per-posting Python code runs.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any, Protocol
 
 import numpy as np
@@ -43,7 +44,7 @@ class Plan:
     end: tuple[np.ndarray, ...]
     factor: tuple[np.ndarray, ...]  # query term count x field weight
 
-    @property
+    @cached_property
     def postings(self) -> int:
         """Total postings the query touches."""
         return int(sum(int((e - s).sum()) for s, e in zip(self.start, self.end, strict=True)))
@@ -93,14 +94,13 @@ def _floor(buf: np.ndarray, p: Plan, k: int) -> float | None:
     The k-th best score among the articles of one term (the rarest with at least k
     postings, whose rows are distinct) is reached by at least k articles.
     """
-    best: tuple[int, int, int] | None = None
+    best: tuple[int, int, int] | None = None  # (length, field, start)
+    # Plain Python over the few query terms: cheaper than numpy calls on arrays this small.
     for fi, (start, end) in enumerate(zip(p.start, p.end, strict=True)):
-        lengths = end - start
-        ok = np.flatnonzero(lengths >= k)
-        if ok.size:
-            j = ok[np.argmin(lengths[ok])]
-            if best is None or lengths[j] < best[0]:
-                best = (int(lengths[j]), fi, int(start[j]))
+        for s, e in zip(start.tolist(), end.tolist(), strict=True):
+            n = e - s
+            if n >= k and (best is None or n < best[0]):
+                best = (n, fi, s)
     if best is None:
         return None
     n, fi, s = best
