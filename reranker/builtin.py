@@ -209,35 +209,34 @@ def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
     terms = _body_terms(cs.index, cs.tokens)
     if not terms or n == 0:
         return np.zeros(n), np.zeros(n), len(terms)
-    # One binary search per clue term (a loop over terms, not candidates or the corpus): each
-    # posting list is sorted by row, so searching for row and row + 1 gives slots that differ
-    # by exactly 1 where the candidate holds the term and 0 where it does not. The needles
-    # take the postings' dtype so that no posting list is converted.
-    needles = np.add(
-        cs.rows, _ROW_AND_NEXT, dtype=cs.index.body.docs.dtype, casting="unsafe"
-    ).ravel()
-    slots = np.array([posting.searchsorted(needles) for posting, _ in terms])
-    hits = slots[:, n:] - slots[:, :n]
-    # One product gives both sums: row 0 counts the terms, row 1 adds their rarity.
-    both = np.array([[1.0] * len(terms), [r for _, r in terms]]) @ hits
-    return both[0], both[1], len(terms)
+    # Each candidate's own distinct terms come from the index's article-major term lists
+    # (one gather for all candidates); one binary search over the clue's few sorted term
+    # ids then marks which of them are clue terms.
+    tids = np.array([t for t, _ in terms], dtype=np.int64)
+    rarity = np.array([r for _, r in terms])
+    order = np.argsort(tids)
+    tids, rarity = tids[order], rarity[order]
+    held, lengths = cs.index.article_terms(cs.rows)
+    pos = np.searchsorted(tids, held)
+    np.minimum(pos, tids.size - 1, out=pos)
+    hit = tids[pos] == held
+    owner = np.repeat(np.arange(n), lengths)[hit]
+    count = np.bincount(owner, minlength=n).astype(np.float64)
+    return count, np.bincount(owner, weights=rarity[pos[hit]], minlength=n), len(terms)
 
 
-_ROW_AND_NEXT = np.array([[0], [1]])
-
-
-# Remembered (token -> posting list) lookups per index; cleared when it grows past this.
+# Remembered (token -> term id and rarity) lookups per index; cleared past this many.
 _MAX_CACHED_TERMS = 200_000
 
 
-def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[np.ndarray, float]]:
-    """(posting list, log(N/df)) of each distinct token found in article text, in order.
+def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[int, float]]:
+    """(term id, log(N/df)) of each distinct token found in article text, in order.
 
     Tokens absent from the vocabulary, or only in titles, are left out. Lookups are
     remembered per index, so a clue costs dict lookups instead of a vocabulary search.
     """
     cache = index_cache(index)
-    known: dict[str, tuple[np.ndarray, float] | None] | None = cache.get("body_terms")
+    known: dict[str, tuple[int, float] | None] | None = cache.get("body_terms")
     if known is None or len(known) > _MAX_CACHED_TERMS:
         known = cache["body_terms"] = {}
     get = known.get
@@ -250,15 +249,15 @@ def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[np.ndarray, f
             out.append(found)
     if not new:
         return out
-    indptr, docs = index.body.indptr, index.body.docs
+    indptr = index.body.indptr
     ids = [index.term_ids([t])[0] for t in new]
     tids = np.array([int(i[0]) if i.size else 0 for i in ids], dtype=np.int64)
     starts, ends = indptr[tids], indptr[tids + 1]
     rarity = np.log(max(index.n_docs, 1) / np.maximum(ends - starts, 1).astype(np.float64))
-    for t, i, s, e, r in zip(
-        new, ids, starts.tolist(), ends.tolist(), rarity.tolist(), strict=True
+    for t, i, tid, s, e, r in zip(
+        new, ids, tids.tolist(), starts.tolist(), ends.tolist(), rarity.tolist(), strict=True
     ):
-        known[t] = (docs[s:e], r) if i.size and e > s else None
+        known[t] = (tid, r) if i.size and e > s else None
     return [r for r in map(known.__getitem__, dict.fromkeys(tokens)) if r is not None]
 
 

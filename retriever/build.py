@@ -86,8 +86,9 @@ def weight_dtype(*idfs: np.ndarray) -> type[np.floating[Any]]:
 
 def _term_major(
     counter: TermCounter, order: np.ndarray | None
-) -> tuple[list[str], list[sp.csc_matrix]]:
-    """Sorted vocabulary of the used terms and each field's (articles x terms) CSC counts."""
+) -> tuple[list[str], list[sp.csc_matrix], tuple[np.ndarray, np.ndarray]]:
+    """Sorted vocabulary of the used terms, each field's (articles x terms) CSC counts, and
+    the body's article-major term ids (indptr, sorted term ids per article)."""
     n_terms = len(counter.terms)
     used = np.zeros(n_terms, dtype=bool)
     rows = []
@@ -103,15 +104,21 @@ def _term_major(
     new_id = np.full(n_terms, -1, dtype=np.int32)
     new_id[ranked] = np.arange(ranked.size, dtype=np.int32)
     mats = []
+    forward: tuple[np.ndarray, np.ndarray] | None = None
     while rows:
         m = rows.pop(0)
         remapped = sp.csr_matrix(
             (m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], ranked.size)
         )
         del m
+        if forward is None:  # the body comes first
+            remapped.sort_indices()
+            forward = (remapped.indptr.astype(np.int64), remapped.indices.astype(np.int32))
         mats.append(remapped.tocsc())
         del remapped
-    return [str(t) for t in names[ranked]], mats
+    if forward is None:  # pragma: no cover - the body is always counted
+        raise RuntimeError("no body field was counted")
+    return [str(t) for t in names[ranked]], mats, forward
 
 
 def _write_keys(tmp: Path, keys: Keys) -> tuple[int, int, int]:
@@ -148,7 +155,10 @@ def _write(
         keys_job = pool.submit(_write_keys, tmp, keys)
         # `body_order[i]` is the counted row that becomes row i (updates count rows out of
         # order).
-        all_terms, (tf_body, tf_title) = _term_major(counter, body_order)
+        all_terms, (tf_body, tf_title), (fwd_indptr, fwd_terms) = _term_major(counter, body_order)
+        store.save_array(tmp, "body_fwd_indptr", fwd_indptr)
+        store.save_array(tmp, "body_fwd_terms", fwd_terms)
+        del fwd_indptr, fwd_terms
         body, title = _Field(tf_body, params), _Field(tf_title, params)
         del tf_body, tf_title
         dtype = weight_dtype(body.idf, title.idf)

@@ -101,6 +101,13 @@ class Index:
             self.params.title_weight if title_weight is None else float(title_weight)
         )
         self.doc_len = store.open_array(self.path, "doc_len", "int32", self.n_docs)
+        self._fwd_indptr = store.open_array(self.path, "body_fwd_indptr", "int64", self.n_docs + 1)
+        body_postings = int(self.manifest["counts"]["body_postings"])
+        self._fwd_terms = store.open_array(self.path, "body_fwd_terms", "int32", body_postings)
+        if int(self._fwd_indptr[-1]) != body_postings:
+            raise IndexFormatError(
+                f"{self.path}: body_fwd_indptr does not match the postings; rebuild the index"
+            )
         self.inlinks = store.open_array(self.path, "inlinks", "int32", self.n_docs)
         self.popularity = store.open_array(self.path, "popularity", "float64", self.n_docs)
         self._store = store.StoreReader(self.path, self.n_docs)
@@ -159,6 +166,19 @@ class Index:
         known = ids >= 0
         qtf = np.fromiter(counts.values(), np.float64, len(counts))
         return ids[known], qtf[known]
+
+    def article_terms(self, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Distinct term ids of each article's text, for several rows at once.
+
+        Returns (term ids of all the rows concatenated, sorted within each row; how many
+        belong to each row). int32 and int64 arrays.
+        """
+        rows = np.asarray(rows, dtype=np.int64)
+        starts, ends = self._fwd_indptr[rows], self._fwd_indptr[rows + 1]
+        lengths = ends - starts
+        offsets = np.cumsum(lengths) - lengths
+        positions = np.repeat(starts - offsets, lengths) + np.arange(int(lengths.sum()))
+        return self._fwd_terms[positions], lengths
 
     def _buffer(self) -> np.ndarray:
         buf = getattr(self._local, "buf", None)

@@ -15,6 +15,7 @@ from rank_bm25 import BM25Okapi
 from retriever import IndexFormatError, UnknownDocumentError, build_index, load_index, scoring
 from retriever.store import MANIFEST
 
+from .foldoc import synthetic_articles
 from .helpers import PLAIN, plain_index
 
 DOCS = [
@@ -175,3 +176,19 @@ def test_missing_or_corrupt_array(tmp_path: Path, damage: str) -> None:
         array.write_bytes(b"\x00" * 40)
     with pytest.raises(IndexFormatError, match="body_weight"):
         load_index(tmp_path / "idx")
+
+
+def test_article_terms_are_each_articles_distinct_known_terms(tmp_path: Path) -> None:
+    records = list(synthetic_articles(300, seed=11))
+    idx = build_index(records, tmp_path / "idx")
+    rows = np.array([0, 7, 7, 299, 150])
+    terms, lengths = idx.article_terms(rows)
+    assert lengths.tolist() == [int(n) for n in np.diff(idx._fwd_indptr)[rows]]
+    pos = 0
+    for row, n in zip(rows.tolist(), lengths.tolist(), strict=True):
+        tokens = idx.analyzer.tokens(idx.document_at(row).text)
+        expected = sorted({int(t) for t in idx.vocab.lookup(tokens).tolist() if t >= 0})
+        assert terms[pos : pos + n].tolist() == expected
+        pos += n
+    empty_terms, empty_lengths = idx.article_terms(np.array([], dtype=np.int64))
+    assert empty_terms.size == 0 and empty_lengths.size == 0
