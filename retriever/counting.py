@@ -18,15 +18,19 @@ from .analyzer import Analyzer, AnalyzerConfig, TermTable
 CHUNK = 4_000  # articles per task: big enough to amortize pickling, small enough to stream
 
 
+def cores() -> int:
+    """CPU cores this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return os.cpu_count() or 1
+
+
 def default_workers(n_hint: int) -> int:
     """Worker processes worth starting for about `n_hint` articles (1 means in-process)."""
     if n_hint < 20_000:
         return 1
-    try:
-        cores = len(os.sched_getaffinity(0))
-    except AttributeError:
-        cores = os.cpu_count() or 1
-    return max(1, min(2, cores))
+    return max(1, min(2, cores()))
 
 
 Csr = tuple[np.ndarray, np.ndarray, np.ndarray]  # indptr, term ids (local), counts

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 import threading
 from collections import Counter
 from collections.abc import Sequence
@@ -17,6 +16,7 @@ import numpy as np
 from . import columns, scoring, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
+from .counting import cores
 from .errors import IndexFormatError, UnknownDocumentError
 from .links import NameResolver
 
@@ -176,9 +176,7 @@ class Index:
         rows = np.asarray(rows, dtype=np.int64)
         starts, ends = self._fwd_indptr[rows], self._fwd_indptr[rows + 1]
         lengths = ends - starts
-        offsets = np.cumsum(lengths) - lengths
-        positions = np.repeat(starts - offsets, lengths) + np.arange(int(lengths.sum()))
-        return self._fwd_terms[positions], lengths
+        return self._fwd_terms[scoring.concat_ranges(starts, lengths)], lengths
 
     def _buffer(self) -> np.ndarray:
         buf = getattr(self._local, "buf", None)
@@ -232,7 +230,7 @@ class Index:
         """`search` for each clue, in order, on `threads` threads (default: up to 2 cores
         for batches of 64 clues or more; the scoring kernels release the GIL)."""
         if threads is None:
-            threads = min(_cores(), 2) if len(clues) >= 64 else 1
+            threads = min(cores(), 2) if len(clues) >= 64 else 1
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
@@ -252,13 +250,6 @@ class Index:
 
     def __repr__(self) -> str:
         return f"Index({str(self.path)!r}, articles={self.n_docs}, terms={self.n_terms})"
-
-
-def _cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # pragma: no cover - not on Linux
-        return os.cpu_count() or 1
 
 
 def load_index(folder: str | Path, *, title_weight: float | None = None) -> Index:

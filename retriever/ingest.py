@@ -30,6 +30,7 @@ from .counting import (
     run_chunks,
     worker_state,
 )
+from .scoring import concat_ranges
 from .store import record_line
 
 # One raw item: (line number, JSONL bytes | parsed record | Article | ("error", reason, field)).
@@ -166,9 +167,7 @@ def _keep_rows(csr: Csr, keep: np.ndarray) -> Csr:
     indptr, cols, counts = csr
     lens = np.diff(indptr)[keep]
     starts = indptr[:-1][keep]
-    idx = (np.repeat(starts - np.cumsum(lens) + lens, lens) + np.arange(int(lens.sum()))).astype(
-        np.int64
-    )
+    idx = concat_ranges(starts, lens)
     out_ptr = np.zeros(lens.size + 1, dtype=np.int64)
     np.cumsum(lens, out=out_ptr[1:])
     return out_ptr, cols[idx], counts[idx]

@@ -63,7 +63,7 @@ def plan(fields: list[tuple[Postings, float]], tids: np.ndarray, qtf: np.ndarray
     return Plan(tuple(f for f, _ in fields), tuple(starts), tuple(ends), tuple(factors))
 
 
-def _ranges(start: np.ndarray, length: np.ndarray) -> np.ndarray:
+def concat_ranges(start: np.ndarray, length: np.ndarray) -> np.ndarray:
     """Concatenation of arange(s, s + n) for each (s, n), as one index array."""
     offsets = np.cumsum(length) - length
     return np.repeat(start - offsets, length) + np.arange(int(length.sum()))
@@ -111,7 +111,8 @@ def _floor(buf: np.ndarray, p: Plan, k: int) -> float | None:
 def _touched(p: Plan) -> np.ndarray:
     """Rows holding any planned posting, as concatenated (possibly repeated) indices."""
     parts = [
-        fld.docs[_ranges(s, e - s)] for fld, s, e in zip(p.fields, p.start, p.end, strict=True)
+        fld.docs[concat_ranges(s, e - s)]
+        for fld, s, e in zip(p.fields, p.start, p.end, strict=True)
     ]
     return np.concatenate(parts)
 

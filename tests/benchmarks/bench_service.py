@@ -329,6 +329,23 @@ async def _open(url: str, payloads: list[str], rate: float, seconds: float) -> d
     return _summary(lat, errors, elapsed)
 
 
+def _row(
+    workers: int,
+    mode: str,
+    result: dict[str, float],
+    proc: subprocess.Popen[bytes],
+    cpu_before: float,
+) -> dict[str, Any]:
+    """One table row: a load run's figures plus the server's memory and CPU per request."""
+    return {
+        "workers": workers,
+        "mode": mode,
+        **result,
+        "mem": memory_mib(proc),
+        "cpu": (cpu_seconds(proc) - cpu_before) / result["n"],
+    }
+
+
 def _summary(lat: list[float], errors: int, seconds: float) -> dict[str, float]:
     a = np.asarray(lat) * 1e3
     return {
@@ -382,28 +399,12 @@ def main() -> int:
                 closed = wrk_load(url, clues, args.connections, args.seconds, work)
             else:
                 closed = asyncio.run(_closed(url, payloads, args.connections, args.seconds))
-            mode = f"closed, {args.connections} conns ({tool})"
             rows.append(
-                {
-                    "workers": workers,
-                    "mode": mode,
-                    **closed,
-                    "mem": memory_mib(proc),
-                    "cpu": (cpu_seconds(proc) - cpu) / closed["n"],
-                }
+                _row(workers, f"closed, {args.connections} conns ({tool})", closed, proc, cpu)
             )
             cpu = cpu_seconds(proc)
             opened = asyncio.run(_open(url, payloads, args.rate, args.seconds))
-            mode = f"open, {args.rate:.0f} req/s (asyncio)"
-            rows.append(
-                {
-                    "workers": workers,
-                    "mode": mode,
-                    **opened,
-                    "mem": memory_mib(proc),
-                    "cpu": (cpu_seconds(proc) - cpu) / opened["n"],
-                }
-            )
+            rows.append(_row(workers, f"open, {args.rate:.0f} req/s (asyncio)", opened, proc, cpu))
         finally:
             stop_server(proc)
             shutil.rmtree(logs, ignore_errors=True)
