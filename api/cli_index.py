@@ -160,7 +160,7 @@ def cmd_build(args: argparse.Namespace) -> int:
 
 def cmd_info(args: argparse.Namespace) -> int:
     """Print an index's manifest."""
-    from retriever import load_index
+    from retriever import load_index, scoring
     from retriever.store import folder_size
 
     idx = load_index(args.index)
@@ -180,6 +180,8 @@ def cmd_info(args: argparse.Namespace) -> int:
         ("bm25", ", ".join(f"{k}={v}" for k, v in m["bm25"].items())),
         ("analyzer", ", ".join(f"{k}={v}" for k, v in m["analyzer"].items() if k != "extra")),
         ("size on disk", human_bytes(folder_size(Path(args.index)))),
+        ("weights", m["weights"]),
+        ("query kernel", "compiled" if scoring.compiled() else "numpy (retriever._topk not built)"),
     ]
     print(format_table(["field", "value"], rows))
     return 0

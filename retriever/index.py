@@ -184,21 +184,19 @@ class Index:
             buf = self._local.buf = np.zeros(self.n_docs, dtype=self.body.weight.dtype)
         return buf
 
-    def _plan(self, tokens: Sequence[str]) -> scoring.Plan | None:
-        tids, qtf = self.term_ids(tokens)
-        if tids.size == 0:
-            return None
+    def _plan(self, token_lists: Sequence[Sequence[str]]) -> scoring.Plan:
+        """One plan for a batch of analyzed queries (each distinct token looked up once)."""
+        distinct = list(dict.fromkeys(t for tokens in token_lists for t in tokens))
+        tid_of = dict(zip(distinct, self.vocab.lookup(distinct).tolist(), strict=True))
         fields: list[tuple[scoring.Postings, float]] = [(self.body, 1.0)]
         if self.title_weight > 0:
             fields.append((self.title_field, self.title_weight))
-        return scoring.plan(fields, tids, qtf)
+        return scoring.plan(fields, [[tid_of[t] for t in tokens] for tokens in token_lists])
 
     def score_tokens(self, tokens: Sequence[str]) -> np.ndarray:
         """BM25 score of every article for already-analyzed tokens. float64, shape (n_docs,)."""
         scores = np.zeros(self.n_docs, dtype=self.body.weight.dtype)
-        plan = self._plan(tokens)
-        if plan is not None:
-            scoring.accumulate(scores, plan)
+        scoring.accumulate(scores, self._plan([tokens]))
         return scores.astype(np.float64)
 
     def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
@@ -206,19 +204,39 @@ class Index:
 
         Candidates are the articles holding at least one known query term.
         """
+        return self.search_token_lists([tokens], k)[0]
+
+    def search_token_lists(
+        self, token_lists: Sequence[Sequence[str]], k: int = 20
+    ) -> list[list[Hit]]:
+        """`search_tokens` for each list of already-analyzed tokens, in this thread."""
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
-        plan = self._plan(tokens)
-        if plan is None or plan.postings == 0:
+        if not token_lists:
             return []
-        rows, scores = scoring.top_k(self._buffer(), plan, k)
+        results = scoring.top_k_many(self._buffer(), self._plan(token_lists), k)
+        rows = np.concatenate([r for r, _ in results])
         ids, titles = self.ids.take(rows), self.titles.take(rows)
-        return [
-            Hit(doc_id, title, sc, i + 1, r)
-            for i, (doc_id, title, r, sc) in enumerate(
-                zip(ids, titles, rows.tolist(), scores.tolist(), strict=True)
+        out: list[list[Hit]] = []
+        at = 0
+        for r, sc in results:
+            n = r.size
+            out.append(
+                [
+                    Hit(doc_id, title, score, i + 1, row)
+                    for i, (doc_id, title, row, score) in enumerate(
+                        zip(
+                            ids[at : at + n],
+                            titles[at : at + n],
+                            r.tolist(),
+                            sc.tolist(),
+                            strict=True,
+                        )
+                    )
+                ]
             )
-        ]
+            at += n
+        return out
 
     def search(self, clue: str, k: int = 20) -> list[Hit]:
         """Top-k articles for a free-text clue, best first."""
@@ -228,22 +246,19 @@ class Index:
         self, clues: Sequence[str], k: int = 20, *, threads: int | None = None
     ) -> list[list[Hit]]:
         """`search` for each clue, in order, on `threads` threads (default: up to 2 cores
-        for batches of 64 clues or more; the scoring kernels release the GIL)."""
+        for batches of 64 clues or more; the compiled kernel releases the GIL)."""
         if threads is None:
             threads = min(cores(), 2) if len(clues) >= 64 else 1
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
         if threads <= 1 or len(clues) < 2:
-            return [self.search_tokens(t, k) for t in token_lists]
+            return self.search_token_lists(token_lists, k)
         step = -(-len(clues) // threads)
         shards = [token_lists[i : i + step] for i in range(0, len(token_lists), step)]
-
-        def run(shard: list[list[str]]) -> list[list[Hit]]:
-            return [self.search_tokens(t, k) for t in shard]
-
         with ThreadPoolExecutor(len(shards), thread_name_prefix="hunchwise-search") as pool:
-            return [hits for part in pool.map(run, shards) for hits in part]
+            parts = pool.map(lambda shard: self.search_token_lists(shard, k), shards)
+            return [hits for part in parts for hits in part]
 
     def __len__(self) -> int:
         return self.n_docs

@@ -1,30 +1,31 @@
-"""Query-time BM25 scoring over term-major postings, and an exact top-k.
+"""Query-time BM25 scoring over term-major postings, and an exact top-k, for one or many queries.
 
-Hand-written around scipy's compiled CSC mat-vec kernel rather than a scipy sparse product
-over the whole matrix: the kernel is pointed at just the query terms' posting ranges (one
-"column" per range), so a query costs time proportional to its postings, not to the corpus
-or the vocabulary, and no per-article or per-posting Python code runs.
+A query plan lists, for every query of a batch, the posting ranges of its known terms in
+each scored field. The compiled kernel (retriever/_topk.c) adds a whole batch's postings and
+selects each query's k best articles in one call with the GIL released. Where that module
+is not built, the numpy path below gives the same scores bit for bit (the same products,
+added in the same order), more slowly; tests compare the two.
 """
 
 from __future__ import annotations
 
+import importlib
+from collections.abc import Sequence
 from dataclasses import dataclass
-from functools import cached_property
 from typing import Any, Protocol
 
 import numpy as np
 
-_matvec: Any
+_topk: Any
 try:
-    # Private but long-stable module (the kernels behind csc_matrix @ vector); if a future
-    # scipy drops it, the numpy path below gives the same scores, about half as fast.
-    from scipy.sparse import _sparsetools
+    _topk = importlib.import_module("retriever._topk")  # built by setup.py from _topk.c
+except ImportError:  # pragma: no cover - a machine without a C compiler at install time
+    _topk = None
 
-    _matvec = _sparsetools.csc_matvec
-except (ImportError, AttributeError):  # pragma: no cover - depends on the scipy build
-    _matvec = None
 
-_INT32_MAX = np.iinfo(np.int32).max
+def compiled() -> bool:
+    """True when the compiled kernel is built and used."""
+    return _topk is not None
 
 
 class Postings(Protocol):
@@ -37,30 +38,46 @@ class Postings(Protocol):
 
 @dataclass(frozen=True)
 class Plan:
-    """The posting ranges of a query's known terms in each scored field."""
+    """The known terms of a batch of queries, in scoring order.
 
-    fields: tuple[Postings, ...]
-    start: tuple[np.ndarray, ...]  # per field, ranges in descending start order
-    end: tuple[np.ndarray, ...]
-    factor: tuple[np.ndarray, ...]  # query term count x field weight
+    Query q owns entries `qptr[q]:qptr[q + 1]` of `tids` (distinct term ids, by descending
+    id) and `qtf` (how often each occurs in the query). Every field's postings of those
+    terms are added, field by field in order, each scaled by the field's weight.
+    """
 
-    @cached_property
-    def postings(self) -> int:
-        """Total postings the query touches."""
-        return int(sum(int((e - s).sum()) for s, e in zip(self.start, self.end, strict=True)))
+    fields: tuple[tuple[Postings, float], ...]
+    qptr: np.ndarray  # int64, n_queries + 1
+    tids: np.ndarray  # int64
+    qtf: np.ndarray  # float64
+
+    @property
+    def n_queries(self) -> int:
+        return int(self.qptr.size - 1)
 
 
-def plan(fields: list[tuple[Postings, float]], tids: np.ndarray, qtf: np.ndarray) -> Plan:
-    """Posting ranges of the known query terms (`tids`, counted `qtf` times) in every field."""
-    starts, ends, factors = [], [], []
-    for fld, scale in fields:
-        start, end = fld.indptr[tids], fld.indptr[tids + 1]
-        keep = end > start
-        order = np.argsort(-start[keep], kind="stable")
-        starts.append(start[keep][order])
-        ends.append(end[keep][order])
-        factors.append((qtf[keep] * scale)[order].astype(np.float64))
-    return Plan(tuple(f for f, _ in fields), tuple(starts), tuple(ends), tuple(factors))
+def plan(fields: Sequence[tuple[Postings, float]], queries: Sequence[Sequence[int]]) -> Plan:
+    """Plan for queries given as term ids (one per token; negative ids, unknown terms, dropped).
+
+    A term occurring twice in a query is added once with twice the weight, as in BM25's
+    query term frequency. Plain Python: for a few dozen terms per query it is cheaper than
+    numpy's sorting and counting calls.
+    """
+    qptr, tids, qtf = [0], [], []
+    for ids in queries:
+        counts: dict[int, int] = {}
+        for t in ids:
+            if t >= 0:
+                counts[t] = counts.get(t, 0) + 1
+        for t in sorted(counts, reverse=True):
+            tids.append(t)
+            qtf.append(counts[t])
+        qptr.append(len(tids))
+    return Plan(
+        tuple(fields),
+        np.array(qptr, dtype=np.int64),
+        np.array(tids, dtype=np.int64),
+        np.array(qtf, dtype=np.float64),
+    )
 
 
 def concat_ranges(start: np.ndarray, length: np.ndarray) -> np.ndarray:
@@ -69,71 +86,59 @@ def concat_ranges(start: np.ndarray, length: np.ndarray) -> np.ndarray:
     return np.repeat(start - offsets, length) + np.arange(int(length.sum()))
 
 
-def accumulate(buf: np.ndarray, p: Plan, *, use_kernel: bool = True) -> None:
-    """Add every planned posting's weight x factor into `buf` (float32, one slot per article)."""
-    for fld, start, end, factor in zip(p.fields, p.start, p.end, p.factor, strict=True):
-        if start.size == 0:
-            continue
-        if use_kernel and _matvec is not None and fld.docs.size < _INT32_MAX:
-            # Columns 2i are the ranges, with weight factor[i]; columns 2i+1 run from one range's
-            # end back to the next range's (lower) start, so they are empty and cost nothing.
-            bounds = np.empty(2 * start.size, dtype=np.int32)
-            bounds[0::2], bounds[1::2] = start, end
-            x = np.zeros(2 * start.size - 1, dtype=buf.dtype)
-            x[0::2] = factor
-            _matvec(buf.size, x.size, bounds, fld.docs, fld.weight, x, buf)
-        else:
-            # Term by term in the same order, so both paths add in the same sequence.
-            for s, e, f in zip(start.tolist(), end.tolist(), factor.tolist(), strict=True):
-                buf[fld.docs[s:e]] += fld.weight[s:e] * f
+def accumulate(buf: np.ndarray, p: Plan, q: int = 0) -> None:
+    """Add query q's postings, weight x factor, into `buf` (one slot per article).
 
-
-def _floor(buf: np.ndarray, p: Plan, k: int) -> float | None:
-    """A score the k-th best article surely reaches, or None when no term has k postings.
-
-    The k-th best score among the articles of one term (the rarest with at least k
-    postings, whose rows are distinct) is reached by at least k articles.
+    Each product is rounded to the weight type and added in plan order, as the kernel does.
     """
-    best: tuple[int, int, int] | None = None  # (length, field, start)
-    # Plain Python over the few query terms: cheaper than numpy calls on arrays this small.
-    for fi, (start, end) in enumerate(zip(p.start, p.end, strict=True)):
-        for s, e in zip(start.tolist(), end.tolist(), strict=True):
-            n = e - s
-            if n >= k and (best is None or n < best[0]):
-                best = (n, fi, s)
-    if best is None:
-        return None
-    n, fi, s = best
-    vals = buf[p.fields[fi].docs[s : s + n]]
-    return float(np.partition(vals, n - k)[n - k])
+    lo, hi = int(p.qptr[q]), int(p.qptr[q + 1])
+    for fld, scale in p.fields:
+        for tid, tf in zip(p.tids[lo:hi].tolist(), p.qtf[lo:hi].tolist(), strict=True):
+            s, e = int(fld.indptr[tid]), int(fld.indptr[tid + 1])
+            buf[fld.docs[s:e]] += fld.weight[s:e] * buf.dtype.type(tf * scale)
 
 
-def _touched(p: Plan) -> np.ndarray:
-    """Rows holding any planned posting, as concatenated (possibly repeated) indices."""
+def top_k_many(
+    buf: np.ndarray, p: Plan, k: int, *, use_kernel: bool = True
+) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Rows (int64) and scores (float64) of each query's k best articles with a non-zero
+    score, best first, ties by row.
+
+    `buf` (the weights' type, one slot per article) must be all zeros on entry and is all
+    zeros again on return.
+    """
+    if k < 1:
+        raise ValueError(f"k must be at least 1, got {k}")
+    n = p.n_queries
+    if use_kernel and _topk is not None:
+        rows = np.empty(n * k, dtype=np.int64)
+        scores = np.empty(n * k, dtype=np.float64)
+        counts = np.empty(n, dtype=np.int64)
+        fields = tuple((fld.indptr, fld.docs, fld.weight, float(sc)) for fld, sc in p.fields)
+        _topk.search(buf, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts)
+        return [
+            (rows[q * k : q * k + c], scores[q * k : q * k + c])
+            for q, c in enumerate(counts.tolist())
+        ]
+    return [_numpy_top_k(buf, p, q, k) for q in range(n)]
+
+
+def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """The numpy path of top_k_many for query q: touched articles, their scores, a partial sort."""
+    lo, hi = int(p.qptr[q]), int(p.qptr[q + 1])
     parts = [
-        fld.docs[concat_ranges(s, e - s)]
-        for fld, s, e in zip(p.fields, p.start, p.end, strict=True)
+        fld.docs[int(fld.indptr[t]) : int(fld.indptr[t + 1])]
+        for fld, _ in p.fields
+        for t in p.tids[lo:hi].tolist()
     ]
-    return np.concatenate(parts)
-
-
-def top_k(buf: np.ndarray, p: Plan, k: int) -> tuple[np.ndarray, np.ndarray]:
-    """Rows and scores of the k best articles with a non-zero score (ties by row).
-
-    `buf` must be all zeros on entry and is all zeros again on return.
-    """
-    small = p.postings * 4 < buf.size
-    touched = _touched(p) if small else None
+    if not parts:
+        return np.empty(0, dtype=np.int64), np.empty(0)
+    touched = np.unique(np.concatenate(parts)).astype(np.int64)
     try:
-        accumulate(buf, p)
-        floor = _floor(buf, p, k)
-        if floor is not None and floor > 0:
-            # Only articles scoring at least `floor` can be in the top k; no other is sorted.
-            cand = np.flatnonzero(buf >= floor)
-        else:
-            cand = np.unique(touched) if touched is not None else np.arange(buf.size)
-            cand = cand[buf[cand] != 0]
-        scores = buf[cand]
+        accumulate(buf, p, q)
+        scores = buf[touched].astype(np.float64)
+        keep = scores != 0
+        cand, scores = touched[keep], scores[keep]
         if cand.size > k:
             kth = np.partition(scores, cand.size - k)[cand.size - k]
             top = scores >= kth
@@ -141,7 +146,4 @@ def top_k(buf: np.ndarray, p: Plan, k: int) -> tuple[np.ndarray, np.ndarray]:
         order = np.lexsort((cand, -scores))[:k]
         return cand[order], scores[order]
     finally:
-        if touched is not None:
-            buf[touched] = 0.0
-        else:
-            buf.fill(0.0)
+        buf[touched] = 0

@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from rank_bm25 import BM25Okapi
 
-from retriever import IndexFormatError, UnknownDocumentError, build_index, load_index, scoring
+from retriever import IndexFormatError, UnknownDocumentError, build_index, load_index
 from retriever.store import MANIFEST
 
 from .foldoc import synthetic_articles
@@ -100,17 +100,6 @@ def test_top_k_equals_brute_force(
     expected = brute_force(ref, k)
     assert np.allclose([ref[r] for r in ours], [ref[r] for r in expected], rtol=1e-9, atol=1e-12)
     assert len(ours) == len(expected)
-
-
-def test_numpy_path_equals_kernel(tmp_path: Path) -> None:
-    idx = plain_index(tmp_path, DOCS)
-    p = idx._plan(["dog", "red", "fox", "dog"])
-    assert p is not None
-    a = np.zeros(idx.n_docs)
-    b = np.zeros(idx.n_docs)
-    scoring.accumulate(a, p)
-    scoring.accumulate(b, p, use_kernel=False)
-    assert np.array_equal(a, b)
 
 
 def test_ties_are_broken_by_row(tmp_path: Path) -> None:

@@ -1,0 +1,405 @@
+/* BM25 query kernel: add the planned postings of one or many queries into a score buffer and
+ * select each query's k best articles, with the GIL released.
+ *
+ * Written by hand because this loop is the product's hot path and no library offers it in
+ * this shape: scipy's sparse products score every article and leave the top-k selection to
+ * numpy (a pass over the whole corpus per query), and the Python code around several numpy
+ * calls costs more than the arithmetic for a 20-term clue. Here one call does a query's
+ * postings, the selection over just the articles the postings touched, and the clean-up;
+ * a batch is one call per thread. retriever/scoring.py holds the numpy path that gives the
+ * same scores, bit for bit, where this module is not built, and tests compare the two.
+ *
+ * Arithmetic: each posting adds weight x (the query factor rounded to the weight type) in
+ * the weight type, in plan order, as the numpy path does; build with -ffp-contract=off so
+ * the compiler does not fuse the multiply and add, which would change the last bit.
+ *
+ * Only the buffer protocol is used (no numpy headers), so building needs only a C compiler
+ * and Python's headers.
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+#include <stdint.h>
+#include <stdlib.h>
+#include <string.h>
+
+typedef struct { /* one field's term-major postings */
+    const int64_t *indptr; /* term t's postings are [indptr[t], indptr[t + 1]) */
+    const int32_t *docs;   /* their rows */
+    const void *weight;    /* their BM25 weights, float32 or float64 as the buffer */
+    double scale;          /* the field's weight in the sum */
+    Py_ssize_t n_terms, n_post;
+} Field;
+
+/* A min-heap of the k best (score, row) pairs seen so far; the root is the worst of them.
+ * "Better" means a higher score, or the same score and a lower row (ties go to the lower
+ * row, as the numpy path's stable order does). */
+typedef struct {
+    double *score;
+    int64_t *row;
+    Py_ssize_t size, cap;
+} Heap;
+
+static int worse(double sa, int64_t ra, double sb, int64_t rb) {
+    return sa < sb || (sa == sb && ra > rb);
+}
+
+static void sift_down(Heap *h, Py_ssize_t i) {
+    for (;;) {
+        Py_ssize_t l = 2 * i + 1, r = l + 1, m = i;
+        if (l < h->size && worse(h->score[l], h->row[l], h->score[m], h->row[m])) m = l;
+        if (r < h->size && worse(h->score[r], h->row[r], h->score[m], h->row[m])) m = r;
+        if (m == i) return;
+        double s = h->score[i]; h->score[i] = h->score[m]; h->score[m] = s;
+        int64_t w = h->row[i]; h->row[i] = h->row[m]; h->row[m] = w;
+        i = m;
+    }
+}
+
+static void sift_up(Heap *h, Py_ssize_t i) {
+    while (i > 0) {
+        Py_ssize_t p = (i - 1) / 2;
+        if (!worse(h->score[i], h->row[i], h->score[p], h->row[p])) return;
+        double s = h->score[i]; h->score[i] = h->score[p]; h->score[p] = s;
+        int64_t w = h->row[i]; h->row[i] = h->row[p]; h->row[p] = w;
+        i = p;
+    }
+}
+
+static void offer(Heap *h, double s, int64_t row) {
+    if (h->size < h->cap) {
+        h->score[h->size] = s;
+        h->row[h->size] = row;
+        sift_up(h, h->size++);
+    } else if (h->cap > 0 && worse(h->score[0], h->row[0], s, row)) {
+        h->score[0] = s;
+        h->row[0] = row;
+        sift_down(h, 0);
+    }
+}
+
+/* Empty the heap into out_rows/out_scores, best first; returns how many. */
+static Py_ssize_t drain(Heap *h, int64_t *out_rows, double *out_scores) {
+    Py_ssize_t n = h->size;
+    while (h->size > 0) {
+        Py_ssize_t last = --h->size;
+        out_rows[last] = h->row[0];
+        out_scores[last] = h->score[0];
+        h->score[0] = h->score[last];
+        h->row[0] = h->row[last];
+        sift_down(h, 0);
+    }
+    return n;
+}
+
+/* Whether any of 64 scores beats `floor`: a loop without branches, which compilers turn
+ * into vector compares (kept out of line: inlined, GCC unrolls it into scalar code). */
+#if defined(__GNUC__)
+#define NOINLINE __attribute__((noinline))
+#else
+#define NOINLINE
+#endif
+#define ANY_ABOVE(T)                                                                         \
+    static NOINLINE int any_above_##T(const T *buf, T floor) {                                        \
+        int any = 0;                                                                         \
+        for (int j = 0; j < 64; j++) any |= buf[j] > floor;                                  \
+        return any;                                                                          \
+    }
+ANY_ABOVE(float)
+ANY_ABOVE(double)
+
+/* One query: its distinct terms tids[t0:t1] (each counted qtf[t] times), in every field.
+ * `touched` has room for the query's postings; it is used only when they are few next to
+ * the corpus. Returns how many (row, score) pairs were written, or -1 for a posting that
+ * names a row outside the corpus (a damaged index; the buffer is cleared). */
+#define SCORE_QUERY(T)                                                                       \
+    static Py_ssize_t query_##T(                                                             \
+        T *buf, Py_ssize_t n_docs, const Field *fields, Py_ssize_t n_fields,                 \
+        const int64_t *tids, const double *qtf, Py_ssize_t t0, Py_ssize_t t1,                \
+        int32_t *touched, Heap *heap, int64_t *out_rows, double *out_scores) {               \
+        Py_ssize_t postings = 0, n_touched = 0;                                              \
+        for (Py_ssize_t f = 0; f < n_fields; f++)                                            \
+            for (Py_ssize_t t = t0; t < t1; t++)                                             \
+                postings += fields[f].indptr[tids[t] + 1] - fields[f].indptr[tids[t]];       \
+        const int sparse = postings * 2 < n_docs;                                            \
+        for (Py_ssize_t f = 0; f < n_fields; f++) {                                          \
+            const int32_t *docs = fields[f].docs;                                            \
+            const T *w = (const T *)fields[f].weight;                                        \
+            for (Py_ssize_t t = t0; t < t1; t++) {                                           \
+                const int64_t lo = fields[f].indptr[tids[t]], hi = fields[f].indptr[tids[t] + 1]; \
+                const T x = (T)(qtf[t] * fields[f].scale);                                   \
+                int bad = 0;                                                                 \
+                if (sparse) {                                                                \
+                    for (int64_t p = lo; p < hi; p++) {                                      \
+                        const int32_t d = docs[p];                                           \
+                        bad |= (uint32_t)d >= (uint32_t)n_docs;                              \
+                        if (bad) break;                                                      \
+                        touched[n_touched] = d; /* branch-free: whether d is new is random */ \
+                        n_touched += buf[d] == 0;                                            \
+                        buf[d] += w[p] * x;                                                  \
+                    }                                                                        \
+                } else {                                                                     \
+                    for (int64_t p = lo; p < hi; p++) {                                      \
+                        const int32_t d = docs[p];                                           \
+                        bad |= (uint32_t)d >= (uint32_t)n_docs;                              \
+                        if (bad) break;                                                      \
+                        buf[d] += w[p] * x;                                                  \
+                    }                                                                        \
+                }                                                                            \
+                if (bad) {                                                                   \
+                    memset(buf, 0, (size_t)n_docs * sizeof(T));                              \
+                    return -1;                                                               \
+                }                                                                            \
+            }                                                                                \
+        }                                                                                    \
+        /* Read each touched article once and clear it; a row listed twice (its sum went     \
+         * back to exactly zero and up again) reads zero the second time and is skipped,     \
+         * like every article whose score is zero. */                                        \
+        if (sparse) {                                                                        \
+            for (Py_ssize_t i = 0; i < n_touched; i++) {                                     \
+                const int32_t d = touched[i];                                                \
+                const double s = (double)buf[d];                                             \
+                buf[d] = 0;                                                                  \
+                if (s != 0 && (heap->size < heap->cap ||                                     \
+                               worse(heap->score[0], heap->row[0], s, d)))                   \
+                    offer(heap, s, d);                                                       \
+            }                                                                                \
+        } else {                                                                             \
+            /* Rows come in increasing order, so a score equal to the worst kept one loses   \
+             * its tie: only a strictly higher score can enter a full heap. */               \
+            Py_ssize_t d = 0;                                                                \
+            for (; d < n_docs && !(heap->size == heap->cap && heap->score[0] > 0); d++) {    \
+                const double s = (double)buf[d];                                             \
+                if (s != 0 && (heap->size < heap->cap || s > heap->score[0]))                \
+                    offer(heap, s, d);                                                       \
+            }                                                                                \
+            /* Once the worst kept score is positive, blocks of articles are tested at once  \
+             * (a loop the compiler turns into vector compares) and only a block holding a   \
+             * better score is looked at one by one. */                                      \
+            T floor = heap->size ? (T)heap->score[0] : 0;                                    \
+            for (; d < n_docs && d % 64; d++) {                                              \
+                if (buf[d] > floor) {                                                        \
+                    offer(heap, (double)buf[d], d);                                          \
+                    floor = (T)heap->score[0];                                               \
+                }                                                                            \
+            }                                                                                \
+            for (; d + 64 <= n_docs; d += 64) {                                              \
+                if (!any_above_##T(buf + d, floor)) continue;                                \
+                for (int j = 0; j < 64; j++) {                                               \
+                    if (buf[d + j] > floor) {                                                \
+                        offer(heap, (double)buf[d + j], d + j);                              \
+                        floor = (T)heap->score[0];                                           \
+                    }                                                                        \
+                }                                                                            \
+            }                                                                                \
+            for (; d < n_docs; d++) {                                                        \
+                if (buf[d] > floor) {                                                        \
+                    offer(heap, (double)buf[d], d);                                          \
+                    floor = (T)heap->score[0];                                               \
+                }                                                                            \
+            }                                                                                \
+            memset(buf, 0, (size_t)n_docs * sizeof(T));                                      \
+        }                                                                                    \
+        return drain(heap, out_rows, out_scores);                                            \
+    }
+
+SCORE_QUERY(float)
+SCORE_QUERY(double)
+
+/* Get a C-contiguous buffer of the given struct format ("f|d": float32 or float64). */
+static int get(PyObject *obj, Py_buffer *view, const char *fmt, int writable, const char *name) {
+    if (PyObject_GetBuffer(obj, view,
+                           PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0)) <
+        0)
+        return -1;
+    const char *got = view->format ? view->format : "B";
+    if (got[0] == '<' || got[0] == '=' || got[0] == '@') got++;
+    int ok;
+    if (strcmp(fmt, "f|d") == 0)
+        ok = strcmp(got, "f") == 0 || strcmp(got, "d") == 0;
+    else if (strcmp(fmt, "q") == 0) /* int64: 'l' on LP64 systems, 'q' elsewhere */
+        ok = (strcmp(got, "q") == 0 || strcmp(got, "l") == 0) && view->itemsize == 8;
+    else if (strcmp(fmt, "i") == 0) /* int32 */
+        ok = (strcmp(got, "i") == 0 || strcmp(got, "l") == 0) && view->itemsize == 4;
+    else
+        ok = strcmp(got, fmt) == 0;
+    if (!ok) {
+        PyErr_Format(PyExc_TypeError, "%s: expected array format '%s', got '%s'", name, fmt, got);
+        PyBuffer_Release(view);
+        return -1;
+    }
+    return 0;
+}
+
+PyDoc_STRVAR(search_doc,
+"search(buf, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts)\n"
+"\n"
+"Score a batch of queries and write each one's k best rows and scores, best first, ties\n"
+"by row; only articles with a non-zero score are returned.\n"
+"\n"
+"buf: zeroed scores, one per article (float32 or float64, the weights' type); zero again\n"
+"    on return. fields: tuple of (indptr int64, docs int32, weight, scale float), the\n"
+"    term-major postings of each scored field and its weight in the sum.\n"
+"qptr (int64, n_queries + 1): query q owns terms qptr[q]:qptr[q+1] of tids (int64 term\n"
+"    ids, distinct within a query, in the order they are added) and qtf (float64, how\n"
+"    often each occurs in the query).\n"
+"out_rows (int64) and out_scores (float64): n_queries * k slots, query q from q * k;\n"
+"    out_counts (int64): how many of query q's slots were filled. Returns None.");
+
+typedef struct {
+    Py_buffer indptr_view, docs_view, weight_view;
+} FieldViews;
+
+static PyObject *search(PyObject *self, PyObject *args) {
+    PyObject *o_buf, *o_fields, *o_qptr, *o_tids, *o_qtf, *o_rows, *o_scores, *o_counts;
+    Py_ssize_t k;
+    (void)self;
+    if (!PyArg_ParseTuple(args, "OnO!OOOOOO", &o_buf, &k, &PyTuple_Type, &o_fields, &o_qptr,
+                          &o_tids, &o_qtf, &o_rows, &o_scores, &o_counts))
+        return NULL;
+    if (k < 1) return PyErr_Format(PyExc_ValueError, "k must be at least 1, got %zd", k);
+    const Py_ssize_t n_fields = PyTuple_GET_SIZE(o_fields);
+    Field *fields = calloc(n_fields ? n_fields : 1, sizeof(Field));
+    FieldViews *views = calloc(n_fields ? n_fields : 1, sizeof(FieldViews));
+    Py_buffer buf = {0}, qptr = {0}, tids = {0}, qtf = {0}, rows = {0}, scores = {0};
+    Py_buffer counts = {0};
+    Py_ssize_t got_fields = 0;
+    PyObject *result = NULL;
+    int32_t *touched = NULL;
+    Heap heap = {0};
+    if (!fields || !views) {
+        PyErr_NoMemory();
+        goto done;
+    }
+    if (get(o_buf, &buf, "f|d", 1, "buf") < 0) goto done;
+    const char *wfmt = buf.itemsize == 4 ? "f" : "d";
+    for (; got_fields < n_fields; got_fields++) {
+        PyObject *spec = PyTuple_GET_ITEM(o_fields, got_fields);
+        FieldViews *v = &views[got_fields];
+        if (!PyTuple_Check(spec) || PyTuple_GET_SIZE(spec) != 4) {
+            PyErr_SetString(PyExc_TypeError, "fields must be (indptr, docs, weight, scale)");
+            goto done;
+        }
+        double scale = PyFloat_AsDouble(PyTuple_GET_ITEM(spec, 3));
+        if (scale == -1.0 && PyErr_Occurred()) goto done;
+        if (get(PyTuple_GET_ITEM(spec, 0), &v->indptr_view, "q", 0, "indptr") < 0) goto done;
+        if (get(PyTuple_GET_ITEM(spec, 1), &v->docs_view, "i", 0, "docs") < 0) goto done;
+        if (get(PyTuple_GET_ITEM(spec, 2), &v->weight_view, wfmt, 0, "weight") < 0) goto done;
+        Field *f = &fields[got_fields];
+        f->indptr = v->indptr_view.buf;
+        f->docs = v->docs_view.buf;
+        f->weight = v->weight_view.buf;
+        f->scale = scale;
+        f->n_terms = v->indptr_view.len / 8 - 1;
+        const Py_ssize_t n_post = v->docs_view.len / 4;
+        if (f->n_terms < 0 || v->weight_view.len / v->weight_view.itemsize != n_post) {
+            PyErr_SetString(PyExc_ValueError, "a field's indptr, docs and weight do not match");
+            goto done;
+        }
+        f->n_post = n_post;
+    }
+    if (get(o_qptr, &qptr, "q", 0, "qptr") < 0) goto done;
+    if (get(o_tids, &tids, "q", 0, "tids") < 0) goto done;
+    if (get(o_qtf, &qtf, "d", 0, "qtf") < 0) goto done;
+    if (get(o_rows, &rows, "q", 1, "out_rows") < 0) goto done;
+    if (get(o_scores, &scores, "d", 1, "out_scores") < 0) goto done;
+    if (get(o_counts, &counts, "q", 1, "out_counts") < 0) goto done;
+    {
+        const Py_ssize_t n_docs = buf.len / buf.itemsize, n_tids = tids.len / 8;
+        const Py_ssize_t n_queries = qptr.len / 8 - 1;
+        const int64_t *qp = qptr.buf, *tid = tids.buf;
+        if (qtf.len / 8 != n_tids) {
+            PyErr_SetString(PyExc_ValueError, "tids and qtf differ in length");
+            goto done;
+        }
+        if (n_queries < 0 || rows.len / 8 < n_queries * k || scores.len / 8 < n_queries * k ||
+            counts.len / 8 < n_queries) {
+            PyErr_SetString(PyExc_ValueError, "output arrays are too small for the queries");
+            goto done;
+        }
+        Py_ssize_t most = 0;
+        for (Py_ssize_t q = 0; q < n_queries; q++) {
+            if (qp[q] < 0 || qp[q] > qp[q + 1] || qp[q + 1] > n_tids) {
+                PyErr_SetString(PyExc_ValueError, "qptr is not a valid offsets array");
+                goto done;
+            }
+            Py_ssize_t total = 0;
+            for (int64_t t = qp[q]; t < qp[q + 1]; t++) {
+                for (Py_ssize_t f = 0; f < n_fields; f++) {
+                    if (tid[t] < 0 || tid[t] >= fields[f].n_terms) {
+                        PyErr_SetString(PyExc_ValueError, "a term id lies outside the vocabulary");
+                        goto done;
+                    }
+                    /* Each used term range is checked before the GIL is released, so the
+                     * loops below cannot read outside the postings whatever the arrays hold. */
+                    const int64_t lo = fields[f].indptr[tid[t]], hi = fields[f].indptr[tid[t] + 1];
+                    if (lo < 0 || lo > hi || hi > fields[f].n_post) {
+                        PyErr_SetString(PyExc_ValueError,
+                                        "a term's postings lie outside the field's arrays");
+                        goto done;
+                    }
+                    total += hi - lo;
+                }
+            }
+            if (total > most) most = total;
+        }
+        touched = malloc((most ? most : 1) * sizeof(int32_t));
+        heap.cap = k < n_docs ? k : n_docs;
+        heap.score = malloc((heap.cap ? heap.cap : 1) * sizeof(double));
+        heap.row = malloc((heap.cap ? heap.cap : 1) * sizeof(int64_t));
+        if (!touched || !heap.score || !heap.row) {
+            PyErr_NoMemory();
+            goto done;
+        }
+        int64_t *out_r = rows.buf, *out_n = counts.buf;
+        double *out_s = scores.buf;
+        const double *qf = qtf.buf;
+        int damaged = 0;
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t q = 0; q < n_queries && !damaged; q++) {
+            heap.size = 0;
+            out_n[q] = buf.itemsize == 4
+                ? query_float(buf.buf, n_docs, fields, n_fields, tid, qf, qp[q], qp[q + 1],
+                              touched, &heap, out_r + q * k, out_s + q * k)
+                : query_double(buf.buf, n_docs, fields, n_fields, tid, qf, qp[q], qp[q + 1],
+                               touched, &heap, out_r + q * k, out_s + q * k);
+            damaged = out_n[q] < 0;
+        }
+        Py_END_ALLOW_THREADS
+        if (damaged) {
+            PyErr_SetString(PyExc_ValueError,
+                            "postings name a row outside the index: it is damaged; rebuild it");
+            goto done;
+        }
+    }
+    result = Py_None;
+    Py_INCREF(result);
+done:
+    free(touched);
+    free(heap.score);
+    free(heap.row);
+    if (views) {
+        for (Py_ssize_t f = 0; f < n_fields; f++) {
+            Py_buffer *vs[] = {&views[f].indptr_view, &views[f].docs_view, &views[f].weight_view};
+            for (int i = 0; i < 3; i++)
+                if (vs[i]->obj) PyBuffer_Release(vs[i]);
+        }
+    }
+    free(views);
+    free(fields);
+    Py_buffer *all[] = {&buf, &qptr, &tids, &qtf, &rows, &scores, &counts};
+    for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
+        if (all[i]->obj) PyBuffer_Release(all[i]);
+    return result;
+}
+
+static PyMethodDef methods[] = {
+    {"search", search, METH_VARARGS, search_doc},
+    {NULL, NULL, 0, NULL},
+};
+
+static struct PyModuleDef module = {
+    PyModuleDef_HEAD_INIT, "_topk", "Compiled BM25 accumulate and top-k (see _topk.c).", -1,
+    methods, NULL, NULL, NULL, NULL,
+};
+
+PyMODINIT_FUNC PyInit__topk(void) { return PyModule_Create(&module); }
