@@ -1,4 +1,4 @@
-"""Build the one compiled module, retriever._topk (metadata lives in pyproject.toml).
+"""Build the one compiled module, retriever._kernels (metadata lives in pyproject.toml).
 
 It is optional: without a C compiler the install still succeeds and retriever/scoring.py
 uses its numpy path, which returns the same scores more slowly. `hunchwise index info`
@@ -14,6 +14,8 @@ flags = [] if sys.platform == "win32" else ["-O3", "-ffp-contract=off"]
 
 setup(
     ext_modules=[
-        Extension("retriever._topk", ["retriever/_topk.c"], extra_compile_args=flags, optional=True)
+        Extension(
+            "retriever._kernels", ["retriever/_kernels.c"], extra_compile_args=flags, optional=True
+        )
     ]
 )

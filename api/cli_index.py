@@ -181,7 +181,10 @@ def cmd_info(args: argparse.Namespace) -> int:
         ("analyzer", ", ".join(f"{k}={v}" for k, v in m["analyzer"].items() if k != "extra")),
         ("size on disk", human_bytes(folder_size(Path(args.index)))),
         ("weights", m["weights"]),
-        ("query kernel", "compiled" if scoring.compiled() else "numpy (retriever._topk not built)"),
+        (
+            "query kernel",
+            "compiled" if scoring.compiled() else "numpy (retriever._kernels not built)",
+        ),
     ]
     print(format_table(["field", "value"], rows))
     return 0

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+import itertools
+import math
 from collections.abc import Callable, Sequence
-from typing import Any
 
 import numpy as np
 
@@ -209,20 +210,11 @@ def _match_terms(cs: CandidateSet) -> tuple[np.ndarray, np.ndarray, int]:
     terms = _body_terms(cs.index, cs.tokens)
     if not terms or n == 0:
         return np.zeros(n), np.zeros(n), len(terms)
-    # Each candidate's own distinct terms come from the index's article-major term lists
-    # (one gather for all candidates); one binary search over the clue's few sorted term
-    # ids then marks which of them are clue terms.
-    tids = np.array([t for t, _ in terms], dtype=np.int64)
-    rarity = np.array([r for _, r in terms])
-    order = np.argsort(tids)
-    tids, rarity = tids[order], rarity[order]
-    held, lengths = cs.index.article_terms(cs.rows)
-    pos = np.searchsorted(tids, held)
-    np.minimum(pos, tids.size - 1, out=pos)
-    hit = tids[pos] == held
-    owner = np.repeat(np.arange(n), lengths)[hit]
-    count = np.bincount(owner, minlength=n).astype(np.float64)
-    return count, np.bincount(owner, weights=rarity[pos[hit]], minlength=n), len(terms)
+    # The index's article-major term lists say which clue terms each candidate holds (one
+    # compiled call for all candidates).
+    pairs = np.array(sorted(terms))  # (term id, rarity) rows, by term id
+    count, weight = cs.index.term_overlap(cs.rows, pairs[:, 0].astype(np.int64), pairs[:, 1])
+    return count, weight, len(terms)
 
 
 # Remembered (token -> term id and rarity) lookups per index; cleared past this many.
@@ -239,16 +231,11 @@ def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[int, float]]:
     known: dict[str, tuple[int, float] | None] | None = cache.get("body_terms")
     if known is None or len(known) > _MAX_CACHED_TERMS:
         known = cache["body_terms"] = {}
-    get = known.get
-    out, new = [], []
-    for t in dict.fromkeys(tokens):
-        found = get(t, _UNSEEN)
-        if found is _UNSEEN:
-            new.append(t)
-        elif found is not None:
-            out.append(found)
-    if not new:
-        return out
+    distinct = dict.fromkeys(tokens)
+    try:
+        return [r for r in map(known.__getitem__, distinct) if r is not None]
+    except KeyError:  # some tokens not seen before: look them up below
+        new = [t for t in distinct if t not in known]
     indptr = index.body.indptr
     ids = [index.term_ids([t])[0] for t in new]
     tids = np.array([int(i[0]) if i.size else 0 for i in ids], dtype=np.int64)
@@ -258,10 +245,7 @@ def _body_terms(index: Index, tokens: Sequence[str]) -> list[tuple[int, float]]:
         new, ids, tids.tolist(), starts.tolist(), ends.tolist(), rarity.tolist(), strict=True
     ):
         known[t] = (tid, r) if i.size and e > s else None
-    return [r for r in map(known.__getitem__, dict.fromkeys(tokens)) if r is not None]
-
-
-_UNSEEN: Any = object()
+    return [r for r in map(known.__getitem__, distinct) if r is not None]
 
 
 @feature("overlap")
@@ -368,32 +352,38 @@ def fused_builtins(cs: CandidateSet) -> np.ndarray:
     f = np.empty((len(_WORK), n))  # one contiguous row per feature
     if n == 0:
         return f.T.take(_ORDER, axis=1)
-    s = cs.scores
-    listed = s.tolist()
-    best = max(listed)
-    lead = listed.index(best)  # the first best, as a stable sort would put it
-    mean = np.add.reduce(s) / n
-    # retrieval and clue length; rows 1-3: the score, minus the mean, minus the best
-    np.subtract(s, np.array([[0.0], [mean], [best]]), out=f[1:4])
-    np.exp(f[3], out=f[0])  # softmax numerators, before the leader's entry below changes
-    f[0] /= np.add.reduce(f[0])
-    if n > 1:  # everyone's best rival is the leader, except the leader's: the best of the rest
-        f[3, lead] = best - max(listed[:lead] + listed[lead + 1 :])
-    sd = float(np.sqrt(np.dot(f[2], f[2]) / n))
-    # score / best and (score - mean) / sd, 0 where the divisor is not positive
-    np.divide(f[1:3], np.array([[best if best > 0 else 1.0], [sd if sd > 0 else 1.0]]), out=f[4:6])
-    if not best > 0:
-        f[4] = 0.0
-    if not sd > 0:
-        f[5] = 0.0
+    # retrieval and clue length, in plain Python over the 20 or so candidates: cheaper here
+    # than the dozen numpy calls it replaces
+    s = cs.scores.tolist()
+    best = max(s)
+    lead = s.index(best)  # the first best, as a stable sort would put it
+    mean = float(np.add.reduce(cs.scores)) / n  # as ndarray.mean() adds
+    exps = [math.exp(x - best) for x in s]
+    total = sum(exps)
+    soft = [e / total for e in exps]
+    centred = [x - mean for x in s]
+    sd = math.sqrt(sum(c * c for c in centred) / n)
+    rival = [x - best for x in s]  # everyone's best rival is the leader, except the leader's
+    if n > 1:
+        rival[lead] = best - max(s[:lead] + s[lead + 1 :])
     words = len(cs.words)
-    log_words = np.log1p(words)
-    np.multiply(f[0:2], np.array([[log_words], [float(words)]]), out=f[6:8])
-    f[8] = cs.ranks
-    np.divide(1.0, f[8], out=f[9])
-    np.subtract(s[:-1], s[1:], out=f[10, :-1])
-    f[10, -1] = 0.0
-    f[11:13] = ((float(words),), (log_words,))
+    log_words = math.log1p(words)
+    ranks = cs.ranks.tolist()
+    f[0:13] = (
+        soft,
+        s,
+        centred,
+        rival,
+        [x / best for x in s] if best > 0 else [0.0] * n,
+        [c / sd for c in centred] if sd > 0 else [0.0] * n,
+        [p * log_words for p in soft],
+        [x * words for x in s],
+        ranks,
+        [1.0 / r for r in ranks],
+        [a - b for a, b in itertools.pairwise(s)] + [0.0],
+        [float(words)] * n,
+        [log_words] * n,
+    )
     # popularity, document length, qualifier: one gather from the row table
     f[13:21] = _row_values(cs.index, cs.rows).T
     np.subtract(f[14], np.maximum.reduce(f[14]), out=f[21])

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
-from retriever import Index
+from retriever import Hit, Index
 
 from .features import CandidateSet, FeatureRegistry
 from .logs import LabelledClue
@@ -210,10 +210,14 @@ def build_table(
     # Each prefix is analyzed once: its tokens serve the search and the features.
     tokens_all = [index.analyzer.tokens(t) for t in texts]
     words_all = [index.analyzer.words(t) for t in texts]
-    hits_all = [
-        index.search_tokens(t, k)
-        for t in tqdm(tokens_all, desc="candidates", unit=" prefixes", disable=not progress)
-    ]
+    hits_all: list[list[Hit]] = []
+    with tqdm(
+        total=len(tokens_all), desc="candidates", unit=" prefixes", disable=not progress
+    ) as bar:
+        for i in range(0, len(tokens_all), 256):  # batches: one kernel call each
+            chunk = tokens_all[i : i + 256]
+            hits_all.extend(index.search_token_lists(chunk, k))
+            bar.update(len(chunk))
     names = list(feature_names)
     all_names = names + metadata.names
     blocks: list[np.ndarray] = []

@@ -207,6 +207,7 @@ def rank_clues(
     """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many)."""
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]
+    hits_all = index.search_token_lists([t for t, _ in analyzed], k)
     return [
         _rank_hits(
             index,
@@ -214,12 +215,12 @@ def rank_clues(
             c,
             t,
             w,
-            index.search_tokens(t, k),
+            hits,
             payoff=payoff,
             complete=complete,
             include_features=include_features,
             metadata=None,
             registry=registry,
         )
-        for c, (t, w) in zip(clues, analyzed, strict=True)
+        for c, (t, w), hits in zip(clues, analyzed, hits_all, strict=True)
     ]

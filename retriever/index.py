@@ -178,6 +178,13 @@ class Index:
         lengths = ends - starts
         return self._fwd_terms[scoring.concat_ranges(starts, lengths)], lengths
 
+    def term_overlap(
+        self, rows: np.ndarray, tids: np.ndarray, weights: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """How many of the body terms `tids` (sorted, distinct) each article in `rows` holds,
+        and the sum of their `weights`. float64 arrays, one entry per row."""
+        return scoring.overlap(self._fwd_indptr, self._fwd_terms, rows, tids, weights)
+
     def _buffer(self) -> np.ndarray:
         buf = getattr(self._local, "buf", None)
         if buf is None:

@@ -1,7 +1,7 @@
 """Query-time BM25 scoring over term-major postings, and an exact top-k, for one or many queries.
 
 A query plan lists, for every query of a batch, the posting ranges of its known terms in
-each scored field. The compiled kernel (retriever/_topk.c) adds a whole batch's postings and
+each scored field. The compiled kernel (retriever/_kernels.c) adds a whole batch's postings and
 selects each query's k best articles in one call with the GIL released. Where that module
 is not built, the numpy path below gives the same scores bit for bit (the same products,
 added in the same order), more slowly; tests compare the two.
@@ -16,16 +16,16 @@ from typing import Any, Protocol
 
 import numpy as np
 
-_topk: Any
+_kernels: Any
 try:
-    _topk = importlib.import_module("retriever._topk")  # built by setup.py from _topk.c
+    _kernels = importlib.import_module("retriever._kernels")  # built by setup.py from _kernels.c
 except ImportError:  # pragma: no cover - a machine without a C compiler at install time
-    _topk = None
+    _kernels = None
 
 
 def compiled() -> bool:
     """True when the compiled kernel is built and used."""
-    return _topk is not None
+    return _kernels is not None
 
 
 class Postings(Protocol):
@@ -110,12 +110,12 @@ def top_k_many(
     if k < 1:
         raise ValueError(f"k must be at least 1, got {k}")
     n = p.n_queries
-    if use_kernel and _topk is not None:
+    if use_kernel and _kernels is not None:
         rows = np.empty(n * k, dtype=np.int64)
         scores = np.empty(n * k, dtype=np.float64)
         counts = np.empty(n, dtype=np.int64)
         fields = tuple((fld.indptr, fld.docs, fld.weight, float(sc)) for fld, sc in p.fields)
-        _topk.search(buf, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts)
+        _kernels.search(buf, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts)
         return [
             (rows[q * k : q * k + c], scores[q * k : q * k + c])
             for q, c in enumerate(counts.tolist())
@@ -147,3 +147,36 @@ def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, 
         return cand[order], scores[order]
     finally:
         buf[touched] = 0
+
+
+def overlap(
+    indptr: np.ndarray,
+    terms: np.ndarray,
+    rows: np.ndarray,
+    tids: np.ndarray,
+    weights: np.ndarray,
+    *,
+    use_kernel: bool = True,
+) -> tuple[np.ndarray, np.ndarray]:
+    """For each row of article-major term lists (`indptr`, `terms`: sorted within a row),
+    how many of `tids` (sorted, distinct) it holds and the sum of their `weights`.
+
+    float64 arrays, one entry per row; weights are added in increasing term order.
+    """
+    rows = np.ascontiguousarray(rows, dtype=np.int64)
+    tids = np.ascontiguousarray(tids, dtype=np.int64)
+    weights = np.ascontiguousarray(weights, dtype=np.float64)
+    n = rows.size
+    if use_kernel and _kernels is not None:
+        count, total = np.empty(n), np.empty(n)
+        _kernels.overlap(indptr, terms, rows, tids, weights, count, total)
+        return count, total
+    if tids.size == 0 or n == 0:
+        return np.zeros(n), np.zeros(n)
+    starts, ends = indptr[rows], indptr[rows + 1]
+    held = terms[concat_ranges(starts, ends - starts)]
+    pos = np.minimum(np.searchsorted(tids, held), tids.size - 1)
+    hit = tids[pos] == held
+    owner = np.repeat(np.arange(n), ends - starts)[hit]
+    count = np.bincount(owner, minlength=n).astype(np.float64)
+    return count, np.bincount(owner, weights=weights[pos[hit]], minlength=n)

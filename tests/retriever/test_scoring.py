@@ -15,13 +15,13 @@ from retriever import Index, scoring
 from .helpers import plain_index
 
 WORDS = st.sampled_from(["ash", "birch", "cedar", "elm", "fir", "oak", "pine", "yew"])
-needs_kernel = pytest.mark.skipif(not scoring.compiled(), reason="retriever._topk is not built")
+needs_kernel = pytest.mark.skipif(not scoring.compiled(), reason="retriever._kernels is not built")
 
 
 def test_kernel_is_built_where_required() -> None:
     # .ci/run sets HUNCHWISE_REQUIRE_KERNEL=1: there the compiled path must be the one tested.
     if os.environ.get("HUNCHWISE_REQUIRE_KERNEL") == "1":
-        assert scoring.compiled(), "retriever._topk did not build (is a C compiler installed?)"
+        assert scoring.compiled(), "retriever._kernels did not build (is a C compiler installed?)"
 
 
 def both_paths(idx: Index, token_lists: list[list[str]], k: int) -> tuple[list, list]:
@@ -92,7 +92,7 @@ def test_kernel_rejects_bad_plans_and_damaged_postings(tmp_path: Path) -> None:
 
     def call(k: int = 4, fields: tuple = fields, **change: np.ndarray) -> None:
         args = {"qptr": p.qptr, "tids": p.tids, "qtf": p.qtf, **change}
-        scoring._topk.search(buf, k, fields, args["qptr"], args["tids"], args["qtf"], *out)
+        scoring._kernels.search(buf, k, fields, args["qptr"], args["tids"], args["qtf"], *out)
 
     with pytest.raises(ValueError, match="vocabulary"):
         call(tids=p.tids + 1000)
@@ -120,3 +120,46 @@ def test_kernel_rejects_bad_plans_and_damaged_postings(tmp_path: Path) -> None:
         call(fields=((body.indptr, bad_docs, body.weight, 1.0),))
     assert not buf.any()
     assert [h.doc_id for h in idx.search_tokens(["elm", "oak"], 4)]  # still answers
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    docs=st.lists(st.lists(WORDS, min_size=0, max_size=25), min_size=1, max_size=30),
+    clue=st.lists(WORDS, min_size=0, max_size=8),
+    data=st.data(),
+)
+def test_term_overlap_counts_shared_terms(
+    tmp_path_factory: pytest.TempPathFactory,
+    docs: list[list[str]],
+    clue: list[str],
+    data: st.DataObject,
+) -> None:
+    # Reference: Python sets of each article's words; both paths must agree with it and
+    # with each other bit for bit.
+    docs = [d or ["yew"] for d in docs]
+    idx = plain_index(tmp_path_factory.mktemp("o"), docs)
+    rows = np.array(data.draw(st.lists(st.integers(0, len(docs) - 1), max_size=12)), dtype=np.int64)
+    known = sorted({int(i) for i in idx.vocab.lookup(sorted(set(clue))) if i >= 0})
+    tids = np.array(known, dtype=np.int64)
+    weights = np.array([0.5 + t / 3 for t in known])
+    word_of = {int(idx.vocab.lookup([w])[0]): w for w in set(clue)}
+    fast = idx.term_overlap(rows, tids, weights)
+    slow = scoring.overlap(idx._fwd_indptr, idx._fwd_terms, rows, tids, weights, use_kernel=False)
+    for r, c, w in zip(rows.tolist(), *fast, strict=True):
+        shared = [t for t in known if word_of[t] in set(docs[r])]
+        assert c == len(shared)
+        assert w == pytest.approx(sum(0.5 + t / 3 for t in shared), rel=1e-12)
+    assert fast[0].tolist() == slow[0].tolist() and fast[1].tolist() == slow[1].tolist()
+
+
+@needs_kernel
+def test_overlap_kernel_rejects_bad_input(tmp_path: Path) -> None:
+    idx = plain_index(tmp_path, [["ash", "elm"], ["elm"]])
+    ip, terms = idx._fwd_indptr, idx._fwd_terms
+    tids, w = np.array([0, 1], dtype=np.int64), np.ones(2)
+    with pytest.raises(ValueError, match="outside the term lists"):
+        scoring.overlap(ip, terms, np.array([5]), tids, w)
+    with pytest.raises(ValueError, match="sorted and distinct"):
+        scoring.overlap(ip, terms, np.array([0]), tids[::-1], w)
+    with pytest.raises(ValueError, match="do not match"):
+        scoring.overlap(ip, terms, np.array([0]), tids, np.ones(3))

@@ -1,5 +1,6 @@
-/* BM25 query kernel: add the planned postings of one or many queries into a score buffer and
- * select each query's k best articles, with the GIL released.
+/* Compiled kernels of the retrieval core, with the GIL released:
+ * search(): add the postings of one or many queries into a score buffer and select each
+ * query's k best articles; overlap(): which of a clue's terms each of a few articles holds.
  *
  * Written by hand because this loop is the product's hot path and no library offers it in
  * this shape: scipy's sparse products score every article and leave the top-k selection to
@@ -392,14 +393,99 @@ done:
     return result;
 }
 
+PyDoc_STRVAR(overlap_doc,
+"overlap(indptr, terms, rows, tids, weights, out_count, out_weight)\n"
+"\n"
+"For each row, how many of `tids` its term list holds and the sum of their `weights`.\n"
+"\n"
+"indptr (int64, n_rows + 1) and terms (int32): article-major term lists, each sorted and\n"
+"    distinct. rows (int64): the articles asked about. tids (int64, sorted, distinct) and\n"
+"    weights (float64): the clue's terms. out_count and out_weight (float64, one per row)\n"
+"    receive the results; weights are added in increasing term order. Returns None.");
+
+static PyObject *overlap(PyObject *self, PyObject *args) {
+    PyObject *o_indptr, *o_terms, *o_rows, *o_tids, *o_weights, *o_count, *o_weight;
+    (void)self;
+    if (!PyArg_ParseTuple(args, "OOOOOOO", &o_indptr, &o_terms, &o_rows, &o_tids, &o_weights,
+                          &o_count, &o_weight))
+        return NULL;
+    Py_buffer indptr = {0}, terms = {0}, rows = {0}, tids = {0}, weights = {0}, count = {0};
+    Py_buffer weight = {0};
+    PyObject *result = NULL;
+    if (get(o_indptr, &indptr, "q", 0, "indptr") < 0 || get(o_terms, &terms, "i", 0, "terms") < 0 ||
+        get(o_rows, &rows, "q", 0, "rows") < 0 || get(o_tids, &tids, "q", 0, "tids") < 0 ||
+        get(o_weights, &weights, "d", 0, "weights") < 0 ||
+        get(o_count, &count, "d", 1, "out_count") < 0 ||
+        get(o_weight, &weight, "d", 1, "out_weight") < 0)
+        goto done;
+    {
+        const int64_t *ip = indptr.buf, *rw = rows.buf, *td = tids.buf;
+        const int32_t *tm = terms.buf;
+        const double *wt = weights.buf;
+        double *oc = count.buf, *ow = weight.buf;
+        const Py_ssize_t n_docs = indptr.len / 8 - 1, n_terms = terms.len / 4;
+        const Py_ssize_t n = rows.len / 8, m = tids.len / 8;
+        if (weights.len / 8 != m || count.len / 8 != n || weight.len / 8 != n) {
+            PyErr_SetString(PyExc_ValueError, "overlap: array lengths do not match");
+            goto done;
+        }
+        for (Py_ssize_t i = 0; i < n; i++) {
+            if (rw[i] < 0 || rw[i] >= n_docs || ip[rw[i]] < 0 || ip[rw[i]] > ip[rw[i] + 1] ||
+                ip[rw[i] + 1] > n_terms) {
+                PyErr_SetString(PyExc_ValueError, "overlap: a row lies outside the term lists");
+                goto done;
+            }
+        }
+        for (Py_ssize_t j = 1; j < m; j++) {
+            if (td[j - 1] >= td[j]) {
+                PyErr_SetString(PyExc_ValueError, "overlap: tids must be sorted and distinct");
+                goto done;
+            }
+        }
+        Py_BEGIN_ALLOW_THREADS
+        for (Py_ssize_t i = 0; i < n; i++) {
+            /* Each clue term is looked up by binary search in the article's sorted list,
+             * starting where the previous (smaller) term was found. */
+            int64_t lo = ip[rw[i]];
+            const int64_t hi = ip[rw[i] + 1];
+            double c = 0, w = 0;
+            for (Py_ssize_t j = 0; j < m && lo < hi; j++) {
+                int64_t a = lo, b = hi;
+                while (a < b) {
+                    const int64_t mid = a + (b - a) / 2;
+                    if (tm[mid] < td[j]) a = mid + 1;
+                    else b = mid;
+                }
+                if (a < hi && tm[a] == td[j]) {
+                    c += 1;
+                    w += wt[j];
+                    a++;
+                }
+                lo = a;
+            }
+            oc[i] = c;
+            ow[i] = w;
+        }
+        Py_END_ALLOW_THREADS
+    }
+    result = Py_None;
+    Py_INCREF(result);
+done:;
+    Py_buffer *all[] = {&indptr, &terms, &rows, &tids, &weights, &count, &weight};
+    for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
+        if (all[i]->obj) PyBuffer_Release(all[i]);
+    return result;
+}
+
 static PyMethodDef methods[] = {
     {"search", search, METH_VARARGS, search_doc},
+    {"overlap", overlap, METH_VARARGS, overlap_doc},
     {NULL, NULL, 0, NULL},
 };
 
 static struct PyModuleDef module = {
-    PyModuleDef_HEAD_INIT, "_topk", "Compiled BM25 accumulate and top-k (see _topk.c).", -1,
+    PyModuleDef_HEAD_INIT, "_kernels", "Compiled kernels of the retrieval core (see _kernels.c).", -1,
     methods, NULL, NULL, NULL, NULL,
 };
 
-PyMODINIT_FUNC PyInit__topk(void) { return PyModule_Create(&module); }
+PyMODINIT_FUNC PyInit__kernels(void) { return PyModule_Create(&module); }
