@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import os
 import shlex
+import signal
 import socket
 import subprocess
 import sys
@@ -153,6 +154,9 @@ def serve_and_ask(
             f"-d {shlex.quote(json.dumps({'clue': clue[:60], 'k': 3}))}"
         )
         if wait:
+            # A shell starting us in the background sets Ctrl-C to "ignore", and that is
+            # inherited; we promise Ctrl-C stops the demo, so take it back.
+            signal.signal(signal.SIGINT, signal.default_int_handler)
             _say("\nPress Ctrl-C to stop the service.")
             proc.wait()
     except KeyboardInterrupt:
