@@ -232,13 +232,14 @@ static int get(PyObject *obj, Py_buffer *view, const char *fmt, int writable, co
 }
 
 PyDoc_STRVAR(search_doc,
-"search(buf, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts)\n"
+"search(buf, touched, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts)\n"
 "\n"
 "Score a batch of queries and write each one's k best rows and scores, best first, ties\n"
 "by row; only articles with a non-zero score are returned.\n"
 "\n"
 "buf: zeroed scores, one per article (float32 or float64, the weights' type); zero again\n"
-"    on return. fields: tuple of (indptr int64, docs int32, weight, scale float), the\n"
+"    on return. touched: int32 scratch, one slot per article.\n"
+"fields: tuple of (indptr int64, docs int32, weight, scale float), the\n"
 "    term-major postings of each scored field and its weight in the sum.\n"
 "qptr (int64, n_queries + 1): query q owns terms qptr[q]:qptr[q+1] of tids (int64 term\n"
 "    ids, distinct within a query, in the order they are added) and qtf (float64, how\n"
@@ -251,27 +252,32 @@ typedef struct {
 } FieldViews;
 
 static PyObject *search(PyObject *self, PyObject *args) {
-    PyObject *o_buf, *o_fields, *o_qptr, *o_tids, *o_qtf, *o_rows, *o_scores, *o_counts;
+    PyObject *o_buf, *o_touched, *o_fields, *o_qptr, *o_tids, *o_qtf, *o_rows, *o_scores;
+    PyObject *o_counts;
     Py_ssize_t k;
     (void)self;
-    if (!PyArg_ParseTuple(args, "OnO!OOOOOO", &o_buf, &k, &PyTuple_Type, &o_fields, &o_qptr,
-                          &o_tids, &o_qtf, &o_rows, &o_scores, &o_counts))
+    if (!PyArg_ParseTuple(args, "OOnO!OOOOOO", &o_buf, &o_touched, &k, &PyTuple_Type, &o_fields,
+                          &o_qptr, &o_tids, &o_qtf, &o_rows, &o_scores, &o_counts))
         return NULL;
     if (k < 1) return PyErr_Format(PyExc_ValueError, "k must be at least 1, got %zd", k);
     const Py_ssize_t n_fields = PyTuple_GET_SIZE(o_fields);
     Field *fields = calloc(n_fields ? n_fields : 1, sizeof(Field));
     FieldViews *views = calloc(n_fields ? n_fields : 1, sizeof(FieldViews));
     Py_buffer buf = {0}, qptr = {0}, tids = {0}, qtf = {0}, rows = {0}, scores = {0};
-    Py_buffer counts = {0};
+    Py_buffer counts = {0}, scratch = {0};
     Py_ssize_t got_fields = 0;
     PyObject *result = NULL;
-    int32_t *touched = NULL;
     Heap heap = {0};
     if (!fields || !views) {
         PyErr_NoMemory();
         goto done;
     }
     if (get(o_buf, &buf, "f|d", 1, "buf") < 0) goto done;
+    if (get(o_touched, &scratch, "i", 1, "touched") < 0) goto done;
+    if (scratch.len / 4 < buf.len / buf.itemsize) {
+        PyErr_SetString(PyExc_ValueError, "touched must have one int32 slot per article");
+        goto done;
+    }
     const char *wfmt = buf.itemsize == 4 ? "f" : "d";
     for (; got_fields < n_fields; got_fields++) {
         PyObject *spec = PyTuple_GET_ITEM(o_fields, got_fields);
@@ -317,13 +323,11 @@ static PyObject *search(PyObject *self, PyObject *args) {
             PyErr_SetString(PyExc_ValueError, "output arrays are too small for the queries");
             goto done;
         }
-        Py_ssize_t most = 0;
         for (Py_ssize_t q = 0; q < n_queries; q++) {
             if (qp[q] < 0 || qp[q] > qp[q + 1] || qp[q + 1] > n_tids) {
                 PyErr_SetString(PyExc_ValueError, "qptr is not a valid offsets array");
                 goto done;
             }
-            Py_ssize_t total = 0;
             for (int64_t t = qp[q]; t < qp[q + 1]; t++) {
                 for (Py_ssize_t f = 0; f < n_fields; f++) {
                     if (tid[t] < 0 || tid[t] >= fields[f].n_terms) {
@@ -338,16 +342,17 @@ static PyObject *search(PyObject *self, PyObject *args) {
                                         "a term's postings lie outside the field's arrays");
                         goto done;
                     }
-                    total += hi - lo;
                 }
             }
-            if (total > most) most = total;
         }
-        touched = malloc((most ? most : 1) * sizeof(int32_t));
+        /* `touched` is used only while a query's postings are under half the corpus, so
+         * one slot per article is always enough (it is the caller's, reused across calls:
+         * no allocation or page faults per query). */
+        int32_t *touched = scratch.buf;
         heap.cap = k < n_docs ? k : n_docs;
         heap.score = malloc((heap.cap ? heap.cap : 1) * sizeof(double));
         heap.row = malloc((heap.cap ? heap.cap : 1) * sizeof(int64_t));
-        if (!touched || !heap.score || !heap.row) {
+        if (!heap.score || !heap.row) {
             PyErr_NoMemory();
             goto done;
         }
@@ -375,7 +380,6 @@ static PyObject *search(PyObject *self, PyObject *args) {
     result = Py_None;
     Py_INCREF(result);
 done:
-    free(touched);
     free(heap.score);
     free(heap.row);
     if (views) {
@@ -387,7 +391,7 @@ done:
     }
     free(views);
     free(fields);
-    Py_buffer *all[] = {&buf, &qptr, &tids, &qtf, &rows, &scores, &counts};
+    Py_buffer *all[] = {&buf, &scratch, &qptr, &tids, &qtf, &rows, &scores, &counts};
     for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
         if (all[i]->obj) PyBuffer_Release(all[i]);
     return result;

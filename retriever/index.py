@@ -186,10 +186,18 @@ class Index:
         return scoring.overlap(self._fwd_indptr, self._fwd_terms, rows, tids, weights)
 
     def _buffer(self) -> np.ndarray:
+        """This thread's zeroed score buffer, one slot per article."""
         buf = getattr(self._local, "buf", None)
         if buf is None:
             buf = self._local.buf = np.zeros(self.n_docs, dtype=self.body.weight.dtype)
         return buf
+
+    def _scratch(self) -> np.ndarray:
+        """This thread's scratch list of touched articles for the kernel."""
+        touched = getattr(self._local, "touched", None)
+        if touched is None:
+            touched = self._local.touched = np.empty(self.n_docs, dtype=np.int32)
+        return touched
 
     def _plan(self, token_lists: Sequence[Sequence[str]]) -> scoring.Plan:
         """One plan for a batch of analyzed queries (each distinct token looked up once)."""
@@ -221,7 +229,8 @@ class Index:
             raise ValueError(f"k must be at least 1, got {k}")
         if not token_lists:
             return []
-        results = scoring.top_k_many(self._buffer(), self._plan(token_lists), k)
+        plan = self._plan(token_lists)
+        results = scoring.top_k_many(self._buffer(), plan, k, touched=self._scratch())
         rows = np.concatenate([r for r, _ in results])
         ids, titles = self.ids.take(rows), self.titles.take(rows)
         out: list[list[Hit]] = []

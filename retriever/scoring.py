@@ -99,13 +99,19 @@ def accumulate(buf: np.ndarray, p: Plan, q: int = 0) -> None:
 
 
 def top_k_many(
-    buf: np.ndarray, p: Plan, k: int, *, use_kernel: bool = True
+    buf: np.ndarray,
+    p: Plan,
+    k: int,
+    *,
+    touched: np.ndarray | None = None,
+    use_kernel: bool = True,
 ) -> list[tuple[np.ndarray, np.ndarray]]:
     """Rows (int64) and scores (float64) of each query's k best articles with a non-zero
     score, best first, ties by row.
 
     `buf` (the weights' type, one slot per article) must be all zeros on entry and is all
-    zeros again on return.
+    zeros again on return. `touched` (int32, one slot per article) is the kernel's scratch;
+    pass one to reuse it across calls.
     """
     if k < 1:
         raise ValueError(f"k must be at least 1, got {k}")
@@ -115,7 +121,9 @@ def top_k_many(
         scores = np.empty(n * k, dtype=np.float64)
         counts = np.empty(n, dtype=np.int64)
         fields = tuple((fld.indptr, fld.docs, fld.weight, float(sc)) for fld, sc in p.fields)
-        _kernels.search(buf, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts)
+        if touched is None:
+            touched = np.empty(buf.size, dtype=np.int32)
+        _kernels.search(buf, touched, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts)
         return [
             (rows[q * k : q * k + c], scores[q * k : q * k + c])
             for q, c in enumerate(counts.tolist())

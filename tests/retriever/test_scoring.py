@@ -89,10 +89,13 @@ def test_kernel_rejects_bad_plans_and_damaged_postings(tmp_path: Path) -> None:
     body = idx.body
     fields = ((body.indptr, body.docs, body.weight, 1.0),)
     out = (np.empty(4, np.int64), np.empty(4), np.empty(1, np.int64))
+    touched = np.empty(idx.n_docs, dtype=np.int32)
 
     def call(k: int = 4, fields: tuple = fields, **change: np.ndarray) -> None:
         args = {"qptr": p.qptr, "tids": p.tids, "qtf": p.qtf, **change}
-        scoring._kernels.search(buf, k, fields, args["qptr"], args["tids"], args["qtf"], *out)
+        scoring._kernels.search(
+            buf, touched, k, fields, args["qptr"], args["tids"], args["qtf"], *out
+        )
 
     with pytest.raises(ValueError, match="vocabulary"):
         call(tids=p.tids + 1000)
@@ -106,6 +109,8 @@ def test_kernel_rejects_bad_plans_and_damaged_postings(tmp_path: Path) -> None:
         call(k=0)
     with pytest.raises(ValueError, match="too small"):
         call(k=40)
+    with pytest.raises(ValueError, match="one int32 slot per article"):
+        scoring._kernels.search(buf, touched[:1], 4, fields, p.qptr, p.tids, p.qtf, *out)
     bad_indptr = body.indptr.copy()
     bad_indptr[-1] += 50
     with pytest.raises(ValueError, match="outside the field"):
