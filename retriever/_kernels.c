@@ -1,4 +1,4 @@
-/* Compiled kernels of the retrieval core, with the GIL released:
+/* Compiled kernels of the retrieval core:
  * search(): add the postings of one or many queries into a score buffer and select each
  * query's k best articles; overlap(): which of a clue's terms each of a few articles holds.
  *
@@ -22,6 +22,9 @@
 #include <stdint.h>
 #include <stdlib.h>
 #include <string.h>
+
+/* Calls adding more postings than this release the GIL (about 2 ms of work). */
+#define GIL_RELEASE_POSTINGS 2000000
 
 typedef struct { /* one field's term-major postings */
     const int64_t *indptr; /* term t's postings are [indptr[t], indptr[t + 1]) */
@@ -323,6 +326,7 @@ static PyObject *search(PyObject *self, PyObject *args) {
             PyErr_SetString(PyExc_ValueError, "output arrays are too small for the queries");
             goto done;
         }
+        int64_t work = 0; /* postings in the whole call */
         for (Py_ssize_t q = 0; q < n_queries; q++) {
             if (qp[q] < 0 || qp[q] > qp[q + 1] || qp[q + 1] > n_tids) {
                 PyErr_SetString(PyExc_ValueError, "qptr is not a valid offsets array");
@@ -342,6 +346,7 @@ static PyObject *search(PyObject *self, PyObject *args) {
                                         "a term's postings lie outside the field's arrays");
                         goto done;
                     }
+                    work += hi - lo;
                 }
             }
         }
@@ -360,7 +365,11 @@ static PyObject *search(PyObject *self, PyObject *args) {
         double *out_s = scores.buf;
         const double *qf = qtf.buf;
         int damaged = 0;
-        Py_BEGIN_ALLOW_THREADS
+        /* The GIL is released only for calls worth a few milliseconds (big batches, large
+         * corpora). For a single clue of a few hundred microseconds, handing the GIL over
+         * can cost more than the call: in a server whose other thread is busy, taking it
+         * back waits for the interpreter's switch interval (5 ms by default). */
+        PyThreadState *saved = work > GIL_RELEASE_POSTINGS ? PyEval_SaveThread() : NULL;
         for (Py_ssize_t q = 0; q < n_queries && !damaged; q++) {
             heap.size = 0;
             out_n[q] = buf.itemsize == 4
@@ -370,7 +379,7 @@ static PyObject *search(PyObject *self, PyObject *args) {
                                touched, &heap, out_r + q * k, out_s + q * k);
             damaged = out_n[q] < 0;
         }
-        Py_END_ALLOW_THREADS
+        if (saved) PyEval_RestoreThread(saved);
         if (damaged) {
             PyErr_SetString(PyExc_ValueError,
                             "postings name a row outside the index: it is damaged; rebuild it");
@@ -446,8 +455,7 @@ static PyObject *overlap(PyObject *self, PyObject *args) {
                 goto done;
             }
         }
-        Py_BEGIN_ALLOW_THREADS
-        for (Py_ssize_t i = 0; i < n; i++) {
+        for (Py_ssize_t i = 0; i < n; i++) { /* microseconds of work: the GIL is kept */
             /* Each clue term is looked up by binary search in the article's sorted list,
              * starting where the previous (smaller) term was found. */
             int64_t lo = ip[rw[i]];
@@ -470,7 +478,6 @@ static PyObject *overlap(PyObject *self, PyObject *args) {
             oc[i] = c;
             ow[i] = w;
         }
-        Py_END_ALLOW_THREADS
     }
     result = Py_None;
     Py_INCREF(result);

@@ -262,7 +262,7 @@ class Index:
         self, clues: Sequence[str], k: int = 20, *, threads: int | None = None
     ) -> list[list[Hit]]:
         """`search` for each clue, in order, on `threads` threads (default: up to 2 cores
-        for batches of 64 clues or more; the compiled kernel releases the GIL)."""
+        for batches of 64 clues or more; the kernel releases the GIL for batches this big)."""
         if threads is None:
             threads = min(cores(), 2) if len(clues) >= 64 else 1
         if k < 1:

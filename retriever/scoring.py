@@ -1,10 +1,11 @@
 """Query-time BM25 scoring over term-major postings, and an exact top-k, for one or many queries.
 
 A query plan lists, for every query of a batch, the posting ranges of its known terms in
-each scored field. The compiled kernel (retriever/_kernels.c) adds a whole batch's postings and
-selects each query's k best articles in one call with the GIL released. Where that module
-is not built, the numpy path below gives the same scores bit for bit (the same products,
-added in the same order), more slowly; tests compare the two.
+each scored field. The compiled kernel (retriever/_kernels.c) adds a whole batch's postings
+and selects each query's k best articles in one call, releasing the GIL when the call is
+big enough to pay for it. Where that module is not built, the numpy path below gives the
+same scores bit for bit (the same products, added in the same order), more slowly; tests
+compare the two.
 """
 
 from __future__ import annotations
