@@ -135,19 +135,29 @@ def top_k_many(
 def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, np.ndarray]:
     """The numpy path of top_k_many for query q: touched articles, their scores, a partial sort."""
     lo, hi = int(p.qptr[q]), int(p.qptr[q + 1])
-    parts = [
-        fld.docs[int(fld.indptr[t]) : int(fld.indptr[t + 1])]
+    ranges = [
+        (fld, int(fld.indptr[t]), int(fld.indptr[t + 1]))
         for fld, _ in p.fields
         for t in p.tids[lo:hi].tolist()
     ]
-    if not parts:
+    postings = sum(e - s for _, s, e in ranges)
+    if postings == 0:
         return np.empty(0, dtype=np.int64), np.empty(0)
-    touched = np.unique(np.concatenate(parts)).astype(np.int64)
+    # As in the kernel: list the touched articles when they are few, else scan them all.
+    touched = (
+        np.unique(np.concatenate([fld.docs[s:e] for fld, s, e in ranges])).astype(np.int64)
+        if postings * 2 < buf.size
+        else None
+    )
     try:
         accumulate(buf, p, q)
-        scores = buf[touched].astype(np.float64)
-        keep = scores != 0
-        cand, scores = touched[keep], scores[keep]
+        if touched is None:
+            cand = np.flatnonzero(buf)
+            scores = buf[cand].astype(np.float64)
+        else:
+            scores = buf[touched].astype(np.float64)
+            keep = scores != 0
+            cand, scores = touched[keep], scores[keep]
         if cand.size > k:
             kth = np.partition(scores, cand.size - k)[cand.size - k]
             top = scores >= kth
@@ -155,7 +165,10 @@ def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, 
         order = np.lexsort((cand, -scores))[:k]
         return cand[order], scores[order]
     finally:
-        buf[touched] = 0
+        if touched is None:
+            buf.fill(0)
+        else:
+            buf[touched] = 0
 
 
 def overlap(
