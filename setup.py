@@ -1,8 +1,9 @@
-"""Build the one compiled module, retriever._kernels (metadata lives in pyproject.toml).
+"""Build the two compiled modules (metadata lives in pyproject.toml).
 
-It is optional: without a C compiler the install still succeeds and retriever/scoring.py
-uses its numpy path, which returns the same scores more slowly. `hunchwise index info`
-says which path is in use.
+retriever._kernels: BM25 search and term overlap. reranker._fused: the within-clue score
+features. Both are optional: without a C compiler the install still succeeds and the code
+uses its numpy or plain-Python twins, which give the same results more slowly.
+`hunchwise index info` says which query path is in use.
 """
 
 import sys
@@ -14,8 +15,10 @@ flags = [] if sys.platform == "win32" else ["-O3", "-ffp-contract=off"]
 
 setup(
     ext_modules=[
-        Extension(
-            "retriever._kernels", ["retriever/_kernels.c"], extra_compile_args=flags, optional=True
+        Extension(name, [source], extra_compile_args=flags, optional=True)
+        for name, source in (
+            ("retriever._kernels", "retriever/_kernels.c"),
+            ("reranker._fused", "reranker/_fused.c"),
         )
     ]
 )

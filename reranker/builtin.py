@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import importlib
 import itertools
 import math
 from collections.abc import Callable, Sequence
+from typing import Any
 
 import numpy as np
 
@@ -18,6 +20,12 @@ from .features import (
     index_cache,
     row_names,
 )
+
+_fused: Any
+try:
+    _fused = importlib.import_module("reranker._fused")  # built by setup.py from _fused.c
+except ImportError:  # pragma: no cover - a machine without a C compiler at install time
+    _fused = None
 
 _FEATURES: list[Feature] = []
 
@@ -346,18 +354,12 @@ def _row_values(index: Index, rows: np.ndarray) -> np.ndarray:
     return table[rows]
 
 
-def fused_builtins(cs: CandidateSet) -> np.ndarray:
-    """Every feature of FUSED_NAMES, in that order. float64, shape (n, len(FUSED_NAMES))."""
-    n = len(cs)
-    f = np.empty((len(_WORK), n))  # one contiguous row per feature
-    if n == 0:
-        return f.T.take(_ORDER, axis=1)
-    # retrieval and clue length, in plain Python over the 20 or so candidates: cheaper here
-    # than the dozen numpy calls it replaces
-    s = cs.scores.tolist()
+def within_clue(s: list[float], ranks: list[float], mean: float, words: int, f: np.ndarray) -> None:
+    """Rows 0-12 of the fused work array (the score features that compare a candidate with
+    its rivals, and the clue length), in plain Python: the twin of reranker/_fused.c."""
+    n = len(s)
     best = max(s)
     lead = s.index(best)  # the first best, as a stable sort would put it
-    mean = float(np.add.reduce(cs.scores)) / n  # as ndarray.mean() adds
     exps = [math.exp(x - best) for x in s]
     total = sum(exps)
     soft = [e / total for e in exps]
@@ -366,9 +368,7 @@ def fused_builtins(cs: CandidateSet) -> np.ndarray:
     rival = [x - best for x in s]  # everyone's best rival is the leader, except the leader's
     if n > 1:
         rival[lead] = best - max(s[:lead] + s[lead + 1 :])
-    words = len(cs.words)
     log_words = math.log1p(words)
-    ranks = cs.ranks.tolist()
     f[0:13] = (
         soft,
         s,
@@ -384,6 +384,21 @@ def fused_builtins(cs: CandidateSet) -> np.ndarray:
         [float(words)] * n,
         [log_words] * n,
     )
+
+
+def fused_builtins(cs: CandidateSet) -> np.ndarray:
+    """Every feature of FUSED_NAMES, in that order. float64, shape (n, len(FUSED_NAMES))."""
+    n = len(cs)
+    f = np.empty((len(_WORK), n))  # one contiguous row per feature
+    if n == 0:
+        return f.T.take(_ORDER, axis=1)
+    # retrieval and clue length: rows 0-12, in one compiled call where it is built
+    mean = float(np.add.reduce(cs.scores)) / n  # as ndarray.mean() adds
+    if _fused is not None:
+        ranks = np.asarray(cs.ranks, dtype=np.float64)
+        _fused.within_clue(cs.scores, ranks, mean, len(cs.words), f[0:13])
+    else:
+        within_clue(cs.scores.tolist(), cs.ranks.tolist(), mean, len(cs.words), f)
     # popularity, document length, qualifier: one gather from the row table
     f[13:21] = _row_values(cs.index, cs.rows).T
     np.subtract(f[14], np.maximum.reduce(f[14]), out=f[21])

@@ -14,6 +14,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from reranker import CandidateSet, default_registry
 from reranker import builtin as B
@@ -82,6 +84,45 @@ def test_fused_equals_the_functions_on_edge_cases(
     tiny_index: Index, clue: str, ids: list[str], scores: list[float]
 ) -> None:
     assert_fused_equals_functions(make_set(tiny_index, clue, ids, np.array(scores)))
+
+
+@pytest.mark.skipif(B._fused is None, reason="reranker._fused is not built")
+@settings(max_examples=300, deadline=None)
+@given(
+    scores=st.lists(
+        st.one_of(st.sampled_from([0.0, 1.0, 2.5, -1.0]), st.floats(-50, 50, allow_nan=False)),
+        min_size=1,
+        max_size=40,
+    ),
+    words=st.integers(0, 200),
+)
+def test_compiled_within_clue_equals_its_python_twin(scores: list[float], words: int) -> None:
+    # Ties, zeros, negative and single scores included; ranks as the retriever gives them.
+    s = np.array(scores)
+    ranks = np.arange(1.0, s.size + 1)
+    mean = float(np.add.reduce(s)) / s.size
+    compiled, python = np.empty((13, s.size)), np.empty((13, s.size))
+    B._fused.within_clue(s, ranks, mean, words, compiled)
+    B.within_clue(s.tolist(), ranks.tolist(), mean, words, python)
+    np.testing.assert_allclose(compiled, python, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.skipif(B._fused is None, reason="reranker._fused is not built")
+def test_compiled_within_clue_rejects_bad_arrays() -> None:
+    s, r = np.array([1.0, 2.0]), np.array([1.0, 2.0])
+    with pytest.raises(ValueError, match="13n out"):
+        B._fused.within_clue(s, r, 1.5, 3, np.empty((12, 2)))
+    with pytest.raises(TypeError, match="float64"):
+        B._fused.within_clue(s.astype(np.float32), r, 1.5, 3, np.empty((13, 2)))
+
+
+def test_fused_equals_the_functions_without_the_compiled_part(
+    tiny_index: Index, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The plain-Python twin, as on a machine where reranker._fused did not build.
+    monkeypatch.setattr(B, "_fused", None)
+    for ids, scores in ((["a3"], [3.0]), (["a4", "a1", "a2", "a5"], [1.0, 3.0, 3.0, 0.5])):
+        assert_fused_equals_functions(make_set(tiny_index, CLUE, ids, np.array(scores)))
 
 
 def test_no_candidates(tiny_index: Index) -> None:
