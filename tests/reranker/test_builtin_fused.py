@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import gc
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -84,6 +85,12 @@ def test_fused_equals_the_functions_on_edge_cases(
     tiny_index: Index, clue: str, ids: list[str], scores: list[float]
 ) -> None:
     assert_fused_equals_functions(make_set(tiny_index, clue, ids, np.array(scores)))
+
+
+def test_compiled_features_are_built_where_required() -> None:
+    # .ci/run sets HUNCHWISE_REQUIRE_KERNEL=1: there the compiled path must be the one tested.
+    if os.environ.get("HUNCHWISE_REQUIRE_KERNEL") == "1":
+        assert B._fused is not None, "reranker._fused did not build (is a C compiler installed?)"
 
 
 @pytest.mark.skipif(B._fused is None, reason="reranker._fused is not built")
