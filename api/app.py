@@ -79,10 +79,10 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
         # rank requests. (gc.freeze after start-up is common practice, no source.)
         gc.collect()
         gc.freeze()
-        # One BLAS thread per worker: requests only do tiny products, and idle BLAS threads
-        # spinning beside the other workers cost far more than they save. Measured at 100k
-        # articles, 2 workers: 292 -> 905 requests/s closed loop, CPU per request 3.7 ->
-        # 2.1 ms.
+        # One BLAS thread per worker (every worker runs this): requests only do tiny
+        # products, and idle BLAS threads spinning beside the other workers cost far more
+        # than they save. Measured at 100k articles, 2 workers: 292 -> 532-714 requests/s
+        # closed loop over six runs.
         threadpool_limits(limits=1)
         try:
             yield

@@ -161,10 +161,6 @@ def cmd_serve(args: argparse.Namespace) -> int:
         metrics_dir.mkdir(parents=True)
         # Set before any worker imports prometheus_client: it picks its mode at import time.
         os.environ[METRICS_ENV] = str(metrics_dir)
-        # Worker processes start BLAS with one thread (read when they import numpy); the app
-        # also limits it at start-up (api/app.py), for servers started some other way.
-        for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-            os.environ.setdefault(var, "1")
         _check(args)
         uvicorn.run(
             "api.app:app_from_env",

@@ -173,10 +173,7 @@ class Index:
         Returns (term ids of all the rows concatenated, sorted within each row; how many
         belong to each row). int32 and int64 arrays.
         """
-        rows = np.asarray(rows, dtype=np.int64)
-        starts, ends = self._fwd_indptr[rows], self._fwd_indptr[rows + 1]
-        lengths = ends - starts
-        return self._fwd_terms[scoring.concat_ranges(starts, lengths)], lengths
+        return scoring.article_terms(self._fwd_indptr, self._fwd_terms, rows)
 
     def term_overlap(
         self, rows: np.ndarray, tids: np.ndarray, weights: np.ndarray

@@ -1,11 +1,11 @@
 """Query-time BM25 scoring over term-major postings, and an exact top-k, for one or many queries.
 
-A query plan lists, for every query of a batch, the posting ranges of its known terms in
-each scored field. The compiled kernel (retriever/_kernels.c) adds a whole batch's postings
-and selects each query's k best articles in one call, releasing the GIL when the call is
-big enough to pay for it. Where that module is not built, the numpy path below gives the
-same scores bit for bit (the same products, added in the same order), more slowly; tests
-compare the two.
+A query plan lists, for every query of a batch, its known terms and how often each occurs;
+every scored field's postings of those terms are added. The compiled kernel
+(retriever/_kernels.c) adds a whole batch's postings and selects each query's k best
+articles in one call, releasing the GIL when the call is big enough to pay for it. Where
+that module is not built, the numpy path below gives the same scores bit for bit (the same
+products, added in the same order), more slowly; tests compare the two.
 """
 
 from __future__ import annotations
@@ -171,6 +171,17 @@ def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, 
             buf[touched] = 0
 
 
+def article_terms(
+    indptr: np.ndarray, terms: np.ndarray, rows: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """The term lists of `rows` in article-major arrays: (all of them concatenated, how
+    many belong to each row)."""
+    rows = np.asarray(rows, dtype=np.int64)
+    starts, ends = indptr[rows], indptr[rows + 1]
+    lengths = ends - starts
+    return terms[concat_ranges(starts, lengths)], lengths
+
+
 def overlap(
     indptr: np.ndarray,
     terms: np.ndarray,
@@ -195,10 +206,9 @@ def overlap(
         return count, total
     if tids.size == 0 or n == 0:
         return np.zeros(n), np.zeros(n)
-    starts, ends = indptr[rows], indptr[rows + 1]
-    held = terms[concat_ranges(starts, ends - starts)]
+    held, lengths = article_terms(indptr, terms, rows)
     pos = np.minimum(np.searchsorted(tids, held), tids.size - 1)
     hit = tids[pos] == held
-    owner = np.repeat(np.arange(n), ends - starts)[hit]
+    owner = np.repeat(np.arange(n), lengths)[hit]
     count = np.bincount(owner, minlength=n).astype(np.float64)
     return count, np.bincount(owner, weights=weights[pos[hit]], minlength=n)
