@@ -175,6 +175,11 @@ class Index:
         """
         return scoring.article_terms(self._fwd_indptr, self._fwd_terms, rows)
 
+    def article_term_lists(self) -> tuple[np.ndarray, np.ndarray]:
+        """The article-major term lists: (indptr int64 (n_docs + 1), term ids int32); row r's
+        distinct body terms, sorted, are terms[indptr[r]:indptr[r + 1]]."""
+        return self._fwd_indptr, self._fwd_terms
+
     def term_overlap(
         self, rows: np.ndarray, tids: np.ndarray, weights: np.ndarray
     ) -> tuple[np.ndarray, np.ndarray]:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import matplotlib
 
@@ -75,7 +76,7 @@ def test_inlink_distributions(tmp_path: Path) -> None:
 
 
 def test_ablation_chart(tmp_path: Path) -> None:
-    rows = [
+    rows: list[dict[str, Any]] = [
         {
             "name": "bm25 only",
             "kind": "baseline",

@@ -1,8 +1,9 @@
-"""The fused path of reranker/builtin.py: all built-in features at once, equal to the functions.
+"""reranker/fused.py: all built-in features at once, equal to the functions.
 
 The functions are the definitions (hand-checked in test_builtin.py); serving computes the same
-columns together in `fused_builtins`. These tests compare the two on real candidate sets of
-the demo corpus and on edge cases, and check that per-row name analysis is lazy.
+columns together in `fused_builtins`, compiled (reranker/_fused.c) or by its plain-Python
+twin. These tests compare all three on real candidate sets of the demo corpus and on edge
+cases, and check that the per-row tables are filled lazily.
 """
 
 from __future__ import annotations
@@ -21,6 +22,8 @@ from hypothesis import strategies as st
 from reranker import CandidateSet, default_registry
 from reranker import builtin as B
 from reranker import features as F
+from reranker import fused as FU
+from reranker import rowtables as RT
 from reranker.examples import candidate_set
 from retriever import Index, load_index
 from tests.reranker.test_builtin import CLUE, make_set
@@ -29,21 +32,26 @@ from tests.reranker.test_builtin import CLUE, make_set
 def by_function(cs: CandidateSet) -> np.ndarray:
     """The FUSED_NAMES columns from each feature's own function, on a fresh copy of `cs`."""
     fresh = dataclasses.replace(cs, memo={})  # nothing computed by the fused path is shared
-    return np.column_stack([getattr(B, name)(fresh) for name in B.FUSED_NAMES])
+    return np.column_stack([getattr(B, name)(fresh) for name in FU.FUSED_NAMES])
 
 
 def assert_fused_equals_functions(cs: CandidateSet) -> None:
-    """Fused matrix == per-function columns, to float rounding."""
-    fused = B.fused_builtins(cs)
-    assert fused.shape == (len(cs), len(B.FUSED_NAMES))
+    """Fused matrix (compiled where built, and the Python twin) == per-function columns, to
+    float rounding (sums may be added in another order)."""
+    fused = FU.fused_builtins(cs)
+    assert fused.shape == (len(cs), len(FU.FUSED_NAMES))
     assert fused.dtype == np.float64 and fused.flags.c_contiguous
-    np.testing.assert_allclose(fused, by_function(cs), rtol=1e-12, atol=1e-12)
+    expected = by_function(cs)
+    np.testing.assert_allclose(fused, expected, rtol=1e-12, atol=1e-12)
+    if len(cs):
+        twin = FU._python(dataclasses.replace(cs, memo={}))
+        np.testing.assert_allclose(twin, expected, rtol=1e-12, atol=1e-12)
 
 
 def test_fused_names_are_builtins_once_each() -> None:
     reg = default_registry()
-    assert set(B.FUSED_NAMES) <= set(reg.names)
-    assert len(set(B.FUSED_NAMES)) == len(B.FUSED_NAMES)
+    assert set(FU.FUSED_NAMES) <= set(reg.names)
+    assert len(set(FU.FUSED_NAMES)) == len(FU.FUSED_NAMES)
 
 
 def test_fused_equals_the_functions_on_demo_candidate_sets(
@@ -62,7 +70,7 @@ def test_fused_equals_the_functions_on_demo_candidate_sets(
             cs = candidate_set(demo_index, prefix, hits)
             assert_fused_equals_functions(cs)
             # the registry takes the fused path for the built-ins and gives the same matrix
-            np.testing.assert_array_equal(reg.matrix(cs, reg.names), B.fused_builtins(cs))
+            np.testing.assert_array_equal(reg.matrix(cs, reg.names), FU.fused_builtins(cs))
             checked += 1
     assert checked > 250
 
@@ -90,10 +98,18 @@ def test_fused_equals_the_functions_on_edge_cases(
 def test_compiled_features_are_built_where_required() -> None:
     # .ci/run sets HUNCHWISE_REQUIRE_KERNEL=1: there the compiled path must be the one tested.
     if os.environ.get("HUNCHWISE_REQUIRE_KERNEL") == "1":
-        assert B._fused is not None, "reranker._fused did not build (is a C compiler installed?)"
+        assert FU._fused is not None, "reranker._fused did not build (is a C compiler installed?)"
 
 
-@pytest.mark.skipif(B._fused is None, reason="reranker._fused is not built")
+needs_compiled = pytest.mark.skipif(FU._fused is None, reason="reranker._fused is not built")
+
+
+@needs_compiled
+def test_compiled_columns_are_the_fused_names() -> None:
+    assert FU._fused.COLUMNS == FU.FUSED_NAMES
+
+
+@needs_compiled
 @settings(max_examples=300, deadline=None)
 @given(
     scores=st.lists(
@@ -102,39 +118,102 @@ def test_compiled_features_are_built_where_required() -> None:
         max_size=40,
     ),
     words=st.integers(0, 200),
+    picks=st.lists(st.integers(0, 4), min_size=40, max_size=40),
+    clue=st.lists(
+        st.sampled_from(["ostrel", "stone", "river", "town", "old", "pella", "zzz", "the"]),
+        max_size=8,
+    ),
 )
-def test_compiled_within_clue_equals_its_python_twin(scores: list[float], words: int) -> None:
-    # Ties, zeros, negative and single scores included; ranks as the retriever gives them.
-    s = np.array(scores)
-    ranks = np.arange(1.0, s.size + 1)
-    mean = float(np.add.reduce(s)) / s.size
-    compiled, python = np.empty((13, s.size)), np.empty((13, s.size))
-    B._fused.within_clue(s, ranks, mean, words, compiled)
-    B.within_clue(s.tolist(), ranks.tolist(), mean, words, python)
-    np.testing.assert_allclose(compiled, python, rtol=1e-12, atol=1e-12)
+def test_compiled_equals_its_python_twin(
+    tiny_index: Index, scores: list[float], words: int, picks: list[int], clue: list[str]
+) -> None:
+    # Ties, zeros, negative and single scores, repeated rows and clue words, ranks as the
+    # retriever gives them; the five articles' names and texts give every name case.
+    n = len(scores)
+    cs = CandidateSet(
+        index=tiny_index,
+        clue=" ".join(clue),
+        words=["w"] * words,
+        tokens=clue,
+        rows=np.array(picks[:n], dtype=np.int64),
+        scores=np.array(scores),
+        ranks=np.arange(1, n + 1, dtype=np.int64),
+    )
+    np.testing.assert_allclose(FU._compiled(cs), FU._python(cs), rtol=1e-12, atol=1e-12)
 
 
-@pytest.mark.skipif(B._fused is None, reason="reranker._fused is not built")
-def test_compiled_within_clue_rejects_bad_arrays() -> None:
-    s, r = np.array([1.0, 2.0]), np.array([1.0, 2.0])
-    with pytest.raises(ValueError, match="13n out"):
-        B._fused.within_clue(s, r, 1.5, 3, np.empty((12, 2)))
+@needs_compiled
+def test_compiled_rejects_bad_input(tiny_index: Index) -> None:
+    cs = make_set(tiny_index, CLUE, ["a1", "a2"], np.array([2.0, 1.0]))
+    FU._compiled(cs)  # fills the tables of both rows
+    names, values = RT.name_table(tiny_index), RT.values_table(tiny_index)
+    indptr, terms = tiny_index.article_term_lists()
+
+    def call(**change: object) -> object:
+        args: dict[str, object] = {
+            "out": np.empty((2, len(FU.FUSED_NAMES))),
+            "scores": cs.scores,
+            "ranks": cs.ranks,
+            "rows": cs.rows,
+            "words": 3,
+            "table": values,
+            "spans": names.spans,
+            "arena": names.arena,
+            "clue_names": [0, 1],
+            "indptr": indptr,
+            "terms": terms,
+            "clue_terms": [(0, 1.5)],
+        }
+        args.update(change)
+        return FU._fused.candidates(*args.values())
+
+    assert call() is True
+    with pytest.raises(ValueError, match="n x COLUMNS out"):
+        call(out=np.empty((2, 3)))
     with pytest.raises(TypeError, match="float64"):
-        B._fused.within_clue(s.astype(np.float32), r, 1.5, 3, np.empty((13, 2)))
+        call(scores=cs.scores.astype(np.float32))
+    with pytest.raises(ValueError, match="row 9 outside"):
+        call(rows=np.array([0, 9]))
+    with pytest.raises(ValueError, match="do not match"):
+        call(table=values[:3])
+    damaged = names.spans.copy()
+    damaged[cs.rows[1], 1] = 10**6  # a span past the end of the arena
+    with pytest.raises(ValueError, match="damaged"):
+        call(spans=damaged)
+    with pytest.raises(TypeError, match="pairs"):
+        call(clue_terms=[0, 1])
+    unseen = np.zeros_like(values)
+    assert call(table=unseen) is False  # not in the tables yet: the caller fills and retries
+
+
+def test_name_table_survives_growing(tiny_index: Index) -> None:
+    # Rows are added in several batches, and the arena grows past its first size in between;
+    # every row's ids still give back its own name tokens.
+    table = RT.NameTable(len(tiny_index))
+    table.arena = np.zeros(2, dtype=np.int32)  # force growth on the first fill
+    for rows in ([3], [0, 3], [4, 1, 2]):
+        with table.lock:
+            table.fill(tiny_index, np.array(rows))
+    token_of = {i: t for t, i in table.ids.items()}
+    for row, e in enumerate(F.row_names(tiny_index, range(len(tiny_index)))):
+        ready, start, nb, nq, na = table.spans[row].tolist()
+        ids = table.arena[start : start + nb + nq + na].tolist()
+        assert ready == 1
+        assert [token_of[i] for i in ids] == [*e.base, *e.qualifier_tokens, *e.aliases]
 
 
 def test_fused_equals_the_functions_without_the_compiled_part(
     tiny_index: Index, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     # The plain-Python twin, as on a machine where reranker._fused did not build.
-    monkeypatch.setattr(B, "_fused", None)
+    monkeypatch.setattr(FU, "_fused", None)
     for ids, scores in ((["a3"], [3.0]), (["a4", "a1", "a2", "a5"], [1.0, 3.0, 3.0, 0.5])):
         assert_fused_equals_functions(make_set(tiny_index, CLUE, ids, np.array(scores)))
 
 
 def test_no_candidates(tiny_index: Index) -> None:
     empty = make_set(tiny_index, CLUE, [], np.array([]))
-    assert B.fused_builtins(empty).shape == (0, len(B.FUSED_NAMES))
+    assert FU.fused_builtins(empty).shape == (0, len(FU.FUSED_NAMES))
 
 
 def _fresh(demo_dir: Path) -> Index:
@@ -169,7 +248,7 @@ def test_index_cache_goes_with_its_index(demo_dir: Path) -> None:
     index = _fresh(demo_dir)
     key = id(index)
     clue = "This river town is known for its stone bridges"
-    default_registry().matrix(candidate_set(index, clue, index.search(clue)), B.FUSED_NAMES)
+    default_registry().matrix(candidate_set(index, clue, index.search(clue)), FU.FUSED_NAMES)
     assert {"row_names", "row_values", "body_terms"} <= set(F._CACHES[key])
     del index  # nothing cached may keep the index alive
     gc.collect()

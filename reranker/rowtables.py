@@ -1,0 +1,124 @@
+"""Per-row tables of the built-in features, filled the first time a row is a candidate.
+
+Two tables, each one row per article and never looped over whole:
+- the row values: what the features need of a row that does not depend on the clue
+  (ROW_VALUES), read by both the compiled features and their Python twin;
+- the name table, read by the compiled features only: each row's base-name, qualifier and
+  alias tokens as small integer ids (one numbering per index, handed out as rows are seen),
+  so that testing them against a clue is integer work.
+
+The tables start as zeros, which the operating system hands out page by page as rows are
+touched, so a large index costs nothing up front.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Sequence
+
+import numpy as np
+
+from retriever import Index
+
+from .features import index_cache, row_names
+
+# Columns of the row-values table; the last is 1 once the row is filled.
+ROW_VALUES = (
+    "inlinks", "log_inlinks", "log_popularity", "popularity_missing", "log_doc_length",
+    "has_qualifier", "qualifier_frequency", "(filled)",
+)  # fmt: skip
+# Columns of NameTable.spans: 1 once filled, where the row's ids start in the arena, and how
+# many base-name, qualifier and alias ids follow there, in that order.
+SPANS = ("ready", "start", "base", "qualifier", "alias")
+
+
+def row_values(index: Index, rows: np.ndarray) -> np.ndarray:
+    """The ROW_VALUES of `rows`, by one gather (rows not seen before are filled first).
+
+    float64, shape (len(rows), len(ROW_VALUES)).
+    """
+    table = values_table(index)
+    values = table[rows]
+    if values[:, -1].all():
+        return values
+    fill_values(index, rows[values[:, -1] == 0])
+    return table[rows]
+
+
+def values_table(index: Index) -> np.ndarray:
+    """The whole row-values table of `index` (rows not seen yet are zeros)."""
+    cache = index_cache(index)
+    table: np.ndarray | None = cache.get("row_values")
+    if table is None:  # setdefault: two threads starting at once get the same table
+        table = cache.setdefault("row_values", np.zeros((len(index), len(ROW_VALUES))))
+    return table
+
+
+def fill_values(index: Index, rows: np.ndarray) -> None:
+    """Compute and store the row values of `rows`."""
+    new = np.unique(rows)
+    names = row_names(index, new.tolist())
+    inl = np.asarray(index.inlinks[new], dtype=np.float64)
+    pop = np.asarray(index.popularity[new], dtype=np.float64)
+    missing = np.isnan(pop)
+    fill = np.empty((new.size, len(ROW_VALUES)))
+    fill[:, 0] = inl
+    fill[:, 1] = np.log1p(inl)
+    fill[:, 2] = np.log1p(np.where(missing, 0.0, pop))
+    fill[:, 3] = missing
+    fill[:, 4] = np.log1p(np.asarray(index.doc_len[new], dtype=np.float64))
+    fill[:, 5] = [1.0 if e.qualifier_tokens else 0.0 for e in names]
+    fill[:, 6] = np.log1p(np.array([e.qualifier_count for e in names], dtype=np.float64))
+    fill[:, 7] = 1.0
+    values_table(index)[new] = fill
+
+
+class NameTable:
+    """Name tokens of the rows seen so far, as ids into one growing int32 arena.
+
+    `lock` guards the whole table: hold it while filling rows and while a reader uses the
+    arrays, since filling may replace the arena with a larger copy.
+    """
+
+    def __init__(self, n_rows: int) -> None:
+        self.lock = threading.Lock()
+        self.ids: dict[str, int] = {}  # name token -> id
+        self.spans = np.zeros((n_rows, len(SPANS)), dtype=np.int64)
+        self.arena = np.zeros(1024, dtype=np.int32)
+        self.used = 0
+
+    def clue_ids(self, tokens: Sequence[str]) -> list[int]:
+        """Ids of the clue tokens that are some seen row's name token (others match none)."""
+        get = self.ids.get
+        return [i for i in map(get, tokens) if i is not None]
+
+    def fill(self, index: Index, rows: np.ndarray) -> None:
+        """Add the rows among `rows` not in the table yet (call with `lock` held)."""
+        new = np.unique(rows[self.spans[rows, 0] == 0]).tolist()
+        if not new:
+            return
+        ids = self.ids
+        parts: list[int] = []
+        spans = np.empty((len(new), len(SPANS)), dtype=np.int64)
+        for j, e in enumerate(row_names(index, new)):
+            start = self.used + len(parts)
+            for toks in (e.base, e.qualifier_tokens, e.aliases):
+                parts.extend(ids.setdefault(t, len(ids)) for t in toks)
+            spans[j] = (1, start, len(e.base), len(e.qualifier_tokens), len(e.aliases))
+        end = self.used + len(parts)
+        if end > self.arena.size:  # grow by doubling; readers hold the lock, so none sees it
+            grown = np.zeros(max(end, 2 * self.arena.size), dtype=np.int32)
+            grown[: self.used] = self.arena[: self.used]
+            self.arena = grown
+        self.arena[self.used : end] = parts
+        self.used = end
+        self.spans[new] = spans
+
+
+def name_table(index: Index) -> NameTable:
+    """The NameTable of `index` (created empty on first use)."""
+    cache = index_cache(index)
+    table: NameTable | None = cache.get("name_table")
+    if table is None:
+        table = cache.setdefault("name_table", NameTable(len(index)))
+    return table
