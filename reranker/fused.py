@@ -71,7 +71,6 @@ def _compiled(cs: CandidateSet) -> np.ndarray:
         )
         if not ready:  # some rows are candidates for the first time
             names.fill(index, cs.rows)
-            row_values(index, cs.rows)
             clue = names.clue_ids(cs.tokens)
             _fused.candidates(
                 out, *args, names.spans, names.arena, clue, fwd_indptr, fwd_terms, terms

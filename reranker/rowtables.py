@@ -20,7 +20,7 @@ import numpy as np
 
 from retriever import Index
 
-from .features import index_cache, row_names
+from .features import index_cache, qualifier_counts, row_names
 
 # Columns of the row-values table; the last is 1 once the row is filled.
 ROW_VALUES = (
@@ -55,22 +55,29 @@ def values_table(index: Index) -> np.ndarray:
 
 
 def fill_values(index: Index, rows: np.ndarray) -> None:
-    """Compute and store the row values of `rows`."""
+    """Compute and store the row values of `rows` (for the Python twin, from row_names)."""
     new = np.unique(rows)
     names = row_names(index, new.tolist())
-    inl = np.asarray(index.inlinks[new], dtype=np.float64)
-    pop = np.asarray(index.popularity[new], dtype=np.float64)
+    qualified = [bool(e.qualifier_tokens) for e in names]
+    _store_values(index, new, qualified, [e.qualifier_count for e in names])
+
+
+def _store_values(
+    index: Index, rows: np.ndarray, qualified: Sequence[bool], qualifier_count: Sequence[int]
+) -> None:
+    inl = np.asarray(index.inlinks[rows], dtype=np.float64)
+    pop = np.asarray(index.popularity[rows], dtype=np.float64)
     missing = np.isnan(pop)
-    fill = np.empty((new.size, len(ROW_VALUES)))
+    fill = np.empty((rows.size, len(ROW_VALUES)))
     fill[:, 0] = inl
     fill[:, 1] = np.log1p(inl)
     fill[:, 2] = np.log1p(np.where(missing, 0.0, pop))
     fill[:, 3] = missing
-    fill[:, 4] = np.log1p(np.asarray(index.doc_len[new], dtype=np.float64))
-    fill[:, 5] = [1.0 if e.qualifier_tokens else 0.0 for e in names]
-    fill[:, 6] = np.log1p(np.array([e.qualifier_count for e in names], dtype=np.float64))
+    fill[:, 4] = np.log1p(np.asarray(index.doc_len[rows], dtype=np.float64))
+    fill[:, 5] = qualified
+    fill[:, 6] = np.log1p(np.asarray(qualifier_count, dtype=np.float64))
     fill[:, 7] = 1.0
-    values_table(index)[new] = fill
+    values_table(index)[rows] = fill
 
 
 class NameTable:
@@ -93,18 +100,32 @@ class NameTable:
         return [i for i in map(get, tokens) if i is not None]
 
     def fill(self, index: Index, rows: np.ndarray) -> None:
-        """Add the rows among `rows` not in the table yet (call with `lock` held)."""
-        new = np.unique(rows[self.spans[rows, 0] == 0]).tolist()
-        if not new:
+        """Add the rows among `rows` not in the table yet, and their row values (call with
+        `lock` held).
+
+        The names are analyzed here, as `features.row_names` does, but not kept as strings:
+        a large index would hold millions of small tuples, which cost memory and slow every
+        run of the garbage collector.
+        """
+        new = np.unique(rows[self.spans[rows, 0] == 0])
+        if not new.size:
             return
-        ids = self.ids
+        quals = index.qualifiers.take(new)
+        texts = index.bases.take(new) + quals + [" ".join(a) for a in index.aliases.take(new)]
+        toks = index.analyzer.tokens_many(texts)
+        m, ids, counts = new.size, self.ids, qualifier_counts(index)
         parts: list[int] = []
-        spans = np.empty((len(new), len(SPANS)), dtype=np.int64)
-        for j, e in enumerate(row_names(index, new)):
+        spans = np.empty((m, len(SPANS)), dtype=np.int64)
+        qualified = []
+        for j in range(m):
             start = self.used + len(parts)
-            for toks in (e.base, e.qualifier_tokens, e.aliases):
-                parts.extend(ids.setdefault(t, len(ids)) for t in toks)
-            spans[j] = (1, start, len(e.base), len(e.qualifier_tokens), len(e.aliases))
+            lengths = []
+            for t in (toks[j], toks[m + j], toks[2 * m + j]):
+                distinct = dict.fromkeys(t)  # in order, as row_names keeps them
+                parts.extend(ids.setdefault(w, len(ids)) for w in distinct)
+                lengths.append(len(distinct))
+            spans[j] = (1, start, *lengths)
+            qualified.append(lengths[1] > 0)
         end = self.used + len(parts)
         if end > self.arena.size:  # grow by doubling; readers hold the lock, so none sees it
             grown = np.zeros(max(end, 2 * self.arena.size), dtype=np.int32)
@@ -113,6 +134,7 @@ class NameTable:
         self.arena[self.used : end] = parts
         self.used = end
         self.spans[new] = spans
+        _store_values(index, new, qualified, [counts.get(q, 0) if q else 0 for q in quals])
 
 
 def name_table(index: Index) -> NameTable:

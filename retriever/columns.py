@@ -174,6 +174,10 @@ class JsonListColumn(Sequence[list[str]]):
         for text in self._strings:
             yield self._decode(text)
 
+    def take(self, rows: np.ndarray) -> list[list[str]]:
+        """The lists of several rows at once (see StringColumn.take)."""
+        return [self._decode(t) for t in self._strings.take(rows)]
+
 
 def write_vocab(folder: Path, terms: Sequence[str]) -> None:
     """Write the vocabulary: term names by id, plus the lookup arrays `Vocab` searches.

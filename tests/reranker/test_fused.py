@@ -12,6 +12,8 @@ import dataclasses
 import gc
 import json
 import os
+import sys
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -222,15 +224,27 @@ def _fresh(demo_dir: Path) -> Index:
 
 
 @pytest.mark.usefixtures("demo_index")
-def test_names_are_analyzed_only_for_the_rows_asked_for(demo_dir: Path) -> None:
+@pytest.mark.parametrize("compiled", [True, False])
+def test_names_are_analyzed_only_for_the_rows_asked_for(
+    demo_dir: Path, compiled: bool, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    if compiled and FU._fused is None:
+        pytest.skip("reranker._fused is not built")
+    if not compiled:
+        monkeypatch.setattr(FU, "_fused", None)
     index = _fresh(demo_dir)
     clue = "This river town is known for its stone bridges"
     hits = index.search(clue, k=7)
     rows = sorted({h.row for h in hits})
     default_registry().matrix(candidate_set(index, clue, hits), default_registry().names)
     cache = F.index_cache(index)
-    assert [r for r, e in enumerate(cache["row_names"]) if e is not None] == rows
     assert np.flatnonzero(cache["row_values"][:, -1]).tolist() == rows
+    if compiled:  # the name table, not the strings, and only these rows
+        assert "row_names" not in cache
+        spans = RT.name_table(index).spans
+        assert np.flatnonzero(spans[:, 0]).tolist() == rows
+    else:
+        assert [r for r, e in enumerate(cache["row_names"]) if e is not None] == rows
     # Reference: the analyzer applied to the stored names of each row, one by one.
     analyze = index.analyzer.tokens
     for e, r in zip(F.row_names(index, rows), rows, strict=True):
@@ -241,6 +255,13 @@ def test_names_are_analyzed_only_for_the_rows_asked_for(demo_dir: Path) -> None:
         assert e.qualifier_count == sum(q == e.qualifier for q in index.qualifiers) * bool(
             e.qualifier
         )
+    if compiled:  # the name table holds the same tokens, as ids
+        table = RT.name_table(index)
+        token_of = {i: t for t, i in table.ids.items()}
+        for e, r in zip(F.row_names(index, rows), rows, strict=True):
+            _, start, nb, nq, na = table.spans[r].tolist()
+            ids = table.arena[start : start + nb + nq + na].tolist()
+            assert [token_of[i] for i in ids] == [*e.base, *e.qualifier_tokens, *e.aliases]
 
 
 @pytest.mark.usefixtures("demo_index")
@@ -249,7 +270,28 @@ def test_index_cache_goes_with_its_index(demo_dir: Path) -> None:
     key = id(index)
     clue = "This river town is known for its stone bridges"
     default_registry().matrix(candidate_set(index, clue, index.search(clue)), FU.FUSED_NAMES)
-    assert {"row_names", "row_values", "body_terms"} <= set(F._CACHES[key])
+    assert {"row_values", "body_terms"} <= set(F._CACHES[key])
     del index  # nothing cached may keep the index alive
     gc.collect()
     assert key not in F._CACHES
+
+
+@pytest.mark.usefixtures("demo_index")
+def test_threads_filling_the_tables_at_once_get_the_same_features(demo_dir: Path) -> None:
+    # Four threads, switching every few microseconds, featurize candidate sets of a fresh
+    # index at once, so rows are added to the tables (and the arena grows) while others read.
+    lines = (demo_dir / "questions_test.jsonl").read_text(encoding="utf-8").splitlines()
+    clues = [json.loads(line)["clue"] for line in lines[:80]]
+    reference = _fresh(demo_dir)
+    expected = [FU.fused_builtins(candidate_set(reference, c, reference.search(c))) for c in clues]
+    index = _fresh(demo_dir)
+    sets = [candidate_set(index, c, index.search(c)) for c in clues]
+    old = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)
+    try:
+        with ThreadPoolExecutor(4) as pool:
+            got = list(pool.map(FU.fused_builtins, sets))
+    finally:
+        sys.setswitchinterval(old)
+    for g, e in zip(got, expected, strict=True):
+        np.testing.assert_array_equal(g, e)
