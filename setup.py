@@ -1,6 +1,6 @@
 """Build the two compiled modules (metadata lives in pyproject.toml).
 
-retriever._kernels: BM25 search and term overlap. reranker._fused: the within-clue score
+retriever._kernels: BM25 search and term overlap. reranker._fused: the built-in candidate
 features. Both are optional: without a C compiler the install still succeeds and the code
 uses its numpy or plain-Python twins, which give the same results more slowly.
 `hunchwise index info` says which query path is in use.
