@@ -9,9 +9,10 @@ candidate set from the hits, (c) the feature matrix, (d) the model's probabiliti
 (e) the whole rank_clue call, which also builds the served candidates and the decision.
 
 The timing runs in a fresh process that opens the index and model from disk and freezes
-what it loaded out of the garbage collector's way, as a server does. Per-row name tokens are analyzed the first time a row is among the candidates, so the
-timed pass runs after one pass over the same clues (a server that has seen its rows); that
-first pass is reported as "rows first seen".
+what it loaded out of the garbage collector's way, as a server does. Per-row name tokens
+are analyzed the first time a row is among the candidates, so the timed pass runs after
+one pass over the same clues (a server that has seen its rows); that first pass is
+reported as "rows first seen".
 """
 
 from __future__ import annotations
