@@ -61,20 +61,22 @@ def _compiled(cs: CandidateSet) -> np.ndarray:
     out = np.empty((len(cs), len(FUSED_NAMES)))
     terms = body_terms(index, cs.tokens)
     fwd_indptr, fwd_terms = index.article_term_lists()
-    names = name_table(index)
-    values = values_table(index)
-    args = (cs.scores, cs.ranks, cs.rows, len(cs.words), values)
-    with names.lock:  # the arena may grow while rows are added (see rowtables.NameTable)
+    names, values = name_table(index), values_table(index)
+
+    def fill_out() -> bool:
         clue = names.clue_ids(cs.tokens)
-        ready = _fused.candidates(
-            out, *args, names.spans, names.arena, clue, fwd_indptr, fwd_terms, terms
-        )
-        if not ready:  # some rows are candidates for the first time
-            names.fill(index, cs.rows)
-            clue = names.clue_ids(cs.tokens)
+        return bool(
             _fused.candidates(
-                out, *args, names.spans, names.arena, clue, fwd_indptr, fwd_terms, terms
+                out, cs.scores, cs.ranks, cs.rows, len(cs.words), values, names.spans,
+                names.arena, clue, fwd_indptr, fwd_terms, terms,
             )
+        )  # fmt: skip
+
+    with names.lock:  # the arena may grow while rows are added (see rowtables.NameTable)
+        if not fill_out():  # some rows are candidates for the first time
+            names.fill(index, cs.rows)
+            if not fill_out():
+                raise RuntimeError("the feature tables were not filled; this is a bug")
     return out
 
 
