@@ -17,8 +17,9 @@ from . import metrics as M
 from .builtin import SCORE_ONLY
 from .decision import Payoff, simulate_commits
 from .examples import PrefixPlan, TrainingTable, build_table
+from .fitting import grouped_folds, oof_proba
 from .logs import LogReport, read_logs
-from .model import Reranker, grouped_folds, oof_proba
+from .model import Reranker
 from .report import summary_text, write_report
 from .train import prefix_tops, top_rows
 

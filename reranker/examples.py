@@ -6,16 +6,18 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from operator import attrgetter
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 from tqdm.auto import tqdm
 
 from retriever import Hit, Index
 
 from .features import CandidateSet, FeatureRegistry
 from .logs import LabelledClue
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 
 @dataclass(frozen=True)
@@ -155,6 +157,8 @@ class TrainingTable:
 
     def to_frame(self) -> pd.DataFrame:
         """The table as a pandas DataFrame (features plus bookkeeping columns)."""
+        import pandas as pd  # here, not at the top: serving never builds a table
+
         df = pd.DataFrame(self.X, columns=self.feature_names)
         for name in ("y", "group", "clue_id", "fraction", "score", "rank", "row"):
             df[f"_{name}"] = getattr(self, name)

@@ -6,7 +6,6 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from sklearn.metrics import accuracy_score, brier_score_loss, log_loss, roc_auc_score
 
 DEFAULT_KS = (1, 5, 10, 20)
 
@@ -73,6 +72,10 @@ def reliability_table(y_true: Any, prob: Any, n_bins: int = 10) -> list[dict[str
 
 def candidate_metrics(y_true: Any, prob: Any) -> dict[str, Any]:
     """Per-candidate accuracy (p >= 0.5 means 'right'), ROC-AUC, log-loss, Brier, ECE, n, rate."""
+    # Imported here, not at the top: serving imports this module (through train.py) but
+    # computes no metrics, and scikit-learn costs about 140 MB per worker.
+    from sklearn.metrics import accuracy_score, brier_score_loss, log_loss, roc_auc_score
+
     y, p = _labels_and_probs(y_true, prob)
     two_classes = 0 < y.sum() < len(y)
     return {
@@ -152,6 +155,8 @@ def clue_metrics(
     BM25 score. A clue with several rows labelled 1 counts as found at its best-ranked one
     (success@k), which equals recall@k when each clue has one answer.
     """
+    from sklearn.metrics import brier_score_loss
+
     y, p = _labels_and_probs(y_true, prob)
     g = _groups(groups, len(y))
     bm25 = _scores(bm25_score, len(y), "bm25_score")

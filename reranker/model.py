@@ -13,12 +13,6 @@ from typing import Any
 
 import numpy as np
 from scipy.special import expit
-from sklearn.isotonic import IsotonicRegression
-from sklearn.linear_model import LogisticRegression
-from sklearn.metrics import log_loss
-from sklearn.model_selection import GroupKFold
-from sklearn.pipeline import Pipeline, make_pipeline
-from sklearn.preprocessing import StandardScaler
 
 from .errors import ModelFormatError, TrainingError
 
@@ -26,107 +20,23 @@ FORMAT_NAME = "hunchwise-model"
 FORMAT_VERSION = 1
 DEFAULT_CS = (0.01, 0.1, 1.0, 10.0, 100.0)
 CALIBRATIONS = ("auto", "none", "platt", "isotonic")
-_EPS = 1e-6  # keep calibrated probabilities off 0 and 1 so log-loss stays finite
+EPS = 1e-6  # keep calibrated probabilities off 0 and 1 so log-loss stays finite
 
 
-def make_pipeline_for(C: float, max_iter: int = 5000) -> Pipeline:
-    """StandardScaler + LogisticRegression with every setting that matters spelled out."""
-    return make_pipeline(
-        StandardScaler(),
-        LogisticRegression(
-            C=C, solver="newton-cholesky", max_iter=max_iter, tol=1e-6, fit_intercept=True
-        ),
-    )
-
-
-def grouped_folds(
-    y: np.ndarray, groups: np.ndarray, n_folds: int
-) -> list[tuple[np.ndarray, np.ndarray]]:
-    """GroupKFold splits (folds by clue, never by row) whose training side has both labels."""
-    n_groups = np.unique(groups).size
-    if n_groups < 2:
-        raise TrainingError("cross-validation needs at least two clues")
-    splits = list(GroupKFold(n_splits=min(n_folds, n_groups)).split(np.zeros(len(y)), y, groups))
-    for train, _ in splits:
-        if np.unique(y[train]).size < 2:
-            raise TrainingError(
-                "a cross-validation fold has only one label; add more labelled clues"
-            )
-    return splits
-
-
-def positive_proba(pipe: Pipeline, X: np.ndarray) -> np.ndarray:
-    """Probability of label 1, found through classes_."""
-    col = int(np.flatnonzero(pipe.classes_ == 1)[0])
-    return np.asarray(pipe.predict_proba(X)[:, col])
-
-
-def oof_proba(
-    X: np.ndarray, y: np.ndarray, splits: list[tuple[np.ndarray, np.ndarray]], C: float
-) -> np.ndarray:
-    """Out-of-fold probabilities of label 1 for one C."""
-    out = np.zeros(len(y))
-    for train, test in splits:
-        pipe = make_pipeline_for(C).fit(X[train], y[train])
-        out[test] = positive_proba(pipe, X[test])
-    return out
-
-
-def _logit(p: np.ndarray) -> np.ndarray:
-    p = np.clip(p, _EPS, 1 - _EPS)
+def logit(p: np.ndarray) -> np.ndarray:
+    p = np.clip(p, EPS, 1 - EPS)
     return np.log(p / (1 - p))
-
-
-def fit_calibrator(method: str, p: np.ndarray, y: np.ndarray) -> dict[str, Any]:
-    """Fit a post-hoc calibrator on held-out probabilities; returns its plain-data form."""
-    if method == "platt":
-        lr = LogisticRegression(C=1e6, solver="newton-cholesky", max_iter=5000, tol=1e-8).fit(
-            _logit(p)[:, None], y
-        )
-        return {"method": "platt", "a": float(lr.coef_[0, 0]), "b": float(lr.intercept_[0])}
-    if method == "isotonic":
-        iso = IsotonicRegression(y_min=0.0, y_max=1.0, out_of_bounds="clip").fit(p, y)
-        return {
-            "method": "isotonic",
-            "x": iso.X_thresholds_.tolist(),
-            "y": iso.y_thresholds_.tolist(),
-        }
-    return {"method": "none"}
 
 
 def apply_calibrator(cal: dict[str, Any], p: np.ndarray) -> np.ndarray:
     """Apply a calibrator written by fit_calibrator (numpy only)."""
     method = cal.get("method", "none")
     if method == "platt":
-        z = cal["a"] * _logit(p) + cal["b"]
-        return np.clip(expit(z), _EPS, 1 - _EPS)
+        z = cal["a"] * logit(p) + cal["b"]
+        return np.clip(expit(z), EPS, 1 - EPS)
     if method == "isotonic":
-        return np.clip(np.interp(p, np.asarray(cal["x"]), np.asarray(cal["y"])), _EPS, 1 - _EPS)
+        return np.clip(np.interp(p, np.asarray(cal["x"]), np.asarray(cal["y"])), EPS, 1 - EPS)
     return p
-
-
-def cross_calibrate(
-    p: np.ndarray, y: np.ndarray, groups: np.ndarray, n_folds: int, methods: tuple[str, ...]
-) -> tuple[str, dict[str, float], np.ndarray]:
-    """Cross-fitted calibration of out-of-fold probabilities: (best method, log-losses, its output).
-
-    Each fold's probabilities are calibrated by a calibrator fitted on the other folds, so
-    the output is honest held-out evidence (used to tune the decision threshold).
-    """
-    splits = grouped_folds(y, groups, n_folds)
-    scores: dict[str, float] = {}
-    outputs: dict[str, np.ndarray] = {}
-    for method in methods:
-        if method == "none":
-            out = p
-        else:
-            out = np.zeros_like(p)
-            for train, test in splits:
-                out[test] = apply_calibrator(fit_calibrator(method, p[train], y[train]), p[test])
-        scores[method] = float(log_loss(y, out, labels=[0, 1]))
-        outputs[method] = out
-    best = min(scores, key=lambda m: (scores[m], m != "none"))
-    return best, scores, outputs[best]
 
 
 def _check_calibrator(cal: dict[str, Any], source: str) -> None:
@@ -186,6 +96,17 @@ class Reranker:
         self, X: np.ndarray, y: np.ndarray, groups: np.ndarray, feature_names: list[str]
     ) -> Reranker:
         """Choose C by grouped CV log-loss, fit on all rows, then choose and fit the calibrator."""
+        # Imported here, not at the top: serving loads models without scikit-learn.
+        from sklearn.metrics import log_loss
+
+        from .fitting import (
+            cross_calibrate,
+            fit_calibrator,
+            grouped_folds,
+            make_pipeline_for,
+            oof_proba,
+        )
+
         X, y = np.asarray(X, dtype=np.float64), np.asarray(y).astype(np.int64)
         if X.ndim != 2 or X.shape[1] != len(feature_names):
             raise ValueError(
@@ -209,8 +130,7 @@ class Reranker:
             raise TrainingError("no regularization strengths (Cs) to try")
         _, self.C_, raw_oof = best
         self.pipeline_ = make_pipeline_for(self.C_, self.max_iter).fit(X, y)
-        scaler: StandardScaler = self.pipeline_[0]
-        lr: LogisticRegression = self.pipeline_[-1]
+        scaler, lr = self.pipeline_[0], self.pipeline_[-1]
         sign = 1.0 if lr.classes_[1] == 1 else -1.0
         self.feature_names_ = list(feature_names)
         self.mean_ = scaler.mean_.astype(np.float64)
@@ -271,7 +191,7 @@ class Reranker:
                 xs = np.asarray(cal["x"], dtype=np.float64)
                 cached = self._isotonic_cache = (cal, xs, np.asarray(cal["y"], dtype=np.float64))
             p = np.interp(self.raw_probability(X), cached[1], cached[2])
-            return np.clip(p, _EPS, 1 - _EPS)
+            return np.clip(p, EPS, 1 - EPS)
         return apply_calibrator(cal, self.raw_probability(X))
 
     def predict_proba(self, X: np.ndarray) -> np.ndarray:

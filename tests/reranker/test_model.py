@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import pickle
+import subprocess
 import sys
 import warnings
 from pathlib import Path
@@ -30,9 +31,10 @@ from reranker import (
     save_model,
 )
 from reranker.examples import TrainingTable
-from reranker.model import apply_calibrator, fit_calibrator, grouped_folds
+from reranker.fitting import fit_calibrator, grouped_folds
+from reranker.model import apply_calibrator
 from reranker.train import TrainResult
-from tests.reranker.conftest import World
+from tests.reranker.conftest import REPO, World
 
 EPS = 1e-6  # the model keeps calibrated probabilities within [EPS, 1 - EPS]
 
@@ -277,6 +279,29 @@ def test_loading_never_imports_what_the_artifact_names(
     with pytest.raises(ModelMismatchError, match="user:f"):
         load_model(_write(tmp_path / "m.json", artifact))
     assert not sentinel.exists() and "sneaky_features" not in sys.modules
+
+
+def test_serving_a_model_imports_neither_scikit_learn_nor_pandas(
+    world: World, world_trained: TrainResult, world_model_path: Path
+) -> None:
+    # "Loading needs only numpy": a fresh process imports the service, loads the model and
+    # ranks a clue, and scikit-learn and pandas (which fitting and reports use) stay unloaded.
+    script = (
+        "import sys\n"
+        "import api.app\n"
+        "from reranker import load_model, rank_clue\n"
+        "from retriever import load_index\n"
+        f"index = load_index({str(world.index.path)!r})\n"
+        f"model = load_model({str(world_model_path)!r}, index=index)\n"
+        "ranking = rank_clue(index, model, 'stone bridge over the river', k=5)\n"
+        "assert ranking.candidates, 'no candidates'\n"
+        "print(sorted(m for m in ('sklearn', 'pandas', 'matplotlib') if m in sys.modules))\n"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", script], capture_output=True, text=True, check=False, cwd=REPO
+    )
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == "[]"
 
 
 def test_missing_features_give_model_mismatch(
