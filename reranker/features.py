@@ -127,14 +127,8 @@ def row_names(index: Index, rows: Sequence[int]) -> list[RowNames]:
 
 
 def _analyze_rows(index: Index, table: list[RowNames | None], rows: list[int]) -> None:
-    quals = [index.qualifiers[r] for r in rows]
-    texts = [index.bases[r] for r in rows] + quals + [" ".join(index.aliases[r]) for r in rows]
-    toks = [tuple(dict.fromkeys(t)) for t in index.analyzer.tokens_many(texts)]
     counts = qualifier_counts(index)
-    m = len(rows)
-    for j, r in enumerate(rows):
-        base, qual, alias = toks[j], toks[m + j], toks[2 * m + j]
-        q = quals[j]
+    for r, (q, base, qual, alias) in zip(rows, analyze_names(index, rows), strict=True):
         table[r] = RowNames(
             q,
             base,
@@ -143,6 +137,21 @@ def _analyze_rows(index: Index, table: list[RowNames | None], rows: list[int]) -
             counts.get(q, 0) if q else 0,
             tuple(dict.fromkeys(base + qual + alias)),
         )
+
+
+NameTokens = tuple[str, tuple[str, ...], tuple[str, ...], tuple[str, ...]]
+
+
+def analyze_names(index: Index, rows: Sequence[int] | np.ndarray) -> list[NameTokens]:
+    """Per row: (qualifier, base-name tokens, qualifier tokens, alias tokens), each token
+    tuple distinct and in order. All the rows' names go through the analyzer in one call."""
+    picked = np.asarray(rows, dtype=np.int64)
+    quals = index.qualifiers.take(picked)
+    texts = index.bases.take(picked) + quals
+    texts += [" ".join(a) for a in index.aliases.take(picked)]
+    toks = [tuple(dict.fromkeys(t)) for t in index.analyzer.tokens_many(texts)]
+    m = len(quals)
+    return [(quals[j], toks[j], toks[m + j], toks[2 * m + j]) for j in range(m)]
 
 
 def qualifier_counts(index: Index) -> dict[str, int]:

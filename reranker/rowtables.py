@@ -20,7 +20,7 @@ import numpy as np
 
 from retriever import Index
 
-from .features import index_cache, qualifier_counts, row_names
+from .features import analyze_names, index_cache, qualifier_counts, row_names
 
 # Columns of the row-values table; the last is 1 once the row is filled.
 ROW_VALUES = (
@@ -103,29 +103,24 @@ class NameTable:
         """Add the rows among `rows` not in the table yet, and their row values (call with
         `lock` held).
 
-        The names are analyzed here, as `features.row_names` does, but not kept as strings:
+        The names are analyzed as for `features.row_names`, but not kept as strings:
         a large index would hold millions of small tuples, which cost memory and slow every
         run of the garbage collector.
         """
         new = np.unique(rows[self.spans[rows, 0] == 0])
         if not new.size:
             return
-        quals = index.qualifiers.take(new)
-        texts = index.bases.take(new) + quals + [" ".join(a) for a in index.aliases.take(new)]
-        toks = index.analyzer.tokens_many(texts)
-        m, ids, counts = new.size, self.ids, qualifier_counts(index)
+        ids, counts = self.ids, qualifier_counts(index)
         parts: list[int] = []
-        spans = np.empty((m, len(SPANS)), dtype=np.int64)
-        qualified = []
-        for j in range(m):
+        spans = np.empty((new.size, len(SPANS)), dtype=np.int64)
+        qualified, qualifier_count = [], []
+        for j, (q, *tokens) in enumerate(analyze_names(index, new)):
             start = self.used + len(parts)
-            lengths = []
-            for t in (toks[j], toks[m + j], toks[2 * m + j]):
-                distinct = dict.fromkeys(t)  # in order, as row_names keeps them
-                parts.extend(ids.setdefault(w, len(ids)) for w in distinct)
-                lengths.append(len(distinct))
-            spans[j] = (1, start, *lengths)
-            qualified.append(lengths[1] > 0)
+            for toks in tokens:  # base name, qualifier, aliases
+                parts.extend(ids.setdefault(t, len(ids)) for t in toks)
+            spans[j] = (1, start, *map(len, tokens))
+            qualified.append(bool(tokens[1]))
+            qualifier_count.append(counts.get(q, 0) if q else 0)
         end = self.used + len(parts)
         if end > self.arena.size:  # grow by doubling; readers hold the lock, so none sees it
             grown = np.zeros(max(end, 2 * self.arena.size), dtype=np.int32)
@@ -134,7 +129,7 @@ class NameTable:
         self.arena[self.used : end] = parts
         self.used = end
         self.spans[new] = spans
-        _store_values(index, new, qualified, [counts.get(q, 0) if q else 0 for q in quals])
+        _store_values(index, new, qualified, qualifier_count)
 
 
 def name_table(index: Index) -> NameTable:
