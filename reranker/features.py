@@ -127,31 +127,28 @@ def row_names(index: Index, rows: Sequence[int]) -> list[RowNames]:
 
 
 def _analyze_rows(index: Index, table: list[RowNames | None], rows: list[int]) -> None:
-    counts = qualifier_counts(index)
-    for r, (q, base, qual, alias) in zip(rows, analyze_names(index, rows), strict=True):
-        table[r] = RowNames(
-            q,
-            base,
-            qual,
-            alias,
-            counts.get(q, 0) if q else 0,
-            tuple(dict.fromkeys(base + qual + alias)),
-        )
+    for r, (q, count, base, qual, alias) in zip(rows, analyze_names(index, rows), strict=True):
+        table[r] = RowNames(q, base, qual, alias, count, tuple(dict.fromkeys(base + qual + alias)))
 
 
-NameTokens = tuple[str, tuple[str, ...], tuple[str, ...], tuple[str, ...]]
+# (qualifier, titles sharing it or 0, base-name tokens, qualifier tokens, alias tokens)
+NameTokens = tuple[str, int, tuple[str, ...], tuple[str, ...], tuple[str, ...]]
 
 
 def analyze_names(index: Index, rows: Sequence[int] | np.ndarray) -> list[NameTokens]:
-    """Per row: (qualifier, base-name tokens, qualifier tokens, alias tokens), each token
-    tuple distinct and in order. All the rows' names go through the analyzer in one call."""
+    """Per row: its qualifier, how many titles carry that qualifier (0 when unqualified), and
+    its base-name, qualifier and alias tokens, each tuple distinct and in order. All the
+    rows' names go through the analyzer in one call."""
     picked = np.asarray(rows, dtype=np.int64)
     quals = index.qualifiers.take(picked)
     texts = index.bases.take(picked) + quals
     texts += [" ".join(a) for a in index.aliases.take(picked)]
     toks = [tuple(dict.fromkeys(t)) for t in index.analyzer.tokens_many(texts)]
-    m = len(quals)
-    return [(quals[j], toks[j], toks[m + j], toks[2 * m + j]) for j in range(m)]
+    counts, m = qualifier_counts(index), len(quals)
+    return [
+        (q, counts.get(q, 0) if q else 0, toks[j], toks[m + j], toks[2 * m + j])
+        for j, q in enumerate(quals)
+    ]
 
 
 def qualifier_counts(index: Index) -> dict[str, int]:

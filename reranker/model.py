@@ -20,11 +20,12 @@ FORMAT_NAME = "hunchwise-model"
 FORMAT_VERSION = 1
 DEFAULT_CS = (0.01, 0.1, 1.0, 10.0, 100.0)
 CALIBRATIONS = ("auto", "none", "platt", "isotonic")
-EPS = 1e-6  # keep calibrated probabilities off 0 and 1 so log-loss stays finite
+_EPS = 1e-6  # keep calibrated probabilities off 0 and 1 so log-loss stays finite
 
 
 def logit(p: np.ndarray) -> np.ndarray:
-    p = np.clip(p, EPS, 1 - EPS)
+    """log(p / (1 - p)), with p kept a little off 0 and 1."""
+    p = np.clip(p, _EPS, 1 - _EPS)
     return np.log(p / (1 - p))
 
 
@@ -33,9 +34,9 @@ def apply_calibrator(cal: dict[str, Any], p: np.ndarray) -> np.ndarray:
     method = cal.get("method", "none")
     if method == "platt":
         z = cal["a"] * logit(p) + cal["b"]
-        return np.clip(expit(z), EPS, 1 - EPS)
+        return np.clip(expit(z), _EPS, 1 - _EPS)
     if method == "isotonic":
-        return np.clip(np.interp(p, np.asarray(cal["x"]), np.asarray(cal["y"])), EPS, 1 - EPS)
+        return np.clip(np.interp(p, np.asarray(cal["x"]), np.asarray(cal["y"])), _EPS, 1 - _EPS)
     return p
 
 
@@ -191,7 +192,7 @@ class Reranker:
                 xs = np.asarray(cal["x"], dtype=np.float64)
                 cached = self._isotonic_cache = (cal, xs, np.asarray(cal["y"], dtype=np.float64))
             p = np.interp(self.raw_probability(X), cached[1], cached[2])
-            return np.clip(p, EPS, 1 - EPS)
+            return np.clip(p, _EPS, 1 - _EPS)
         return apply_calibrator(cal, self.raw_probability(X))
 
     def predict_proba(self, X: np.ndarray) -> np.ndarray:

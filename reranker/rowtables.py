@@ -20,7 +20,7 @@ import numpy as np
 
 from retriever import Index
 
-from .features import analyze_names, index_cache, qualifier_counts, row_names
+from .features import analyze_names, index_cache, row_names
 
 # Columns of the row-values table; the last is 1 once the row is filled.
 ROW_VALUES = (
@@ -110,17 +110,17 @@ class NameTable:
         new = np.unique(rows[self.spans[rows, 0] == 0])
         if not new.size:
             return
-        ids, counts = self.ids, qualifier_counts(index)
+        ids = self.ids
         parts: list[int] = []
         spans = np.empty((new.size, len(SPANS)), dtype=np.int64)
         qualified, qualifier_count = [], []
-        for j, (q, *tokens) in enumerate(analyze_names(index, new)):
+        for j, (_, count, *tokens) in enumerate(analyze_names(index, new)):
             start = self.used + len(parts)
             for toks in tokens:  # base name, qualifier, aliases
                 parts.extend(ids.setdefault(t, len(ids)) for t in toks)
             spans[j] = (1, start, *map(len, tokens))
             qualified.append(bool(tokens[1]))
-            qualifier_count.append(counts.get(q, 0) if q else 0)
+            qualifier_count.append(count)
         end = self.used + len(parts)
         if end > self.arena.size:  # grow by doubling; readers hold the lock, so none sees it
             grown = np.zeros(max(end, 2 * self.arena.size), dtype=np.int32)
