@@ -37,7 +37,11 @@ def _common(p: argparse.ArgumentParser) -> None:
         help="labelled log (clue + answer lines) or served log with feedback; repeat for several",
     )
     p.add_argument(
-        "-k", type=int, default=None, help="candidates per clue (default 20; evaluate: the model's)"
+        "-k",
+        type=int,
+        default=None,
+        help="candidates per clue (train: default 20, kept in the model; "
+        "evaluate: only the model's)",
     )
     p.add_argument(
         "--feature",

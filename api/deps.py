@@ -111,15 +111,26 @@ def check_clue(clue: str, settings: ServiceSettings, loc: Sequence[str | int]) -
         )
 
 
-def check_k(k: int | None, settings: ServiceSettings) -> int:
-    """The k to use: the request's, bounded by max_k, or the server default."""
+def check_k(k: int | None, settings: ServiceSettings, model_k: int | None = None) -> int:
+    """The k to use: the request's, bounded by max_k and the model's k, or the server default.
+
+    With a model, probabilities are computed over the model's k candidates (the sets it
+    was trained on), so a request may ask for at most that many; the default is capped there.
+    """
+    limit = settings.max_k if model_k is None else min(settings.max_k, model_k)
     if k is None:
-        return settings.default_k
-    if k > settings.max_k:
+        return min(settings.default_k, limit)
+    if k > limit:
+        why = (
+            f": the model's k ({model_k}) is how many candidates its probabilities are "
+            "computed over"
+            if model_k is not None and model_k < settings.max_k
+            else ""
+        )
         raise field_error(
             ("body", "k"),
-            f"Input should be less than or equal to {settings.max_k}",
+            f"Input should be less than or equal to {limit}{why}",
             "less_than_equal",
-            le=settings.max_k,
+            le=limit,
         )
     return k

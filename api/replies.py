@@ -67,6 +67,7 @@ def served_record(
         "time": when,
         "clue": r.clue,
         "k": k,
+        "model_k": r.model_k,
         "complete": complete,
         "index_version": r.index_version,
         "model_version": r.model_version,

@@ -13,7 +13,7 @@ from typing import Any, Literal
 
 from fastapi import APIRouter, HTTPException, Request, Response
 
-from reranker import Payoff, Ranking, rank_clue, rank_clues
+from reranker import Payoff, Ranking, model_k, rank_clue, rank_clues
 
 from . import schemas as s
 from .deps import (
@@ -42,6 +42,10 @@ def _ranked_by(loaded: Loaded) -> Literal["probability", "bm25"]:
     return "bm25" if loaded.model is None else "probability"
 
 
+def _model_k(loaded: Loaded) -> int | None:
+    return None if loaded.model is None else model_k(loaded.model)
+
+
 def _record(runtime: Runtime, rankings: list[Ranking]) -> None:
     runtime.metrics.clues.labels(
         "bm25" if rankings[0].model_version is None else "probability"
@@ -55,8 +59,9 @@ def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Res
     """Candidates for one clue, sorted by calibrated probability, and what to do now."""
     started = time.perf_counter()
     check_clue(body.clue, settings, ("body", "clue"))
-    k = check_k(body.k, settings)
     loaded = runtime.serving.current
+    set_k = _model_k(loaded)
+    k = check_k(body.k, settings, set_k)
     r = rank_clue(
         loaded.index,
         loaded.model,
@@ -79,6 +84,7 @@ def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Res
     reply = s.RankResponse(
         **dict(res),
         k=k,
+        model_k=set_k,
         complete=body.complete,
         ranked_by=_ranked_by(loaded),
         note=NO_MODEL_NOTE if loaded.model is None else None,
@@ -102,8 +108,9 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
         )
     for i, clue in enumerate(body.clues):
         check_clue(clue, settings, ("body", "clues", i))
-    k = check_k(body.k, settings)
     loaded = runtime.serving.current
+    set_k = _model_k(loaded)
+    k = check_k(body.k, settings, set_k)
     rankings = rank_clues(
         loaded.index,
         loaded.model,
@@ -131,6 +138,7 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
     reply = s.BatchRankResponse(
         results=results,
         k=k,
+        model_k=set_k,
         complete=body.complete,
         ranked_by=_ranked_by(loaded),
         note=NO_MODEL_NOTE if loaded.model is None else None,
@@ -215,6 +223,7 @@ def info(runtime: RuntimeDep, settings: SettingsDep) -> s.InfoOut:
         limits=s.LimitsOut(
             default_k=settings.default_k,
             max_k=settings.max_k,
+            model_k=_model_k(loaded),
             max_clue_chars=settings.max_clue_chars,
             max_batch=settings.max_batch,
             max_body_bytes=settings.max_body_bytes,

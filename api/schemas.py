@@ -63,7 +63,12 @@ class PayoffIn(_Strict):
 
 
 class _RankOptions(_Strict):
-    k: int | None = Field(default=None, ge=1, description="candidates to return (server default)")
+    k: int | None = Field(
+        default=None,
+        ge=1,
+        description="candidates to return (server default); with a model, at most the model's "
+        "k: probabilities are always computed over the model's k candidates, k only cuts the reply",
+    )
     include_features: bool = Field(default=False, description="add each candidate's features")
     payoff: PayoffIn | None = Field(default=None, description="overrides the model's threshold")
     complete: bool = Field(
@@ -129,7 +134,11 @@ class RankResult(BaseModel):
 class RankResponse(RankResult):
     """Reply to POST /v1/rank."""
 
-    k: int
+    k: int = Field(description="candidates asked for (at most this many are returned)")
+    model_k: int | None = Field(
+        description="candidates the probabilities were computed over (the model's k); "
+        "null without a model"
+    )
     complete: bool
     ranked_by: Literal["probability", "bm25"]
     note: str | None = Field(default=None, description="set when no model is loaded")
@@ -142,7 +151,11 @@ class BatchRankResponse(BaseModel):
     """Reply to POST /v1/rank/batch: one result per clue, in order."""
 
     results: list[RankResult]
-    k: int
+    k: int = Field(description="candidates asked for (at most this many are returned)")
+    model_k: int | None = Field(
+        description="candidates the probabilities were computed over (the model's k); "
+        "null without a model"
+    )
     complete: bool
     ranked_by: Literal["probability", "bm25"]
     note: str | None = None
@@ -210,8 +223,12 @@ class ChangeOut(BaseModel):
 class LimitsOut(BaseModel):
     """Bounds on requests."""
 
-    default_k: int
-    max_k: int
+    default_k: int = Field(description="k when a request gives none (capped at model_k)")
+    max_k: int = Field(description="largest k a request may ask for (with a model: and model_k)")
+    model_k: int | None = Field(
+        description="the model's k: candidates its probabilities are computed over; "
+        "null without a model"
+    )
     max_clue_chars: int
     max_batch: int
     max_body_bytes: int

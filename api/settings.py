@@ -38,7 +38,11 @@ class ServiceSettings(BaseSettings):
         description="key that signs request ids; set it so feedback survives restarts",
     )
 
-    default_k: int = Field(default=20, ge=1, description="candidates returned when k is omitted")
+    default_k: int = Field(
+        default=20,
+        ge=1,
+        description="candidates returned when k is omitted (capped at the model's k)",
+    )
     max_k: int = Field(default=100, ge=1, description="largest k a request may ask for")
     max_clue_chars: int = Field(default=2000, ge=1, description="longest clue, in characters")
     max_batch: int = Field(default=256, ge=1, description="most clues in one batch request")

@@ -16,7 +16,7 @@ from .examples import PrefixPlan, TrainingTable, build_table
 from .features import CandidateSet, Feature, FeatureRegistry
 from .logs import LabelledClue, read_logs
 from .model import Reranker, read_model, save_model
-from .pipeline import Ranking, ScoredCandidate, load_model, rank_clue, rank_clues
+from .pipeline import Ranking, ScoredCandidate, load_model, model_k, rank_clue, rank_clues
 from .train import TrainResult, train
 
 __all__ = [
@@ -42,6 +42,7 @@ __all__ = [
     "decide",
     "default_registry",
     "load_model",
+    "model_k",
     "rank_clue",
     "rank_clues",
     "read_logs",

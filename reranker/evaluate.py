@@ -20,6 +20,7 @@ from .examples import PrefixPlan, TrainingTable, build_table
 from .fitting import grouped_folds, oof_proba
 from .logs import LogReport, read_logs
 from .model import Reranker
+from .pipeline import model_k
 from .report import summary_text, write_report
 from .train import prefix_tops, top_rows
 
@@ -135,10 +136,22 @@ def evaluate(
     skip_bad: bool = False,
     progress: bool = False,
 ) -> Evaluation:
-    """Score a trained model on held-out logs and write the report folder."""
+    """Score a trained model on held-out logs and write the report folder.
+
+    The model is scored on candidate sets of its own k, the only ones its probabilities hold
+    for; a different k is refused (ValueError) before anything is read or written.
+    """
     art = model.artifact_
     training = art.get("training", {})
-    k = k or int(training.get("k", 20))
+    own_k = model_k(model)
+    if k is not None and k != own_k:
+        raise ValueError(
+            f"-k {k} does not match the model's k ({own_k}): its features compare each "
+            f"candidate with its rivals among the top {own_k}, as in training, so it is "
+            f"evaluated on sets of that size; leave -k out, or retrain with "
+            f"'hunchwise train -k {k}' to evaluate at {k}"
+        )
+    k = own_k
     if plan is None:
         pp = training.get("prefix_plan") or {}
         plan = PrefixPlan(tuple(pp.get("fractions", PrefixPlan().fractions)), pp.get("every_words"))

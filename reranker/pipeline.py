@@ -14,10 +14,12 @@ from retriever import Hit, Index
 
 from .builtin import default_registry
 from .decision import Decision, Payoff, decide
-from .errors import ModelMismatchError
+from .errors import ModelFormatError, ModelMismatchError
 from .examples import MetadataColumns, candidate_set
 from .features import FEATURE_SET_VERSION, FeatureRegistry, qualifier_counts
 from .model import Reranker, read_model
+
+DEFAULT_K = 20  # candidates per clue when neither the caller nor a model says otherwise
 
 
 @dataclass(frozen=True)
@@ -43,6 +45,43 @@ class Ranking:
     model_version: str | None
     index_version: str
     n_tokens: int
+    k: int  # candidates asked for (the reply holds at most this many)
+    model_k: int | None  # candidates the features were computed over; None without a model
+
+
+def model_k(model: Reranker) -> int:
+    """How many BM25 candidates per clue the model was trained on (its features' rival set)."""
+    artifact = getattr(model, "artifact_", None) or {}
+    k = (artifact.get("training") or {}).get("k", DEFAULT_K)
+    if not isinstance(k, int) or isinstance(k, bool) or k < 1:
+        raise ModelFormatError(
+            f"model {model.version}: training.k must be a positive integer, got {k!r}; retrain it"
+        )
+    return k
+
+
+def _ks(model: Reranker | None, k: int | None) -> tuple[int, int]:
+    """(candidates to return, candidates to search and featurize) for a requested k.
+
+    The rival-relative features (softmax, z-score, gaps, ratios to the best) describe a
+    candidate among the others of its set, and the model learned them on sets of exactly
+    its own k; a reply cut from a larger or smaller set would get other probabilities. So
+    with a model the set is always the model's k, and k only cuts the reply.
+    """
+    if model is None:
+        want = DEFAULT_K if k is None else k
+        if want < 1:
+            raise ValueError(f"k={want}: must be at least 1")
+        return want, want
+    depth = model_k(model)
+    want = depth if k is None else k
+    if not 1 <= want <= depth:
+        raise ValueError(
+            f"k={want} is not in 1..{depth}: the model's k={depth} is how many BM25 candidates "
+            f"its probabilities are computed over (as in training); ask for at most {depth}, "
+            "or retrain with a larger 'hunchwise train -k'"
+        )
+    return want, depth
 
 
 def load_model(
@@ -79,6 +118,7 @@ def load_model(
     if model.feature_names_ != code_names + meta.names:
         raise ModelMismatchError(f"{path}: metadata columns must come after the computed features")
     model.bind(reg, code_names, meta, (data.get("decision") or {}).get("threshold", 0.5))
+    model_k(model)  # a damaged training.k fails here, not at the first request
     if index is not None:
         # One pass over the qualifiers before serving; titles are analyzed per row when first
         # seen among the candidates, so a large index costs nothing more here.
@@ -113,6 +153,8 @@ def _rank_hits(
     words: list[str],
     hits: list[Hit],
     *,
+    keep: int,
+    set_k: int | None,
     payoff: Payoff | None,
     complete: bool,
     include_features: bool,
@@ -130,8 +172,10 @@ def _rank_hits(
         order = np.argsort(-p, kind="stable").tolist()
     else:
         order = list(range(len(hits)))
+    # Features and probabilities are over the whole set; only the reply is cut to k.
+    order = order[:keep]
     qualifiers = cs.qualifiers
-    values = x.tolist() if include_features else None
+    values = x[order].tolist() if include_features else None
     cands = [
         ScoredCandidate(
             hits[i].doc_id,
@@ -140,9 +184,9 @@ def _rank_hits(
             float(hits[i].score),
             hits[i].rank,
             None if probs is None else probs[i],
-            dict(zip(names, values[i], strict=True)) if values is not None else {},
+            dict(zip(names, values[j], strict=True)) if values is not None else {},
         )
-        for i in order
+        for j, i in enumerate(order)
     ]
     if payoff is not None:
         threshold = payoff.break_even
@@ -159,6 +203,8 @@ def _rank_hits(
         model_version=None if model is None else model.version,
         index_version=index.version,
         n_tokens=len(cs.tokens),
+        k=keep,
+        model_k=set_k,
     )
 
 
@@ -167,14 +213,20 @@ def rank_clue(
     model: Reranker | None,
     clue: str,
     *,
-    k: int = 20,
+    k: int | None = None,
     payoff: Payoff | None = None,
     complete: bool = False,
     include_features: bool = False,
     metadata: dict[str, Any] | None = None,
     registry: FeatureRegistry | None = None,
 ) -> Ranking:
-    """Rank one clue's candidates by calibrated probability (by BM25 when there is no model)."""
+    """Rank one clue's candidates by calibrated probability (by BM25 when there is no model).
+
+    With a model, the probabilities are computed over the model's own k candidates (what it
+    was trained on) and the reply is the best `k` of them; k defaults to the model's and
+    may not exceed it (ValueError). Without a model, k BM25 candidates (default 20).
+    """
+    keep, depth = _ks(model, k)
     # Analyzed once, for the search and the features (words: the clue-length features).
     analyzer = index.analyzer
     tokens, words = analyzer.tokens(clue), analyzer.words(clue)
@@ -184,7 +236,9 @@ def rank_clue(
         clue,
         tokens,
         words,
-        index.search_tokens(tokens, k),
+        index.search_tokens(tokens, depth),
+        keep=keep,
+        set_k=None if model is None else depth,
         payoff=payoff,
         complete=complete,
         include_features=include_features,
@@ -198,16 +252,17 @@ def rank_clues(
     model: Reranker | None,
     clues: Sequence[str],
     *,
-    k: int = 20,
+    k: int | None = None,
     payoff: Payoff | None = None,
     complete: bool = False,
     include_features: bool = False,
     registry: FeatureRegistry | None = None,
 ) -> list[Ranking]:
     """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many)."""
+    keep, depth = _ks(model, k)
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]
-    hits_all = index.search_token_lists([t for t, _ in analyzed], k)
+    hits_all = index.search_token_lists([t for t, _ in analyzed], depth)
     return [
         _rank_hits(
             index,
@@ -216,6 +271,8 @@ def rank_clues(
             t,
             w,
             hits,
+            keep=keep,
+            set_k=None if model is None else depth,
             payoff=payoff,
             complete=complete,
             include_features=include_features,

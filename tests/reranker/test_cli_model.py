@@ -113,3 +113,17 @@ def test_bad_options_and_missing_files(world: World, tmp_path: Path) -> None:
     )  # fmt: skip
     assert out.returncode != 0 and "not valid JSON" in out.stderr
     assert out.stderr.count("\n") == 1
+    # evaluate scores the model on the candidate sets it was trained on: its own k
+    model = tmp_path / "m20.json"
+    ok = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log, "--out", model,
+        "--features", "bm25_score,score_softmax",
+    )  # fmt: skip
+    assert ok.returncode == 0, ok.stderr
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", world.test_log,
+        "--model", model, "--report", tmp_path / "rep", "-k", "5", "--no-ablation",
+    )  # fmt: skip
+    assert out.returncode != 0 and out.stderr.count("\n") == 1
+    assert "-k 5" in out.stderr and "model's k (20)" in out.stderr
+    assert not (tmp_path / "rep").exists()

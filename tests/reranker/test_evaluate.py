@@ -135,3 +135,18 @@ def test_evaluate_a_model_without_the_bm25_score_feature(world: World, tmp_path:
     ev = evaluate(world.index, res.model, [world.test_log], tmp_path / "rep", n_folds=3)
     assert ev.ablation[0]["kind"] == "baseline"
     assert ev.metrics["candidate"]["bm25_only"]["n"] == ev.metrics["candidate"]["model"]["n"]
+
+
+def test_evaluate_refuses_a_k_other_than_the_models(
+    world: World, world_trained: TrainResult, world_model_path: Path, tmp_path: Path
+) -> None:
+    model_k = world_trained.artifact["training"]["k"]
+    model = load_model(world_model_path, index=world.index)
+    for bad in (model_k - 5, model_k + 1):
+        with pytest.raises(ValueError, match=rf"-k {bad}\b.*model's k \({model_k}\)"):
+            evaluate(world.index, model, [world.test_log], tmp_path / "rep", k=bad)
+        assert not (tmp_path / "rep").exists()
+    ev = evaluate(
+        world.index, model, [world.test_log], tmp_path / "rep", k=model_k, run_ablation=False
+    )
+    assert ev.metrics["data"]["k"] == model_k

@@ -98,3 +98,64 @@ def test_clue_with_no_known_words(world: World, model: Reranker) -> None:
     r = rank_clue(world.index, model, "zzzz qqqq")
     assert r.candidates == [] and r.n_tokens == 2
     assert r.decision.action == "wait" and "no candidates" in r.decision.reason
+
+
+# -- the requested k only cuts the reply: features are always over the model's k ---------------
+def test_probabilities_and_decisions_do_not_depend_on_the_requested_k(
+    world: World, model: Reranker, world_trained: TrainResult, clues: list[str]
+) -> None:
+    model_k = world_trained.artifact["training"]["k"]
+    checked = 0
+    for clue in clues[:12]:
+        full = rank_clue(world.index, model, clue, k=model_k)
+        assert len(full.candidates) == model_k  # the world matches every clue widely
+        for k in range(1, model_k + 1):
+            r = rank_clue(world.index, model, clue, k=k)
+            # the reply is the model-k reply cut to k: same ids, same probabilities, same order
+            assert r.candidates == full.candidates[:k], (clue, k)
+            assert r.decision == full.decision, (clue, k)
+            checked += 1
+    assert checked == 12 * model_k
+
+
+def test_rank_clues_at_any_k_is_the_model_k_reply_cut(
+    world: World, model: Reranker, world_trained: TrainResult, clues: list[str]
+) -> None:
+    model_k = world_trained.artifact["training"]["k"]
+    full = rank_clues(world.index, model, clues[:6], k=model_k, include_features=True)
+    for k in (1, 2, 3, 7, model_k - 1):
+        cut = rank_clues(world.index, model, clues[:6], k=k, include_features=True)
+        for a, b in zip(cut, full, strict=True):
+            assert a.candidates == b.candidates[:k] and a.decision == b.decision
+
+
+def test_a_k_above_the_models_is_refused_and_none_means_the_models(
+    world: World, model: Reranker, world_trained: TrainResult, clues: list[str]
+) -> None:
+    model_k = world_trained.artifact["training"]["k"]
+    for bad in (model_k + 1, 0):
+        with pytest.raises(ValueError, match=rf"k={bad}\b.*model's k={model_k}\b"):
+            rank_clue(world.index, model, clues[0], k=bad)
+        with pytest.raises(ValueError, match=rf"k={bad}\b.*model's k={model_k}\b"):
+            rank_clues(world.index, model, clues[:2], k=bad)
+    r = rank_clue(world.index, model, clues[0])
+    assert len(r.candidates) == model_k
+    assert (r.k, r.model_k) == (model_k, model_k)
+    assert rank_clue(world.index, model, clues[0], k=3).k == 3
+    # without a model there is no model k: k is just how many BM25 candidates to return
+    plain = rank_clue(world.index, None, clues[0], k=model_k + 5)
+    assert len(plain.candidates) == model_k + 5 and plain.model_k is None
+
+
+def test_a_model_with_a_damaged_k_is_refused_at_load(
+    world: World, world_trained: TrainResult, world_model_path: Path, tmp_path: Path
+) -> None:
+    from reranker import ModelFormatError
+
+    data = json.loads(world_model_path.read_text())
+    for bad in (0, "20", 2.5, True):
+        data["training"]["k"] = bad
+        path = tmp_path / "model.json"
+        path.write_text(json.dumps(data))
+        with pytest.raises(ModelFormatError, match=r"training\.k must be a positive integer"):
+            load_model(path, index=world.index)
