@@ -119,3 +119,15 @@ def test_damaged_index_is_reported_by_main(
     assert main(["search", str(out), "reed"]) != 0
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "body_docs.npy is missing" in err[0]
+
+
+def test_short_csv_row_via_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    corpus = tmp_path / "short.csv"
+    corpus.write_text("id,title,text,links\na1,Alpha,river song,Beta\na2,Beta\n")
+    out = tmp_path / "idx"
+    assert main(["index", "build", str(corpus), "--out", str(out)]) != 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"{corpus}, line 3: " in err[0] and "'text', 'links'" in err[0]
+    assert main(["index", "build", str(corpus), "--out", str(out), "--skip-bad"]) == 0
+    text = capsys.readouterr().out
+    assert "skipped 1 bad lines" in text and "line 3: " in text and "'text'" in text
