@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from retriever import Index, ReadReport
 
-from .console import format_table, human_bytes, print_json
+from .console import check_k, format_table, human_bytes, print_json
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -214,8 +214,9 @@ def cmd_search(args: argparse.Namespace) -> int:
     """Print BM25 candidates for one clue."""
     from retriever import load_index
 
-    if args.k < 1:
-        raise ValueError("-k must be at least 1")
+    check_k(args.k)
+    if not args.clue.strip():
+        raise ValueError("the clue is empty; give the words to search for (quote them)")
     idx = load_index(args.index)
     hits = idx.search(args.clue, k=args.k)
     if args.json:
@@ -224,7 +225,7 @@ def cmd_search(args: argparse.Namespace) -> int:
         )
         return 0
     if not hits:
-        print("no candidates: none of the clue's words is in the index")
+        print(f"no candidates: {_why_nothing(idx, args.clue)}")
         return 0
     print(
         format_table(
@@ -232,3 +233,15 @@ def cmd_search(args: argparse.Namespace) -> int:
         )
     )
     return 0
+
+
+def _why_nothing(idx: Index, clue: str) -> str:
+    """Why a non-empty clue found no candidates, in the analyzer's terms."""
+    if not idx.analyzer.words(clue):
+        return (
+            "the clue has no searchable words after analysis "
+            "(a word is two or more letters or digits)"
+        )
+    if not idx.analyzer.tokens(clue):
+        return "the clue has only stop words, so no searchable words after analysis"
+    return "none of the clue's words is in the index"

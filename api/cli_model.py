@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:
     from reranker import Payoff
 
-from .console import format_table, print_json
+from .console import check_k, format_table, print_json
 
 
 def _fractions(text: str) -> tuple[float, ...]:
@@ -131,13 +131,14 @@ def cmd_train(args: argparse.Namespace) -> int:
     from reranker import PrefixPlan, train
     from retriever import load_index
 
+    check_k(args.k)
     index = load_index(args.index)
     features = [f.strip() for f in args.features.split(",") if f.strip()] if args.features else None
     res = train(
         index,
         args.log,
         args.out,
-        k=args.k or 20,
+        k=20 if args.k is None else args.k,
         plan=PrefixPlan(args.prefixes or PrefixPlan().fractions, args.every_words),
         features=features,
         user_features=args.feature,
@@ -177,6 +178,7 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     from reranker.evaluate import evaluate
     from retriever import load_index
 
+    check_k(args.k)
     index = load_index(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
     ev = evaluate(

@@ -49,6 +49,12 @@ def human_bytes(n: int) -> str:
     return f"{size:.1f} GiB"
 
 
+def check_k(k: int | None) -> None:
+    """Refuse a -k below 1 (None means the command's default)."""
+    if k is not None and k < 1:
+        raise ValueError(f"-k must be at least 1, got {k}")
+
+
 def fail(message: str, code: int = 2) -> int:
     """Print a one-line error to stderr and return the exit code."""
     print(f"hunchwise: error: {message}", file=sys.stderr)

@@ -228,6 +228,15 @@ def _raw_delimited(path: Path, delimiter: str) -> Iterator[RawItem]:
                 msg = "row has more cells than the header"
                 yield start, CorpusError(msg, file=str(path), line=start)
                 continue
+            # DictReader fills the cells a short row lacks with None (its restval).
+            missing = [k for k, v in row.items() if v is None]
+            if missing:
+                msg = (
+                    f"row has {len(header) - len(missing)} cells but the header has "
+                    f"{len(header)}; missing {', '.join(repr(k) for k in missing)}"
+                )
+                yield start, CorpusError(msg, file=str(path), line=start)
+                continue
             # An empty cell is an absent optional field, but an empty text is a text.
             cells = {k: v for k, v in row.items() if v or k in ("id", "title", "text")}
             bad = _bad_cell(cells)

@@ -127,3 +127,16 @@ def test_bad_options_and_missing_files(world: World, tmp_path: Path) -> None:
     assert out.returncode != 0 and out.stderr.count("\n") == 1
     assert "-k 5" in out.stderr and "model's k (20)" in out.stderr
     assert not (tmp_path / "rep").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("command", ["train", "evaluate"])
+def test_k_below_one_is_an_error(world: World, tmp_path: Path, command: str) -> None:
+    model = tmp_path / "model.json"
+    extra = ["--out", model] if command == "train" else ["--model", model, "--report", tmp_path]
+    out = hunchwise(
+        command, "--index", world.index.path, "--log", world.train_log, "-k", "0", *extra
+    )
+    assert out.returncode != 0
+    assert out.stderr.count("\n") == 1 and "-k must be at least 1" in out.stderr
+    assert not model.exists()

@@ -63,6 +63,8 @@ def test_build_info_search_add_remove(tmp_path: Path, small_records: list[dict[s
         (["index", "build", "{bad}", "--out", "{out}"], "line 2"),
         (["index", "remove", "{out}", "nope"], "unknown article ids"),
         (["search", "{out}", "x", "-k", "0"], "-k must be at least 1"),
+        (["search", "{out}", ""], "the clue is empty"),
+        (["search", "{out}", "  \t "], "the clue is empty"),
     ],
 )
 def test_errors_are_one_line_and_non_zero(
@@ -119,3 +121,30 @@ def test_damaged_index_is_reported_by_main(
     assert main(["search", str(out), "reed"]) != 0
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "body_docs.npy is missing" in err[0]
+
+
+def test_short_csv_row_via_main(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    corpus = tmp_path / "short.csv"
+    corpus.write_text("id,title,text,links\na1,Alpha,river song,Beta\na2,Beta\n")
+    out = tmp_path / "idx"
+    assert main(["index", "build", str(corpus), "--out", str(out)]) != 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"{corpus}, line 3: " in err[0] and "'text', 'links'" in err[0]
+    assert main(["index", "build", str(corpus), "--out", str(out), "--skip-bad"]) == 0
+    text = capsys.readouterr().out
+    assert "skipped 1 bad lines" in text and "line 3: " in text and "'text'" in text
+
+
+def test_search_says_why_a_clue_finds_nothing(
+    tmp_path: Path, small_records: list[dict[str, Any]], capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "idx"
+    build_index(small_records, out)
+    assert main(["search", str(out), "the of and which"]) == 0
+    text = capsys.readouterr().out
+    assert "only stop words" in text and "none of the clue's words" not in text
+    assert main(["search", str(out), "?! -- ..."]) == 0
+    text = capsys.readouterr().out
+    assert "no searchable words" in text and "none of the clue's words" not in text
+    assert main(["search", str(out), "zzzz qqqq"]) == 0
+    assert "none of the clue's words is in the index" in capsys.readouterr().out

@@ -84,3 +84,42 @@ def test_first_bad_line_wins_across_chunks(tmp_path: Path) -> None:
     _, bad_lines = _messy_corpus(path)
     with pytest.raises(CorpusError, match=rf"line {bad_lines[0]}: malformed JSON"):
         build_index(path, tmp_path / "idx", workers=2)
+
+
+SHORT_ROWS = (
+    "id,title,text,links\n"
+    "a1,Alpha,river song,Beta|Nowhere\n"
+    "a2,Beta\n"  # line 3: no text, no links
+    "a3,Gamma,lake boat\n"  # line 4: no links
+    "a4,Delta,marsh reed,Alpha\n"
+)
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_short_csv_row_is_a_clear_error_in_both_readers(tmp_path: Path, workers: int) -> None:
+    path = tmp_path / "short.csv"
+    path.write_text(SHORT_ROWS)
+    with pytest.raises(CorpusError) as read_err:
+        list(read_articles(path))
+    with pytest.raises(CorpusError) as build_err:
+        build_index(path, tmp_path / "idx", workers=workers)
+    msg = str(read_err.value)
+    assert str(build_err.value) == msg
+    assert msg.startswith(f"{path}, line 3: ")
+    assert "2 cells" in msg and "'text', 'links'" in msg
+    assert not (tmp_path / "idx").exists()
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_short_csv_rows_are_skipped_and_reported(tmp_path: Path, workers: int) -> None:
+    path = tmp_path / "short.csv"
+    path.write_text(SHORT_ROWS)
+    expected = ReadReport()
+    kept = [a.id for a in read_articles(path, skip_bad=True, report=expected)]
+    report = ReadReport()
+    idx = build_index(path, tmp_path / "idx", skip_bad=True, report=report, workers=workers)
+    assert report == expected
+    assert idx.ids.tolist() == kept == ["a1", "a4"]
+    assert report.skipped == 2
+    assert "line 3: " in report.problems[0] and "'text', 'links'" in report.problems[0]
+    assert "line 4: " in report.problems[1] and "'links'" in report.problems[1]
