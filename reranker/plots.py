@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import os
-import uuid
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -16,6 +14,8 @@ matplotlib.use("Agg")
 
 import numpy as np
 from matplotlib.figure import Figure
+
+from retriever import atomicfile
 
 DPI = 100
 KIND_COLORS = {
@@ -30,13 +30,8 @@ KIND_COLORS = {
 def _save(fig: Figure, path: Any) -> Path:
     """Render `fig` to a temporary PNG beside `path`, then rename it into place."""
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex[:8]}.tmp")
-    try:
+    with atomicfile.replacing(target, fsync=False) as tmp:
         fig.savefig(tmp, format="png", dpi=DPI)
-        os.replace(tmp, target)
-    finally:
-        tmp.unlink(missing_ok=True)
     return target
 
 

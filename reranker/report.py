@@ -6,14 +6,14 @@ import base64
 import html
 import json
 import math
-import os
 import re
-import uuid
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+
+from retriever import atomicfile
 
 from . import plots
 
@@ -67,15 +67,7 @@ def to_jsonable(obj: Any) -> Any:
 
 def _write_atomic(path: Path, text: str) -> None:
     """Write text through a temporary file and a rename so no reader sees half a file."""
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
-    try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        tmp.unlink(missing_ok=True)
+    atomicfile.write_text(path, text)
 
 
 def _fmt(value: Any) -> str:

@@ -15,6 +15,7 @@ from typing import Any
 
 import numpy as np
 
+from . import atomicfile
 from .corpus import Article, CorpusError, validate_record
 from .errors import IndexFormatError
 
@@ -26,15 +27,9 @@ STORE_OFFSETS = "store_offsets"
 
 
 def write_json(path: Path, data: Any) -> None:
-    """Write JSON to `path` via a temporary file and a rename: readers never see half a file."""
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
+    """Write JSON to `path` through a temporary file and a rename: no reader sees half a file."""
     # dumps, not dump: only the one-shot encoder runs in C.
-    text = json.dumps(data, ensure_ascii=False, separators=(",", ":"))
-    with open(tmp, "w", encoding="utf-8") as fh:
-        fh.write(text)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    atomicfile.write_text(path, json.dumps(data, ensure_ascii=False, separators=(",", ":")))
 
 
 def save_array(folder: Path, name: str, array: np.ndarray) -> None:
