@@ -18,7 +18,7 @@ setup(
         Extension(name, [source], extra_compile_args=flags, optional=True)
         for name, source in (
             ("retriever._kernels", "retriever/_kernels.c"),
-            ("reranker._fused", "reranker/_fused.c"),
+            ("reranker.features._fused", "reranker/features/_fused.c"),
         )
     ]
 )

@@ -59,7 +59,7 @@ def served_record(
     request_id: str, r: Ranking, k: int, complete: bool, when: str, metadata: dict[str, Any] | None
 ) -> dict[str, Any]:
     """One 'served' line of the served log."""
-    # The shape the trainer reads back (reranker.logs.read_logs); keep it stable.
+    # The shape the trainer reads back (reranker.training.logs.read_logs); keep it stable.
     d = r.decision
     record: dict[str, Any] = {
         "kind": "served",

@@ -1,8 +1,11 @@
-"""Reranker: candidate features, calibrated logistic model, decisions and evaluation."""
+"""Reranker: candidate features, the calibrated logistic model, ranking and decisions.
+
+This package is the serving side (numpy only). Fitting, evaluation and logs live in
+`reranker.training`; the features in `reranker.features`.
+"""
 
 from __future__ import annotations
 
-from .builtin import default_registry
 from .decision import Decision, Payoff, decide
 from .errors import (
     FeatureError,
@@ -12,12 +15,9 @@ from .errors import (
     RerankerError,
     TrainingError,
 )
-from .examples import PrefixPlan, TrainingTable, build_table
-from .features import CandidateSet, Feature, FeatureRegistry
-from .logs import LabelledClue, read_logs
+from .features import CandidateSet, Feature, FeatureRegistry, default_registry
 from .model import Reranker, read_model, save_model
-from .pipeline import Ranking, ScoredCandidate, load_model, model_k, rank_clue, rank_clues
-from .train import TrainResult, train
+from .ranking import Ranking, ScoredCandidate, load_model, model_k, rank_clue, rank_clues
 
 __all__ = [
     "CandidateSet",
@@ -25,28 +25,21 @@ __all__ = [
     "Feature",
     "FeatureError",
     "FeatureRegistry",
-    "LabelledClue",
     "LabelledLogError",
     "ModelFormatError",
     "ModelMismatchError",
     "Payoff",
-    "PrefixPlan",
     "Ranking",
     "Reranker",
     "RerankerError",
     "ScoredCandidate",
-    "TrainResult",
     "TrainingError",
-    "TrainingTable",
-    "build_table",
     "decide",
     "default_registry",
     "load_model",
     "model_k",
     "rank_clue",
     "rank_clues",
-    "read_logs",
     "read_model",
     "save_model",
-    "train",
 ]

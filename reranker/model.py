@@ -100,7 +100,7 @@ class Reranker:
         # Imported here, not at the top: serving loads models without scikit-learn.
         from sklearn.metrics import log_loss
 
-        from .fitting import (
+        from .training.fitting import (
             cross_calibrate,
             fit_calibrator,
             grouped_folds,

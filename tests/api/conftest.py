@@ -14,7 +14,7 @@ import pytest
 from api.app import create_app
 from api.settings import ServiceSettings
 from corpus_demo.pipeline import generate_corpus
-from reranker import train
+from reranker.training import train
 from retriever import build_index, load_index
 from tests.api.svc_helpers import ADMIN_TOKEN, TestClient
 

@@ -12,7 +12,7 @@ import pytest
 from prometheus_client.parser import text_string_to_metric_families
 from rank_bm25 import BM25Okapi
 
-from reranker import read_logs
+from reranker.training import read_logs
 from retriever import load_index
 from tests.api.svc_helpers import read_jsonl
 

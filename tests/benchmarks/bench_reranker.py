@@ -29,8 +29,9 @@ from pathlib import Path
 from typing import Any
 
 from corpus_demo import generate_corpus
-from reranker import load_model, rank_clue, train
-from reranker.examples import candidate_set
+from reranker import load_model, rank_clue
+from reranker.features import candidate_set
+from reranker.training import train
 from retriever import build_index, load_index
 
 

@@ -16,9 +16,10 @@ from typing import Any
 import numpy as np
 import pytest
 
-from reranker import load_model, train
-from reranker.evaluate import Evaluation, evaluate
-from reranker.train import TrainResult
+from reranker import load_model
+from reranker.training import train
+from reranker.training.evaluate import Evaluation, evaluate
+from reranker.training.train import TrainResult
 from retriever import Index, build_index
 
 HERE = Path(__file__).resolve().parent

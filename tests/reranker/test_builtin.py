@@ -17,8 +17,8 @@ import scipy.stats
 from rank_bm25 import BM25Okapi
 
 from reranker import CandidateSet, default_registry
-from reranker import builtin as B
-from reranker.examples import candidate_set
+from reranker.features import builtin as B
+from reranker.features import candidate_set
 from retriever import Index
 
 CLUE = "Which grey river town near Pella has stone"

@@ -9,11 +9,12 @@ import numpy as np
 import pytest
 from sklearn.metrics import brier_score_loss, log_loss
 
-from reranker import build_table, load_model, read_logs, train
-from reranker.evaluate import Evaluation, evaluate
-from reranker.examples import TrainingTable
-from reranker.metrics import baseline_all_wrong
-from reranker.train import TrainResult
+from reranker import load_model
+from reranker.training import build_table, read_logs, train
+from reranker.training.evaluate import Evaluation, evaluate
+from reranker.training.measures import baseline_all_wrong
+from reranker.training.table import TrainingTable
+from reranker.training.train import TrainResult
 from retriever import Index
 from tests.reranker.conftest import World
 
@@ -36,7 +37,7 @@ def test_trained_model_beats_both_baselines_on_held_out_clues(
     assert 0 < y.sum() < y.size and held_out.n_clues > 100
     p_model = demo_trained.model.probability(held_out.X)
     p_score = demo_score_only.model.probability(held_out.columns(["bm25_score"]))
-    # The all-wrong baseline forecasts the base rate for every candidate (reranker.metrics);
+    # The all-wrong baseline forecasts the base rate for every candidate (training.measures);
     # scikit-learn's log_loss and brier_score_loss score all three forecasts the same way.
     rate = np.full(y.size, y.mean())
     for metric in (log_loss, brier_score_loss):

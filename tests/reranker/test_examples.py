@@ -9,7 +9,8 @@ from typing import Any
 import numpy as np
 import pytest
 
-from reranker import PrefixPlan, build_table, default_registry, read_logs
+from reranker import default_registry
+from reranker.training import PrefixPlan, build_table, read_logs
 from retriever import Index
 
 Writer = Callable[[Path, Iterable[Any]], Path]

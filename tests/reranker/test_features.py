@@ -9,18 +9,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from reranker import (
-    FeatureError,
-    LabelledClue,
-    ModelMismatchError,
-    default_registry,
-    load_model,
-    rank_clue,
-    train,
-)
-from reranker.examples import MetadataColumns, candidate_set
-from reranker.features import Feature, FeatureRegistry
-from reranker.train import TrainResult
+from reranker import FeatureError, ModelMismatchError, default_registry, load_model, rank_clue
+from reranker.features import Feature, FeatureRegistry, MetadataColumns, candidate_set
+from reranker.training import LabelledClue, train
+from reranker.training.train import TrainResult
 from retriever import Index
 from tests.reranker.conftest import World
 

@@ -22,11 +22,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from reranker import CandidateSet, default_registry
-from reranker import builtin as B
-from reranker import features as F
-from reranker import fused as FU
-from reranker import rowtables as RT
-from reranker.examples import candidate_set
+from reranker.features import builtin as B
+from reranker.features import candidate_set
+from reranker.features import fused as FU
+from reranker.features import registry as F
+from reranker.features import rowtables as RT
 from retriever import Index, load_index
 from tests.reranker.test_builtin import CLUE, make_set
 

@@ -10,8 +10,9 @@ from typing import Any
 import numpy as np
 import pytest
 
-from reranker import LabelledLogError, build_table, default_registry, read_logs
-from reranker.logs import LogReport, write_labelled
+from reranker import LabelledLogError, default_registry
+from reranker.training import build_table, read_logs
+from reranker.training.logs import LogReport, write_labelled
 from retriever import Index, build_index
 
 Writer = Callable[[Path, Iterable[Any]], Path]

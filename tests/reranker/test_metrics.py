@@ -1,4 +1,4 @@
-"""Tests of reranker.metrics against published formulas, scikit-learn and pytrec_eval."""
+"""Tests of reranker.training.measures against published formulas, scikit-learn and pytrec_eval."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ import pytrec_eval
 from sklearn.calibration import calibration_curve
 from sklearn.metrics import accuracy_score, brier_score_loss, log_loss, roc_auc_score
 
-from reranker.metrics import (
+from reranker.training.measures import (
     baseline_all_wrong,
     by_prefix,
     candidate_metrics,

@@ -30,10 +30,10 @@ from reranker import (
     read_model,
     save_model,
 )
-from reranker.examples import TrainingTable
-from reranker.fitting import fit_calibrator, grouped_folds
 from reranker.model import apply_calibrator
-from reranker.train import TrainResult
+from reranker.training.fitting import fit_calibrator, grouped_folds
+from reranker.training.table import TrainingTable
+from reranker.training.train import TrainResult
 from tests.reranker.conftest import REPO, World
 
 EPS = 1e-6  # the model keeps calibrated probabilities within [EPS, 1 - EPS]

@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 
 from reranker import Payoff, Reranker, default_registry, load_model, rank_clue, rank_clues
-from reranker import builtin as B
-from reranker.examples import candidate_set
-from reranker.train import TrainResult
+from reranker.features import builtin as B
+from reranker.features import candidate_set
+from reranker.training.train import TrainResult
 from tests.reranker.conftest import World
 
 

@@ -1,4 +1,4 @@
-"""Tests of reranker.plots: real PNG files on disk, read back with matplotlib."""
+"""Tests of reranker.training.plots: real PNG files on disk, read back with matplotlib."""
 
 from __future__ import annotations
 
@@ -13,8 +13,8 @@ import matplotlib.image as mpimg
 import numpy as np
 import pytest
 
-from reranker import plots
-from reranker.metrics import reliability_table
+from reranker.training import plots
+from reranker.training.measures import reliability_table
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature, RFC 2083 section 3.1
 

@@ -1,4 +1,4 @@
-"""Tests of reranker.report: real files on disk, parsed back with the standard library."""
+"""Tests of reranker.training.report: real files on disk, parsed back with the standard library."""
 
 from __future__ import annotations
 
@@ -16,14 +16,14 @@ import matplotlib.image as mpimg
 import numpy as np
 import pytest
 
-from reranker.metrics import (
+from reranker.training.measures import (
     baseline_all_wrong,
     by_prefix,
     candidate_metrics,
     clue_metrics,
     reliability_table,
 )
-from reranker.report import summary_text, to_jsonable, write_report
+from reranker.training.report import summary_text, to_jsonable, write_report
 
 EVIL = "<script>alert('x')</script>"
 
@@ -48,7 +48,7 @@ class _Collect(HTMLParser):
 
 
 def _inputs(seed: int = 0) -> dict[str, Any]:
-    """A whole evaluation computed by reranker.metrics on synthetic clues of 20 candidates."""
+    """A whole evaluation by reranker.training.measures on synthetic clues of 20 candidates."""
     rng = np.random.default_rng(seed)
     n_clues, per = 60, 20
     groups = np.repeat(np.arange(n_clues), per)

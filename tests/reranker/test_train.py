@@ -14,16 +14,14 @@ import pytest
 from reranker import (
     LabelledLogError,
     Payoff,
-    PrefixPlan,
     TrainingError,
     default_registry,
     load_model,
     rank_clue,
-    read_logs,
-    train,
 )
 from reranker.decision import tune_threshold
-from reranker.train import TrainResult, prefix_tops
+from reranker.training import PrefixPlan, read_logs, train
+from reranker.training.train import TrainResult, prefix_tops
 from tests.reranker.conftest import World
 
 Writer = Callable[[Path, Iterable[Any]], Path]

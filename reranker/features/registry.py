@@ -20,7 +20,7 @@ import numpy as np
 
 from retriever import Index
 
-from .errors import FeatureError
+from ..errors import FeatureError
 
 FEATURE_SET_VERSION = 1
 ENTRY_POINT_GROUP = "hunchwise.features"

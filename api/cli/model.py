@@ -128,7 +128,7 @@ def _payoff(args: argparse.Namespace) -> Payoff | None:
 
 def cmd_train(args: argparse.Namespace) -> int:
     """Train and save a model; print its headline numbers."""
-    from reranker import PrefixPlan, train
+    from reranker.training import PrefixPlan, train
     from retriever import load_index
 
     check_k(args.k)
@@ -175,7 +175,7 @@ def cmd_train(args: argparse.Namespace) -> int:
 def cmd_evaluate(args: argparse.Namespace) -> int:
     """Evaluate a model and write the report folder."""
     from reranker import load_model
-    from reranker.evaluate import evaluate
+    from reranker.training import evaluate
     from retriever import load_index
 
     check_k(args.k)

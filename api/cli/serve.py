@@ -103,8 +103,8 @@ def _state_folder(given: Path | None) -> Iterator[Path]:
 
 def _check_files() -> str:
     """Load the index, model and token as a worker will; return a one-line summary."""
-    from .settings import settings_from_env
-    from .state import load_pair
+    from ..settings import settings_from_env
+    from ..state import load_pair
 
     settings = settings_from_env()
     settings.resolved_admin_token()

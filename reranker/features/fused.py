@@ -21,12 +21,12 @@ from typing import Any
 import numpy as np
 
 from .clueterms import body_terms, matched
-from .features import CandidateSet
+from .registry import CandidateSet
 from .rowtables import ROW_VALUES, name_table, row_values, values_table
 
 _fused: Any
 try:
-    _fused = importlib.import_module("reranker._fused")  # built by setup.py from _fused.c
+    _fused = importlib.import_module("reranker.features._fused")  # built by setup.py from _fused.c
 except ImportError:  # pragma: no cover - a machine without a C compiler at install time
     _fused = None
 

@@ -12,8 +12,7 @@ import pytest
 
 from api.cli import main
 from retriever import build_index, load_index
-
-from .helpers import write_jsonl
+from tests.retriever.helpers import write_jsonl
 
 EXE = shutil.which("hunchwise")
 

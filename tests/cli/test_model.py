@@ -12,7 +12,7 @@ import pytest
 
 from tests.reranker.conftest import REPO, World
 
-HERE = Path(__file__).resolve().parent
+HERE = Path(__file__).resolve().parents[1] / "reranker"  # userfeatures.py, an example user module
 
 
 def hunchwise(*args: str | Path) -> subprocess.CompletedProcess[str]:

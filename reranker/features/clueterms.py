@@ -8,7 +8,7 @@ import numpy as np
 
 from retriever import Index
 
-from .features import CandidateSet, index_cache
+from .registry import CandidateSet, index_cache
 
 # Remembered (token -> term id and rarity) lookups per index; cleared past this many.
 _MAX_CACHED_TERMS = 200_000

@@ -12,11 +12,11 @@ import numpy as np
 
 from retriever import Hit, Index
 
-from .builtin import default_registry
 from .decision import Decision, Payoff, decide
 from .errors import ModelFormatError, ModelMismatchError
-from .examples import MetadataColumns, candidate_set
-from .features import FEATURE_SET_VERSION, FeatureRegistry, qualifier_counts
+from .features.builtin import default_registry
+from .features.candidates import MetadataColumns, candidate_set
+from .features.registry import FEATURE_SET_VERSION, FeatureRegistry, qualifier_counts
 from .model import Reranker, read_model
 
 DEFAULT_K = 20  # candidates per clue when neither the caller nor a model says otherwise

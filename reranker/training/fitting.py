@@ -16,8 +16,8 @@ from sklearn.model_selection import GroupKFold
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
 
-from .errors import TrainingError
-from .model import apply_calibrator, logit
+from ..errors import TrainingError
+from ..model import apply_calibrator, logit
 
 
 def make_pipeline_for(C: float, max_iter: int = 5000) -> Pipeline:

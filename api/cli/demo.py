@@ -39,7 +39,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Run the demo and say what to try next."""
-    from .demo import prepare, run_demo, serve_and_ask
+    from .demo_steps import prepare, run_demo, serve_and_ask
 
     run = run_demo(args.out, articles=args.articles, ablation=not args.no_ablation)
     print()

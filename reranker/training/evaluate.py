@@ -13,15 +13,15 @@ from tqdm.auto import tqdm
 
 from retriever import Index
 
-from . import metrics as M
-from .builtin import SCORE_ONLY
-from .decision import Payoff, simulate_commits
-from .examples import PrefixPlan, TrainingTable, build_table
+from ..decision import Payoff, simulate_commits
+from ..features.builtin import SCORE_ONLY
+from ..model import Reranker
+from ..ranking import model_k
+from . import measures as M
 from .fitting import grouped_folds, oof_proba
 from .logs import LogReport, read_logs
-from .model import Reranker
-from .pipeline import model_k
 from .report import summary_text, write_report
+from .table import PrefixPlan, TrainingTable, build_table
 from .train import prefix_tops, top_rows
 
 GROUP_ORDER = (

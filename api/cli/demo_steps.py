@@ -17,8 +17,8 @@ from typing import Any
 import httpx
 
 from corpus_demo import DEFAULT_DATA_DIR, generate_corpus
-from reranker import load_model, train
-from reranker.evaluate import evaluate
+from reranker import load_model
+from reranker.training import evaluate, train
 from retriever import build_index
 
 

@@ -3,15 +3,14 @@
 from __future__ import annotations
 
 import argparse
-import sys
 from collections.abc import Callable, Sequence
 
-from . import cli_demo, cli_index, cli_model, cli_serve
+from . import demo, index, model, serve
 from .console import fail
 
 # Each module adds its sub-commands; a sub-command stores its handler as `func`. The modules
 # import the heavy libraries inside their handlers, so `hunchwise --help` answers at once.
-COMMAND_MODULES = [cli_index, cli_model, cli_serve, cli_demo]
+COMMAND_MODULES = [index, model, serve, demo]
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -43,7 +42,3 @@ def main(argv: Sequence[str] | None = None) -> int:
         if isinstance(exc, RetrieverError | RerankerError | ValueError | OSError):
             return fail(str(exc))
         raise
-
-
-if __name__ == "__main__":
-    sys.exit(main())

@@ -7,8 +7,8 @@ from collections.abc import Callable
 import numpy as np
 
 from .clueterms import matched
-from .features import CandidateSet, Feature, FeatureRegistry, FusedFeatures
 from .fused import FUSED_NAMES, fused_builtins
+from .registry import CandidateSet, Feature, FeatureRegistry, FusedFeatures
 
 _FEATURES: list[Feature] = []
 

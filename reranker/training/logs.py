@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import LabelledLogError
+from ..errors import LabelledLogError
 
 
 @dataclass(frozen=True)

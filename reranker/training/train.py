@@ -11,13 +11,13 @@ import numpy as np
 
 from retriever import Index
 
-from .builtin import default_registry
-from .decision import Payoff, simulate_commits, tune_threshold
-from .examples import MetadataColumns, PrefixPlan, TrainingTable, build_table
-from .features import FEATURE_SET_VERSION, FeatureRegistry
+from ..decision import Payoff, simulate_commits, tune_threshold
+from ..features import FEATURE_SET_VERSION, FeatureRegistry, MetadataColumns
+from ..features.builtin import default_registry
+from ..model import Reranker, save_model
 from .logs import LogReport, read_logs
-from .metrics import candidate_metrics, clue_metrics
-from .model import Reranker, save_model
+from .measures import candidate_metrics, clue_metrics
+from .table import PrefixPlan, TrainingTable, build_table
 
 
 @dataclass

@@ -1,0 +1,31 @@
+"""Candidate features: the registry, the built-in definitions and their compiled pass.
+
+Serving and training both compute features through here; nothing in this package fits a
+model or reads a log.
+"""
+
+from __future__ import annotations
+
+from .builtin import SCORE_ONLY, default_registry
+from .candidates import MetadataColumns, candidate_set
+from .registry import (
+    FEATURE_SET_VERSION,
+    CandidateSet,
+    Feature,
+    FeatureRegistry,
+    analyze_names,
+    qualifier_counts,
+)
+
+__all__ = [
+    "FEATURE_SET_VERSION",
+    "SCORE_ONLY",
+    "CandidateSet",
+    "Feature",
+    "FeatureRegistry",
+    "MetadataColumns",
+    "analyze_names",
+    "candidate_set",
+    "default_registry",
+    "qualifier_counts",
+]
