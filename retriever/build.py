@@ -28,7 +28,7 @@ from .links import NameResolver, count_inlinks
 _WEIGHT_SLICE = 1 << 21
 
 
-class _Field:
+class _FieldCounts:
     """Term-major counts of one field and its per-term IDF."""
 
     def __init__(self, tf: sp.csc_matrix, params: bm25.BM25Params) -> None:
@@ -159,7 +159,7 @@ def _write(
         store.save_array(tmp, "body_fwd_indptr", fwd_indptr)
         store.save_array(tmp, "body_fwd_terms", fwd_terms)
         del fwd_indptr, fwd_terms
-        body, title = _Field(tf_body, params), _Field(tf_title, params)
+        body, title = _FieldCounts(tf_body, params), _FieldCounts(tf_title, params)
         del tf_body, tf_title
         dtype = weight_dtype(body.idf, title.idf)
         for prefix, fld in (("body", body), ("title", title)):

@@ -49,7 +49,7 @@ class Document:
     row: int
 
 
-class _Field:
+class _FieldPostings:
     """Term-major postings of one field: CSR arrays over the shared vocabulary."""
 
     def __init__(
@@ -87,8 +87,10 @@ class Index:
             dtype = str(self.manifest["weights"])
             if dtype not in ("float32", "float64"):
                 raise IndexFormatError(f"{self.path}: unknown weight type {dtype!r}; rebuild")
-            self.body = _Field(self.path, "body", self.n_terms, int(counts["body_postings"]), dtype)
-            self.title_field = _Field(
+            self.body = _FieldPostings(
+                self.path, "body", self.n_terms, int(counts["body_postings"]), dtype
+            )
+            self.title_field = _FieldPostings(
                 self.path, "title", self.n_terms, int(counts["title_postings"]), dtype
             )
         except (KeyError, TypeError, ValueError, FileNotFoundError) as exc:

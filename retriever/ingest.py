@@ -19,7 +19,15 @@ from typing import IO, Any
 import numpy as np
 
 from .analyzer import Analyzer
-from .corpus import Article, CorpusError, ReadReport, detect_format, iter_raw, validate_record
+from .corpus import (
+    Article,
+    CorpusError,
+    RawItem,
+    ReadReport,
+    detect_format,
+    iter_raw,
+    validate_record,
+)
 from .counting import (
     CHUNK,
     Csr,
@@ -34,7 +42,6 @@ from .scoring import concat_ranges
 from .store import record_line
 
 # One raw item: (line number, JSONL bytes | parsed record | Article | ("error", reason, field)).
-RawItem = tuple[int, Any]
 # (line, position in the chunk, id, title, aliases, links, popularity)
 Meta = tuple[int, int, str, str, tuple[str, ...], tuple[str, ...], float | None]
 
