@@ -207,7 +207,7 @@ def get_entry(doc_id: str, runtime: RuntimeDep) -> s.EntryOut:
 def info(runtime: RuntimeDep, settings: SettingsDep) -> s.InfoOut:
     """Index and model versions, features, counts and limits."""
     loaded = runtime.serving.current
-    features = [] if loaded.model is None else list(loaded.model.feature_names_)
+    features = [] if loaded.model is None else list(loaded.model.feature_names)
     return s.InfoOut(
         index_version=loaded.index.version,
         model_version=loaded.model_version,

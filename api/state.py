@@ -27,7 +27,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from reranker import Reranker, load_model
+from reranker import ServedModel, load_model
 from retriever import Index, load_index, update_index
 
 from .servedlog import utc_now
@@ -43,7 +43,7 @@ class Loaded:
     """One consistent, read-only pair of index and model, and when it was loaded."""
 
     index: Index
-    model: Reranker | None
+    model: ServedModel | None
     generation: int
     loaded_at: str
 
@@ -66,7 +66,7 @@ class Change:
 
 def load_pair(
     settings: ServiceSettings, index: Index | None = None
-) -> tuple[Index, Reranker | None]:
+) -> tuple[Index, ServedModel | None]:
     """Load the index folder (unless given) and the model file bound to it."""
     idx = index if index is not None else load_index(settings.index_dir)
     model = (
@@ -169,7 +169,7 @@ class Serving:
     def _next_generation(self) -> int:
         return max(int(read_marker(self.state_dir)["generation"]), self.current.generation) + 1
 
-    def _swap(self, index: Index, model: Reranker | None, generation: int) -> Change:
+    def _swap(self, index: Index, model: ServedModel | None, generation: int) -> Change:
         old = self.current
         self.current = Loaded(index, model, generation, utc_now())
         _freeze()

@@ -16,8 +16,9 @@ from .errors import (
     TrainingError,
 )
 from .features import CandidateSet, Feature, FeatureRegistry, default_registry
-from .model import Reranker, read_model, save_model
-from .ranking import Ranking, ScoredCandidate, load_model, model_k, rank_clue, rank_clues
+from .loading import ServedModel, load_model, model_k
+from .model import LinearModel, read_model, save_model
+from .ranking import Ranking, ScoredCandidate, rank_clue, rank_clues
 
 __all__ = [
     "CandidateSet",
@@ -26,13 +27,14 @@ __all__ = [
     "FeatureError",
     "FeatureRegistry",
     "LabelledLogError",
+    "LinearModel",
     "ModelFormatError",
     "ModelMismatchError",
     "Payoff",
     "Ranking",
-    "Reranker",
     "RerankerError",
     "ScoredCandidate",
+    "ServedModel",
     "TrainingError",
     "decide",
     "default_registry",

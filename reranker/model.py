@@ -1,12 +1,14 @@
-"""The logistic reranker: grouped cross-validated fit, optional calibration, JSON artifact."""
+"""The fitted logistic model and its JSON artifact: read, write, probabilities (numpy only).
+
+This module owns the model file format: `save_model` writes it and `read_model` reads it.
+Fitting lives in `reranker.training`, so serving never imports scikit-learn.
+"""
 
 from __future__ import annotations
 
 import hashlib
 import json
 import math
-import os
-import uuid
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -14,12 +16,12 @@ from typing import Any
 import numpy as np
 from scipy.special import expit
 
-from .errors import ModelFormatError, TrainingError
+from retriever import atomicfile
+
+from .errors import ModelFormatError
 
 FORMAT_NAME = "hunchwise-model"
 FORMAT_VERSION = 1
-DEFAULT_CS = (0.01, 0.1, 1.0, 10.0, 100.0)
-CALIBRATIONS = ("auto", "none", "platt", "isotonic")
 _EPS = 1e-6  # keep calibrated probabilities off 0 and 1 so log-loss stays finite
 
 
@@ -43,6 +45,11 @@ def apply_calibrator(cal: dict[str, Any], p: np.ndarray) -> np.ndarray:
 def _check_calibrator(cal: dict[str, Any], source: str) -> None:
     """Reject a calibrator that would fail or give nonsense at serving time."""
     method = cal.get("method")
+    if method not in ("none", "platt", "isotonic"):
+        raise ModelFormatError(
+            f"{source}: calibration.method must be none, platt or isotonic, got {method!r}; "
+            "retrain the model"
+        )
     bad = False
     if method == "platt":
         bad = not all(
@@ -66,96 +73,40 @@ def _check_calibrator(cal: dict[str, Any], source: str) -> None:
         raise ModelFormatError(f"{source}: the {method} calibrator is damaged; retrain the model")
 
 
-class Reranker:
-    """Logistic model of 'this candidate is the answer'; scaler and calibrator as plain data."""
+class LinearModel:
+    """A fitted logistic model as plain numbers: scaler, coefficients, calibrator (numpy only).
 
-    # Set by load_model when the model is prepared for serving.
-    artifact_: dict[str, Any]
-    registry_: Any
-    code_features_: list[str]
-    metadata_: Any
-    threshold_: float
+    What serving needs and nothing more: it cannot be fitted (that is
+    `reranker.training.Reranker`), and it knows nothing of features or thresholds (that is
+    the served model from `load_model`). Attributes end in `_` because they were learned.
+    """
+
+    classes_ = np.array([0, 1])  # column order of predict_proba, as in scikit-learn
 
     def __init__(
         self,
         *,
-        Cs: tuple[float, ...] = DEFAULT_CS,
-        calibration: str = "auto",
-        n_folds: int = 5,
-        max_iter: int = 5000,
+        feature_names: list[str],
+        mean: np.ndarray,
+        scale: np.ndarray,
+        coef: np.ndarray,
+        intercept: float,
+        calibrator: dict[str, Any],
+        C: float,
+        cv_log_loss: dict[str, float] | None = None,
+        calibration_log_loss: dict[str, float] | None = None,
+        artifact: dict[str, Any] | None = None,
     ) -> None:
-        if calibration not in CALIBRATIONS:
-            raise ValueError(f"calibration must be one of {CALIBRATIONS}, got {calibration!r}")
-        if not Cs or any(not c > 0 for c in Cs):
-            raise ValueError(f"Cs must be a non-empty list of positive numbers, got {Cs}")
-        self.Cs = tuple(Cs)
-        self.calibration = calibration
-        self.n_folds = n_folds
-        self.max_iter = max_iter
-
-    def fit(
-        self, X: np.ndarray, y: np.ndarray, groups: np.ndarray, feature_names: list[str]
-    ) -> Reranker:
-        """Choose C by grouped CV log-loss, fit on all rows, then choose and fit the calibrator."""
-        # Imported here, not at the top: serving loads models without scikit-learn.
-        from sklearn.metrics import log_loss
-
-        from .training.fitting import (
-            cross_calibrate,
-            fit_calibrator,
-            grouped_folds,
-            make_pipeline_for,
-            oof_proba,
-        )
-
-        X, y = np.asarray(X, dtype=np.float64), np.asarray(y).astype(np.int64)
-        if X.ndim != 2 or X.shape[1] != len(feature_names):
-            raise ValueError(
-                f"X has shape {X.shape} but {len(feature_names)} feature names were given"
-            )
-        if y.sum() == 0 or y.sum() == len(y):
-            raise TrainingError(
-                "training needs both right and wrong candidates; "
-                "check that gold answers resolve and appear among the candidates"
-            )
-        splits = grouped_folds(y, groups, self.n_folds)
-        self.cv_log_loss_: dict[str, float] = {}
-        best: tuple[float, float, np.ndarray] | None = None
-        for C in self.Cs:
-            p = oof_proba(X, y, splits, C)
-            loss = float(log_loss(y, p, labels=[0, 1]))
-            self.cv_log_loss_[repr(C)] = loss
-            if best is None or loss < best[0]:
-                best = (loss, C, p)
-        if best is None:
-            raise TrainingError("no regularization strengths (Cs) to try")
-        _, self.C_, raw_oof = best
-        self.pipeline_ = make_pipeline_for(self.C_, self.max_iter).fit(X, y)
-        scaler, lr = self.pipeline_[0], self.pipeline_[-1]
-        sign = 1.0 if lr.classes_[1] == 1 else -1.0
         self.feature_names_ = list(feature_names)
-        self.mean_ = scaler.mean_.astype(np.float64)
-        self.scale_ = scaler.scale_.astype(np.float64)
-        self.coef_ = sign * lr.coef_[0].astype(np.float64)
-        self.intercept_ = float(sign * lr.intercept_[0])
-        methods = (
-            ("none", "platt", "isotonic") if self.calibration == "auto" else (self.calibration,)
-        )
-        method, self.calibration_scores_, self.oof_proba_ = cross_calibrate(
-            raw_oof, y, groups, self.n_folds, methods
-        )
-        self.calibrator_ = fit_calibrator(method, raw_oof, y)
-        return self
-
-    def bind(
-        self, registry: Any, code_features: list[str], metadata: Any, threshold: float
-    ) -> Reranker:
-        """Attach what serving needs: the features to compute, metadata columns, the threshold."""
-        self.registry_ = registry
-        self.code_features_ = list(code_features)
-        self.metadata_ = metadata
-        self.threshold_ = float(threshold)
-        return self
+        self.mean_ = np.asarray(mean, dtype=np.float64)
+        self.scale_ = np.asarray(scale, dtype=np.float64)
+        self.coef_ = np.asarray(coef, dtype=np.float64)
+        self.intercept_ = float(intercept)
+        self.calibrator_ = dict(calibrator)
+        self.C_ = float(C)
+        self.cv_log_loss_ = dict(cv_log_loss or {})
+        self.calibration_scores_ = dict(calibration_log_loss or {})
+        self.artifact_: dict[str, Any] = artifact or {}
 
     def raw_probability(self, X: np.ndarray) -> np.ndarray:
         """Uncalibrated P(answer) from the stored numbers (numpy only). float64, shape (n,)."""
@@ -224,7 +175,7 @@ class Reranker:
         }
 
     @classmethod
-    def from_dict(cls, data: dict[str, Any], *, source: str = "<model>") -> Reranker:
+    def from_dict(cls, data: dict[str, Any], *, source: str = "<model>") -> LinearModel:
         """Rebuild a fitted model from its plain-data form, checking the format."""
         if not isinstance(data, dict) or data.get("format") != FORMAT_NAME:
             raise ModelFormatError(f"{source}: not a hunchwise model file")
@@ -235,19 +186,17 @@ class Reranker:
             )
         try:
             m = cls(
-                calibration=data["calibration"]["method"]
-                if data["calibration"]["method"] != "none"
-                else "none"
+                feature_names=[str(n) for n in data["feature_names"]],
+                mean=np.asarray(data["scaler"]["mean"], dtype=np.float64),
+                scale=np.asarray(data["scaler"]["scale"], dtype=np.float64),
+                coef=np.asarray(data["coef"], dtype=np.float64),
+                intercept=float(data["intercept"]),
+                calibrator=dict(data["calibration"]),
+                C=float(data["C"]),
+                cv_log_loss=dict(data.get("cv_log_loss", {})),
+                calibration_log_loss=dict(data.get("calibration_log_loss", {})),
+                artifact=data,
             )
-            m.feature_names_ = [str(n) for n in data["feature_names"]]
-            m.mean_ = np.asarray(data["scaler"]["mean"], dtype=np.float64)
-            m.scale_ = np.asarray(data["scaler"]["scale"], dtype=np.float64)
-            m.coef_ = np.asarray(data["coef"], dtype=np.float64)
-            m.intercept_ = float(data["intercept"])
-            m.calibrator_ = dict(data["calibration"])
-            m.C_ = float(data["C"])
-            m.cv_log_loss_ = dict(data.get("cv_log_loss", {}))
-            m.calibration_scores_ = dict(data.get("calibration_log_loss", {}))
         except (KeyError, TypeError, ValueError) as exc:
             raise ModelFormatError(
                 f"{source}: the model file is incomplete or damaged ({exc!r}); retrain it"
@@ -262,31 +211,23 @@ class Reranker:
         if not np.all(np.isfinite(m.scale_) & (m.scale_ > 0)):
             raise ModelFormatError(f"{source}: scaler scales must be positive numbers; retrain it")
         _check_calibrator(m.calibrator_, source)
-        m.artifact_ = data
         return m
 
     @property
     def version(self) -> str:
         """Short id of the artifact (set once saved or loaded)."""
-        return str(getattr(self, "artifact_", {}).get("model_version", "unsaved"))
+        return str(self.artifact_.get("model_version", "unsaved"))
 
 
-def save_model(model: Reranker, path: str | Path, **extra: Any) -> dict[str, Any]:
+def save_model(model: LinearModel, path: str | Path, **extra: Any) -> dict[str, Any]:
     """Write the model JSON atomically (temp file + rename); returns what was written."""
     data = model.to_dict(**extra)
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(data, fh, indent=1)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    atomicfile.write_text(path, json.dumps(data, indent=1))
     model.artifact_ = data
     return data
 
 
-def read_model(path: str | Path) -> Reranker:
+def read_model(path: str | Path) -> LinearModel:
     """Read a model JSON file (no code runs; only numbers and names are read)."""
     path = Path(path)
     if not path.exists():
@@ -299,4 +240,4 @@ def read_model(path: str | Path) -> Reranker:
         raise ModelFormatError(
             f"{path}: not valid JSON ({exc}); retrain or restore the model file"
         ) from exc
-    return Reranker.from_dict(data, source=str(path))
+    return LinearModel.from_dict(data, source=str(path))

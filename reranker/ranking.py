@@ -1,11 +1,10 @@
-"""Serving path: clue -> BM25 candidates -> features -> probabilities -> decision."""
+"""Ranking a clue: BM25 candidates -> features -> probabilities -> decision."""
 
 from __future__ import annotations
 
 import functools
 from collections.abc import Sequence
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -13,13 +12,8 @@ import numpy as np
 from retriever import Hit, Index
 
 from .decision import Decision, Payoff, decide
-from .errors import ModelFormatError, ModelMismatchError
-from .features.builtin import default_registry
-from .features.candidates import MetadataColumns, candidate_set
-from .features.registry import FEATURE_SET_VERSION, FeatureRegistry, qualifier_counts
-from .model import Reranker, read_model
-
-DEFAULT_K = 20  # candidates per clue when neither the caller nor a model says otherwise
+from .features import FeatureRegistry, candidate_set, default_registry
+from .loading import DEFAULT_K, ServedModel
 
 
 @dataclass(frozen=True)
@@ -49,18 +43,7 @@ class Ranking:
     model_k: int | None  # candidates the features were computed over; None without a model
 
 
-def model_k(model: Reranker) -> int:
-    """How many BM25 candidates per clue the model was trained on (its features' rival set)."""
-    artifact = getattr(model, "artifact_", None) or {}
-    k = (artifact.get("training") or {}).get("k", DEFAULT_K)
-    if not isinstance(k, int) or isinstance(k, bool) or k < 1:
-        raise ModelFormatError(
-            f"model {model.version}: training.k must be a positive integer, got {k!r}; retrain it"
-        )
-    return k
-
-
-def _ks(model: Reranker | None, k: int | None) -> tuple[int, int]:
+def _ks(model: ServedModel | None, k: int | None) -> tuple[int, int]:
     """(candidates to return, candidates to search and featurize) for a requested k.
 
     The rival-relative features (softmax, z-score, gaps, ratios to the best) describe a
@@ -73,7 +56,7 @@ def _ks(model: Reranker | None, k: int | None) -> tuple[int, int]:
         if want < 1:
             raise ValueError(f"k={want}: must be at least 1")
         return want, want
-    depth = model_k(model)
+    depth = model.k
     want = depth if k is None else k
     if not 1 <= want <= depth:
         raise ValueError(
@@ -84,48 +67,6 @@ def _ks(model: Reranker | None, k: int | None) -> tuple[int, int]:
     return want, depth
 
 
-def load_model(
-    path: str | Path,
-    *,
-    index: Index | None = None,
-    registry: FeatureRegistry | None = None,
-    user_features: Sequence[str] = (),
-) -> Reranker:
-    """Read a model file and check that the running code provides every feature it uses."""
-    model = read_model(path)
-    data = model.artifact_
-    reg = registry if registry is not None else default_registry().with_user_features(user_features)
-    if data.get("feature_set_version") != FEATURE_SET_VERSION:
-        raise ModelMismatchError(
-            f"{path}: model built with feature set version {data.get('feature_set_version')}, "
-            f"this code has "
-            f"version {FEATURE_SET_VERSION}; retrain with 'hunchwise train'"
-        )
-    meta_spec = data.get("metadata_columns") or {}
-    meta = MetadataColumns(
-        tuple(meta_spec.get("numeric", ())),
-        {k: tuple(v) for k, v in meta_spec.get("categorical", {}).items()},
-    )
-    code_names = [n for n in model.feature_names_ if not n.startswith("meta:")]
-    missing = [n for n in code_names if n not in reg]
-    extra_meta = [n for n in model.feature_names_ if n.startswith("meta:") and n not in meta.names]
-    if missing or extra_meta:
-        raise ModelMismatchError(
-            f"{path}: the model uses features the running code does not provide: "
-            f"{missing + extra_meta}. "
-            "Register the user features it was trained with (--feature module:function) or retrain."
-        )
-    if model.feature_names_ != code_names + meta.names:
-        raise ModelMismatchError(f"{path}: metadata columns must come after the computed features")
-    model.bind(reg, code_names, meta, (data.get("decision") or {}).get("threshold", 0.5))
-    model_k(model)  # a damaged training.k fails here, not at the first request
-    if index is not None:
-        # One pass over the qualifiers before serving; titles are analyzed per row when first
-        # seen among the candidates, so a large index costs nothing more here.
-        qualifier_counts(index)
-    return model
-
-
 @functools.cache
 def _builtins() -> FeatureRegistry:
     """The built-in registry for model-less calls, made once (ours: nobody can add to it)."""
@@ -133,21 +74,21 @@ def _builtins() -> FeatureRegistry:
 
 
 def _features_of(
-    model: Reranker | None, registry: FeatureRegistry | None, cs: Any
+    model: ServedModel | None, registry: FeatureRegistry | None, cs: Any
 ) -> tuple[np.ndarray, list[str]]:
     if model is None:
         registry = registry if registry is not None else _builtins()
         names = registry.names
         return registry.matrix(cs, names), names
-    x = model.registry_.matrix(cs, model.code_features_)
-    if model.metadata_.names:
-        x = np.hstack([x, np.tile(model.metadata_.row(cs.metadata), (len(cs), 1))])
-    return x, model.feature_names_
+    x = model.registry.matrix(cs, model.code_features)
+    if model.metadata.names:
+        x = np.hstack([x, np.tile(model.metadata.row(cs.metadata), (len(cs), 1))])
+    return x, model.feature_names
 
 
 def _rank_hits(
     index: Index,
-    model: Reranker | None,
+    model: ServedModel | None,
     clue: str,
     tokens: list[str],
     words: list[str],
@@ -191,7 +132,7 @@ def _rank_hits(
     if payoff is not None:
         threshold = payoff.break_even
     else:
-        threshold = model.threshold_ if model is not None else 0.5
+        threshold = model.threshold if model is not None else 0.5
     top = cands[0] if cands else None
     decision = decide(
         top.doc_id if top else None, top.probability if top else None, threshold, complete=complete
@@ -210,7 +151,7 @@ def _rank_hits(
 
 def rank_clue(
     index: Index,
-    model: Reranker | None,
+    model: ServedModel | None,
     clue: str,
     *,
     k: int | None = None,
@@ -249,7 +190,7 @@ def rank_clue(
 
 def rank_clues(
     index: Index,
-    model: Reranker | None,
+    model: ServedModel | None,
     clues: Sequence[str],
     *,
     k: int | None = None,

@@ -15,9 +15,9 @@ from retriever import Index
 
 from ..decision import Payoff, simulate_commits
 from ..features.builtin import SCORE_ONLY
-from ..model import Reranker
-from ..ranking import model_k
+from ..loading import ServedModel
 from . import measures as M
+from .estimator import Reranker
 from .fitting import grouped_folds, oof_proba
 from .logs import LogReport, read_logs
 from .report import summary_text, write_report
@@ -77,11 +77,11 @@ def _columns(table: TrainingTable, names: Sequence[str]) -> np.ndarray:
     return np.column_stack(cols)
 
 
-def feature_groups(model: Reranker) -> dict[str, list[str]]:
+def feature_groups(model: ServedModel) -> dict[str, list[str]]:
     """The model's features by ablation group, in a sensible order for forward additions."""
-    by_group = model.registry_.groups()
+    by_group = model.registry.groups()
     out: dict[str, list[str]] = {}
-    for name in model.feature_names_:
+    for name in model.feature_names:
         if name.startswith("meta:"):
             group = "metadata"
         else:
@@ -124,7 +124,7 @@ def ablation(
 
 def evaluate(
     index: Index,
-    model: Reranker,
+    model: ServedModel,
     logs: Sequence[str | Path],
     report_dir: str | Path,
     *,
@@ -141,9 +141,9 @@ def evaluate(
     The model is scored on candidate sets of its own k, the only ones its probabilities hold
     for; a different k is refused (ValueError) before anything is read or written.
     """
-    art = model.artifact_
+    art = model.artifact
     training = art.get("training", {})
-    own_k = model_k(model)
+    own_k = model.k
     if k is not None and k != own_k:
         raise ValueError(
             f"-k {k} does not match the model's k ({own_k}): its features compare each "
@@ -158,7 +158,7 @@ def evaluate(
     if payoff is None:  # the model's own payoff and its tuned threshold
         pay = (art.get("decision") or {}).get("payoff") or {}
         payoff = Payoff(float(pay.get("reward", 1.0)), float(pay.get("penalty", 1.0)))
-        threshold = model.threshold_
+        threshold = model.threshold
     else:  # a payoff given here is decided at its break-even point
         threshold = payoff.break_even
     report = LogReport()
@@ -166,11 +166,11 @@ def evaluate(
     table = build_table(
         index,
         clues,
-        model.registry_,
-        model.code_features_,
+        model.registry,
+        list(model.code_features),
         k=k,
         plan=plan,
-        metadata=model.metadata_,
+        metadata=model.metadata,
         progress=progress,
     )
     if table.y.size == 0 or table.y.sum() == 0:
@@ -178,7 +178,7 @@ def evaluate(
             "the evaluation logs give no candidate rows with a right answer; "
             "check the answers resolve"
         )
-    prob = model.probability(table.columns(model.feature_names_))
+    prob = model.probability(table.columns(model.feature_names))
     bm25_only = (
         Reranker(calibration="none", n_folds=n_folds)
         .fit(_columns(table, SCORE_ONLY), table.y, table.clue_id, list(SCORE_ONLY))
@@ -222,7 +222,9 @@ def evaluate(
         },
     }
     rows = (
-        ablation(table, feature_groups(model), model.C_, n_folds, progress) if run_ablation else []
+        ablation(table, feature_groups(model), model.model.C_, n_folds, progress)
+        if run_ablation
+        else []
     )
     inlinks = np.asarray(index.inlinks[table.row])
     paths = write_report(

@@ -14,7 +14,9 @@ from retriever import Index
 from ..decision import Payoff, simulate_commits, tune_threshold
 from ..features import FEATURE_SET_VERSION, FeatureRegistry, MetadataColumns
 from ..features.builtin import default_registry
-from ..model import Reranker, save_model
+from ..loading import ServedModel, serve
+from ..model import save_model
+from .estimator import Reranker
 from .logs import LogReport, read_logs
 from .measures import candidate_metrics, clue_metrics
 from .table import PrefixPlan, TrainingTable, build_table
@@ -22,9 +24,11 @@ from .table import PrefixPlan, TrainingTable, build_table
 
 @dataclass
 class TrainResult:
-    """What training produced: the model, its artifact, the table it learned from, and counts."""
+    """What training produced: the model ready to serve, the fitted estimator, the artifact,
+    the table it learned from, and counts."""
 
-    model: Reranker
+    model: ServedModel
+    estimator: Reranker
     artifact: dict[str, Any]
     table: TrainingTable
     log_report: LogReport
@@ -88,10 +92,10 @@ def train(
         MetadataColumns.learn(clues, metadata_features) if metadata_features else MetadataColumns()
     )
     table = build_table(index, clues, reg, names, k=k, plan=plan, metadata=meta, progress=progress)
-    model = Reranker(calibration=calibration).fit(
+    estimator = Reranker(calibration=calibration).fit(
         table.X, table.y, table.clue_id, table.feature_names
     )
-    tops = prefix_tops(table, model.oof_proba_)
+    tops = prefix_tops(table, estimator.oof_proba_)
     tuned = tune_threshold(tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff)
     at_break_even = simulate_commits(
         tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff.break_even, payoff
@@ -102,7 +106,7 @@ def train(
             f"{len(table.unresolved)} gold answers matched no article (listed in the artifact)"
         )
     artifact = save_model(
-        model,
+        estimator.model_,
         out,
         feature_set_version=FEATURE_SET_VERSION,
         metadata_columns={
@@ -126,7 +130,7 @@ def train(
             "skipped_lines": report.skipped,
             "served_without_feedback": report.served_without_feedback,
         },
-        metrics=_oof_metrics(table, model.oof_proba_),
+        metrics=_oof_metrics(table, estimator.oof_proba_),
         decision={
             "threshold": tuned["threshold"],
             "break_even": payoff.break_even,
@@ -136,8 +140,8 @@ def train(
         },
     )
     # Ready to serve as load_model would leave it, so rank_clue and evaluate take it directly.
-    model.bind(reg, names, meta, tuned["threshold"])
-    return TrainResult(model, artifact, table, report, notes)
+    served = serve(estimator.model_, reg, source=str(out))
+    return TrainResult(served, estimator, artifact, table, report, notes)
 
 
 def _oof_metrics(table: TrainingTable, oof: np.ndarray) -> dict[str, Any]:

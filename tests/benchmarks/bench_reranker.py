@@ -91,7 +91,7 @@ def measure(work: Path, queries: int, k: int, articles: int) -> None:
     t = time.perf_counter()
     rank_clue(index, model, clues[0], k=k)
     first_s = time.perf_counter() - t
-    registry, names = model.registry_, model.code_features_
+    registry, names = model.registry, list(model.code_features)
     analyzer = index.analyzer
 
     def featurize(

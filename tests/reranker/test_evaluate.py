@@ -26,7 +26,7 @@ def held_out(demo_trained: TrainResult, demo_index: Index, demo_dir: Path) -> Tr
     """Candidate rows of the demo test split, featurized with the trained model's features."""
     model = demo_trained.model
     clues = read_logs([demo_dir / "questions_test.jsonl"])
-    return build_table(demo_index, clues, model.registry_, model.feature_names_)
+    return build_table(demo_index, clues, model.registry, model.feature_names)
 
 
 @pytest.mark.slow

@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 import pytest
 from scipy.special import expit, logit
-from sklearn.exceptions import ConvergenceWarning
+from sklearn.exceptions import ConvergenceWarning, NotFittedError
 from sklearn.isotonic import IsotonicRegression
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import log_loss
@@ -24,13 +24,13 @@ from sklearn.preprocessing import StandardScaler
 from reranker import (
     ModelFormatError,
     ModelMismatchError,
-    Reranker,
     TrainingError,
     load_model,
     read_model,
     save_model,
 )
 from reranker.model import apply_calibrator
+from reranker.training.estimator import Reranker
 from reranker.training.fitting import fit_calibrator, grouped_folds
 from reranker.training.table import TrainingTable
 from reranker.training.train import TrainResult
@@ -93,11 +93,11 @@ def test_save_and_load_give_identical_probabilities(
     plain: Reranker, table: TrainingTable, tmp_path: Path
 ) -> None:
     path = tmp_path / "sub" / "model.json"
-    written = save_model(plain, path, note="hello")
+    written = save_model(plain.model_, path, note="hello")
     loaded = read_model(path)
     np.testing.assert_array_equal(loaded.probability(table.X), plain.probability(table.X))
     assert loaded.feature_names_ == table.feature_names
-    assert loaded.version == written["model_version"] == plain.version != "unsaved"
+    assert loaded.version == written["model_version"] == plain.model_.version != "unsaved"
     assert json.loads(path.read_text())["note"] == "hello"
     assert [p.name for p in path.parent.iterdir()] == ["model.json"]  # no temp file left
 
@@ -135,10 +135,20 @@ def test_training_refuses_data_without_both_labels() -> None:
         Reranker().fit(X, np.tile([0, 1], 5), np.zeros(10, dtype=int), ["a", "b"])
     with pytest.raises(ValueError, match="feature names"):
         Reranker().fit(X, np.tile([0, 1], 5), groups, ["a"])
+    # As in scikit-learn, settings are stored by __init__ and checked by fit.
     with pytest.raises(ValueError, match="calibration"):
-        Reranker(calibration="magic")
+        Reranker(calibration="magic").fit(X, np.tile([0, 1], 5), groups, ["a", "b"])
     with pytest.raises(ValueError, match="Cs"):
-        Reranker(Cs=(0.0,))
+        Reranker(Cs=(0.0,)).fit(X, np.tile([0, 1], 5), groups, ["a", "b"])
+
+
+def test_an_unfitted_reranker_says_so() -> None:
+    # scikit-learn's convention: NotFittedError (a ValueError and an AttributeError).
+    with pytest.raises(NotFittedError, match="not fitted"):
+        Reranker().probability(np.zeros((1, 2)))
+    with pytest.raises(NotFittedError):
+        _ = Reranker().coef_
+    assert not hasattr(Reranker(), "coef_")
 
 
 def test_no_convergence_warnings_and_extreme_rows(table: TrainingTable) -> None:
@@ -222,7 +232,7 @@ def test_stored_calibrator_is_fit_on_out_of_fold_probabilities(
     np.testing.assert_allclose(
         m.probability(table.X), apply_calibrator(m.calibrator_, fitted), atol=1e-9
     )
-    save_model(m, tmp_path / "m.json")
+    save_model(m.model_, tmp_path / "m.json")
     np.testing.assert_array_equal(
         read_model(tmp_path / "m.json").probability(table.X), m.probability(table.X)
     )

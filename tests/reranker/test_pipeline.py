@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from reranker import Payoff, Reranker, default_registry, load_model, rank_clue, rank_clues
+from reranker import Payoff, ServedModel, default_registry, load_model, rank_clue, rank_clues
 from reranker.features import builtin as B
 from reranker.features import candidate_set
 from reranker.training.train import TrainResult
@@ -16,7 +16,7 @@ from tests.reranker.conftest import World
 
 
 @pytest.fixture(scope="module")
-def model(world_trained: TrainResult, world_model_path: Path, world: World) -> Reranker:
+def model(world_trained: TrainResult, world_model_path: Path, world: World) -> ServedModel:
     """The small world's model as a server loads it."""
     return load_model(world_model_path, index=world.index)
 
@@ -39,7 +39,7 @@ def test_without_a_model_candidates_are_in_bm25_order(world: World, clues: list[
 
 
 def test_with_a_model_candidates_are_sorted_by_probability(
-    world: World, model: Reranker, clues: list[str]
+    world: World, model: ServedModel, clues: list[str]
 ) -> None:
     for clue in clues[:10]:
         r = rank_clue(world.index, model, clue, include_features=True)
@@ -48,14 +48,14 @@ def test_with_a_model_candidates_are_sorted_by_probability(
         assert probs == sorted(probs, reverse=True)
         assert {c.doc_id for c in r.candidates} == {h.doc_id for h in world.index.search(clue)}
         # each probability is the model's probability of the features served with it
-        x = np.array([[c.features[n] for n in model.feature_names_] for c in r.candidates])
+        x = np.array([[c.features[n] for n in model.feature_names] for c in r.candidates])
         np.testing.assert_array_equal(model.probability(x), probs)
         assert r.model_version == model.version
         # the qualifier served is the stored one (read from the per-row name cache)
         assert all(c.qualifier == world.index.document(c.doc_id).qualifier for c in r.candidates)
 
 
-def test_include_features_returns_the_feature_values(world: World, model: Reranker) -> None:
+def test_include_features_returns_the_feature_values(world: World, model: ServedModel) -> None:
     clue = "This river is known for"
     r = rank_clue(world.index, model, clue, include_features=True)
     hits = world.index.search(clue)
@@ -65,7 +65,7 @@ def test_include_features_returns_the_feature_values(world: World, model: Rerank
         values = getattr(B, name)(cs)
         for h, v in zip(hits, values.tolist(), strict=True):
             assert by_id[h.doc_id].features[name] == v, name
-    assert list(r.candidates[0].features) == model.feature_names_
+    assert list(r.candidates[0].features) == model.feature_names
     assert rank_clue(world.index, model, clue).candidates[0].features == {}
     # without a model, include_features gives every registered feature
     plain = rank_clue(world.index, None, clue, include_features=True)
@@ -73,7 +73,7 @@ def test_include_features_returns_the_feature_values(world: World, model: Rerank
 
 
 def test_decision_uses_the_tuned_threshold_or_a_given_payoff(
-    world: World, model: Reranker, world_trained: TrainResult, clues: list[str]
+    world: World, model: ServedModel, world_trained: TrainResult, clues: list[str]
 ) -> None:
     r = rank_clue(world.index, model, clues[1])
     assert r.decision.threshold == world_trained.artifact["decision"]["threshold"]
@@ -87,14 +87,14 @@ def test_decision_uses_the_tuned_threshold_or_a_given_payoff(
 
 
 def test_rank_clues_equals_rank_clue_per_clue(
-    world: World, model: Reranker, clues: list[str]
+    world: World, model: ServedModel, clues: list[str]
 ) -> None:
     batch = rank_clues(world.index, model, clues[:8], k=7, include_features=True)
     single = [rank_clue(world.index, model, c, k=7, include_features=True) for c in clues[:8]]
     assert batch == single
 
 
-def test_clue_with_no_known_words(world: World, model: Reranker) -> None:
+def test_clue_with_no_known_words(world: World, model: ServedModel) -> None:
     r = rank_clue(world.index, model, "zzzz qqqq")
     assert r.candidates == [] and r.n_tokens == 2
     assert r.decision.action == "wait" and "no candidates" in r.decision.reason
@@ -102,7 +102,7 @@ def test_clue_with_no_known_words(world: World, model: Reranker) -> None:
 
 # -- the requested k only cuts the reply: features are always over the model's k ---------------
 def test_probabilities_and_decisions_do_not_depend_on_the_requested_k(
-    world: World, model: Reranker, world_trained: TrainResult, clues: list[str]
+    world: World, model: ServedModel, world_trained: TrainResult, clues: list[str]
 ) -> None:
     model_k = world_trained.artifact["training"]["k"]
     checked = 0
@@ -119,7 +119,7 @@ def test_probabilities_and_decisions_do_not_depend_on_the_requested_k(
 
 
 def test_rank_clues_at_any_k_is_the_model_k_reply_cut(
-    world: World, model: Reranker, world_trained: TrainResult, clues: list[str]
+    world: World, model: ServedModel, world_trained: TrainResult, clues: list[str]
 ) -> None:
     model_k = world_trained.artifact["training"]["k"]
     full = rank_clues(world.index, model, clues[:6], k=model_k, include_features=True)
@@ -130,7 +130,7 @@ def test_rank_clues_at_any_k_is_the_model_k_reply_cut(
 
 
 def test_a_k_above_the_models_is_refused_and_none_means_the_models(
-    world: World, model: Reranker, world_trained: TrainResult, clues: list[str]
+    world: World, model: ServedModel, world_trained: TrainResult, clues: list[str]
 ) -> None:
     model_k = world_trained.artifact["training"]["k"]
     for bad in (model_k + 1, 0):

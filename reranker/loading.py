@@ -1,0 +1,137 @@
+"""Loading a model for serving: the fitted numbers bound to the features, metadata and threshold.
+
+`load_model` returns one frozen `ServedModel`, everything the ranking path needs: the plain
+linear model, the feature registry that computes its columns, the metadata columns, the
+decision threshold and the model's k (the candidate-set size its features were learned on).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from retriever import Index
+
+from .errors import ModelFormatError, ModelMismatchError
+from .features import (
+    FEATURE_SET_VERSION,
+    FeatureRegistry,
+    MetadataColumns,
+    default_registry,
+    qualifier_counts,
+)
+from .model import LinearModel, read_model
+
+DEFAULT_K = 20  # candidates per clue when neither the caller nor a model says otherwise
+
+
+@dataclass(frozen=True)
+class ServedModel:
+    """A model ready to rank: numbers, the features that feed them, threshold and k."""
+
+    model: LinearModel
+    registry: FeatureRegistry
+    code_features: tuple[str, ...]  # computed features, in the model's column order
+    metadata: MetadataColumns  # metadata columns, after the computed ones
+    threshold: float
+    k: int
+
+    @property
+    def version(self) -> str:
+        """The model artifact's version."""
+        return self.model.version
+
+    @property
+    def artifact(self) -> dict[str, Any]:
+        """The model file's whole content."""
+        return self.model.artifact_
+
+    @property
+    def feature_names(self) -> list[str]:
+        """Every column the model reads, in order."""
+        return self.model.feature_names_
+
+    def probability(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated P(answer) of each row. float64, shape (n,)."""
+        return self.model.probability(X)
+
+
+def model_k(model: ServedModel) -> int:
+    """How many candidates per clue the model was trained on (its features' rival set)."""
+    return model.k
+
+
+def _artifact_k(model: LinearModel, source: str) -> int:
+    k = (model.artifact_.get("training") or {}).get("k", DEFAULT_K)
+    if not isinstance(k, int) or isinstance(k, bool) or k < 1:
+        raise ModelFormatError(
+            f"{source}: training.k must be a positive integer, got {k!r}; retrain it"
+        )
+    return k
+
+
+def serve(
+    model: LinearModel,
+    registry: FeatureRegistry,
+    *,
+    threshold: float | None = None,
+    source: str = "<model>",
+) -> ServedModel:
+    """Bind a fitted model to the registry that computes its features; check they match."""
+    data = model.artifact_
+    if data.get("feature_set_version") != FEATURE_SET_VERSION:
+        raise ModelMismatchError(
+            f"{source}: model built with feature set version {data.get('feature_set_version')}, "
+            f"this code has "
+            f"version {FEATURE_SET_VERSION}; retrain with 'hunchwise train'"
+        )
+    meta_spec = data.get("metadata_columns") or {}
+    meta = MetadataColumns(
+        tuple(meta_spec.get("numeric", ())),
+        {k: tuple(v) for k, v in meta_spec.get("categorical", {}).items()},
+    )
+    code_names = [n for n in model.feature_names_ if not n.startswith("meta:")]
+    missing = [n for n in code_names if n not in registry]
+    extra_meta = [n for n in model.feature_names_ if n.startswith("meta:") and n not in meta.names]
+    if missing or extra_meta:
+        raise ModelMismatchError(
+            f"{source}: the model uses features the running code does not provide: "
+            f"{missing + extra_meta}. "
+            "Register the user features it was trained with (--feature module:function) or retrain."
+        )
+    if model.feature_names_ != code_names + meta.names:
+        raise ModelMismatchError(
+            f"{source}: metadata columns must come after the computed features"
+        )
+    if threshold is None:
+        threshold = (data.get("decision") or {}).get("threshold", 0.5)
+    return ServedModel(
+        model=model,
+        registry=registry,
+        code_features=tuple(code_names),
+        metadata=meta,
+        threshold=float(threshold),
+        k=_artifact_k(model, source),  # a damaged training.k fails here, not at a request
+    )
+
+
+def load_model(
+    path: str | Path,
+    *,
+    index: Index | None = None,
+    registry: FeatureRegistry | None = None,
+    user_features: Sequence[str] = (),
+) -> ServedModel:
+    """Read a model file and check that the running code provides every feature it uses."""
+    model = read_model(path)
+    reg = registry if registry is not None else default_registry().with_user_features(user_features)
+    served = serve(model, reg, source=str(path))
+    if index is not None:
+        # One pass over the qualifiers before serving; titles are analyzed per row when first
+        # seen among the candidates, so a large index costs nothing more here.
+        qualifier_counts(index)
+    return served
