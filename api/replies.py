@@ -40,6 +40,7 @@ def rank_result(request_id: str, r: Ranking, include_features: bool) -> s.RankRe
             score=c.score,
             rank=c.rank,
             probability=c.probability,
+            pointwise=c.pointwise,
             features=finite(c.features) if include_features else None,
         )
         for c in r.candidates
@@ -52,7 +53,14 @@ def rank_result(request_id: str, r: Ranking, include_features: bool) -> s.RankRe
         threshold=d.threshold,
         reason=d.reason,
     )
-    return s.RankResult(request_id=request_id, clue=r.clue, candidates=cands, decision=decision)
+    return s.RankResult(
+        request_id=request_id,
+        clue=r.clue,
+        candidates=cands,
+        decision=decision,
+        in_candidates=r.in_candidates,
+        none_of_these=r.none_of_these,
+    )
 
 
 def served_record(
@@ -71,6 +79,7 @@ def served_record(
         "complete": complete,
         "index_version": r.index_version,
         "model_version": r.model_version,
+        "in_candidates": r.in_candidates,
         "candidates": [
             {
                 "id": c.doc_id,
@@ -78,6 +87,7 @@ def served_record(
                 "score": c.score,
                 "rank": c.rank,
                 "probability": c.probability,
+                "pointwise": c.pointwise,
                 "features": finite(c.features),
             }
             for c in r.candidates

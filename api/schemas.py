@@ -99,7 +99,15 @@ class CandidateOut(BaseModel):
     qualifier: str = Field(description="parenthetical part of the title, '' if none")
     score: float = Field(description="BM25 score")
     rank: int = Field(description="1-based BM25 rank")
-    probability: float | None = Field(description="calibrated probability; null without a model")
+    probability: float | None = Field(
+        description="its share of the clue's distribution: P(this candidate is the answer); "
+        "the candidates' shares and none_of_these sum to 1; null without a model"
+    )
+    pointwise: float | None = Field(
+        default=None,
+        description="the candidate model's own calibrated probability, before the clue's "
+        "distribution shares it out; null without a model",
+    )
     features: dict[str, float | None] | None = Field(
         default=None, description="feature values (only when include_features is true)"
     )
@@ -129,6 +137,14 @@ class RankResult(BaseModel):
     clue: str
     candidates: list[CandidateOut]
     decision: DecisionOut
+    in_candidates: float | None = Field(
+        default=None,
+        description="P(the answer is among the model's k candidates); null without a model",
+    )
+    none_of_these: float | None = Field(
+        default=None,
+        description="P(none of the model's k candidates is the answer) = 1 - in_candidates",
+    )
 
 
 class RankResponse(RankResult):

@@ -25,6 +25,7 @@ from .features import (
     qualifier_counts,
 )
 from .model import LinearModel, read_model
+from .presence import PresenceModel, distribute, evidence
 
 DEFAULT_K = 20  # candidates per clue when neither the caller nor a model says otherwise
 
@@ -39,6 +40,7 @@ class ServedModel:
     metadata: MetadataColumns  # metadata columns, after the computed ones
     threshold: float
     k: int
+    presence: PresenceModel  # P(the answer is among the candidates), from clue-level evidence
 
     @property
     def version(self) -> str:
@@ -56,8 +58,19 @@ class ServedModel:
         return self.model.feature_names_
 
     def probability(self, X: np.ndarray) -> np.ndarray:
-        """Calibrated P(answer) of each row. float64, shape (n,)."""
+        """Pointwise calibrated P(answer) of each row. float64, shape (n,)."""
         return self.model.probability(X)
+
+    def distribution(
+        self, p: np.ndarray, scores: np.ndarray, n_words: int
+    ) -> tuple[np.ndarray, float]:
+        """One clue's candidates' shares of P(among), and P(among) itself.
+
+        p: the set's pointwise probabilities; scores: their BM25 scores; n_words: the clue's
+        words. The shares plus 1 - P(among) ("none of these") sum to 1.
+        """
+        among = float(self.presence.probability(evidence(p, scores, n_words))[0])
+        return distribute(p, among), among
 
 
 def model_k(model: ServedModel) -> int:
@@ -116,6 +129,7 @@ def serve(
         metadata=meta,
         threshold=float(threshold),
         k=_artifact_k(model, source),  # a damaged training.k fails here, not at a request
+        presence=PresenceModel.from_dict(data.get("presence"), source=source),
     )
 
 

@@ -21,7 +21,7 @@ from retriever import atomicfile
 from .errors import ModelFormatError
 
 FORMAT_NAME = "hunchwise-model"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: the presence section (one distribution per clue)
 _EPS = 1e-6  # keep calibrated probabilities off 0 and 1 so log-loss stays finite
 
 

@@ -25,8 +25,9 @@ class ScoredCandidate:
     qualifier: str
     score: float
     rank: int
-    probability: float | None
+    probability: float | None  # its share of the clue's distribution (with a model)
     features: dict[str, float]
+    pointwise: float | None = None  # the candidate model's own P(answer), before sharing out
 
 
 @dataclass(frozen=True)
@@ -41,6 +42,14 @@ class Ranking:
     n_tokens: int
     k: int  # candidates asked for (the reply holds at most this many)
     model_k: int | None  # candidates the features were computed over; None without a model
+    # P(the answer is among the model's k candidates); the candidates' probabilities sum to
+    # it, and 1 - in_candidates is the "none of these" share. None without a model.
+    in_candidates: float | None = None
+
+    @property
+    def none_of_these(self) -> float | None:
+        """P(none of the candidates is the answer)."""
+        return None if self.in_candidates is None else 1.0 - self.in_candidates
 
 
 def _ks(model: ServedModel | None, k: int | None) -> tuple[int, int]:
@@ -104,15 +113,21 @@ def _rank_hits(
 ) -> Ranking:
     cs = candidate_set(index, clue, hits, metadata, tokens, words)
     probs: list[float] | None = None
+    pointwise: list[float] | None = None
+    among: float | None = None
     x, names = np.zeros((len(hits), 0)), list[str]()
     if model is not None or include_features:
         x, names = _features_of(model, registry, cs)
     if model is not None and hits:
         p = model.probability(x)
-        probs = p.tolist()
+        q, among = model.distribution(p, cs.scores, len(words))
+        probs, pointwise = q.tolist(), p.tolist()
+        # q is p times one positive factor, so ranking by p ranks by q, without q's rounding.
         order = np.argsort(-p, kind="stable").tolist()
     else:
         order = list(range(len(hits)))
+        if model is not None:
+            among = 0.0  # no candidate at all: the answer is certainly not among them
     # Features and probabilities are over the whole set; only the reply is cut to k.
     order = order[:keep]
     qualifiers = cs.qualifiers
@@ -126,6 +141,7 @@ def _rank_hits(
             hits[i].rank,
             None if probs is None else probs[i],
             dict(zip(names, values[j], strict=True)) if values is not None else {},
+            None if pointwise is None else pointwise[i],
         )
         for j, i in enumerate(order)
     ]
@@ -146,6 +162,7 @@ def _rank_hits(
         n_tokens=len(cs.tokens),
         k=keep,
         model_k=set_k,
+        in_candidates=among,
     )
 
 

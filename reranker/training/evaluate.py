@@ -16,6 +16,7 @@ from retriever import Index
 from ..decision import Payoff, simulate_commits
 from ..features.builtin import SCORE_ONLY
 from ..loading import ServedModel
+from ..presence import distribute_groups
 from . import measures as M
 from .estimator import Reranker
 from .fitting import grouped_folds, oof_proba
@@ -178,7 +179,10 @@ def evaluate(
             "the evaluation logs give no candidate rows with a right answer; "
             "check the answers resolve"
         )
-    prob = model.probability(table.columns(model.feature_names))
+    pointwise = model.probability(table.columns(model.feature_names))
+    # The clue figures and decisions use each clue's distribution (candidates' shares of
+    # P(among)); the candidate figures the pointwise probabilities, like the baselines'.
+    prob, _ = distribute_groups(model.presence, table.group, pointwise, table.score, table.words)
     bm25_only = (
         Reranker(calibration="none", n_folds=n_folds)
         .fit(_columns(table, SCORE_ONLY), table.y, table.clue_id, list(SCORE_ONLY))
@@ -186,8 +190,11 @@ def evaluate(
     )
     full = table.fraction == 1.0
     clue = M.clue_metrics(table.group[full], table.y[full], prob[full], table.score[full])
+    clue["clue_log_loss_pointwise"] = M.clue_log_loss(
+        table.group[full], table.y[full], pointwise[full]
+    )
     candidate = {
-        "model": M.candidate_metrics(table.y, prob),
+        "model": M.candidate_metrics(table.y, pointwise),
         "bm25_only": M.candidate_metrics(table.y, bm25_only),
         "all_wrong": M.baseline_all_wrong(table.y),
     }
@@ -230,7 +237,7 @@ def evaluate(
     paths = write_report(
         report_dir,
         metrics,
-        reliability_candidate=M.reliability_table(table.y, prob),
+        reliability_candidate=M.reliability_table(table.y, pointwise),
         reliability_top=clue["top_candidate_reliability"],
         prefix_rows=prefix_rows,
         ablation_rows=rows,

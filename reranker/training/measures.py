@@ -182,7 +182,30 @@ def clue_metrics(
         "top_candidate_reliability": reliability_table(top_y, top_p),
         "top_candidate_brier": float(brier_score_loss(top_y, top_p, labels=[0, 1])),
         "mean_top_probability": float(top_p.mean()),
+        "clue_log_loss": clue_log_loss(g, y, p),
     }
+
+
+def clue_log_loss(groups: Any, y_true: Any, prob: Any, eps: float = 1e-15) -> float:
+    """Mean over clues of -log P(right candidate), or -log P(none of these) without one.
+
+    prob is one distribution per clue: its candidates' shares, whose remainder to 1 is the
+    "none of these" share. A pointwise model's probabilities can sum past 1 within a clue;
+    their remainder is then clipped at eps, the same clip as scikit-learn's log_loss uses
+    for a probability of 0. Rows must be grouped by clue id (any order within a clue).
+    """
+    y, p = _labels_and_probs(y_true, prob)
+    g = _groups(groups, len(y))
+    if len(y) == 0:
+        return float("nan")
+    order = np.argsort(g, kind="stable")
+    g, y, p = g[order], y[order], p[order]
+    starts = np.flatnonzero(np.r_[True, g[1:] != g[:-1]])
+    right = np.add.reduceat(np.where(y == 1, p, 0.0), starts)
+    found = np.maximum.reduceat(y, starts) == 1
+    none = 1.0 - np.add.reduceat(p, starts)
+    chosen = np.where(found, right, none)
+    return float(-np.log(np.clip(chosen, eps, 1.0)).mean())
 
 
 def _payoff_terms(payoff: Any) -> tuple[float, float]:

@@ -71,6 +71,7 @@ class TrainingTable:
     score: np.ndarray  # float64, shape (n,): BM25 score
     rank: np.ndarray  # int64, shape (n,)
     row: np.ndarray  # int64, shape (n,): index row of the candidate
+    words: np.ndarray  # int64, shape (n,): words in the clue prefix (the analyzer's words)
     feature_names: list[str]
     unresolved: list[dict[str, Any]] = field(default_factory=list)
     n_clues: int = 0
@@ -89,7 +90,7 @@ class TrainingTable:
         import pandas as pd  # here, not at the top: serving never builds a table
 
         df = pd.DataFrame(self.X, columns=self.feature_names)
-        for name in ("y", "group", "clue_id", "fraction", "score", "rank", "row"):
+        for name in ("y", "group", "clue_id", "fraction", "score", "rank", "row", "words"):
             df[f"_{name}"] = getattr(self, name)
         return df
 
@@ -155,7 +156,7 @@ def build_table(
     all_names = names + metadata.names
     blocks: list[np.ndarray] = []
     cols: dict[str, list[np.ndarray]] = {
-        n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row")
+        n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row", "words")
     }
     for g, (text, tokens, words, hits, (cid, frac, gold, meta)) in enumerate(
         tqdm(
@@ -184,6 +185,7 @@ def build_table(
         cols["score"].append(cs.scores)
         cols["rank"].append(cs.ranks)
         cols["row"].append(cs.rows)
+        cols["words"].append(np.full(n, len(words), np.int64))
 
     def cat(name: str, dtype: Any) -> np.ndarray:
         return np.concatenate(cols[name]).astype(dtype) if cols[name] else np.zeros(0, dtype)
@@ -197,6 +199,7 @@ def build_table(
         score=cat("score", np.float64),
         rank=cat("rank", np.int64),
         row=cat("row", np.int64),
+        words=cat("words", np.int64),
         feature_names=all_names,
         unresolved=unresolved,
         n_clues=n_clues,

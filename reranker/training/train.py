@@ -18,7 +18,8 @@ from ..loading import ServedModel, serve
 from ..model import save_model
 from .estimator import Reranker
 from .logs import LogReport, read_logs
-from .measures import candidate_metrics, clue_metrics
+from .measures import candidate_metrics, clue_log_loss, clue_metrics
+from .presence import fit_presence
 from .table import PrefixPlan, TrainingTable, build_table
 
 
@@ -32,6 +33,8 @@ class TrainResult:
     artifact: dict[str, Any]
     table: TrainingTable
     log_report: LogReport
+    # Held-out per-clue distribution of every table row (what the threshold was tuned on).
+    oof_distribution: np.ndarray
     notes: list[str] = field(default_factory=list)
 
 
@@ -95,7 +98,10 @@ def train(
     estimator = Reranker(calibration=calibration).fit(
         table.X, table.y, table.clue_id, table.feature_names
     )
-    tops = prefix_tops(table, estimator.oof_proba_)
+    # One distribution per clue: P(among the candidates) from clue-level evidence, shared out
+    # in proportion to the pointwise probabilities. Decisions are tuned on that distribution.
+    presence, q_oof = fit_presence(table, estimator.oof_proba_)
+    tops = prefix_tops(table, q_oof)
     tuned = tune_threshold(tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff)
     at_break_even = simulate_commits(
         tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff.break_even, payoff
@@ -130,7 +136,8 @@ def train(
             "skipped_lines": report.skipped,
             "served_without_feedback": report.served_without_feedback,
         },
-        metrics=_oof_metrics(table, estimator.oof_proba_),
+        presence=presence.to_dict(),
+        metrics=_oof_metrics(table, estimator.oof_proba_, q_oof),
         decision={
             "threshold": tuned["threshold"],
             "break_even": payoff.break_even,
@@ -141,12 +148,17 @@ def train(
     )
     # Ready to serve as load_model would leave it, so rank_clue and evaluate take it directly.
     served = serve(estimator.model_, reg, source=str(out))
-    return TrainResult(served, estimator, artifact, table, report, notes)
+    return TrainResult(served, estimator, artifact, table, report, q_oof, notes)
 
 
-def _oof_metrics(table: TrainingTable, oof: np.ndarray) -> dict[str, Any]:
-    """Cross-validated (out-of-fold) figures of the training data, stored in the artifact."""
+def _oof_metrics(table: TrainingTable, oof: np.ndarray, q_oof: np.ndarray) -> dict[str, Any]:
+    """Cross-validated (out-of-fold) figures of the training data, stored in the artifact.
+
+    Candidate figures are of the pointwise probabilities; clue figures of the per-clue
+    distribution, with the pointwise probabilities' clue-level log-loss beside them.
+    """
     full = table.fraction == 1.0
-    clue = clue_metrics(table.group[full], table.y[full], oof[full], table.score[full])
+    clue = clue_metrics(table.group[full], table.y[full], q_oof[full], table.score[full])
     clue.pop("top_candidate_reliability", None)
+    clue["clue_log_loss_pointwise"] = clue_log_loss(table.group[full], table.y[full], oof[full])
     return {"out_of_fold": True, "candidate": candidate_metrics(table.y, oof), "clue": clue}

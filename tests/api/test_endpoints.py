@@ -16,6 +16,7 @@ from reranker.training import read_logs
 from retriever import load_index
 from tests.api.svc_helpers import read_jsonl
 
+CANDIDATE_KEYS = {"id", "title", "score", "rank", "probability", "pointwise", "features"}
 SERVED_KEYS = {
     "kind",
     "request_id",
@@ -23,6 +24,7 @@ SERVED_KEYS = {
     "clue",
     "k",
     "model_k",
+    "in_candidates",
     "complete",
     "index_version",
     "model_version",
@@ -173,9 +175,21 @@ def test_served_log_has_the_trainer_shape(
         assert datetime.fromisoformat(rec["time"]).utcoffset() == timedelta(0)
         assert isinstance(rec["k"], int) and rec["complete"] is False
         for c in rec["candidates"]:
-            assert set(c) == {"id", "title", "score", "rank", "probability", "features"}
+            assert set(c) == {
+                "id",
+                "title",
+                "score",
+                "rank",
+                "probability",
+                "pointwise",
+                "features",
+            }
             assert c["features"]  # logged even when the reply left them out
         assert set(rec["decision"]) == {"action", "id", "probability", "threshold", "reason"}
+        # one distribution per clue: the logged shares and "none of these" sum to 1 over the
+        # model's k candidates (here k = model_k or fewer, so at most 1)
+        shares = sum(c["probability"] for c in rec["candidates"])
+        assert 0 < rec["in_candidates"] < 1 and shares <= rec["in_candidates"] + 1e-12
     assert served[0]["request_id"] == rid and served[0]["k"] == 5
     fb = [x for x in lines if x["kind"] == "feedback"]
     assert fb[0] == {

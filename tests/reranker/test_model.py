@@ -29,7 +29,7 @@ from reranker import (
     read_model,
     save_model,
 )
-from reranker.model import apply_calibrator
+from reranker.model import FORMAT_VERSION, apply_calibrator
 from reranker.training.estimator import Reranker
 from reranker.training.fitting import fit_calibrator, grouped_folds
 from reranker.training.table import TrainingTable
@@ -255,7 +255,8 @@ def _write(path: Path, data: Any) -> Path:
 def test_model_file_is_plain_json(world_model_path: Path, artifact: dict[str, Any]) -> None:
     raw = world_model_path.read_bytes()
     assert not raw.startswith(b"\x80")  # the pickle protocol 2+ opcode
-    assert artifact["format"] == "hunchwise-model" and artifact["format_version"] == 1
+    assert artifact["format"] == "hunchwise-model"
+    assert artifact["format_version"] == FORMAT_VERSION == 2
     numbers = artifact["coef"] + artifact["scaler"]["mean"] + artifact["scaler"]["scale"]
     assert all(isinstance(v, float) for v in numbers)
     assert len(artifact["coef"]) == len(artifact["feature_names"])

@@ -47,9 +47,14 @@ def test_with_a_model_candidates_are_sorted_by_probability(
         probs = [float(c.probability or 0.0) for c in r.candidates]
         assert probs == sorted(probs, reverse=True)
         assert {c.doc_id for c in r.candidates} == {h.doc_id for h in world.index.search(clue)}
-        # each probability is the model's probability of the features served with it
+        # each pointwise probability is the model's probability of the features served with it
         x = np.array([[c.features[n] for n in model.feature_names] for c in r.candidates])
-        np.testing.assert_array_equal(model.probability(x), probs)
+        np.testing.assert_array_equal(model.probability(x), [c.pointwise for c in r.candidates])
+        # the probabilities are one distribution: shares of P(among), plus "none of these"
+        assert r.in_candidates is not None and r.none_of_these is not None
+        assert abs(sum(probs) + r.none_of_these - 1.0) < 1e-12
+        p = np.array([c.pointwise for c in r.candidates])
+        np.testing.assert_allclose(probs, p / p.sum() * r.in_candidates, rtol=1e-12)
         assert r.model_version == model.version
         # the qualifier served is the stored one (read from the per-row name cache)
         assert all(c.qualifier == world.index.document(c.doc_id).qualifier for c in r.candidates)

@@ -62,7 +62,7 @@ def test_unresolved_answers_are_counted_and_listed(
 def test_threshold_is_tuned_on_out_of_fold_probabilities(world_trained: TrainResult) -> None:
     d = world_trained.artifact["decision"]
     assert d["break_even"] == 0.5 and d["payoff"] == {"reward": 1.0, "penalty": 1.0}
-    tops = prefix_tops(world_trained.table, world_trained.estimator.oof_proba_)
+    tops = prefix_tops(world_trained.table, world_trained.oof_distribution)
     again = tune_threshold(tops["clue"], tops["fraction"], tops["prob"], tops["right"], Payoff())
     assert d["threshold"] == again["threshold"] == d["tuned_on_held_out"]["threshold"]
     assert d["at_break_even"]["threshold"] == 0.5
@@ -70,7 +70,7 @@ def test_threshold_is_tuned_on_out_of_fold_probabilities(world_trained: TrainRes
     table = world_trained.table
     assert tops["group"].size == np.unique(table.group).size
     for g, p in zip(tops["group"][:20].tolist(), tops["prob"][:20].tolist(), strict=True):
-        assert p == world_trained.estimator.oof_proba_[table.group == g].max()
+        assert p == world_trained.oof_distribution[table.group == g].max()
 
 
 def test_trained_model_serves_like_the_loaded_one(
