@@ -16,6 +16,7 @@ import scipy.sparse as sp
 from tqdm.auto import tqdm
 
 from . import bm25, columns, store
+from . import vectors as vecs
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
 from .counting import TermCounter, count_articles, default_workers, no_gc
@@ -240,6 +241,7 @@ def build_index(
     progress: bool = False,
     report: ReadReport | None = None,
     workers: int | None = None,
+    vectors: Any = True,
     **options: Any,
 ) -> Index:
     """Build an index folder from a corpus file or records; an old one is replaced only on success.
@@ -247,9 +249,12 @@ def build_index(
     Options may name any AnalyzerConfig field (stemmer, stopwords, ...) or BM25Params
     field (k1, b, epsilon, idf, title_weight). `workers` processes count terms (default:
     2 on multi-core machines for corpora over ~20k articles, else 1); the result is the same.
+    `vectors`: True (default settings), False or 'off' (none), or a dict of
+    vectors.VectorSettings fields: word vectors trained on the corpus for dense search.
     """
     started = time.perf_counter()
     an, p = _resolve_settings(analyzer, params, dict(options))
+    vec_settings = vecs.resolve_settings(vectors)
     report = report if report is not None else ReadReport()
     if isinstance(corpus, str | Path):
         path = Path(corpus)
@@ -283,6 +288,9 @@ def build_index(
             "workers": n_workers,
         }
         _write(tmp, state.keys, state.counter, None, an, p, checksum, build, started)
+        del state
+        if vec_settings is not None:
+            vecs.add_to_folder(tmp, an, vec_settings, progress=progress)
     return load_index(out)
 
 
@@ -378,8 +386,14 @@ def update_index(
     }
     params = old.params
     order = np.asarray(source_pos, dtype=np.int64)
+    vec_entry = old.manifest.get("vectors")
     del old  # release the memory maps before the folder is swapped
     with store.atomic_folder(Path(index_dir)) as tmp:
         store.write_store(tmp, final)
         _write(tmp, Keys.of(final), counter, order, an, params, checksum, build, started)
+        if vec_entry:
+            # The stored word vectors and weights give every article its vector again
+            # (no training; a kept article's vector comes out as before).
+            settings = vecs.VectorSettings.from_dict(vec_entry["settings"])
+            vecs.add_to_folder(tmp, an, settings, from_folder=Path(index_dir))
     return load_index(index_dir)

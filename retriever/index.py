@@ -13,12 +13,14 @@ from typing import Any
 
 import numpy as np
 
-from . import columns, scoring, store
+from . import columns, hybrid, scoring, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .counting import cores
+from .dense import DenseSearcher
 from .errors import IndexFormatError, UnknownDocumentError
 from .links import NameResolver
+from .vectors import DenseVectors
 
 
 @dataclass(frozen=True)
@@ -125,6 +127,12 @@ class Index:
     def resolver(self) -> NameResolver:
         """Name-to-row lookup over ids, titles and aliases (built on first use)."""
         return NameResolver(self.ids, self.titles, self.aliases)
+
+    @cached_property
+    def dense(self) -> DenseSearcher | None:
+        """Nearest-article search over the word vectors, or None for an index without them."""
+        vectors = DenseVectors.open(self.path, self.manifest)
+        return DenseSearcher(vectors) if vectors is not None else None
 
     def row_of(self, doc_id: str) -> int:
         """Row of an article id; raises UnknownDocumentError."""
@@ -279,6 +287,16 @@ class Index:
         with ThreadPoolExecutor(len(shards), thread_name_prefix="hunchwise-search") as pool:
             parts = pool.map(lambda shard: self.search_token_lists(shard, k), shards)
             return [hits for part in parts for hits in part]
+
+    def search_hybrid(self, clue: str, k: int = 20, **options: Any) -> hybrid.HybridResult:
+        """BM25 and word-vector candidates fused into one list (see retriever/hybrid.py)."""
+        return hybrid.search_hybrid_many(self, [clue], k, **options)[0]
+
+    def search_hybrid_many(
+        self, clues: Sequence[str], k: int = 20, **options: Any
+    ) -> list[hybrid.HybridResult]:
+        """`search_hybrid` for each clue, in order."""
+        return hybrid.search_hybrid_many(self, clues, k, **options)
 
     def __len__(self) -> int:
         return self.n_docs

@@ -62,6 +62,14 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument("--keep-accents", action="store_true", help="do not strip accents from words")
     p.add_argument(
+        "--no-vectors",
+        action="store_true",
+        help="skip training word vectors (no dense or hybrid search; builds faster)",
+    )
+    p.add_argument(
+        "--vector-dim", type=int, default=200, help="word vector dimensions (default 200)"
+    )
+    p.add_argument(
         "--skip-bad",
         action="store_true",
         help="skip bad lines (and report them) instead of stopping",
@@ -150,6 +158,7 @@ def cmd_build(args: argparse.Namespace) -> int:
         stemmer=None if args.stemmer == "none" else args.stemmer,
         stopwords=args.stopwords,
         strip_accents=not args.keep_accents,
+        vectors=False if args.no_vectors else {"dim": args.vector_dim},
         skip_bad=args.skip_bad,
         progress=_show_progress(args),
         report=report,

@@ -59,7 +59,9 @@ def test_skip_bad_drops_exactly_the_bad_lines(tmp_path: Path, workers: int) -> N
     expected = ReadReport()
     kept = list(read_articles(path, skip_bad=True, report=expected))
     report = ReadReport()
-    idx = build_index(path, tmp_path / "idx", skip_bad=True, report=report, workers=workers)
+    idx = build_index(
+        path, tmp_path / "idx", skip_bad=True, report=report, workers=workers, vectors=False
+    )
     assert report == expected
     assert report.skipped == len(bad_lines)
     assert all(
@@ -67,7 +69,7 @@ def test_skip_bad_drops_exactly_the_bad_lines(tmp_path: Path, workers: int) -> N
     )
     assert idx.ids.tolist() == [a.id for a in kept] == [r["id"] for r in records]
     # Same index as one built from the good records alone.
-    clean = build_index(records, tmp_path / "clean", workers=1)
+    clean = build_index(records, tmp_path / "clean", workers=1, vectors=False)
     for name in ("body_docs", "body_weight", "body_indptr", "title_docs", "doc_len"):
         assert np.array_equal(
             np.load(idx.path / f"{name}.npy"), np.load(clean.path / f"{name}.npy")
