@@ -1,4 +1,4 @@
-"""Writes clue questions: obscure, paraphrased details first, a give-away sentence last."""
+"""Writes clue questions: obscure, paraphrased details first, a plain closing sentence last."""
 
 from __future__ import annotations
 
@@ -19,16 +19,16 @@ from corpus_demo.paraphrase import (
 from corpus_demo.templates import INTRO_IDX, SLOT_RE, TEMPLATES
 from corpus_demo.world import World
 
-# Invented question-set names; each has its own writing style.
+# Invented publications the clues come from; each has its own writing style.
 SOURCES: dict[str, tuple[int, int, float, float]] = {
     # name: (min sentences, max sentences, synonym rate, describe-link rate)
-    "Brindlemoor Set": (3, 5, 0.6, 0.3),
-    "Quellhaven Packet": (4, 6, 0.8, 0.35),
-    "Tarrowin Round": (3, 4, 0.45, 0.2),
-    "Ostvale Circuit": (4, 6, 0.55, 0.25),
+    "Brindlemoor Gazette": (3, 5, 0.6, 0.3),
+    "Quellhaven Review": (4, 6, 0.8, 0.35),
+    "Tarrowin Almanac": (3, 4, 0.45, 0.2),
+    "Ostvale Chronicle": (4, 6, 0.55, 0.25),
 }
 SOURCE_NAMES = tuple(SOURCES)
-GIVEAWAY_DESCRIBE = 0.65  # chance the give-away hides one of its links
+CLOSING_DESCRIBE = 0.65  # chance the closing sentence hides one of its links
 HUB_DEGREE = 40  # in-links from which a link counts as a well-known hub
 RARE_HIDE = 0.8  # extra hiding of rarely linked names
 VALUE_RATE = 0.8  # chance a plain value is reworded
@@ -111,7 +111,7 @@ def clue_sentence(
     return text[:1].upper() + text[1:]
 
 
-def giveaway(world: World, i: int, intro: Fact, rng: random.Random) -> str:
+def closing_sentence(world: World, i: int, intro: Fact, rng: random.Random) -> str:
     """Return the final sentence, which names the answer's kind and key links."""
     spec = KINDS[world.kinds[i]]
     tail = TEMPLATES[INTRO_IDX[world.kinds[i]]].text
@@ -121,7 +121,7 @@ def giveaway(world: World, i: int, intro: Fact, rng: random.Random) -> str:
     tail = head + sep + paraphrase(rest, rng, 0.15)
     values = dict(intro.values)
     values.update({s: ref_name(world, r) for s, r in intro.refs.items()})
-    if intro.refs and rng.random() < GIVEAWAY_DESCRIBE:
+    if intro.refs and rng.random() < CLOSING_DESCRIBE:
         slot = rng.choice(sorted(intro.refs))
         tail = _describe(tail, slot, re.sub(r"\d", "", slot))
     text = SLOT_RE.sub(lambda m: values[m.group(1) + m.group(2)], tail)
@@ -146,7 +146,7 @@ def make_clue(world: World, i: int, rng: random.Random, source: str) -> str:
         vague = pos < VAGUE_SENTENCES
         rate = min(1.0, syn + (0.2 if vague else -0.1))
         sentences.append(clue_sentence(world, i, fact, rng, rate, desc, vague))
-    sentences.append(giveaway(world, i, intro, rng))
+    sentences.append(closing_sentence(world, i, intro, rng))
     era = ERAS[int(world.era[i])][0]
     free = list(range(len(sentences) - 1))
     rng.shuffle(free)

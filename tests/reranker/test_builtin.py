@@ -1,9 +1,9 @@
 """Built-in features on the five-article corpus of conftest, with every value worked out by hand.
 
 The corpus is indexed without stemming or stopwords, so a token is a lower-cased word. The
-clue is "Which grey river town near Pella has stone": 8 words and 8 distinct tokens, of which
-grey, river, town, pella and stone occur in the corpus. Body document frequencies (N = 5):
-grey 2 (a1, a3), river 2 (a2, a4), town 2 (a2, a3), pella 1 (a3), stone 3 (a1, a2, a5).
+clue is "Which grey river town near Pellomir has stone": 8 words and 8 distinct tokens, of which
+grey, river, town, pellomir and stone occur in the corpus. Body document frequencies (N = 5):
+grey 2 (a1, a3), river 2 (a2, a4), town 2 (a2, a3), pellomir 1 (a3), stone 3 (a1, a2, a5).
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ from reranker.features import builtin as B
 from reranker.features import candidate_set
 from retriever import Index
 
-CLUE = "Which grey river town near Pella has stone"
+CLUE = "Which grey river town near Pellomir has stone"
 IDS = ["a1", "a2", "a3", "a4", "a5"]
 SCORES = np.array([5.0, 4.0, 2.0, 1.5, 1.0])
 LOG = math.log
@@ -110,7 +110,7 @@ def test_score_features_of_degenerate_candidate_lists(tiny_index: Index) -> None
 
 # -- clue length ---------------------------------------------------------------------------
 def test_clue_length_features(cs: CandidateSet) -> None:
-    assert cs.words == ["which", "grey", "river", "town", "near", "pella", "has", "stone"]
+    assert cs.words == ["which", "grey", "river", "town", "near", "pellomir", "has", "stone"]
     close(B.clue_words(cs), [8] * 5)
     close(B.log_clue_words(cs), [LOG(9)] * 5)
     close(B.score_x_clue_words(cs), SCORES * 8)
@@ -145,22 +145,22 @@ def test_qualifier_features(cs: CandidateSet) -> None:
 
 # -- leakage -------------------------------------------------------------------------------
 def test_title_and_alias_overlap(cs: CandidateSet) -> None:
-    # base names: Ostrel, Varn Stone, Pella, Kesh, Drum -> stone (1 of 2) and pella (1 of 1).
+    # base names: Ostrel, Varn Stone, Pellomir, Kesvin, Drum -> stone (1 of 2) and pellomir (1 of 1).
     close(B.title_overlap(cs), [0, 0.5, 1, 0, 0])
-    # aliases: a1 {old, ostrel} -> 0; a3 {pella, hill, grey} -> 2 of 3; the rest have none.
+    # aliases: a1 {old, ostrel} -> 0; a3 {pellomir, hill, grey} -> 2 of 3; the rest have none.
     close(B.alias_overlap(cs), [0, 0, 2 / 3, 0, 0])
 
 
 # -- term overlap --------------------------------------------------------------------------
 def test_matched_terms_fraction_rarity(cs: CandidateSet) -> None:
-    # a1: grey stone; a2: river town stone; a3: grey town pella; a4: river; a5: stone.
+    # a1: grey stone; a2: river town stone; a3: grey town pellomir; a4: river; a5: stone.
     close(B.matched_terms(cs), [2, 3, 3, 1, 1])
     close(B.matched_fraction(cs), [2 / 5, 3 / 5, 3 / 5, 1 / 5, 1 / 5])
     grey = river = town = LOG(5 / 2)
-    pella, stone = LOG(5), LOG(5 / 3)
+    pellomir, stone = LOG(5), LOG(5 / 3)
     close(
         B.matched_rarity(cs),
-        [grey + stone, river + town + stone, grey + town + pella, river, stone],
+        [grey + stone, river + town + stone, grey + town + pellomir, river, stone],
     )
 
 

@@ -76,7 +76,7 @@ def test_prefix_plan_validation(kwargs: dict[str, Any]) -> None:
 
 
 CLUES = [
-    {"clue": "Which grey river town near Pella has stone", "answer": "a3"},
+    {"clue": "Which grey river town near Pellomir has stone", "answer": "a3"},
     {"clue": "small river with stone bridges", "answer": "Varn Stone (town)"},
 ]
 
@@ -126,8 +126,8 @@ def test_every_prefix_is_searched_and_labelled_candidate_by_candidate(
 def test_recall_counts_full_clues_whose_answer_is_missed(
     tiny_index: Index, tmp_path: Path, jsonl: Writer
 ) -> None:
-    # "kesh" retrieves only Kesh (river); the answer Pella is not a candidate.
-    log = jsonl(tmp_path / "log.jsonl", [*CLUES, {"clue": "kesh", "answer": "Pella"}])
+    # "kesvin" retrieves only Kesvin (river); the answer Pellomir is not a candidate.
+    log = jsonl(tmp_path / "log.jsonl", [*CLUES, {"clue": "kesvin", "answer": "Pellomir"}])
     table = build_table(tiny_index, read_logs([log]), default_registry(), ["bm25_score"], k=5)
     assert table.recall() == pytest.approx(2 / 3)
     assert table.y[table.clue_id == 2].sum() == 0

@@ -21,12 +21,12 @@ GOOD = {"clue": "grey stone town", "answer": "a3", "metadata": {"difficulty": 2}
 
 def test_labelled_lines_keep_file_line_and_metadata(tmp_path: Path, jsonl: Writer) -> None:
     log = jsonl(
-        tmp_path / "log.jsonl", [GOOD, "", {"clue": "kesh river", "answer": "Kesh (river)"}]
+        tmp_path / "log.jsonl", [GOOD, "", {"clue": "kesvin river", "answer": "Kesvin (river)"}]
     )
     clues = read_logs([log])
     assert [(c.clue, c.answer, c.metadata, c.line) for c in clues] == [
         ("grey stone town", "a3", {"difficulty": 2}, 1),
-        ("kesh river", "Kesh (river)", {}, 3),  # the blank line 2 is skipped but still counted
+        ("kesvin river", "Kesvin (river)", {}, 3),  # the blank line 2 is skipped but still counted
     ]
     assert all(c.file == str(log) for c in clues)
 
@@ -102,7 +102,7 @@ def test_served_and_feedback_join_by_request_id(tmp_path: Path, jsonl: Writer) -
         tmp_path / "served.jsonl",
         [
             _served("r1", "grey stone town", ["a3", "a2"]),
-            _served("r2", "kesh small", ["a4"]),
+            _served("r2", "kesvin small", ["a4"]),
             _served("r3", "never answered", ["a1"]),
             {"kind": "feedback", "request_id": "r1", "answer": "a2"},
         ],
@@ -118,12 +118,12 @@ def test_served_and_feedback_join_by_request_id(tmp_path: Path, jsonl: Writer) -
     report = LogReport()
     clues = read_logs([served, feedback], report=report)
     by_clue = {c.clue: c for c in clues}
-    assert set(by_clue) == {"grey stone town", "kesh small"}
+    assert set(by_clue) == {"grey stone town", "kesvin small"}
     assert by_clue["grey stone town"].answer == "a3"
     assert by_clue["grey stone town"].served == ("a3", "a2")
     assert by_clue["grey stone town"].metadata == {"difficulty": 1}
     assert (by_clue["grey stone town"].file, by_clue["grey stone town"].line) == (str(served), 1)
-    assert by_clue["kesh small"].answer is None
+    assert by_clue["kesvin small"].answer is None
     assert report.served == 3 and report.feedback == 4
     assert report.served_without_feedback == 1 and report.feedback_without_served == 1
 
@@ -152,13 +152,13 @@ def test_none_of_these_labels_every_candidate_wrong(
 
 
 def test_write_labelled_round_trip(tmp_path: Path, jsonl: Writer) -> None:
-    src = jsonl(tmp_path / "in.jsonl", [GOOD, {"clue": "kesh", "answer": "a4"}])
+    src = jsonl(tmp_path / "in.jsonl", [GOOD, {"clue": "kesvin", "answer": "a4"}])
     out = tmp_path / "out.jsonl"
     write_labelled(out, read_logs([src]))
     again = read_logs([out])
     assert [(c.clue, c.answer, c.metadata) for c in again] == [
         ("grey stone town", "a3", {"difficulty": 2}),
-        ("kesh", "a4", {}),
+        ("kesvin", "a4", {}),
     ]
     assert not list(tmp_path.glob(".*tmp"))
 
@@ -167,19 +167,19 @@ def test_write_labelled_round_trip(tmp_path: Path, jsonl: Writer) -> None:
 RESOLVE_CORPUS: list[dict[str, Any]] = [
     {"id": "Quell", "title": "Brand", "text": "common"},
     {"id": "y1", "title": "Quell", "text": "common"},
-    {"id": "m1", "title": "Mora", "text": "common"},
-    {"id": "m2", "title": "mora", "text": "common"},
-    {"id": "g1", "title": "Grey Pella", "text": "common"},
-    {"id": "g2", "title": "Other", "text": "common", "aliases": ["Grey Pella", "Old Ostrel"]},
+    {"id": "m1", "title": "Morlune", "text": "common"},
+    {"id": "m2", "title": "morlune", "text": "common"},
+    {"id": "g1", "title": "Grey Pellomir", "text": "common"},
+    {"id": "g2", "title": "Other", "text": "common", "aliases": ["Grey Pellomir", "Old Ostrel"]},
     {"id": "t1", "title": "Twin One", "text": "common", "aliases": ["The Twin"]},
     {"id": "t2", "title": "Twin Two", "text": "common", "aliases": ["The Twin"]},
 ]
 RESOLVE_CASES = [
     ("Quell", "Quell"),  # an id beats another article's exact title
     ("Brand", "Quell"),  # exact title
-    ("mora", "m2"),  # exact title beats the normalized match of "Mora"
+    ("morlune", "m2"),  # exact title beats the normalized match of "Morlune"
     ("  MORA ", "m1"),  # normalized title: the first title that normalizes the same
-    ("GREY  pella", "g1"),  # a normalized title beats an alias
+    ("GREY  pellomir", "g1"),  # a normalized title beats an alias
     ("old ostrel", "g2"),  # alias (normalized)
 ]
 

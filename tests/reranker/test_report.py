@@ -110,7 +110,7 @@ def test_report_files_sections_and_embedded_images(tmp_path: Path) -> None:
     text = paths["report"].read_text(encoding="utf-8")
     parser = _Collect()
     parser.feed(text)
-    # Order from the brief: clue level first, then candidate level, prefix, ablation, in-links,
+    # The page reads top-down: clue level first, then candidate level, prefix, ablation, in-links,
     # unresolved answers; extra metrics keys follow so nothing is lost.
     assert parser.sections == [
         "clue-level",
