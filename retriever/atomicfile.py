@@ -27,6 +27,8 @@ def replacing(path: str | Path, *, fsync: bool = True) -> Iterator[Path]:
     ...     fig.savefig(tmp)
     """
     target = Path(path)
+    if target.is_dir():
+        raise IsADirectoryError(f"{target} is a folder; give a file name to write to")
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = temporary_sibling(target)
     try:

@@ -134,6 +134,11 @@ class StoreReader:
 
 def read_manifest(folder: Path) -> dict[str, Any]:
     """Read and check the manifest of an index folder."""
+    if folder.exists() and not folder.is_dir():
+        raise IndexFormatError(
+            f"{folder}: this is a file, not an index folder; give the folder that "
+            "'hunchwise index build --out' wrote"
+        )
     if not folder.is_dir():
         raise IndexFormatError(
             f"{folder}: no such index folder; build one with 'hunchwise index build'"
@@ -184,6 +189,11 @@ def atomic_folder(target: Path) -> Iterator[Path]:
     is left behind with a name starting with '.', and is cleaned up by the next write).
     """
     target = target.resolve()
+    if target.exists() and not target.is_dir():
+        raise IndexFormatError(
+            f"{target} is a file, not a folder; an index is a folder: choose a new name "
+            "or an existing index folder to replace"
+        )
     target.parent.mkdir(parents=True, exist_ok=True)
     for stale in target.parent.glob(f".{target.name}.building-*"):
         shutil.rmtree(stale, ignore_errors=True)

@@ -64,6 +64,9 @@ def test_build_info_search_add_remove(tmp_path: Path, small_records: list[dict[s
         (["search", "{out}", "x", "-k", "0"], "-k must be at least 1"),
         (["search", "{out}", ""], "the clue is empty"),
         (["search", "{out}", "  \t "], "the clue is empty"),
+        (["index", "build", "{bad}", "--out", "{bad}"], "is a file, not a folder"),
+        (["search", "{bad}", "x"], "is a file, not an index folder"),
+        (["index", "info", "{bad}"], "is a file, not an index folder"),
     ],
 )
 def test_errors_are_one_line_and_non_zero(

@@ -33,3 +33,9 @@ def test_temporary_is_in_the_same_folder_and_hidden(tmp_path: Path) -> None:
     assert tmp.parent == target.parent
     assert tmp.name.startswith(".a.json.") and tmp.name.endswith(".tmp")
     assert tmp != atomicfile.temporary_sibling(target)
+
+
+def test_a_folder_in_the_way_is_named_plainly(tmp_path: Path) -> None:
+    (tmp_path / "model.json").mkdir()
+    with pytest.raises(IsADirectoryError, match=r"model\.json is a folder; give a file name"):
+        atomicfile.write_text(tmp_path / "model.json", "{}")
