@@ -145,7 +145,7 @@ def test_qualifier_features(cs: CandidateSet) -> None:
 
 # -- leakage -------------------------------------------------------------------------------
 def test_title_and_alias_overlap(cs: CandidateSet) -> None:
-    # base names: Ostrel, Varn Stone, Pellomir, Kesvin, Drum -> stone (1 of 2) and pellomir (1 of 1).
+    # base names: Ostrel, Varn Stone, Pellomir, Kesvin, Drum -> stone (1 of 2), pellomir (1 of 1).
     close(B.title_overlap(cs), [0, 0.5, 1, 0, 0])
     # aliases: a1 {old, ostrel} -> 0; a3 {pellomir, hill, grey} -> 2 of 3; the rest have none.
     close(B.alias_overlap(cs), [0, 0, 2 / 3, 0, 0])
