@@ -178,7 +178,7 @@ RESOLVE_CASES = [
     ("Quell", "Quell"),  # an id beats another article's exact title
     ("Brand", "Quell"),  # exact title
     ("morlune", "m2"),  # exact title beats the normalized match of "Morlune"
-    ("  MORA ", "m1"),  # normalized title: the first title that normalizes the same
+    ("  MORLUNE ", "m1"),  # normalized title: the first title that normalizes the same
     ("GREY  pellomir", "g1"),  # a normalized title beats an alias
     ("old ostrel", "g2"),  # alias (normalized)
 ]
