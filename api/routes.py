@@ -162,7 +162,8 @@ def feedback(body: s.FeedbackRequest, runtime: RuntimeDep) -> s.FeedbackResponse
         answer = runtime.serving.current.index.resolve(answer)
         if answer is None:
             raise field_error(
-                ("body", "answer"), f"no article with id {body.answer!r} in the index"
+                ("body", "answer"),
+                f"no article with id, title or alias {body.answer!r} in the index",
             )
     recorded = runtime.served_log is not None
     if runtime.served_log is not None:

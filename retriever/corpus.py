@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import CorpusError
+from .errors import RECORDS, CorpusError, position
 
 _QUALIFIED = re.compile(r"^(?P<base>.*?\S)\s*\((?P<qualifier>[^()]+)\)\s*$")
 FORMATS = ("jsonl", "csv", "tsv", "parquet")
@@ -306,7 +306,7 @@ def read_articles(
         file = str(path)
         raw: Iterable[tuple[int, Any]] = iter_raw(path, fmt)
     else:
-        file = "<records>"
+        file = RECORDS
         raw = enumerate(source, 1)
     seen_ids: dict[str, int] = {}
     seen_titles: dict[str, int] = {}
@@ -317,14 +317,15 @@ def read_articles(
             art = rec if isinstance(rec, Article) else validate_record(rec, file=file, line=line)
             if art.id in seen_ids:
                 raise CorpusError(
-                    f"duplicate id {art.id!r} (first seen on line {seen_ids[art.id]})",
+                    f"duplicate id {art.id!r} (first seen on {position(file, seen_ids[art.id])})",
                     file=file,
                     line=line,
                     field="id",
                 )
             if art.title in seen_titles:
                 raise CorpusError(
-                    f"duplicate title {art.title!r} (first seen on line {seen_titles[art.title]})",
+                    f"duplicate title {art.title!r} "
+                    f"(first seen on {position(file, seen_titles[art.title])})",
                     file=file,
                     line=line,
                     field="title",

@@ -7,11 +7,23 @@ class RetrieverError(Exception):
     """Base class of every error the retrieval core raises on purpose."""
 
 
+RECORDS = "<records>"  # the "file" of records given in memory (a list, a JSON array)
+
+
+def position(file: str, n: int) -> str:
+    """'line N' in a file; 'item N' among records given in memory, which have no lines."""
+    return f"item {n}" if (file or RECORDS) == RECORDS else f"line {n}"
+
+
 def located(message: str, file: str = "", line: int = 0, field: str = "") -> str:
-    """'FILE, line N, field 'F': message', the form every bad-input error takes."""
-    where = file or "<records>"
+    """'FILE, line N, field 'F': message', the form every bad-input error takes.
+
+    Records given in memory (a Python list, the JSON array of an admin call) have no lines:
+    they are counted as items, 1 for the first.
+    """
+    where = file or RECORDS
     if line:
-        where += f", line {line}"
+        where += f", {position(file, line)}"
     if field:
         where += f", field '{field}'"
     return f"{where}: {message}"

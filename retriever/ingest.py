@@ -38,6 +38,7 @@ from .counting import (
     run_chunks,
     worker_state,
 )
+from .errors import RECORDS, position
 from .scoring import concat_ranges
 from .store import record_line
 
@@ -196,11 +197,11 @@ class Ingest:
         line, doc_id, title = meta[0], meta[2], meta[3]
         if doc_id in self._seen_ids:
             first = self._seen_ids[doc_id]
-            msg = f"duplicate id {doc_id!r} (first seen on line {first})"
+            msg = f"duplicate id {doc_id!r} (first seen on {position(self.file, first)})"
             return CorpusError(msg, file=self.file, line=line, field="id")
         if title in self._seen_titles:
             first = self._seen_titles[title]
-            msg = f"duplicate title {title!r} (first seen on line {first})"
+            msg = f"duplicate title {title!r} (first seen on {position(self.file, first)})"
             return CorpusError(msg, file=self.file, line=line, field="title")
         self._seen_ids[doc_id] = line
         self._seen_titles[title] = line
@@ -261,7 +262,7 @@ def ingest(
     bar: Any,
 ) -> Ingest:
     """Read, validate, store (into `store_fh`) and count every article of `source`."""
-    file = str(source) if isinstance(source, str | Path) else "<records>"
+    file = str(source) if isinstance(source, str | Path) else RECORDS
     state = Ingest(file, store_fh, skip_bad, report)
     sent: deque[list[RawItem]] = deque()
     tasks = _tasks(file, _raw_items(source), bar, sent)

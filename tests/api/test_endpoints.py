@@ -303,3 +303,12 @@ def test_cors_is_off_unless_configured(make_client: Any) -> None:
     with make_client(cors_origins=["http://app.example"]) as c:
         r = c.options("/v1/rank", headers=headers)
         assert r.headers["access-control-allow-origin"] == "http://app.example"
+
+
+def test_feedback_naming_no_article_says_ids_titles_and_aliases_are_taken(client: Any) -> None:
+    rid = client.post("/v1/rank", json={"clue": "river town", "k": 3}).json()["request_id"]
+    r = client.post("/v1/feedback", json={"request_id": rid, "answer": "Nothing Called This"})
+    assert r.status_code == 422
+    [err] = r.json()["detail"]
+    assert err["loc"] == ["body", "answer"]
+    assert "no article with id, title or alias 'Nothing Called This'" in err["msg"]

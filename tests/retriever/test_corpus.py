@@ -10,7 +10,7 @@ from typing import Any
 
 import pytest
 
-from retriever import CorpusError, ReadReport, read_articles, split_title
+from retriever import CorpusError, ReadReport, build_index, read_articles, split_title
 
 from .helpers import write_jsonl
 
@@ -147,3 +147,20 @@ def test_empty_text_is_allowed_and_csv_lists(tmp_path: Path) -> None:
     arts = list(read_articles(path))
     assert arts[0].text == "" and arts[0].links == ("x", "y")
     assert arts[1].links == ("A",) and arts[1].aliases == ("al one", "al two")
+
+
+def test_records_in_memory_are_counted_as_items_not_lines(tmp_path: Path) -> None:
+    # A list (or the JSON array of an admin call) has no lines: positions are items.
+    records = [
+        {"id": "a", "title": "Alpha", "text": "x"},
+        {"id": "b", "title": "Beta", "text": "y"},
+        {"id": "a", "title": "Gamma", "text": "z"},
+    ]
+    with pytest.raises(CorpusError) as info:
+        list(read_articles(records))
+    assert str(info.value) == (
+        "<records>, item 3, field 'id': duplicate id 'a' (first seen on item 1)"
+    )
+    expected = r"item 3, field 'id': duplicate id 'a' \(first seen on item 1\)"
+    with pytest.raises(CorpusError, match=expected):
+        build_index(records, tmp_path / "idx", vectors=False)
