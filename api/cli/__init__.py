@@ -13,12 +13,24 @@ from .console import fail
 COMMAND_MODULES = [index, model, serve, demo]
 
 
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("hunchwise")
+    except PackageNotFoundError:  # running from a source tree that was never installed
+        return "unknown (not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The full argument parser (also used to render help text in the docs)."""
     parser = argparse.ArgumentParser(
         prog="hunchwise",
         description="Find the encyclopedia entry a clue describes: BM25 candidates, "
         "calibrated probabilities, and a JSON service.",
+    )
+    parser.add_argument(
+        "--version", action="version", version=f"%(prog)s {_version()}", help="print the version"
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
     for mod in COMMAND_MODULES:

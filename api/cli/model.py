@@ -83,7 +83,8 @@ def register(sub: argparse._SubParsersAction) -> None:
         "--features",
         default=None,
         metavar="NAME,NAME,...",
-        help="use only these features (default: all built-in plus --feature ones)",
+        help="use only these features or feature groups, e.g. 'retrieval,overlap,log_inlinks' "
+        "(groups as in the ablation table; default: all built-in plus --feature ones)",
     )
     p.add_argument(
         "--meta-feature",

@@ -257,6 +257,26 @@ class FeatureRegistry:
             out.setdefault(f.group, []).append(f.name)
         return out
 
+    def expand(self, names: Sequence[str]) -> list[str]:
+        """Feature names from a list of feature names and group names (as the ablation uses).
+
+        A group name stands for its features in registration order; repeats are dropped.
+        """
+        groups = self.groups()
+        out: list[str] = []
+        for name in names:
+            if name in self._features:
+                found = [name]
+            elif name in groups:
+                found = groups[name]
+            else:
+                raise FeatureError(
+                    f"unknown feature or group {name!r}; groups: {', '.join(groups)}; "
+                    f"features: {', '.join(self._features)}"
+                )
+            out.extend(n for n in found if n not in out)
+        return out
+
     def resolve(self, names: Sequence[str]) -> list[Feature]:
         """The Feature objects of `names`, in order (remembered per list of names)."""
         return self._plan(names).features

@@ -86,7 +86,7 @@ def train(
     payoff = payoff or Payoff()
     plan = plan or PrefixPlan()
     reg = registry if registry is not None else default_registry().with_user_features(user_features)
-    names = list(features) if features else list(reg.names)
+    names = reg.expand(features) if features else list(reg.names)
     # Features named with --feature are always used, even when --features picks a subset.
     names += [n for n in reg.names if reg[n].group == "user" and n not in names]
     report = LogReport()

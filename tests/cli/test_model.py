@@ -140,3 +140,10 @@ def test_k_below_one_is_an_error(world: World, tmp_path: Path, command: str) -> 
     assert out.returncode != 0
     assert out.stderr.count("\n") == 1 and "-k must be at least 1" in out.stderr
     assert not model.exists()
+
+
+def test_version_prints_the_installed_version() -> None:
+    from importlib.metadata import version
+
+    out = hunchwise("--version")
+    assert out.returncode == 0 and out.stdout.strip() == f"hunchwise {version('hunchwise')}"

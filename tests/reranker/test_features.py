@@ -229,3 +229,21 @@ def test_metadata_features_train_and_serve(
     )
     feats = r.candidates[0].features
     assert [feats[n] for n in meta] == [5, 0, 0, 0]
+
+
+def test_feature_lists_take_group_names_as_the_ablation_table_shows_them() -> None:
+    reg = default_registry()
+    groups = reg.groups()
+    assert reg.expand(["overlap"]) == groups["overlap"]
+    # a group and one of its own features: each feature once, in the order given
+    both = reg.expand(["bm25_score", "retrieval", "matched_terms"])
+    assert both[0] == "bm25_score" and both.count("bm25_score") == 1
+    assert both == ["bm25_score", *[n for n in groups["retrieval"] if n != "bm25_score"],
+                    "matched_terms"]  # fmt: skip
+    with pytest.raises(FeatureError, match=r"unknown feature or group 'overlapp'; groups: "):
+        reg.expand(["overlapp"])
+
+
+def test_training_on_a_group_uses_its_features(world: World, tmp_path: Path) -> None:
+    res = train(world.index, [world.train_log], tmp_path / "m.json", features=["overlap"])
+    assert res.artifact["feature_names"] == default_registry().groups()["overlap"]
