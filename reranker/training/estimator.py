@@ -12,6 +12,7 @@ from typing import Any
 import numpy as np
 from sklearn.exceptions import NotFittedError
 from sklearn.metrics import log_loss
+from tqdm.auto import tqdm
 
 from ..errors import TrainingError
 from ..model import LinearModel
@@ -35,11 +36,13 @@ class Reranker:
         calibration: str = "auto",
         n_folds: int = 5,
         max_iter: int = 5000,
+        verbose: bool = False,
     ) -> None:
         self.Cs = Cs
         self.calibration = calibration
         self.n_folds = n_folds
         self.max_iter = max_iter
+        self.verbose = verbose  # a progress bar on stderr while fitting
 
     def _check_settings(self) -> None:
         if self.calibration not in CALIBRATIONS:
@@ -67,16 +70,26 @@ class Reranker:
         splits = grouped_folds(y, groups, self.n_folds)
         cv_log_loss: dict[str, float] = {}
         best: tuple[float, float, np.ndarray] | None = None
-        for C in self.Cs:
-            p = oof_proba(X, y, splits, C)
-            loss = float(log_loss(y, p, labels=[0, 1]))
-            cv_log_loss[repr(C)] = loss
-            if best is None or loss < best[0]:
-                best = (loss, C, p)
-        if best is None:
-            raise TrainingError("no regularization strengths (Cs) to try")
-        _, C, raw_oof = best
-        pipeline = make_pipeline_for(C, self.max_iter).fit(X, y)
+        with tqdm(
+            total=len(self.Cs) * len(splits) + 1,
+            desc="fitting",
+            unit=" fits",
+            disable=not self.verbose,
+            mininterval=0.5,
+        ) as bar:
+            for C in self.Cs:
+                bar.set_postfix_str(f"C={C:g}")
+                p = oof_proba(X, y, splits, C, on_fold=bar.update)
+                loss = float(log_loss(y, p, labels=[0, 1]))
+                cv_log_loss[repr(C)] = loss
+                if best is None or loss < best[0]:
+                    best = (loss, C, p)
+            if best is None:
+                raise TrainingError("no regularization strengths (Cs) to try")
+            _, C, raw_oof = best
+            bar.set_postfix_str(f"final fit, C={C:g}")
+            pipeline = make_pipeline_for(C, self.max_iter).fit(X, y)
+            bar.update()
         scaler, lr = pipeline[0], pipeline[-1]
         sign = 1.0 if lr.classes_[1] == 1 else -1.0
         methods = (

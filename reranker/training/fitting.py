@@ -6,6 +6,7 @@ imports scikit-learn (about 140 MB and a second of start-up per worker).
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -53,13 +54,19 @@ def positive_proba(pipe: Pipeline, X: np.ndarray) -> np.ndarray:
 
 
 def oof_proba(
-    X: np.ndarray, y: np.ndarray, splits: list[tuple[np.ndarray, np.ndarray]], C: float
+    X: np.ndarray,
+    y: np.ndarray,
+    splits: list[tuple[np.ndarray, np.ndarray]],
+    C: float,
+    on_fold: Callable[[], object] | None = None,
 ) -> np.ndarray:
-    """Out-of-fold probabilities of label 1 for one C."""
+    """Out-of-fold probabilities of label 1 for one C; `on_fold` is called after each fold."""
     out = np.zeros(len(y))
     for train, test in splits:
         pipe = make_pipeline_for(C).fit(X[train], y[train])
         out[test] = positive_proba(pipe, X[test])
+        if on_fold is not None:
+            on_fold()
     return out
 
 

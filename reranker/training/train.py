@@ -95,7 +95,7 @@ def train(
         MetadataColumns.learn(clues, metadata_features) if metadata_features else MetadataColumns()
     )
     table = build_table(index, clues, reg, names, k=k, plan=plan, metadata=meta, progress=progress)
-    estimator = Reranker(calibration=calibration).fit(
+    estimator = Reranker(calibration=calibration, verbose=progress).fit(
         table.X, table.y, table.clue_id, table.feature_names
     )
     # One distribution per clue: P(among the candidates) from clue-level evidence, shared out

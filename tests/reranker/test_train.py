@@ -135,3 +135,16 @@ def test_no_resolvable_answers_is_a_training_error(
     with pytest.raises(TrainingError):
         train(world.index, [log], tmp_path / "m.json")
     assert not (tmp_path / "m.json").exists()
+
+
+def test_fitting_shows_progress_when_asked(
+    world: World, tmp_path: Path, capfd: pytest.CaptureFixture[str]
+) -> None:
+    train(world.index, [world.train_log], tmp_path / "quiet.json", features=["retrieval"])
+    assert "fitting" not in capfd.readouterr().err
+    train(
+        world.index, [world.train_log], tmp_path / "m.json", features=["retrieval"], progress=True
+    )
+    err = capfd.readouterr().err
+    # tqdm's bar: one step per (C, fold) fit plus the final fit, e.g. "fitting: 100%|...| 26/26"
+    assert "fitting" in err and "26/26" in err
