@@ -126,7 +126,8 @@ def _write_keys(tmp: Path, keys: Keys) -> tuple[int, int, int]:
     """In-links and the key columns; returns (unresolved links, ambiguous aliases,
     qualified titles)."""
     resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
-    inlinks, unresolved = count_inlinks(resolver, keys.links, len(keys))
+    inlinks, missing = count_inlinks(resolver, keys.links, len(keys))
+    store.write_unresolved(tmp, [(keys.ids[row], name) for row, name in missing])
     store.save_array(tmp, "inlinks", inlinks)
     store.save_array(tmp, "popularity", np.asarray(keys.popularity, dtype=np.float64))
     split = [split_title(title) for title in keys.titles]
@@ -135,7 +136,7 @@ def _write_keys(tmp: Path, keys: Keys) -> tuple[int, int, int]:
     columns.write_strings(tmp, "bases", (s[0] for s in split))
     columns.write_strings(tmp, "qualifiers", (s[1] for s in split))
     columns.write_strings(tmp, "aliases", (columns.JsonListColumn.encode(a) for a in keys.aliases))
-    return unresolved, len(resolver.ambiguous_aliases), sum(1 for s in split if s[1])
+    return len(missing), len(resolver.ambiguous_aliases), sum(1 for s in split if s[1])
 
 
 def _write(

@@ -64,13 +64,14 @@ class NameResolver:
 
 def count_inlinks(
     resolver: NameResolver, links: Sequence[Sequence[str]], n_docs: int
-) -> tuple[np.ndarray, int]:
+) -> tuple[np.ndarray, list[tuple[int, str]]]:
     """In-link count of each article: distinct other articles linking to it.
 
-    Returns (counts int32 of shape (n_docs,), number of link strings that matched nothing).
+    Returns (counts int32 of shape (n_docs,), the links that matched no article as
+    (linking row, link text) pairs in row order).
     """
     hits: list[int] = []
-    unresolved = 0
+    unresolved: list[tuple[int, str]] = []
     row_of = resolver.row
     for source, names in enumerate(links):
         if not names:
@@ -79,7 +80,7 @@ def count_inlinks(
         for name in names:
             row = row_of(name)
             if row is None:
-                unresolved += 1
+                unresolved.append((source, name))
             elif row != source:
                 targets.add(row)
         hits.extend(targets)

@@ -132,6 +132,32 @@ class StoreReader:
             yield self.article(row)
 
 
+UNRESOLVED = "unresolved_links.jsonl"
+
+
+def write_unresolved(folder: Path, links: Iterable[tuple[str, str]]) -> None:
+    """The links that matched no article: one JSON line {"from": id, "link": text} each."""
+    lines = (
+        json.dumps({"from": src, "link": name}, ensure_ascii=False) + "\n" for src, name in links
+    )
+    atomicfile.write_text(folder / UNRESOLVED, "".join(lines))
+
+
+def read_unresolved(folder: Path) -> list[tuple[str, str]]:
+    """The (article id, link text) pairs `write_unresolved` stored, in article order."""
+    path = folder / UNRESOLVED
+    if not path.exists():
+        raise IndexFormatError(
+            f"{folder}: this index was built before unresolved links were listed; "
+            "rebuild it to see them"
+        )
+    out = []
+    for line in path.read_text(encoding="utf-8").splitlines():
+        rec = json.loads(line)
+        out.append((str(rec["from"]), str(rec["link"])))
+    return out
+
+
 def read_manifest(folder: Path) -> dict[str, Any]:
     """Read and check the manifest of an index folder."""
     if folder.exists() and not folder.is_dir():

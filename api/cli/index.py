@@ -80,6 +80,11 @@ def register(sub: argparse._SubParsersAction) -> None:
     p = isub.add_parser("info", help="show what an index folder holds")
     p.add_argument("index", type=Path, help="index folder")
     p.add_argument("--json", action="store_true", help="print the manifest as JSON")
+    p.add_argument(
+        "--unresolved",
+        action="store_true",
+        help="list every link that names no article (article id, then the link text)",
+    )
     p.set_defaults(func=cmd_info)
 
     p = isub.add_parser("add", help="add or replace (same id) articles in an index")
@@ -108,8 +113,11 @@ def _show_progress(args: argparse.Namespace) -> bool:
     return not args.json and sys.stderr.isatty()
 
 
+SHOWN_UNRESOLVED = 5  # unresolved links named in a build summary
+
+
 def _summary(idx: Index, seconds: float, report: ReadReport) -> dict[str, Any]:
-    from retriever.store import folder_size
+    from retriever.store import folder_size, read_unresolved
 
     index_dir = idx.path
     counts, build = idx.manifest["counts"], idx.manifest["build"]
@@ -119,6 +127,10 @@ def _summary(idx: Index, seconds: float, report: ReadReport) -> dict[str, Any]:
         "articles": counts["articles"],
         "terms": counts["terms"],
         "unresolved_links": build.get("unresolved_links", 0),
+        "unresolved_first": [
+            {"from": src, "link": name}
+            for src, name in read_unresolved(index_dir)[:SHOWN_UNRESOLVED]
+        ],
         "skipped_lines": report.skipped,
         "problems": report.problems[:5],
         "seconds": round(seconds, 2),
@@ -135,6 +147,11 @@ def _print_summary(s: dict[str, Any], as_json: bool) -> None:
         f"{s['terms']} terms, {s['unresolved_links']} unresolved links, {s['seconds']} s, "
         f"{human_bytes(s['bytes_on_disk'])} on disk"
     )
+    if s["unresolved_first"]:
+        shown = "; ".join(f"{u['from']} -> {u['link']!r}" for u in s["unresolved_first"])
+        more = s["unresolved_links"] - len(s["unresolved_first"])
+        print(f"links naming no article: {shown}" + (f" (and {more} more)" if more > 0 else ""))
+        print(f"  all of them: hunchwise index info {s['index']} --unresolved")
     if s["skipped_lines"]:
         print(f"skipped {s['skipped_lines']} bad lines, first ones:")
         for problem in s["problems"]:
@@ -173,6 +190,16 @@ def cmd_info(args: argparse.Namespace) -> int:
     from retriever.store import folder_size
 
     idx = load_index(args.index)
+    if args.unresolved:
+        from retriever.store import read_unresolved
+
+        links = read_unresolved(idx.path)
+        if args.json:
+            print_json([{"from": src, "link": name} for src, name in links])
+        else:
+            for src, name in links:
+                print(f"{src}\t{name}")
+        return 0
     if args.json:
         print_json(idx.manifest)
         return 0

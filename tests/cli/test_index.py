@@ -150,3 +150,19 @@ def test_search_says_why_a_clue_finds_nothing(
     assert "no searchable words" in text and "none of the clue's words" not in text
     assert main(["search", str(out), "zzzz qqqq"]) == 0
     assert "none of the clue's words is in the index" in capsys.readouterr().out
+
+
+def test_unresolved_links_are_named_not_only_counted(
+    tmp_path: Path, small_records: list[dict[str, Any]], capsys: pytest.CaptureFixture[str]
+) -> None:
+    records = [*small_records, {"id": "z9", "title": "Zell", "text": "x", "links": ["Nowhere"]}]
+    corpus = write_jsonl(tmp_path / "c.jsonl", records)
+    out = tmp_path / "idx"
+    assert main(["index", "build", str(corpus), "--out", str(out), "--no-vectors"]) == 0
+    text = capsys.readouterr().out
+    assert "links naming no article: " in text and "z9 -> 'Nowhere'" in text
+    assert f"hunchwise index info {out} --unresolved" in text
+    assert main(["index", "info", str(out), "--unresolved", "--json"]) == 0
+    listed = json.loads(capsys.readouterr().out)
+    assert {"from": "z9", "link": "Nowhere"} in listed
+    assert len(listed) == load_index(out).manifest["build"]["unresolved_links"]
