@@ -98,6 +98,10 @@ def run_demo(out: str | Path, *, articles: int | None = None, ablation: bool = T
     )
 
 
+SHOWN = 3  # candidates the sample request asks for (and the printout shows)
+TRY_WORDS = 10  # words of the sample clue in the try-it-yourself command
+
+
 def free_port(host: str = "127.0.0.1") -> int:
     """A TCP port nobody listens on right now."""
     with socket.socket() as s:
@@ -141,17 +145,21 @@ def serve_and_ask(
                     raise RuntimeError(f"the server did not start (command: {' '.join(cmd)})")
                 time.sleep(0.2)
             clue = sample_clue(data)
-            body: dict[str, Any] = {"clue": clue, "k": 5}
+            body: dict[str, Any] = {"clue": clue, "k": SHOWN}
             reply = client.post("/v1/rank", json=body)
             reply.raise_for_status()
         run.sample_request, run.sample_response = body, reply.json()
         _say(f"\nservice running at {base} (API docs: {base}/docs)")
         _say(f"sample request:  POST {base}/v1/rank\n{json.dumps(body, indent=2)}")
-        _say(f"sample response:\n{json.dumps(_trim(run.sample_response), indent=2)}")
+        _say(
+            f"sample response (numbers rounded to 3 significant digits here):\n"
+            f"{json.dumps(for_people(run.sample_response), indent=2)}"
+        )
+        short = " ".join(clue.split()[:TRY_WORDS])  # whole words: a clue cut mid-word misleads
         _say(
             "\ntry it yourself:\n"
             f"  curl -s {base}/v1/rank -H 'content-type: application/json' "
-            f"-d {shlex.quote(json.dumps({'clue': clue[:60], 'k': 3}))}"
+            f"-d {shlex.quote(json.dumps({'clue': short, 'k': SHOWN}))}"
         )
         if wait:
             # A shell starting us in the background sets Ctrl-C to "ignore", and that is
@@ -171,9 +179,12 @@ def serve_and_ask(
     return run
 
 
-def _trim(response: dict[str, Any]) -> dict[str, Any]:
-    """The response with at most three candidates, to keep the terminal readable."""
-    out = dict(response)
-    if isinstance(out.get("candidates"), list):
-        out["candidates"] = out["candidates"][:3]
-    return out
+def for_people(value: Any) -> Any:
+    """A JSON value with every float rounded to 3 significant digits, for reading."""
+    if isinstance(value, float):
+        return float(f"{value:.3g}")
+    if isinstance(value, dict):
+        return {k: for_people(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [for_people(v) for v in value]
+    return value

@@ -64,9 +64,16 @@ def test_demo_serves_answers_a_sample_clue_and_stops_on_ctrl_c(tmp_path: Path) -
         try:
             text = _read_until_serving(proc)
             assert "Press Ctrl-C" in text, text[-2000:] + errors.read_text()[-3000:]
-            reply = text.split("sample response:\n", 1)[1].split("\n\ntry it yourself", 1)[0]
+            reply = text.split("sample response", 1)[1].split(":\n", 1)[1]
+            reply = reply.split("\n\ntry it yourself", 1)[0]
             response = json.loads(reply)
-            assert response["candidates"], response
+            request = json.loads(text.split("/v1/rank\n", 1)[1].split("\nsample response", 1)[0])
+            # the printout shows what was asked for, with numbers rounded for people
+            assert len(response["candidates"]) == request["k"] == 3, response
+            assert all(float(f"{x:.3g}") == x for x in _floats(response)), reply
+            # the try-it clue is cut at a word boundary of the sample clue
+            tried = json.loads(text.split("-d '", 1)[1].split("'", 1)[0])["clue"]
+            assert (request["clue"] + " ").startswith(tried + " "), (tried, request["clue"])
             assert response["decision"]["action"] in ("answer", "wait")
             assert 0.0 <= response["candidates"][0]["probability"] <= 1.0
             assert "curl -s http://127.0.0.1:" in text
@@ -78,6 +85,17 @@ def test_demo_serves_answers_a_sample_clue_and_stops_on_ctrl_c(tmp_path: Path) -
                 proc.wait()
     served = (out / "logs" / "served.jsonl").read_text().splitlines()
     assert len(served) == 1 and json.loads(served[0])["kind"] == "served"
+
+
+def _floats(value: object) -> list[float]:
+    """Every float in a JSON value."""
+    if isinstance(value, float):
+        return [value]
+    if isinstance(value, dict):
+        return [x for v in value.values() for x in _floats(v)]
+    if isinstance(value, list):
+        return [x for v in value for x in _floats(v)]
+    return []
 
 
 def _read_until_serving(proc: subprocess.Popen[str]) -> str:
