@@ -42,3 +42,14 @@ def test_readme_has_no_unfilled_placeholders() -> None:
     assert not re.search(r"^[A-Z_]{6,}$", readme, re.M), (
         "a section placeholder is still in the README"
     )
+
+
+def test_readme_feedback_examples_use_the_id_of_your_own_response() -> None:
+    # A request id is signed by the server that issued it: a literal one can only answer 404.
+    readme = (ROOT / "README.md").read_text()
+    blocks = re.findall(r"```sh\n(.*?)```", readme, re.S)
+    calls = [b for b in blocks if "/v1/feedback" in b]
+    assert calls, "the README shows no feedback call"
+    for block in calls:
+        sent = re.findall(r'request_id\W+([0-9a-f]{16,}\.[0-9a-f]+)', block)
+        assert not sent, f"a literal request id in a feedback example: {sent}"
