@@ -16,6 +16,7 @@ import numpy as np
 
 from retriever import Index
 
+from .candidates import CandidatePolicy
 from .errors import ModelFormatError, ModelMismatchError
 from .features import (
     FEATURE_SET_VERSION,
@@ -41,6 +42,7 @@ class ServedModel:
     threshold: float
     k: int
     presence: PresenceModel  # P(the answer is among the candidates), from clue-level evidence
+    candidates: CandidatePolicy  # how the candidate sets it was trained on were made
 
     @property
     def version(self) -> str:
@@ -130,6 +132,7 @@ def serve(
         threshold=float(threshold),
         k=_artifact_k(model, source),  # a damaged training.k fails here, not at a request
         presence=PresenceModel.from_dict(data.get("presence"), source=source),
+        candidates=CandidatePolicy.from_dict(data.get("candidates"), source=source),
     )
 
 
@@ -144,6 +147,11 @@ def load_model(
     model = read_model(path)
     reg = registry if registry is not None else default_registry().with_user_features(user_features)
     served = serve(model, reg, source=str(path))
+    if index is not None and served.candidates.mode == "hybrid" and index.dense is None:
+        raise ModelMismatchError(
+            f"{path}: the model was trained on hybrid candidates (BM25 + word vectors), but "
+            f"the index {index.path} has no word vectors; rebuild it without --no-vectors"
+        )
     if index is not None:
         # One pass over the qualifiers before serving; titles are analyzed per row when first
         # seen among the candidates, so a large index costs nothing more here.

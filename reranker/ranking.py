@@ -11,8 +11,9 @@ import numpy as np
 
 from retriever import Hit, Index
 
+from .candidates import CandidatePolicy, find_candidates
 from .decision import Decision, Payoff, decide
-from .features import FeatureRegistry, candidate_set, default_registry
+from .features import DenseInfo, FeatureRegistry, candidate_set, default_registry
 from .loading import DEFAULT_K, ServedModel
 
 
@@ -76,6 +77,14 @@ def _ks(model: ServedModel | None, k: int | None) -> tuple[int, int]:
     return want, depth
 
 
+def _policy(model: ServedModel | None) -> CandidatePolicy:
+    """The model's candidate sets; BM25's top k without a model."""
+    return _BM25 if model is None else model.candidates
+
+
+_BM25 = CandidatePolicy()
+
+
 @functools.cache
 def _builtins() -> FeatureRegistry:
     """The built-in registry for model-less calls, made once (ours: nobody can add to it)."""
@@ -102,6 +111,7 @@ def _rank_hits(
     tokens: list[str],
     words: list[str],
     hits: list[Hit],
+    dense: DenseInfo | None,
     *,
     keep: int,
     set_k: int | None,
@@ -111,7 +121,7 @@ def _rank_hits(
     metadata: dict[str, Any] | None,
     registry: FeatureRegistry | None,
 ) -> Ranking:
-    cs = candidate_set(index, clue, hits, metadata, tokens, words)
+    cs = candidate_set(index, clue, hits, metadata, tokens, words, dense)
     probs: list[float] | None = None
     pointwise: list[float] | None = None
     among: float | None = None
@@ -188,13 +198,15 @@ def rank_clue(
     # Analyzed once, for the search and the features (words: the clue-length features).
     analyzer = index.analyzer
     tokens, words = analyzer.tokens(clue), analyzer.words(clue)
+    [(hits, dense)] = find_candidates(index, [tokens], depth, _policy(model))
     return _rank_hits(
         index,
         model,
         clue,
         tokens,
         words,
-        index.search_tokens(tokens, depth),
+        hits,
+        dense,
         keep=keep,
         set_k=None if model is None else depth,
         payoff=payoff,
@@ -220,7 +232,7 @@ def rank_clues(
     keep, depth = _ks(model, k)
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]
-    hits_all = index.search_token_lists([t for t, _ in analyzed], depth)
+    found = find_candidates(index, [t for t, _ in analyzed], depth, _policy(model))
     return [
         _rank_hits(
             index,
@@ -229,6 +241,7 @@ def rank_clues(
             t,
             w,
             hits,
+            dense,
             keep=keep,
             set_k=None if model is None else depth,
             payoff=payoff,
@@ -237,5 +250,5 @@ def rank_clues(
             metadata=None,
             registry=registry,
         )
-        for c, (t, w), hits in zip(clues, analyzed, hits_all, strict=True)
+        for c, (t, w), (hits, dense) in zip(clues, analyzed, found, strict=True)
     ]

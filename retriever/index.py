@@ -226,6 +226,16 @@ class Index:
         scoring.accumulate(scores, self._plan([tokens]))
         return scores.astype(np.float64)
 
+    def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]:
+        """BM25 scores of some articles for analyzed tokens, by row.
+
+        Scores the whole corpus and picks the rows: the same numbers as `search_tokens`
+        gives, at the cost of one exhaustive query (used for the few articles a hybrid
+        set takes from the vectors' pool alone).
+        """
+        scores = self.score_tokens(tokens)
+        return {int(r): float(scores[r]) for r in np.asarray(rows).tolist()}
+
     def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
         """Top-k articles for already-analyzed tokens, best first (ties by row).
 

@@ -87,6 +87,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         "(groups as in the ablation table; default: all built-in plus --feature ones)",
     )
     p.add_argument(
+        "--candidates",
+        choices=("auto", "bm25"),
+        default="auto",
+        help="auto (default): hybrid candidate sets (BM25 + word vectors, the fusion weight "
+        "chosen on the logs) when the index has word vectors; bm25: BM25's top k only",
+    )
+    p.add_argument(
         "--meta-feature",
         action="append",
         default=[],
@@ -127,6 +134,12 @@ def _payoff(args: argparse.Namespace) -> Payoff | None:
     )
 
 
+def _candidates_text(c: dict[str, object]) -> str:
+    if c["mode"] == "bm25":
+        return "BM25 top k"
+    return f"hybrid: BM25 + word vectors, weight {c['weight']}, pools of {c['pool']}"
+
+
 def cmd_train(args: argparse.Namespace) -> int:
     """Train and save a model; print its headline numbers."""
     from reranker.training import PrefixPlan, train
@@ -148,6 +161,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         payoff=_payoff(args),
         skip_bad=args.skip_bad,
         progress=not args.json,
+        candidates=args.candidates,
     )
     a = res.artifact
     summary = {
@@ -160,6 +174,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         "cv_log_loss": min(a["cv_log_loss"].values()),
         "calibration": a["calibration"]["method"],
         "threshold": a["decision"]["threshold"],
+        "candidates": _candidates_text(a["candidates"]),
         "recall_at_k": a["training"]["recall_at_k_full_clue"],
         "unresolved_answers": a["training"]["unresolved_count"],
         "skipped_lines": a["training"]["skipped_lines"],
@@ -168,6 +183,23 @@ def cmd_train(args: argparse.Namespace) -> int:
         print_json(summary)
         return 0
     print(format_table(["", "value"], [(k, v) for k, v in summary.items()]))
+    tuning = a["training"]["fusion_tuning"]
+    if tuning:
+        print("\nfusion weight (BM25's share) chosen by recall@k on the training prefixes:")
+        print(
+            format_table(
+                ["weight", "recall@k", "recall@k, whole clues", ""],
+                [
+                    (
+                        r["weight"],
+                        round(r["recall_at_k"], 3),
+                        round(r["recall_at_k_full_clue"], 3),
+                        "chosen" if r["chosen"] else "",
+                    )
+                    for r in tuning
+                ],
+            )
+        )
     for note in res.notes:
         print(f"note: {note}")
     return 0

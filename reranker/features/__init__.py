@@ -11,6 +11,7 @@ from .candidates import MetadataColumns, candidate_set
 from .registry import (
     FEATURE_SET_VERSION,
     CandidateSet,
+    DenseInfo,
     Feature,
     FeatureRegistry,
     analyze_names,
@@ -21,6 +22,7 @@ __all__ = [
     "FEATURE_SET_VERSION",
     "SCORE_ONLY",
     "CandidateSet",
+    "DenseInfo",
     "Feature",
     "FeatureRegistry",
     "MetadataColumns",

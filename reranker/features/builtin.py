@@ -8,7 +8,7 @@ import numpy as np
 
 from .clueterms import matched
 from .fused import FUSED_NAMES, fused_builtins
-from .registry import CandidateSet, Feature, FeatureRegistry, FusedFeatures
+from .registry import CandidateSet, DenseInfo, Feature, FeatureRegistry, FusedFeatures
 
 _FEATURES: list[Feature] = []
 
@@ -218,6 +218,53 @@ def qualifier_frequency(cs: CandidateSet) -> np.ndarray:
     """log1p of how many titles in the corpus share the candidate's qualifier (0 if none)."""
     return np.log1p(np.array([e.qualifier_count for e in cs.names], dtype=np.float64))
 
+
+# -- dense: what the word vectors say (hybrid candidate sets; 0 without them) -------------
+def _dense(cs: CandidateSet) -> DenseInfo | None:
+    return cs.dense
+
+
+@feature("dense")
+def cosine(cs: CandidateSet) -> np.ndarray:
+    """Cosine of the clue's and the article's word vectors (0 without vectors)."""
+    d = _dense(cs)
+    return np.zeros(len(cs)) if d is None else d.cosine.astype(np.float64)
+
+
+@feature("dense")
+def cosine_gap_to_best(cs: CandidateSet) -> np.ndarray:
+    """Cosine minus the best cosine in the set (0 for the closest article)."""
+    d = _dense(cs)
+    if d is None or not len(cs):
+        return np.zeros(len(cs))
+    return d.cosine - d.cosine.max()
+
+
+@feature("dense")
+def dense_inverse_rank(cs: CandidateSet) -> np.ndarray:
+    """1 / rank in the word vectors' pool (0 when the vectors did not propose it)."""
+    d = _dense(cs)
+    if d is None:
+        return np.zeros(len(cs))
+    r = d.dense_rank.astype(np.float64)
+    return np.divide(1.0, r, out=np.zeros_like(r), where=r > 0)
+
+
+@feature("dense")
+def fused_inverse_rank(cs: CandidateSet) -> np.ndarray:
+    """1 / position in the fused BM25 + vectors list (1 / BM25 rank without vectors)."""
+    d = _dense(cs)
+    return 1.0 / (cs.ranks if d is None else d.fused_rank).astype(np.float64)
+
+
+@feature("dense")
+def in_both_pools(cs: CandidateSet) -> np.ndarray:
+    """1 when both BM25 and the word vectors proposed the article."""
+    d = _dense(cs)
+    return np.zeros(len(cs)) if d is None else d.in_both.astype(np.float64)
+
+
+DENSE = "dense"  # the group a BM25-only candidate set leaves constant
 
 # The score-only model, the yardstick every other feature set must beat.
 SCORE_ONLY = ("bm25_score",)

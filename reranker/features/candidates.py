@@ -11,7 +11,7 @@ import numpy as np
 
 from retriever import Index
 
-from .registry import CandidateSet
+from .registry import CandidateSet, DenseInfo
 
 
 class _WithMetadata(Protocol):
@@ -71,6 +71,7 @@ def candidate_set(
     metadata: dict[str, Any] | None = None,
     tokens: list[str] | None = None,
     words: list[str] | None = None,
+    dense: DenseInfo | None = None,
 ) -> CandidateSet:
     """The CandidateSet of a clue from its BM25 hits.
 
@@ -87,6 +88,7 @@ def candidate_set(
         scores=np.fromiter(map(_SCORE, hits), np.float64, n),
         ranks=np.fromiter(map(_RANK, hits), np.int64, n),
         metadata=metadata or {},
+        dense=dense,
     )
 
 

@@ -26,6 +26,16 @@ FEATURE_SET_VERSION = 1
 ENTRY_POINT_GROUP = "hunchwise.features"
 
 
+@dataclass(frozen=True)
+class DenseInfo:
+    """The word vectors' side of a hybrid candidate set; arrays aligned with its rows."""
+
+    cosine: np.ndarray  # float64: cosine of the clue's and the article's vectors
+    dense_rank: np.ndarray  # int64: rank in the vectors' pool, 0 when not in it
+    fused_rank: np.ndarray  # int64: 1-based position in the fused list
+    in_both: np.ndarray  # bool: in BM25's pool and in the vectors' pool
+
+
 @dataclass
 class CandidateSet:
     """One clue (or clue prefix) and its BM25 candidates, the input of every feature."""
@@ -39,6 +49,7 @@ class CandidateSet:
     ranks: np.ndarray  # int64, shape (n,), 1-based
     metadata: dict[str, Any] = field(default_factory=dict)
     memo: dict[str, Any] = field(default_factory=dict)  # values several features share
+    dense: DenseInfo | None = None  # hybrid sets only: what the word vectors said
 
     def __len__(self) -> int:
         return int(self.rows.size)

@@ -32,6 +32,7 @@ GROUP_ORDER = (
     "qualifier",
     "leakage",
     "overlap",
+    "dense",
     "user",
     "metadata",
 )
@@ -172,6 +173,7 @@ def evaluate(
         k=k,
         plan=plan,
         metadata=model.metadata,
+        candidates=model.candidates,
         progress=progress,
     )
     if table.y.size == 0 or table.y.sum() == 0:

@@ -12,7 +12,8 @@ from tqdm.auto import tqdm
 
 from retriever import Hit, Index
 
-from ..features import FeatureRegistry, MetadataColumns, candidate_set
+from ..candidates import CandidatePolicy, find_candidates
+from ..features import DenseInfo, FeatureRegistry, MetadataColumns, candidate_set
 from .logs import LabelledClue
 
 if TYPE_CHECKING:
@@ -104,6 +105,39 @@ class TrainingTable:
         return float(hit.size / groups.size)
 
 
+@dataclass
+class Prefixes:
+    """Every kept prefix of every labelled clue, in order, with what it belongs to."""
+
+    texts: list[str]
+    owners: list[tuple[int, float, int | None, dict[str, Any]]]  # clue, fraction, gold, meta
+    unresolved: list[dict[str, Any]]
+    n_clues: int
+
+
+def labelled_prefixes(index: Index, clues: Sequence[LabelledClue], plan: PrefixPlan) -> Prefixes:
+    """The prefixes `plan` keeps of each clue, its gold row resolved (unresolved ones listed)."""
+    out = Prefixes([], [], [], 0)
+    for c in clues:
+        gold: int | None = None
+        if c.answer is not None:
+            gold = index.resolver.row(c.answer)
+            if gold is None:
+                out.unresolved.append(
+                    {"file": c.file, "line": c.line, "answer": c.answer, "clue": c.clue[:80]}
+                )
+                continue
+        words = c.clue.split()
+        cuts = plan.cuts(len(words))
+        if not cuts:
+            continue
+        for m in cuts:
+            out.texts.append(" ".join(words[:m]))
+            out.owners.append((out.n_clues, plan.label(m, len(words)), gold, c.metadata))
+        out.n_clues += 1
+    return out
+
+
 def build_table(
     index: Index,
     clues: Sequence[LabelledClue],
@@ -113,44 +147,29 @@ def build_table(
     k: int = 20,
     plan: PrefixPlan | None = None,
     metadata: MetadataColumns | None = None,
+    candidates: CandidatePolicy | None = None,
     progress: bool = False,
 ) -> TrainingTable:
-    """Search every prefix of every clue, featurize its candidates and label them."""
+    """Search every prefix of every clue, featurize its candidates and label them.
+
+    The candidate sets are made as serving makes them (`find_candidates` with `candidates`,
+    BM25's top k by default).
+    """
     plan = plan or PrefixPlan()
     metadata = metadata or MetadataColumns()
-    unresolved: list[dict[str, Any]] = []
-    texts: list[str] = []
-    owners: list[
-        tuple[int, float, int | None, dict[str, Any]]
-    ] = []  # clue id, fraction, gold row, metadata
-    n_clues = 0
-    for c in clues:
-        gold: int | None = None
-        if c.answer is not None:
-            gold = index.resolver.row(c.answer)
-            if gold is None:
-                unresolved.append(
-                    {"file": c.file, "line": c.line, "answer": c.answer, "clue": c.clue[:80]}
-                )
-                continue
-        words = c.clue.split()
-        cuts = plan.cuts(len(words))
-        if not cuts:
-            continue
-        for m in cuts:
-            texts.append(" ".join(words[:m]))
-            owners.append((n_clues, plan.label(m, len(words)), gold, c.metadata))
-        n_clues += 1
+    policy = candidates or CandidatePolicy()
+    pre = labelled_prefixes(index, clues, plan)
+    texts, owners, unresolved, n_clues = pre.texts, pre.owners, pre.unresolved, pre.n_clues
     # Each prefix is analyzed once: its tokens serve the search and the features.
     tokens_all = [index.analyzer.tokens(t) for t in texts]
     words_all = [index.analyzer.words(t) for t in texts]
-    hits_all: list[list[Hit]] = []
+    found: list[tuple[list[Hit], DenseInfo | None]] = []
     with tqdm(
         total=len(tokens_all), desc="candidates", unit=" prefixes", disable=not progress
     ) as bar:
         for i in range(0, len(tokens_all), 256):  # batches: one kernel call each
             chunk = tokens_all[i : i + 256]
-            hits_all.extend(index.search_token_lists(chunk, k))
+            found.extend(find_candidates(index, chunk, k, policy))
             bar.update(len(chunk))
     names = list(feature_names)
     all_names = names + metadata.names
@@ -158,9 +177,9 @@ def build_table(
     cols: dict[str, list[np.ndarray]] = {
         n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row", "words")
     }
-    for g, (text, tokens, words, hits, (cid, frac, gold, meta)) in enumerate(
+    for g, (text, tokens, words, (hits, dense), (cid, frac, gold, meta)) in enumerate(
         tqdm(
-            zip(texts, tokens_all, words_all, hits_all, owners, strict=True),
+            zip(texts, tokens_all, words_all, found, owners, strict=True),
             total=len(texts),
             desc="features",
             unit=" prefixes",
@@ -170,7 +189,7 @@ def build_table(
     ):
         if not hits:
             continue
-        cs = candidate_set(index, text, hits, meta, tokens, words)
+        cs = candidate_set(index, text, hits, meta, tokens, words, dense)
         x = registry.matrix(cs, names)
         if metadata.names:
             x = np.hstack([x, np.tile(metadata.row(meta), (len(cs), 1))])

@@ -11,12 +11,14 @@ import numpy as np
 
 from retriever import Index
 
+from ..candidates import CandidatePolicy
 from ..decision import Payoff, simulate_commits, tune_threshold
 from ..features import FEATURE_SET_VERSION, FeatureRegistry, MetadataColumns
-from ..features.builtin import default_registry
+from ..features.builtin import DENSE, default_registry
 from ..loading import ServedModel, serve
 from ..model import save_model
 from .estimator import Reranker
+from .fusion import tune_fusion
 from .logs import LogReport, read_logs
 from .measures import candidate_metrics, clue_log_loss, clue_metrics
 from .presence import fit_presence
@@ -81,8 +83,15 @@ def train(
     skip_bad: bool = False,
     progress: bool = False,
     registry: FeatureRegistry | None = None,
+    candidates: str = "auto",
 ) -> TrainResult:
-    """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON."""
+    """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON.
+
+    candidates: "auto" makes hybrid candidate sets (BM25 + word vectors, the fusion weight
+    chosen on these logs) when the index has word vectors, else BM25's; "bm25" always BM25's.
+    """
+    if candidates not in ("auto", "bm25"):
+        raise ValueError(f"candidates must be 'auto' or 'bm25', got {candidates!r}")
     payoff = payoff or Payoff()
     plan = plan or PrefixPlan()
     reg = registry if registry is not None else default_registry().with_user_features(user_features)
@@ -94,7 +103,24 @@ def train(
     meta = (
         MetadataColumns.learn(clues, metadata_features) if metadata_features else MetadataColumns()
     )
-    table = build_table(index, clues, reg, names, k=k, plan=plan, metadata=meta, progress=progress)
+    fusion_rows: list[dict[str, Any]] = []
+    policy = CandidatePolicy()
+    if candidates == "auto" and index.dense is not None:
+        policy, fusion_rows = tune_fusion(index, clues, plan, k, progress=progress)
+    if policy.mode == "bm25" and not features:
+        # Without vectors the dense features are constant: leave them out of the model.
+        names = [n for n in names if reg[n].group != DENSE]
+    table = build_table(
+        index,
+        clues,
+        reg,
+        names,
+        k=k,
+        plan=plan,
+        metadata=meta,
+        candidates=policy,
+        progress=progress,
+    )
     estimator = Reranker(calibration=calibration, verbose=progress).fit(
         table.X, table.y, table.clue_id, table.feature_names
     )
@@ -135,8 +161,10 @@ def train(
             "unresolved_count": len(table.unresolved),
             "skipped_lines": report.skipped,
             "served_without_feedback": report.served_without_feedback,
+            "fusion_tuning": fusion_rows,
         },
         presence=presence.to_dict(),
+        candidates=policy.to_dict(),
         metrics=_oof_metrics(table, estimator.oof_proba_, q_oof),
         decision={
             "threshold": tuned["threshold"],

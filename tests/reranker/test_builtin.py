@@ -8,6 +8,7 @@ grey 2 (a1, a3), river 2 (a2, a4), town 2 (a2, a3), pellomir 1 (a3), stone 3 (a1
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -17,8 +18,8 @@ import scipy.stats
 from rank_bm25 import BM25Okapi
 
 from reranker import CandidateSet, default_registry
+from reranker.features import DenseInfo, candidate_set
 from reranker.features import builtin as B
-from reranker.features import candidate_set
 from retriever import Index
 
 CLUE = "Which grey river town near Pellomir has stone"
@@ -192,6 +193,10 @@ EXPECTED = {
         "matched_terms", "matched_fraction", "matched_rarity", "log_doc_length",
         "qualifier_frequency",
     ],
+    "dense": [
+        "cosine", "cosine_gap_to_best", "dense_inverse_rank", "fused_inverse_rank",
+        "in_both_pools",
+    ],
 }  # fmt: skip
 
 
@@ -215,3 +220,26 @@ def test_matrix_columns_are_the_feature_functions(cs: CandidateSet) -> None:
 def test_matrix_of_no_candidates(tiny_index: Index) -> None:
     empty = make_set(tiny_index, CLUE, [], np.array([]))
     assert default_registry().matrix(empty, ["bm25_score", "inlinks"]).shape == (0, 2)
+
+
+def test_dense_features_by_hand(cs: CandidateSet) -> None:
+    # Five candidates; the vectors' side as a hybrid set would carry it.
+    dense = DenseInfo(
+        cosine=np.array([0.2, 0.9, 0.5, 0.0, 0.4]),
+        dense_rank=np.array([3, 1, 0, 0, 2]),  # 0: the vectors did not propose it
+        fused_rank=np.array([2, 1, 3, 5, 4]),
+        in_both=np.array([True, True, False, False, True]),
+    )
+    hybrid = dataclasses.replace(cs, dense=dense, memo={})
+    close(B.cosine(hybrid), [0.2, 0.9, 0.5, 0.0, 0.4])
+    close(B.cosine_gap_to_best(hybrid), [-0.7, 0.0, -0.4, -0.9, -0.5])
+    close(B.dense_inverse_rank(hybrid), [1 / 3, 1, 0, 0, 1 / 2])
+    close(B.fused_inverse_rank(hybrid), [1 / 2, 1, 1 / 3, 1 / 5, 1 / 4])
+    close(B.in_both_pools(hybrid), [1, 1, 0, 0, 1])
+    # A BM25-only set: no vectors, so cosine, gaps and pool flags are 0 and the fused
+    # position is the BM25 rank.
+    close(B.cosine(cs), np.zeros(5))
+    close(B.cosine_gap_to_best(cs), np.zeros(5))
+    close(B.dense_inverse_rank(cs), np.zeros(5))
+    close(B.fused_inverse_rank(cs), 1.0 / cs.ranks)
+    close(B.in_both_pools(cs), np.zeros(5))

@@ -18,7 +18,7 @@ from reranker.training.train import TrainResult
 from retriever import Index
 from tests.reranker.conftest import World
 
-GROUPS = ("retrieval", "length", "popularity", "qualifier", "leakage", "overlap")
+GROUPS = ("retrieval", "length", "popularity", "qualifier", "leakage", "overlap", "dense")
 
 
 @pytest.fixture(scope="module")

@@ -1,0 +1,124 @@
+"""Candidate sets: BM25's top k or the hybrid pool, made the same way for training and serving."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from reranker import ModelFormatError, ModelMismatchError, load_model, rank_clue
+from reranker.candidates import CandidatePolicy, find_candidates, search_pools
+from reranker.training import build_table, read_logs
+from reranker.training.train import TrainResult
+from retriever import build_index
+from tests.reranker.conftest import World
+
+
+def test_the_trained_model_records_how_its_candidates_were_made(
+    world_trained: TrainResult,
+) -> None:
+    a = world_trained.artifact
+    tuning = a["training"]["fusion_tuning"]
+    assert [r["weight"] for r in tuning] == [0.3, 0.5, 0.7, 0.85, 1.0]
+    [chosen] = [r for r in tuning if r["chosen"]]
+    # the best recall@k on the training prefixes wins; ties go to the higher weight
+    best = max(r["recall_at_k"] for r in tuning)
+    assert chosen["recall_at_k"] == best
+    assert chosen["weight"] == max(r["weight"] for r in tuning if r["recall_at_k"] == best)
+    assert a["candidates"] == {"mode": "hybrid", "weight": chosen["weight"], "pool": 100,
+                               "fusion": "minmax"}  # fmt: skip
+    assert world_trained.model.candidates == CandidatePolicy.from_dict(a["candidates"])
+    assert {"cosine", "in_both_pools"} <= set(a["feature_names"])
+
+
+def test_serving_sees_the_rows_training_saw(world_trained: TrainResult, world: World) -> None:
+    # The same clues through the training table and through rank_clue: identical candidate
+    # sets, in the same order, with identical feature values.
+    model = world_trained.model
+    clues = read_logs([world.test_log])[:15]
+    table = build_table(
+        world.index,
+        clues,
+        model.registry,
+        list(model.code_features),
+        k=model.k,
+        candidates=model.candidates,
+    )
+    full = np.flatnonzero(table.fraction == 1.0)
+    groups = np.unique(table.group[full])
+    assert groups.size >= 10
+    for g, clue in zip(groups.tolist(), [c for c in clues if c.answer], strict=False):
+        rows = table.group == g
+        served = rank_clue(world.index, model, clue.clue, include_features=True)
+        by_id = {c.doc_id: c for c in served.candidates}
+        ids = world.index.ids.take(table.row[rows])
+        assert set(ids) == set(by_id)
+        x = np.array([[by_id[i].features[n] for n in model.feature_names] for i in ids])
+        np.testing.assert_array_equal(x, table.X[rows])
+
+
+def test_a_hybrid_set_is_ordered_by_real_bm25_scores(world: World) -> None:
+    index = world.index
+    assert index.dense is not None
+    clues = [json.loads(line)["clue"] for line in world.test_log.read_text().splitlines()]
+    tokens = [index.analyzer.tokens(c) for c in clues[:40]]
+    policy = CandidatePolicy("hybrid", 0.3, 30)
+    found = find_candidates(index, tokens, 10, policy)
+    bm25_top = [set(h.row for h in hits) for hits in index.search_token_lists(tokens, 10)]
+    took_from_vectors = 0
+    for t, (hits, dense), top in zip(tokens, found, bm25_top, strict=True):
+        assert dense is not None and len(hits) == dense.cosine.size
+        scores = np.array([h.score for h in hits])
+        full = index.score_tokens(t)
+        rows = np.array([h.row for h in hits])
+        np.testing.assert_array_equal(scores, full[rows])  # BM25's own numbers
+        assert np.all(np.diff(scores) <= 0) and [h.rank for h in hits] == list(
+            range(1, len(hits) + 1)
+        )
+        np.testing.assert_allclose(dense.cosine, index.dense.cosines(
+            index.dense.vectors.query_vector(*index.term_ids(t)), rows), rtol=1e-6)  # fmt: skip
+        took_from_vectors += len(set(rows.tolist()) - top)
+    # with BM25's share at 0.3 the vectors bring articles BM25's top 10 did not have
+    assert took_from_vectors > 0
+
+
+def test_pools_are_searched_once_and_bm25_mode_ignores_vectors(world: World) -> None:
+    index = world.index
+    tokens = [index.analyzer.tokens("river town harbour")]
+    [p] = search_pools(index, tokens, 25)
+    assert p.bm25_rows.size <= 25 and p.dense_rows.size == 25
+    [(hits, dense)] = find_candidates(index, tokens, 5, CandidatePolicy())
+    assert dense is None
+    assert [h.row for h in hits] == [h.row for h in index.search_tokens(tokens[0], 5)]
+
+
+@pytest.mark.parametrize(
+    ("field", "value"),
+    [("mode", "magic"), ("weight", 1.5), ("weight", "half"), ("pool", 0), ("fusion", "sum")],
+)
+def test_a_damaged_candidates_section_names_its_field(field: str, value: Any) -> None:
+    data = dict(CandidatePolicy("hybrid", 0.5, 100).to_dict(), **{field: value})
+    with pytest.raises(ModelFormatError, match=rf"m\.json: candidates\.{field}"):
+        CandidatePolicy.from_dict(data, source="m.json")
+    assert CandidatePolicy.from_dict(None) == CandidatePolicy()  # older files: BM25
+
+
+def test_a_hybrid_model_refuses_an_index_without_vectors(
+    world_trained: TrainResult, world_model_path: Path, world: World, tmp_path: Path
+) -> None:
+    plain = build_index(world.articles, tmp_path / "plain", vectors=False)
+    with pytest.raises(ModelMismatchError, match="no word vectors"):
+        load_model(world_model_path, index=plain)
+    assert isinstance(load_model(world_model_path, index=world.index).k, int)
+
+
+def test_bm25_candidates_on_request_train_as_before(world: World, tmp_path: Path) -> None:
+    from reranker.training import train
+
+    res = train(world.index, [world.train_log], tmp_path / "m.json", candidates="bm25")
+    assert res.artifact["candidates"]["mode"] == "bm25"
+    assert res.artifact["training"]["fusion_tuning"] == []
+    assert not {"cosine", "in_both_pools"} & set(res.artifact["feature_names"])
