@@ -16,6 +16,7 @@ from . import routes, routes_admin, schemas
 from .deps import Runtime
 from .handlers import BodyLimitMiddleware, SafeJSONResponse, install_handlers
 from .metrics import Metrics, MetricsMiddleware
+from .parentwatch import end_with_parent
 from .settings import ServiceSettings, settings_from_env
 
 DESCRIPTION = """\
@@ -147,4 +148,5 @@ def _document_limits(app: FastAPI, settings: ServiceSettings) -> None:
 
 def app_from_env() -> FastAPI:
     """Factory for uvicorn workers: settings come from the HUNCHWISE_* environment."""
+    end_with_parent()
     return create_app(settings_from_env())

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import math
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -15,6 +14,8 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from reranker import ModelFormatError, ModelMismatchError, RerankerError
 from retriever import CorpusError, IndexFormatError, RetrieverError, UnknownDocumentError
+
+from .jsonshape import json_shape, spell_non_finite
 
 
 class SafeJSONResponse(JSONResponse):
@@ -54,26 +55,41 @@ async def _library_error(request: Request, exc: Exception) -> SafeJSONResponse:
 async def _http_error(request: Request, exc: Exception) -> SafeJSONResponse:
     if not isinstance(exc, StarletteHTTPException):
         raise TypeError(f"unexpected exception {exc!r}")
-    return SafeJSONResponse(
-        {"detail": exc.detail}, status_code=exc.status_code, headers=exc.headers
-    )
+    detail = exc.detail
+    if isinstance(exc.__cause__, RecursionError):
+        # FastAPI answers 400 "error parsing the body" for any parser failure; this one is
+        # JSON nested deeper than Python's parser goes (it recurses once per level).
+        detail = "the JSON body nests arrays or objects too deeply to be read"
+    return SafeJSONResponse({"detail": detail}, status_code=exc.status_code, headers=exc.headers)
 
 
 async def _validation_error(request: Request, exc: Exception) -> SafeJSONResponse:
     if not isinstance(exc, RequestValidationError):
         raise TypeError(f"unexpected exception {exc!r}")
-    return SafeJSONResponse({"detail": _finite(jsonable_encoder(exc.errors()))}, status_code=422)
+    errors = [_without_big_input(e) for e in exc.errors()]
+    return SafeJSONResponse({"detail": jsonable_encoder(errors)}, status_code=422)
 
 
-def _finite(value: Any) -> Any:
-    # Errors echo the input, and Python's JSON parser lets NaN/Infinity in; spell them out.
-    if isinstance(value, float) and not math.isfinite(value):
-        return str(value)
-    if isinstance(value, dict):
-        return {k: _finite(v) for k, v in value.items()}
-    if isinstance(value, list):
-        return [_finite(v) for v in value]
-    return value
+# Largest input an error echoes back, as JSON-ish size and nesting depth. Anything bigger is
+# described instead: echoing a whole body back is no help, and the encoders recurse per level.
+_ECHO_MAX_SIZE = 1000
+_ECHO_MAX_DEPTH = 8
+
+
+def _without_big_input(error: Any) -> Any:
+    """An error of the list with its 'input' echoed only when small (NaN/inf spelled out)."""
+    if not isinstance(error, dict) or "input" not in error:
+        return error
+    value = error["input"]
+    shape = json_shape(value)
+    if shape.size > _ECHO_MAX_SIZE or shape.depth > _ECHO_MAX_DEPTH:
+        kind = "an object" if isinstance(value, dict) else "an array" if shape.depth else "a value"
+        echo: Any = f"(not shown: {kind} about {shape.size:,} long, {shape.depth} levels deep)"
+    else:
+        echo = jsonable_encoder(value)
+        if shape.non_finite:
+            echo = spell_non_finite(echo)
+    return {**error, "input": echo}
 
 
 def install_handlers(app: FastAPI) -> None:

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
-import math
 from typing import Annotated, Any, Literal
 
 from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StringConstraints
 
+from .jsonshape import json_shape
+
 REQUEST_ID_MAX = 64
+MAX_METADATA_DEPTH = 32
 
 
 def _valid_text(value: str) -> str:
@@ -25,17 +27,17 @@ def _non_blank(value: str) -> str:
     return value
 
 
-def _finite_json(value: Any) -> Any:
+def _plain_json(value: Any) -> Any:
+    shape = json_shape(value)
     # Python's JSON parser accepts NaN and Infinity, which no JSON reply could carry back.
-    stack = [value]
-    while stack:
-        item = stack.pop()
-        if isinstance(item, float) and not math.isfinite(item):
-            raise ValueError("must not contain NaN or infinite numbers")
-        if isinstance(item, dict):
-            stack.extend(item.values())
-        elif isinstance(item, list):
-            stack.extend(item)
+    if shape.non_finite:
+        raise ValueError("must not contain NaN or infinite numbers")
+    # The value is stored in the served log and read back by training; deep nesting there
+    # only makes every later reader recurse. (A fixed cap is common practice, no source.)
+    if shape.depth > MAX_METADATA_DEPTH:
+        raise ValueError(
+            f"must not nest arrays or objects more than {MAX_METADATA_DEPTH} levels deep"
+        )
     return value
 
 
@@ -80,7 +82,7 @@ class RankRequest(_RankOptions):
     """One clue to rank."""
 
     clue: Clue = Field(description="free-text clue, possibly still incomplete")
-    metadata: Annotated[dict[str, Any], AfterValidator(_finite_json)] | None = Field(
+    metadata: Annotated[dict[str, Any], AfterValidator(_plain_json)] | None = Field(
         default=None, description="values for a model's metadata features (kept in the log)"
     )
 
@@ -222,7 +224,7 @@ class ArticleIn(_Strict):
     links: list[Text] = Field(default_factory=list)
     aliases: list[Text] = Field(default_factory=list)
     popularity: FiniteFloat | None = Field(default=None, ge=0)
-    metadata: Annotated[dict[str, Any], AfterValidator(_finite_json)] = Field(default_factory=dict)
+    metadata: Annotated[dict[str, Any], AfterValidator(_plain_json)] = Field(default_factory=dict)
 
 
 class ChangeOut(BaseModel):

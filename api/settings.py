@@ -65,6 +65,27 @@ class ServiceSettings(BaseSettings):
         default_factory=list, description="origins allowed by CORS; empty: CORS off"
     )
 
+    # Connections, per worker process (`hunchwise serve` applies them through uvicorn).
+    max_connections: int = Field(
+        default=1000,
+        ge=1,
+        le=100_000,
+        description="open connections a worker keeps; one more is answered 503 and closed",
+    )
+    request_timeout_seconds: float = Field(
+        default=60,
+        gt=0,
+        le=3600,
+        description="time a request's line, headers and body may take to arrive, from its "
+        "first byte (or the connection's start); then the connection is closed (408)",
+    )
+    keep_alive_seconds: int = Field(
+        default=5,
+        ge=1,
+        le=3600,
+        description="idle time after a reply before a kept-alive connection is closed",
+    )
+
     @model_validator(mode="after")
     def _check(self) -> ServiceSettings:
         if self.default_k > self.max_k:

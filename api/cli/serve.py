@@ -20,8 +20,12 @@ from collections.abc import Iterator
 from multiprocessing.connection import Connection
 from pathlib import Path
 
+from ..parentwatch import PARENT_ENV
+
 ENV_PREFIX = "HUNCHWISE_"
 METRICS_ENV = "PROMETHEUS_MULTIPROC_DIR"
+GUARDED_PROTOCOL = "api.connections:GuardedHttpToolsProtocol"
+DESCRIPTOR_HEADROOM = 256
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -63,6 +67,23 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="allow this origin by CORS (repeatable; default: CORS off)",
     )
     p.add_argument("--access-log", action="store_true", help="print one line per request")
+    p.add_argument(
+        "--max-connections",
+        type=int,
+        help="open connections per worker; more are answered 503 (default 1000)",
+    )
+    p.add_argument(
+        "--request-timeout",
+        type=float,
+        metavar="SECONDS",
+        help="time a request may take to arrive, headers and body; then 408 (default 60)",
+    )
+    p.add_argument(
+        "--keep-alive",
+        type=int,
+        metavar="SECONDS",
+        help="close an idle kept-alive connection after this long (default 5)",
+    )
     p.set_defaults(func=cmd_serve)
 
 
@@ -83,6 +104,12 @@ def _environment(args: argparse.Namespace, state_dir: Path) -> dict[str, str]:
         env["LOG_MAX_BYTES"] = str(args.log_max_bytes)
     if args.log_backups is not None:
         env["LOG_BACKUPS"] = str(args.log_backups)
+    if args.max_connections is not None:
+        env["MAX_CONNECTIONS"] = str(args.max_connections)
+    if args.request_timeout is not None:
+        env["REQUEST_TIMEOUT_SECONDS"] = str(args.request_timeout)
+    if args.keep_alive is not None:
+        env["KEEP_ALIVE_SECONDS"] = str(args.keep_alive)
     if args.cors_origin:
         env["CORS_ORIGINS"] = "[" + ",".join(f'"{o}"' for o in args.cors_origin) + "]"
     return {ENV_PREFIX + k: v for k, v in env.items()}
@@ -150,18 +177,47 @@ def _check(args: argparse.Namespace) -> None:
     print(f"{message}, {args.workers} worker(s) on http://{args.host}:{args.port}", flush=True)
 
 
+def _ensure_descriptors(max_connections: int) -> None:
+    """Raise this process's open-file limit (workers inherit it) to fit max_connections.
+
+    A worker out of descriptors cannot accept, so new clients would be reset rather than
+    told 503. Headroom for index files, logs, metrics and pipes is a rule of thumb
+    (common practice, no source).
+    """
+    try:
+        import resource
+    except ImportError:  # not on Windows
+        return
+    need = max_connections + DESCRIPTOR_HEADROOM
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft != resource.RLIM_INFINITY and soft < need:
+        target = need if hard == resource.RLIM_INFINITY else min(hard, need)
+        resource.setrlimit(resource.RLIMIT_NOFILE, (target, hard))
+        if target < need:
+            raise ValueError(
+                f"--max-connections {max_connections} needs about {need} open files per "
+                f"worker, but the limit is {hard}; lower it or raise the limit (ulimit -n)"
+            )
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     """Run the service until interrupted."""
     import uvicorn
 
+    from ..settings import settings_from_env
+
     with _state_folder(args.state_dir) as state_dir:
         os.environ.update(_environment(args, state_dir))
+        # Workers compare their parent pid with this, to end when this process is gone.
+        os.environ[PARENT_ENV] = str(os.getpid())
         metrics_dir = state_dir / "metrics"
         shutil.rmtree(metrics_dir, ignore_errors=True)
         metrics_dir.mkdir(parents=True)
         # Set before any worker imports prometheus_client: it picks its mode at import time.
         os.environ[METRICS_ENV] = str(metrics_dir)
         _check(args)
+        settings = settings_from_env()
+        _ensure_descriptors(settings.max_connections)
         uvicorn.run(
             "api.app:app_from_env",
             factory=True,
@@ -171,5 +227,11 @@ def cmd_serve(args: argparse.Namespace) -> int:
             access_log=args.access_log,
             log_level="info",
             timeout_graceful_shutdown=10,
+            # The connection cap and the request-arrival deadline live in this protocol
+            # (see api/connections.py for why uvicorn's own options do not cover them).
+            http=GUARDED_PROTOCOL,
+            timeout_keep_alive=settings.keep_alive_seconds,
+            # No endpoint speaks WebSocket; refusing upgrades keeps every connection HTTP.
+            ws="none",
         )
     return 0

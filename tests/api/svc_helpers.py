@@ -112,9 +112,10 @@ def serve(
     workers: int = 1,
     env: dict[str, str] | None = None,
     ready_timeout: float = 90,
+    port: int | None = None,
 ) -> Iterator[Server]:
-    """Start `hunchwise serve ARGS` on a free loopback port; stop it with SIGINT afterwards."""
-    port = free_port()
+    """Start `hunchwise serve ARGS` on loopback (a free port unless given); SIGINT at the end."""
+    port = port if port is not None else free_port()
     output = workdir / f"server-{port}.out"
     cmd = [
         sys.executable,

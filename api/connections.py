@@ -1,0 +1,121 @@
+"""uvicorn's HTTP protocol with a cap on open connections and a deadline for requests to arrive.
+
+Written by hand because uvicorn (0.55) has neither. Its `timeout_keep_alive` only covers
+the idle time after a reply and is cancelled by the first byte of the next request, so a
+client that sends half a request line and stalls keeps its connection, and its file
+descriptor, for ever. Its `limit_concurrency` answers 503 only once a request's headers
+are complete, which a stalled client never reaches. Middleware cannot help either: the
+application is only called after the headers have arrived.
+
+So each connection here starts a timer when it opens and again when the next request's
+first byte arrives; the timer is cancelled once that request is completely received
+(line, headers and body), so the time the application takes is never limited. On expiry
+the connection is closed, with a 408 when no reply is in progress. A connection opened
+while the worker already holds `max_connections` gets a 503 and is closed at once.
+
+Limits come from the HUNCHWISE_* environment, as every other setting of a worker does:
+uvicorn builds protocol objects itself and passes them nothing but its own config.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import functools
+import logging
+import time
+
+from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
+
+from .settings import settings_from_env
+
+logger = logging.getLogger("uvicorn.error")
+
+WARN_EVERY_SECONDS = 10.0
+_last_warned: dict[str, float] = {}
+
+
+@functools.cache
+def _limits() -> tuple[int, float]:
+    settings = settings_from_env()
+    return settings.max_connections, settings.request_timeout_seconds
+
+
+def _plain_reply(status: str, text: str) -> bytes:
+    body = text.encode("ascii")
+    head = (
+        f"HTTP/1.1 {status}\r\ncontent-type: text/plain; charset=utf-8\r\n"
+        f"content-length: {len(body)}\r\nconnection: close\r\n\r\n"
+    )
+    return head.encode("ascii") + body
+
+
+BUSY = _plain_reply("503 Service Unavailable", "too many open connections; try again later")
+TIMED_OUT = _plain_reply("408 Request Timeout", "the request did not arrive in time")
+
+
+def _warn(kind: str, message: str) -> None:
+    # Under a flood of bad clients one line per connection would drown the log.
+    now = time.monotonic()
+    if now - _last_warned.get(kind, -WARN_EVERY_SECONDS) >= WARN_EVERY_SECONDS:
+        _last_warned[kind] = now
+        logger.warning(message)
+
+
+class GuardedHttpToolsProtocol(HttpToolsProtocol):
+    """HttpToolsProtocol plus the connection cap and the request-arrival deadline."""
+
+    arrival_timer: asyncio.TimerHandle | None = None
+
+    def connection_made(  # type: ignore[override]
+        self, transport: asyncio.Transport
+    ) -> None:
+        """Refuse the connection over the cap; otherwise start the arrival deadline."""
+        super().connection_made(transport)
+        max_connections, _ = _limits()
+        if len(self.connections) > max_connections:
+            _warn("busy", f"over {max_connections} open connections: refusing new ones")
+            transport.write(BUSY)
+            transport.close()
+            return
+        self._arm()
+
+    def data_received(self, data: bytes) -> None:
+        """Bytes with no request in progress start a deadline (stray bytes included)."""
+        if self.cycle is None or self.cycle.response_complete:
+            self._arm()
+        super().data_received(data)
+
+    def on_message_begin(self) -> None:
+        """A new request: its deadline starts (kept if its bytes already started one)."""
+        super().on_message_begin()
+        self._arm()
+
+    def on_message_complete(self) -> None:
+        """The request is fully received: from here on the application has the time."""
+        super().on_message_complete()
+        self._disarm()
+
+    def connection_lost(self, exc: Exception | None) -> None:
+        """Drop the timer with the connection."""
+        self._disarm()
+        super().connection_lost(exc)
+
+    def _arm(self) -> None:
+        if self.arrival_timer is None and not self.transport.is_closing():
+            _, seconds = _limits()
+            self.arrival_timer = self.loop.call_later(seconds, self._expired)
+
+    def _disarm(self) -> None:
+        if self.arrival_timer is not None:
+            self.arrival_timer.cancel()
+            self.arrival_timer = None
+
+    def _expired(self) -> None:
+        self.arrival_timer = None
+        if self.transport.is_closing():
+            return
+        _warn("slow", "closing connections whose request did not arrive in time")
+        if self.cycle is None or self.cycle.response_complete:
+            # Nothing is replying on this connection, so a reply of our own cannot collide.
+            self.transport.write(TIMED_OUT)
+        self.transport.close()

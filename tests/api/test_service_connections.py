@@ -1,0 +1,123 @@
+"""Slow and surplus connections against a real 2-worker server: closed, capped, and served."""
+
+from __future__ import annotations
+
+import contextlib
+import socket
+import time
+from pathlib import Path
+
+import httpx
+import pytest
+
+from tests.api.svc_helpers import HOST, Server, serve
+
+pytestmark = [pytest.mark.slow, pytest.mark.server]
+
+WAIT = 90.0  # generous bound on every wait below; the tests never measure how long things take
+STALLED = 50
+TRICKLING = 5
+
+
+def _port(server: Server) -> int:
+    return int(server.url.rsplit(":", 1)[1])
+
+
+def _connect(server: Server, first_bytes: bytes) -> socket.socket:
+    s = socket.create_connection((HOST, _port(server)), timeout=WAIT)
+    if first_bytes:
+        s.sendall(first_bytes)
+    return s
+
+
+def _closed_by_server(s: socket.socket, received: bytearray) -> bool:
+    """Whether the server has closed this socket (reading what it sent), without blocking."""
+    s.setblocking(False)
+    try:
+        while True:
+            chunk = s.recv(4096)
+            if not chunk:
+                return True
+            received.extend(chunk)
+    except BlockingIOError:
+        return False
+    except (ConnectionResetError, BrokenPipeError):
+        return True
+    finally:
+        s.setblocking(True)
+
+
+def _info_ok(server: Server) -> bool:
+    with httpx.Client(base_url=server.url, timeout=WAIT) as c:
+        return c.get("/v1/info").status_code == 200
+
+
+def test_stalled_and_trickling_requests_are_closed(index_dir: Path, tmp_path: Path) -> None:
+    with serve(["--index", str(index_dir), "--request-timeout", "2"], tmp_path, workers=2) as srv:
+        stalled = [_connect(srv, b"POST /v1/rank HT") for _ in range(STALLED // 2)]
+        stalled += [
+            _connect(srv, b"POST /v1/rank HTTP/1.1\r\nHost: x\r\nContent-Length: 40\r\n\r\n{")
+            for _ in range(STALLED - len(stalled))
+        ]
+        # A connection that completed one request, then sends half of the next.
+        kept = _connect(srv, b"GET /v1/info HTTP/1.1\r\nHost: x\r\n\r\n")
+        first = kept.recv(65536)
+        assert first.startswith(b"HTTP/1.1 200"), first[:100]
+        kept.sendall(b"GET /v1/in")
+        # Clients sending a byte now and then: a timer reset by every byte never fires.
+        trickling = [_connect(srv, b"GET /v1/info HTTP/1.1\r\nX-Slow: ") for _ in range(TRICKLING)]
+        replies = {id(s): bytearray() for s in [*stalled, kept, *trickling]}
+
+        assert _info_ok(srv)
+        open_ = [*stalled, kept, *trickling]
+        deadline = time.monotonic() + WAIT
+        while open_ and time.monotonic() < deadline:
+            for s in trickling:
+                if s in open_:
+                    with contextlib.suppress(OSError):
+                        s.send(b"a")
+            open_ = [s for s in open_ if not _closed_by_server(s, replies[id(s)])]
+            # Normal requests are served all along.
+            assert _info_ok(srv)
+            time.sleep(0.25)
+        n_open = len(open_)
+        for s in [*stalled, kept, *trickling]:
+            s.close()
+        assert n_open == 0, f"{n_open} slow connections still open after {WAIT:.0f} s"
+        # Those that stalled in the request line are told why (the trickling ones may get a
+        # reset instead, when a byte crosses the close).
+        told = [replies[id(s)][:40] for s in [*stalled[: STALLED // 2], kept]]
+        assert all(r.startswith(b"HTTP/1.1 408") for r in told), told
+        assert _info_ok(srv)
+
+
+def test_connections_over_the_cap_are_refused(index_dir: Path, tmp_path: Path) -> None:
+    cap, workers, opened = 5, 2, 30
+    args = ["--index", str(index_dir), "--max-connections", str(cap), "--request-timeout", "600"]
+    with serve(args, tmp_path, workers=workers) as srv:
+        # Sending nothing: a server closing a socket with unread bytes resets it, which
+        # could drop its reply before this side reads it.
+        sockets = [_connect(srv, b"") for _ in range(opened)]
+        replies = {id(s): bytearray() for s in sockets}
+        refused: list[socket.socket] = []
+        deadline = time.monotonic() + WAIT
+        # Each worker keeps at most `cap`; every other connection is answered and closed.
+        while len(refused) < opened - cap * workers and time.monotonic() < deadline:
+            refused += [
+                s for s in sockets if s not in refused and _closed_by_server(s, replies[id(s)])
+            ]
+            time.sleep(0.1)
+        for s in sockets:
+            s.close()
+        assert len(refused) >= opened - cap * workers, f"only {len(refused)} refused"
+        assert all(replies[id(s)].startswith(b"HTTP/1.1 503") for s in refused)
+        # With the stalled clients gone, the workers serve again.
+        deadline = time.monotonic() + WAIT
+        ok = False
+        while not ok and time.monotonic() < deadline:
+            try:
+                ok = _info_ok(srv)
+            except httpx.TransportError:
+                ok = False
+            time.sleep(0.1)
+        assert ok
