@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hmac
+import logging
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Annotated, Any
@@ -16,6 +17,8 @@ from .requestids import RequestIds, shared_secret
 from .servedlog import ServedLog
 from .settings import ServiceSettings, get_settings
 from .state import Serving
+
+_log = logging.getLogger("hunchwise.service")
 
 bearer = HTTPBearer(
     auto_error=False,
@@ -33,6 +36,7 @@ class Runtime:
     served_log: ServedLog | None
     metrics: Metrics
     admin_token: str | None
+    log_error: str | None = None  # why the last served-log write failed; None once one works
 
     @classmethod
     def start(cls, settings: ServiceSettings, metrics: Metrics) -> Runtime:
@@ -44,7 +48,10 @@ class Runtime:
         log = None
         if settings.log_dir is not None:
             log = ServedLog(
-                settings.log_dir, max_bytes=settings.log_max_bytes, backups=settings.log_backups
+                settings.log_dir,
+                max_bytes=settings.log_max_bytes,
+                backups=settings.log_backups,
+                fsync=settings.log_fsync,
             )
         serving.start()
         return cls(settings, serving, ids, log, metrics, token)
@@ -66,6 +73,47 @@ def get_runtime(request: Request) -> Runtime:
 
 RuntimeDep = Annotated[Runtime, Depends(get_runtime)]
 SettingsDep = Annotated[ServiceSettings, Depends(get_settings)]
+
+
+def log_records(runtime: Runtime, records: list[dict[str, Any]], *, feedback: bool = False) -> bool:
+    """Append to the served log; on failure count it, remember why, and return False.
+
+    Policy: ranking never fails because the log cannot be written (the reply is served,
+    /metrics counts the failure, /readyz says "degraded"); a label that cannot be stored is
+    the caller's to refuse, so the client can send it again.
+    """
+    log = runtime.served_log
+    if log is None:
+        return False
+    try:
+        if feedback:
+            log.append_feedback(records)
+        else:
+            log.append(records)
+    except OSError as exc:
+        runtime.metrics.log_failures.inc()
+        runtime.log_error = f"{exc.strerror or exc} ({exc.filename or log.folder})"
+        _log.warning("served log not written: %s", runtime.log_error)
+        return False
+    runtime.log_error = None
+    return True
+
+
+def require_feedback_token(
+    runtime: RuntimeDep,
+    credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)],
+) -> None:
+    """Dependency: with a feedback token configured, POST /v1/feedback must carry it."""
+    secret = runtime.settings.feedback_token
+    if secret is None:
+        return
+    given = (credentials.credentials if credentials else "").encode("utf-8")
+    if not hmac.compare_digest(given, secret.get_secret_value().strip().encode("utf-8")):
+        raise HTTPException(
+            401,
+            "feedback needs the feedback token: send 'Authorization: Bearer <token>'",
+            headers={"WWW-Authenticate": "Bearer"},
+        )
 
 
 def require_admin(

@@ -76,6 +76,11 @@ class Metrics:
             ["ranked_by"],
             registry=self.registry,
         )
+        self.log_failures = Counter(
+            "hunchwise_served_log_write_failures",
+            "Appends to the served log that failed (the reply was served all the same)",
+            registry=self.registry,
+        )
         self.decisions = Counter(
             "hunchwise_decisions",
             "Decisions returned, by action",

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from typing import Any, Literal, cast
+from typing import Literal, cast
 
 from fastapi import Response
 from pydantic import BaseModel
@@ -61,45 +61,3 @@ def rank_result(request_id: str, r: Ranking, include_features: bool) -> s.RankRe
         in_candidates=r.in_candidates,
         none_of_these=r.none_of_these,
     )
-
-
-def served_record(
-    request_id: str, r: Ranking, k: int, complete: bool, when: str, metadata: dict[str, Any] | None
-) -> dict[str, Any]:
-    """One 'served' line of the served log."""
-    # The shape the trainer reads back (reranker.training.logs.read_logs); keep it stable.
-    d = r.decision
-    record: dict[str, Any] = {
-        "kind": "served",
-        "request_id": request_id,
-        "time": when,
-        "clue": r.clue,
-        "k": k,
-        "model_k": r.model_k,
-        "complete": complete,
-        "index_version": r.index_version,
-        "model_version": r.model_version,
-        "in_candidates": r.in_candidates,
-        "candidates": [
-            {
-                "id": c.doc_id,
-                "title": c.title,
-                "score": c.score,
-                "rank": c.rank,
-                "probability": c.probability,
-                "pointwise": c.pointwise,
-                "features": finite(c.features),
-            }
-            for c in r.candidates
-        ],
-        "decision": {
-            "action": d.action,
-            "id": d.doc_id,
-            "probability": d.probability,
-            "threshold": d.threshold,
-            "reason": d.reason,
-        },
-    }
-    if metadata:
-        record["metadata"] = metadata
-    return record

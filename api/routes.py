@@ -11,9 +11,10 @@ import os
 import time
 from typing import Any, Literal
 
-from fastapi import APIRouter, HTTPException, Request, Response
+from fastapi import APIRouter, Depends, HTTPException, Request, Response
 
 from reranker import Payoff, Ranking, model_k, rank_clue, rank_clues
+from reranker.servedrecords import feedback_record, served_record
 
 from . import schemas as s
 from .deps import (
@@ -23,9 +24,11 @@ from .deps import (
     check_clue,
     check_k,
     field_error,
+    log_records,
+    require_feedback_token,
 )
 from .handlers import SafeJSONResponse
-from .replies import json_reply, rank_result, served_record
+from .replies import json_reply, rank_result
 from .servedlog import utc_now
 from .state import Loaded
 
@@ -74,10 +77,20 @@ def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Res
     )
     ranked = time.perf_counter()
     rid = runtime.ids.new()
-    if runtime.served_log is not None:
-        runtime.served_log.append(
-            [served_record(rid, r, k, body.complete, utc_now(), body.metadata)]
-        )
+    log_records(
+        runtime,
+        [
+            served_record(
+                rid,
+                r,
+                k,
+                body.complete,
+                utc_now(),
+                body.metadata,
+                features=settings.log_features,
+            )
+        ],
+    )
     _record(runtime, [r])
     res = rank_result(rid, r, body.include_features)
     done = time.perf_counter()
@@ -122,14 +135,14 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
     )
     ranked = time.perf_counter()
     rids = [runtime.ids.new() for _ in rankings]
-    if runtime.served_log is not None:
-        when = utc_now()
-        runtime.served_log.append(
-            [
-                served_record(rid, r, k, body.complete, when, None)
-                for rid, r in zip(rids, rankings, strict=True)
-            ]
-        )
+    when = utc_now()
+    log_records(
+        runtime,
+        [
+            served_record(rid, r, k, body.complete, when, None, features=settings.log_features)
+            for rid, r in zip(rids, rankings, strict=True)
+        ],
+    )
     _record(runtime, rankings)
     results = [
         rank_result(rid, r, body.include_features) for rid, r in zip(rids, rankings, strict=True)
@@ -149,7 +162,13 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
     return json_reply(reply)
 
 
-@router.post("/v1/feedback", response_model=s.FeedbackResponse, responses=_404, tags=["rank"])
+@router.post(
+    "/v1/feedback",
+    response_model=s.FeedbackResponse,
+    responses=_404,
+    tags=["rank"],
+    dependencies=[Depends(require_feedback_token)],
+)
 def feedback(body: s.FeedbackRequest, runtime: RuntimeDep) -> s.FeedbackResponse:
     """The right answer to a ranked clue (or null: none of these). Repeats are all logged."""
     if not runtime.ids.valid(body.request_id):
@@ -165,18 +184,15 @@ def feedback(body: s.FeedbackRequest, runtime: RuntimeDep) -> s.FeedbackResponse
                 ("body", "answer"),
                 f"no article with id, title or alias {body.answer!r} in the index",
             )
-    recorded = runtime.served_log is not None
+    recorded = False
     if runtime.served_log is not None:
-        runtime.served_log.append(
-            [
-                {
-                    "kind": "feedback",
-                    "request_id": body.request_id,
-                    "time": utc_now(),
-                    "answer": answer,
-                }
-            ]
+        recorded = log_records(
+            runtime, [feedback_record(body.request_id, answer, utc_now())], feedback=True
         )
+        if not recorded:
+            raise HTTPException(
+                503, f"the label could not be stored ({runtime.log_error}); send it again"
+            )
     return s.FeedbackResponse(request_id=body.request_id, answer=answer, recorded=recorded)
 
 
@@ -247,11 +263,14 @@ async def readyz(request: Request, settings: SettingsDep) -> Any:
     loaded = None if runtime is None else runtime.serving.current
     configured = settings.model_path is not None
     ready = loaded is not None and (loaded.model is not None or not configured)
+    log_error = None if runtime is None else runtime.log_error
     body = s.ReadyOut(
         ready=ready,
+        status="starting" if not ready else "degraded" if log_error else "ready",
         index_version=None if loaded is None else loaded.index.version,
         model_version=None if loaded is None else loaded.model_version,
         model_configured=configured,
+        log_error=log_error,
     )
     if ready:
         return body

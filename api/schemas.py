@@ -285,6 +285,13 @@ class ReadyOut(BaseModel):
     """Readiness: the index, and the model if one was configured, are loaded."""
 
     ready: bool
+    status: Literal["ready", "degraded", "starting"] = Field(
+        default="ready",
+        description="degraded: serving, but the served log cannot be written (see log_error)",
+    )
     index_version: str | None
     model_version: str | None
     model_configured: bool
+    log_error: str | None = Field(
+        default=None, description="why the last served-log write failed; null when it works"
+    )

@@ -53,10 +53,22 @@ class ServiceSettings(BaseSettings):
     max_entries_per_call: int = Field(default=10_000, ge=1, description="articles per admin call")
 
     log_max_bytes: int = Field(
-        default=64 * 1024 * 1024, ge=1024, description="rotate served.jsonl past this size"
+        default=256 * 1024 * 1024, ge=1024, description="rotate served.jsonl past this size"
     )
     log_backups: int = Field(
-        default=10, ge=1, description="rotated files kept: served.1.jsonl ... served.N.jsonl"
+        default=20, ge=1, description="rotated files kept: served.1.jsonl ... served.N.jsonl"
+    )
+    log_features: bool = Field(
+        default=False,
+        description="also log every candidate's features (training recomputes them; "
+        "they make the log about 6 times larger)",
+    )
+    log_fsync: bool = Field(
+        default=False,
+        description="fsync the served log after every append (survives power loss; slower)",
+    )
+    feedback_token: SecretStr | None = Field(
+        default=None, description="when set, POST /v1/feedback needs it as a bearer token"
     )
     reload_check_seconds: float = Field(
         default=0.5, gt=0, le=60, description="how often a worker looks at the generation marker"

@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import LabelledLogError
+from ..servedrecords import FEEDBACK, SERVED, check_record, log_files
 
 
 @dataclass(frozen=True)
@@ -35,6 +36,7 @@ class LogReport:
     served_without_feedback: int = 0
     feedback_without_served: int = 0
     skipped: int = 0
+    torn_lines: int = 0  # unfinished last lines (no newline, not JSON), skipped
     problems: list[str] = field(default_factory=list)
     checksum: str = ""
 
@@ -45,63 +47,45 @@ class LogReport:
             self.problems.append(str(error))
 
 
-def _check_str(
-    rec: dict[str, Any], name: str, where: dict[str, Any], *, nullable: bool = False
-) -> str | None:
-    if name not in rec:
-        raise LabelledLogError("is required", field=name, **where)
-    value = rec[name]
-    if value is None and nullable:
-        return None
-    if not isinstance(value, str):
-        raise LabelledLogError(f"must be a string, got {type(value).__name__}", field=name, **where)
-    if not value.strip():
-        raise LabelledLogError("must not be empty", field=name, **where)
-    return value
-
-
 def _parse(rec: Any, where: dict[str, Any]) -> tuple[str, Any]:
-    if not isinstance(rec, dict):
-        raise LabelledLogError("each line must be a JSON object", **where)
-    kind = rec.get("kind")
-    if kind == "served":
-        _check_str(rec, "request_id", where)
-        _check_str(rec, "clue", where)
-        cands = rec.get("candidates", [])
-        if not isinstance(cands, list):
-            raise LabelledLogError("must be a list", field="candidates", **where)
-        return "served", rec
-    if kind == "feedback":
-        _check_str(rec, "request_id", where)
-        if "answer" not in rec:
-            raise LabelledLogError(
-                "is required (an article id, or null for none of these)", field="answer", **where
-            )
-        _check_str(rec, "answer", where, nullable=True)
-        return "feedback", rec
-    if kind not in (None, "labelled"):
-        raise LabelledLogError(
-            f"unknown kind {kind!r}; expected 'served', 'feedback' or none", field="kind", **where
-        )
-    clue = _check_str(rec, "clue", where)
-    answer = _check_str(rec, "answer", where)
+    kind = check_record(rec, where)
+    if kind != "labelled":
+        return kind, rec
     meta = rec.get("metadata", {}) or {}
-    if not isinstance(meta, dict):
-        raise LabelledLogError("must be an object", field="metadata", **where)
-    return "labelled", LabelledClue(str(clue), answer, meta, where["file"], where["line"])
+    return "labelled", LabelledClue(
+        str(rec["clue"]), rec["answer"], meta, where["file"], where["line"]
+    )
+
+
+def expand_paths(paths: Sequence[str | Path]) -> list[Path]:
+    """Files to read: a log folder stands for its files (served, rotated ones, feedback)."""
+    out: list[Path] = []
+    for path in map(Path, paths):
+        if path.is_dir():
+            files = log_files(path)
+            if not files:
+                raise LabelledLogError(f"no {SERVED} or {FEEDBACK} in this folder", file=str(path))
+            out.extend(files)
+        else:
+            out.append(path)
+    return out
 
 
 def read_logs(
     paths: Sequence[str | Path], *, skip_bad: bool = False, report: LogReport | None = None
 ) -> list[LabelledClue]:
-    """Labelled clues from several logs; served lines joined with their feedback by request id."""
+    """Labelled clues from several logs; served lines joined with their feedback by request id.
+
+    A path may be a served-log folder (its served files and its feedback file). A last line
+    with no newline that is not valid JSON is a write the service did not finish (a crash or
+    a full disk): it is skipped and counted (`torn_lines`), not an error.
+    """
     report = report if report is not None else LogReport()
     digest = hashlib.sha256()
     out: list[LabelledClue] = []
     served: dict[str, tuple[dict[str, Any], str, int]] = {}
     feedback: dict[str, Any] = {}
-    for path in paths:
-        path = Path(path)
+    for path in expand_paths(paths):
         if not path.exists():
             raise LabelledLogError("file not found", file=str(path))
         with open(path, "rb") as fh:
@@ -116,6 +100,9 @@ def read_logs(
                     try:
                         rec = json.loads(text)
                     except json.JSONDecodeError as exc:
+                        if not raw.endswith(b"\n") and not fh.peek(1):
+                            report.torn_lines += 1  # an unfinished last write
+                            continue
                         raise LabelledLogError(
                             f"malformed JSON: {exc.msg} (column {exc.colno})", **where
                         ) from exc

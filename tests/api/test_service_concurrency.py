@@ -161,7 +161,7 @@ def test_two_workers_under_load_with_a_reload(
 
     lines = [
         json.loads(x)
-        for f in sorted(logs.glob("served*.jsonl"))
+        for f in [*sorted(logs.glob("served*.jsonl")), logs / "feedback.jsonl"]
         for x in f.read_text(encoding="ascii").splitlines()
     ]
     assert len(list(logs.glob("served*.jsonl"))) > 1  # rotated while both workers wrote

@@ -67,7 +67,7 @@ def test_index_train_serve_feedback_retrain_reload(
             assert ranks == [len(questions)]
 
             # Retrain from what was served plus the original labelled clues.
-            lines = read_jsonl(logs / "served.jsonl")
+            lines = read_jsonl(logs / "feedback.jsonl")  # labels: their own file, never rotated
             assert {x["request_id"]: x["answer"] for x in lines if x["kind"] == "feedback"} == sent
             model2 = tmp_path / "model2.json"
             cli(
@@ -76,7 +76,7 @@ def test_index_train_serve_feedback_retrain_reload(
                     "--index",
                     str(idx),
                     "--log",
-                    str(logs / "served.jsonl"),
+                    str(logs),  # the log folder: served files and feedback
                     "--log",
                     str(demo["train"]),
                     "--out",
