@@ -178,6 +178,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         "recall_at_k": a["training"]["recall_at_k_full_clue"],
         "unresolved_answers": a["training"]["unresolved_count"],
         "skipped_lines": a["training"]["skipped_lines"],
+        "unfinished_last_lines": a["training"]["torn_lines"],
     }
     if args.json:
         print_json(summary)

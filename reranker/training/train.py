@@ -160,6 +160,7 @@ def train(
             "unresolved_answers": table.unresolved[:50],
             "unresolved_count": len(table.unresolved),
             "skipped_lines": report.skipped,
+            "torn_lines": report.torn_lines,
             "served_without_feedback": report.served_without_feedback,
             "fusion_tuning": fusion_rows,
         },
