@@ -8,14 +8,13 @@ from __future__ import annotations
 
 from .builtin import SCORE_ONLY, default_registry
 from .candidates import MetadataColumns, candidate_set
+from .names import analyze_names, qualifier_counts
 from .registry import (
     FEATURE_SET_VERSION,
     CandidateSet,
     DenseInfo,
     Feature,
     FeatureRegistry,
-    analyze_names,
-    qualifier_counts,
 )
 
 __all__ = [

@@ -8,7 +8,8 @@ import numpy as np
 
 from retriever import Index
 
-from .registry import CandidateSet, index_cache
+from .names import index_cache
+from .registry import CandidateSet
 
 # Remembered (token -> term id and rarity) lookups per index; cleared past this many.
 _MAX_CACHED_TERMS = 200_000

@@ -20,7 +20,7 @@ import numpy as np
 
 from retriever import Index
 
-from .registry import analyze_names, index_cache, row_names
+from .names import analyze_names, index_cache, row_names
 
 # Columns of the row-values table; the last is 1 once the row is filled.
 ROW_VALUES = (

@@ -25,7 +25,7 @@ from reranker import CandidateSet, default_registry
 from reranker.features import builtin as B
 from reranker.features import candidate_set
 from reranker.features import fused as FU
-from reranker.features import registry as F
+from reranker.features import names as F
 from reranker.features import rowtables as RT
 from retriever import Index, load_index
 from tests.reranker.test_builtin import CLUE, make_set
