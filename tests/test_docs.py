@@ -51,5 +51,5 @@ def test_readme_feedback_examples_use_the_id_of_your_own_response() -> None:
     calls = [b for b in blocks if "/v1/feedback" in b]
     assert calls, "the README shows no feedback call"
     for block in calls:
-        sent = re.findall(r'request_id\W+([0-9a-f]{16,}\.[0-9a-f]+)', block)
+        sent = re.findall(r"request_id\W+([0-9a-f]{16,}\.[0-9a-f]+)", block)
         assert not sent, f"a literal request id in a feedback example: {sent}"
