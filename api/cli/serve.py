@@ -21,6 +21,12 @@ from multiprocessing.connection import Connection
 from pathlib import Path
 
 ENV_PREFIX = "HUNCHWISE_"
+STARTUP_FAILURE_NOTE = "worker-failed.txt"  # as api.app writes it (not imported: it is heavy)
+
+
+class ServerStoppedError(OSError):
+    """The server stopped on a failure, not because it was asked to (exit code 1)."""
+
 METRICS_ENV = "PROMETHEUS_MULTIPROC_DIR"
 
 
@@ -102,13 +108,18 @@ def _state_folder(given: Path | None) -> Iterator[Path]:
 
 
 def _check_files() -> str:
-    """Load the index, model and token as a worker will; return a one-line summary."""
+    """Load the index, model and token as a worker will; return a one-line summary.
+
+    The files that load become the first snapshot of the state folder, the last good
+    files every worker starts (and restarts) from.
+    """
     from ..settings import settings_from_env
-    from ..state import load_pair
+    from ..state import Serving
 
     settings = settings_from_env()
     settings.resolved_admin_token()
-    index, model = load_pair(settings)
+    loaded = Serving(settings).current
+    index, model = loaded.index, loaded.model
     what = f"model {model.version}" if model is not None else "no model: BM25 order only"
     return f"serving index {index.version} ({index.n_docs} articles), {what}"
 
@@ -161,6 +172,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
         metrics_dir.mkdir(parents=True)
         # Set before any worker imports prometheus_client: it picks its mode at import time.
         os.environ[METRICS_ENV] = str(metrics_dir)
+        failure_note = state_dir / STARTUP_FAILURE_NOTE
+        failure_note.unlink(missing_ok=True)
         _check(args)
         uvicorn.run(
             "api.app:app_from_env",
@@ -172,4 +185,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
             log_level="info",
             timeout_graceful_shutdown=10,
         )
+        # With several workers uvicorn stops, and returns normally, when one cannot start.
+        if failure_note.exists():
+            reason = failure_note.read_text(encoding="utf-8", errors="replace").strip()
+            raise ServerStoppedError(f"the server stopped: a worker could not start: {reason}")
     return 0
