@@ -2,18 +2,21 @@
 
 from __future__ import annotations
 
+import functools
 import gc
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from typing import Any
 
 import anyio
-from fastapi import FastAPI
+from fastapi import FastAPI, HTTPException
 from fastapi.middleware.cors import CORSMiddleware
 from threadpoolctl import threadpool_limits
 
+from retriever import atomicfile
+
 from . import routes, routes_admin, schemas
-from .deps import Runtime
+from .deps import Runtime, admin_refusal
 from .handlers import BodyLimitMiddleware, SafeJSONResponse, install_handlers
 from .metrics import Metrics, MetricsMiddleware
 from .parentwatch import end_with_parent
@@ -34,14 +37,17 @@ rejects made-up ones with 404. Feedback for the same request twice is accepted a
 twice; the trainer uses the last one. A title or alias naming one article is accepted as
 the answer and logged as that article's id.
 
-**Several workers.** An admin call reaches one worker. It changes the files, then writes a
-generation marker in the shared state folder; every worker looks at the marker about every
-0.5 s and loads the index and model again into a fresh container, swapped in one
-assignment. Requests in flight finish on the container they started with. `/metrics`
-sums all workers (prometheus_client multiprocess mode).
+**Several workers.** An admin call reaches one worker. It copies the new files into the
+shared state folder, loads them from there (files that do not load are refused with 409
+and the old ones keep serving), then writes a generation marker; every worker looks at the
+marker about every 0.5 s and loads what changed into a fresh container, swapped in one
+assignment. Requests in flight finish on the container they started with. A worker that
+restarts loads the last files that loaded, not whatever is in place now. `/metrics` sums
+all workers (prometheus_client multiprocess mode).
 
 **Admin** endpoints need `Authorization: Bearer <token>` (HUNCHWISE_ADMIN_TOKEN or
-`--admin-token-file`); without a configured token they answer 403.
+`--admin-token-file`); without a configured token they answer 403. The token is checked
+before the body is read; `PUT /v1/admin/model` takes a new model file's content.
 """
 
 _COMMON: dict[int | str, dict[str, Any]] = {
@@ -64,15 +70,31 @@ _ADMIN: dict[int | str, dict[str, Any]] = {
 }
 
 
-def create_app(settings: ServiceSettings | None = None) -> FastAPI:
-    """A new application; the index and model are loaded when its lifespan starts."""
+STARTUP_FAILURE_NOTE = "worker-failed.txt"  # in the state folder: why a worker could not start
+
+
+def create_app(settings: ServiceSettings | None = None, *, resume: bool = False) -> FastAPI:
+    """A new application; the index and model are loaded when its lifespan starts.
+
+    resume: start from the last good files in the state folder, as a worker of
+    `hunchwise serve` does (its siblings may serve files newer than the configured ones).
+    """
     settings = settings if settings is not None else ServiceSettings()  # type: ignore[call-arg]
     metrics = Metrics()
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         # Loaded once per process into one read-only container; requests share it.
-        runtime = await anyio.to_thread.run_sync(Runtime.start, settings, metrics)
+        try:
+            runtime = await anyio.to_thread.run_sync(
+                functools.partial(Runtime.start, settings, metrics, resume=resume)
+            )
+        except Exception as exc:
+            # uvicorn stops every worker when one cannot start; the note lets `hunchwise
+            # serve` say why and exit with an error instead of 0.
+            if settings.state_dir is not None:
+                atomicfile.write_text(settings.state_dir / STARTUP_FAILURE_NOTE, str(exc))
+            raise
         app.state.runtime = runtime
         # Everything loaded so far (libraries, index, model) lives as long as the process:
         # freezing it keeps the collector's full passes from walking it. Measured at 100k
@@ -111,10 +133,18 @@ def create_app(settings: ServiceSettings | None = None) -> FastAPI:
             allow_methods=["GET", "POST", "DELETE"],
             allow_headers=["Authorization", "Content-Type"],
         )
+
+    def admin_gate(authorization: str | None) -> HTTPException | None:
+        runtime: Runtime | None = app.state.runtime
+        if runtime is None:
+            return HTTPException(503, "the server is starting: index and model are not loaded yet")
+        return admin_refusal(runtime.admin_token, authorization)
+
     app.add_middleware(
         BodyLimitMiddleware,
         max_bytes=settings.max_body_bytes,
         admin_max_bytes=settings.max_admin_body_bytes,
+        admin_gate=admin_gate,
     )
     app.add_middleware(MetricsMiddleware, metrics=metrics)
     return app
@@ -149,4 +179,4 @@ def _document_limits(app: FastAPI, settings: ServiceSettings) -> None:
 def app_from_env() -> FastAPI:
     """Factory for uvicorn workers: settings come from the HUNCHWISE_* environment."""
     end_with_parent()
-    return create_app(settings_from_env())
+    return create_app(settings_from_env(), resume=True)

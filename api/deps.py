@@ -11,6 +11,7 @@ from typing import Annotated, Any
 from fastapi import Depends, HTTPException, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+from fastapi.security.utils import get_authorization_scheme_param
 
 from .metrics import Metrics
 from .requestids import RequestIds, shared_secret
@@ -39,12 +40,15 @@ class Runtime:
     log_error: str | None = None  # why the last served-log write failed; None once one works
 
     @classmethod
-    def start(cls, settings: ServiceSettings, metrics: Metrics) -> Runtime:
-        """Load the index and model, open the served log, start the reload watcher."""
+    def start(cls, settings: ServiceSettings, metrics: Metrics, *, resume: bool = False) -> Runtime:
+        """Load the index and model, open the served log, start the reload watcher.
+
+        resume: start from the last good files in the state folder (see `Serving`).
+        """
         token = settings.resolved_admin_token()
         secret = settings.request_secret.get_secret_value() if settings.request_secret else None
         ids = RequestIds(shared_secret(secret, settings.state_dir))
-        serving = Serving(settings)
+        serving = Serving(settings, resume=resume)
         log = None
         if settings.log_dir is not None:
             log = ServedLog(
@@ -116,26 +120,41 @@ def require_feedback_token(
         )
 
 
-def require_admin(
-    runtime: RuntimeDep,
-    credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)],
-) -> None:
-    """Dependency: allow the call only with the right bearer token; admin is off without one."""
-    if runtime.admin_token is None:
-        raise HTTPException(
+def admin_refusal(expected: str | None, authorization: str | None) -> HTTPException | None:
+    """Why an admin call with this Authorization header is refused; None when it may go on.
+
+    Reads only the header, so the body-limit middleware calls it before any body is read
+    (an unauthenticated caller cannot make a worker buffer an admin-sized body).
+    """
+    if expected is None:
+        return HTTPException(
             403,
             "admin endpoints are disabled: start the server with HUNCHWISE_ADMIN_TOKEN "
             "or --admin-token-file to enable them",
         )
-    if credentials is None:
-        raise HTTPException(
+    scheme, given = get_authorization_scheme_param(authorization)  # as HTTPBearer parses it
+    if not authorization or scheme.lower() != "bearer" or not given:
+        return HTTPException(
             401,
             "missing admin token: send 'Authorization: Bearer <token>'",
             headers={"WWW-Authenticate": "Bearer"},
         )
-    given = credentials.credentials.encode("utf-8")
-    if not hmac.compare_digest(given, runtime.admin_token.encode("utf-8")):
-        raise HTTPException(401, "wrong admin token", headers={"WWW-Authenticate": "Bearer"})
+    if not hmac.compare_digest(given.encode("utf-8"), expected.encode("utf-8")):
+        return HTTPException(401, "wrong admin token", headers={"WWW-Authenticate": "Bearer"})
+    return None
+
+
+def require_admin(
+    request: Request,
+    runtime: RuntimeDep,
+    credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)],
+) -> None:
+    """Dependency: allow the call only with the right bearer token; admin is off without one."""
+    # `credentials` puts the bearer scheme into the OpenAPI document; the check reads the
+    # header itself, exactly as the body-limit middleware did before the body was read.
+    refusal = admin_refusal(runtime.admin_token, request.headers.get("authorization"))
+    if refusal is not None:
+        raise refusal
 
 
 def field_error(

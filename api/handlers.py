@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -100,20 +101,50 @@ def install_handlers(app: FastAPI) -> None:
     app.add_exception_handler(RequestValidationError, _validation_error)
 
 
-class BodyLimitMiddleware:
-    """413 for bodies over the limit, by Content-Length up front or by counting chunks."""
+# Given an admin request's Authorization header: the refusal to send, or None to let it in.
+AdminGate = Callable[[str | None], StarletteHTTPException | None]
 
-    def __init__(self, app: ASGIApp, *, max_bytes: int, admin_max_bytes: int) -> None:
+
+class BodyLimitMiddleware:
+    """413 for bodies over the limit, by Content-Length up front or by counting chunks.
+
+    Admin calls may send larger bodies, but only once their token is right: the gate looks at
+    the Authorization header first and refuses (401/403) before a byte of the body is read.
+    """
+
+    def __init__(
+        self,
+        app: ASGIApp,
+        *,
+        max_bytes: int,
+        admin_max_bytes: int,
+        admin_gate: AdminGate | None = None,
+    ) -> None:
         self.app = app
         self.max_bytes = max_bytes
         self.admin_max_bytes = admin_max_bytes
+        self.admin_gate = admin_gate
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
             await self.app(scope, receive, send)
             return
         path = str(scope.get("path", ""))
-        limit = self.admin_max_bytes if path.startswith("/v1/admin/") else self.max_bytes
+        limit = self.max_bytes
+        # CORS preflights carry no token and no body; they pass to the CORS middleware.
+        if path.startswith("/v1/admin/") and scope.get("method") != "OPTIONS":
+            if self.admin_gate is not None:
+                auth = next((v for n, v in scope.get("headers", []) if n == b"authorization"), None)
+                refusal = self.admin_gate(None if auth is None else auth.decode("latin-1"))
+                if refusal is not None:
+                    response = SafeJSONResponse(
+                        {"detail": refusal.detail},
+                        status_code=refusal.status_code,
+                        headers=refusal.headers,
+                    )
+                    await response(scope, receive, send)
+                    return
+            limit = self.admin_max_bytes
         for name, value in scope.get("headers", []):
             if name == b"content-length":
                 try:

@@ -1,7 +1,10 @@
-"""Admin endpoints behind the bearer token: reload, add/replace and delete entries."""
+"""Admin endpoints behind the bearer token: reload, new model, add/replace and delete entries."""
 
 from __future__ import annotations
 
+import json
+import logging
+import traceback
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Body, Depends, HTTPException
@@ -11,13 +14,14 @@ from retriever import IndexFormatError, RetrieverError
 
 from . import schemas as s
 from .deps import Runtime, RuntimeDep, SettingsDep, field_error, require_admin
-from .state import Change
+from .state import Change, NoModelConfiguredError
 
 admin = APIRouter(prefix="/v1/admin", tags=["admin"], dependencies=[Depends(require_admin)])
 _404: dict[int | str, dict[str, Any]] = {404: {"description": "not found", "model": s.ErrorOut}}
 _409: dict[int | str, dict[str, Any]] = {
     409: {"description": "change not applied; the old files keep serving", "model": s.ErrorOut}
 }
+log = logging.getLogger("hunchwise.serve")
 
 
 def _change(c: Change, runtime: Runtime) -> s.ChangeOut:
@@ -32,6 +36,12 @@ def _change(c: Change, runtime: Runtime) -> s.ChangeOut:
 
 
 def _not_applied(runtime: Runtime, what: str, exc: Exception) -> HTTPException:
+    if not isinstance(exc, RerankerError | RetrieverError | NoModelConfiguredError):
+        log.error("%s failed", what, exc_info=exc)  # unexpected: the traceback helps
+    # The failed load's frames hold the pair still serving; the error travels on through
+    # reference cycles in the framework, which only the (frozen) collector would break, so
+    # the old pair would outlive its swap. Dropping the frames' variables frees it.
+    traceback.clear_frames(exc.__traceback__)
     cur = runtime.serving.current
     return HTTPException(
         409,
@@ -45,9 +55,28 @@ def reload(runtime: RuntimeDep) -> s.ChangeOut:
     """Read the index folder and the model file again and swap them in (all workers follow)."""
     try:
         change = runtime.serving.reload()
-    except (RetrieverError, RerankerError, OSError, ValueError) as exc:
+    except Exception as exc:  # whatever fails to load is refused; the old pair keeps serving
         runtime.metrics.reloads.labels("admin", "failed").inc()
         raise _not_applied(runtime, "reload", exc) from exc
+    runtime.metrics.reloads.labels("admin", "ok").inc()
+    return _change(change, runtime)
+
+
+@admin.put("/model", response_model=s.ChangeOut, responses=_409)
+def put_model(
+    artifact: Annotated[
+        dict[str, Any], Body(description="the content of a model file written by hunchwise train")
+    ],
+    runtime: RuntimeDep,
+) -> s.ChangeOut:
+    """Serve a new model: checked and loaded first, then written over the configured model
+    file (temp file + rename) and taken up by every worker. A model that does not load is
+    refused with 409 and changes nothing."""
+    try:
+        change = runtime.serving.put_model(json.dumps(artifact, indent=1))
+    except Exception as exc:
+        runtime.metrics.reloads.labels("admin", "failed").inc()
+        raise _not_applied(runtime, "loading the new model", exc) from exc
     runtime.metrics.reloads.labels("admin", "ok").inc()
     return _change(change, runtime)
 

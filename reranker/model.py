@@ -6,7 +6,6 @@ Fitting lives in `reranker.training`, so serving never imports scikit-learn.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 from datetime import UTC, datetime
@@ -18,6 +17,7 @@ from scipy.special import expit
 
 from retriever import atomicfile
 
+from .artifact import artifact_version, check_artifact
 from .errors import ModelFormatError
 
 FORMAT_NAME = "hunchwise-model"
@@ -164,15 +164,18 @@ class LinearModel:
             "cv_log_loss": self.cv_log_loss_,
             "calibration_log_loss": self.calibration_scores_,
         }
-        version = hashlib.sha256(json.dumps(body, sort_keys=True).encode()).hexdigest()[:12]
-        return {
+        data: dict[str, Any] = {
             "format": FORMAT_NAME,
             "format_version": FORMAT_VERSION,
-            "model_version": version,
+            "model_version": "",
             "created_at": datetime.now(UTC).isoformat(timespec="seconds"),
             **body,
             **extra,
         }
+        # The version covers the whole artifact (threshold, presence, k, ...), not only the
+        # fitted numbers: two files that can answer differently never share a version.
+        data["model_version"] = artifact_version(data)
+        return data
 
     @classmethod
     def from_dict(cls, data: dict[str, Any], *, source: str = "<model>") -> LinearModel:
@@ -184,6 +187,10 @@ class LinearModel:
                 f"{source}: model format version {data.get('format_version')} is not supported "
                 f"(this hunchwise reads {FORMAT_VERSION}); retrain with 'hunchwise train'"
             )
+        check_artifact(data, source)
+        # The version is the content's hash, whatever the file says: a file edited by hand
+        # (another threshold, say) must not pass for the model it was copied from.
+        data = {**data, "model_version": artifact_version(data)}
         try:
             m = cls(
                 feature_names=[str(n) for n in data["feature_names"]],

@@ -23,6 +23,13 @@ from pathlib import Path
 from ..parentwatch import PARENT_ENV
 
 ENV_PREFIX = "HUNCHWISE_"
+STARTUP_FAILURE_NOTE = "worker-failed.txt"  # as api.app writes it (not imported: it is heavy)
+
+
+class ServerStoppedError(OSError):
+    """The server stopped on a failure, not because it was asked to (exit code 1)."""
+
+
 METRICS_ENV = "PROMETHEUS_MULTIPROC_DIR"
 GUARDED_PROTOCOL = "api.connections:GuardedHttpToolsProtocol"
 DESCRIPTOR_HEADROOM = 256
@@ -129,13 +136,18 @@ def _state_folder(given: Path | None) -> Iterator[Path]:
 
 
 def _check_files() -> str:
-    """Load the index, model and token as a worker will; return a one-line summary."""
+    """Load the index, model and token as a worker will; return a one-line summary.
+
+    The files that load become the first snapshot of the state folder, the last good
+    files every worker starts (and restarts) from.
+    """
     from ..settings import settings_from_env
-    from ..state import load_pair
+    from ..state import Serving
 
     settings = settings_from_env()
     settings.resolved_admin_token()
-    index, model = load_pair(settings)
+    loaded = Serving(settings).current
+    index, model = loaded.index, loaded.model
     what = f"model {model.version}" if model is not None else "no model: BM25 order only"
     return f"serving index {index.version} ({index.n_docs} articles), {what}"
 
@@ -215,6 +227,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
         metrics_dir.mkdir(parents=True)
         # Set before any worker imports prometheus_client: it picks its mode at import time.
         os.environ[METRICS_ENV] = str(metrics_dir)
+        failure_note = state_dir / STARTUP_FAILURE_NOTE
+        failure_note.unlink(missing_ok=True)
         _check(args)
         settings = settings_from_env()
         _ensure_descriptors(settings.max_connections)
@@ -234,4 +248,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
             # No endpoint speaks WebSocket; refusing upgrades keeps every connection HTTP.
             ws="none",
         )
+        # With several workers uvicorn stops, and returns normally, when one cannot start.
+        if failure_note.exists():
+            reason = failure_note.read_text(encoding="utf-8", errors="replace").strip()
+            raise ServerStoppedError(f"the server stopped: a worker could not start: {reason}")
     return 0
