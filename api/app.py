@@ -132,6 +132,7 @@ def create_app(settings: ServiceSettings | None = None, *, resume: bool = False)
             allow_methods=["GET", "POST", "DELETE"],
             allow_headers=["Authorization", "Content-Type"],
         )
+
     def admin_gate(authorization: str | None) -> HTTPException | None:
         runtime: Runtime | None = app.state.runtime
         if runtime is None:

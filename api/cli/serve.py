@@ -27,6 +27,7 @@ STARTUP_FAILURE_NOTE = "worker-failed.txt"  # as api.app writes it (not imported
 class ServerStoppedError(OSError):
     """The server stopped on a failure, not because it was asked to (exit code 1)."""
 
+
 METRICS_ENV = "PROMETHEUS_MULTIPROC_DIR"
 
 
