@@ -45,7 +45,7 @@ class _Checker:
         shown = repr(value)
         shown = shown if len(shown) <= 60 else shown[:57] + "..."
         return ModelFormatError(
-            f"{self.source}: field '{field}' must be {what}, got {shown}; "
+            f"{self.source}: {field} must be {what}, got {shown}; "
             "retrain the model or restore the file"
         )
 
@@ -53,8 +53,7 @@ class _Checker:
         if key not in data:
             if required:
                 raise ModelFormatError(
-                    f"{self.source}: field '{field}' is missing; retrain the model or restore "
-                    "the file"
+                    f"{self.source}: {field} is missing; retrain the model or restore the file"
                 )
             return None
         return data[key]
@@ -85,7 +84,8 @@ class _Checker:
 
     def integer(self, value: Any, field: str, *, low: int) -> int:
         if not isinstance(value, int) or isinstance(value, bool) or value < low:
-            raise self.fail(field, f"an integer of at least {low}", value)
+            what = "a positive integer" if low == 1 else f"an integer of at least {low}"
+            raise self.fail(field, what, value)
         return value
 
     def numbers(self, value: Any, field: str, length: int, *, positive: bool = False) -> None:
