@@ -20,6 +20,7 @@ import httpx
 import pytest
 
 from api.servedlog import ServedLog
+from api.settings import settings_from_env
 from reranker import LabelledLogError
 from reranker.servedrecords import FEEDBACK, SERVED
 from reranker.training import read_logs
@@ -102,6 +103,7 @@ def test_a_write_cut_short_leaves_no_torn_line(tmp_path: Path) -> None:
         f"""
         import resource, signal
         from api.servedlog import ServedLog
+from api.settings import settings_from_env
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
         resource.setrlimit(resource.RLIMIT_FSIZE, (64 * 1024, resource.RLIM_INFINITY))
         log = ServedLog({str(tmp_path)!r}, max_bytes=10**9, backups=2)
@@ -211,3 +213,13 @@ def test_feedback_token_and_logged_features_are_opt_in(
         assert c.post("/v1/feedback", json=body, headers=good).status_code == 200
     [served] = read_jsonl(logs / SERVED)
     assert all(cand["features"] for cand in served["candidates"])
+
+
+@pytest.mark.parametrize("token", ["", "   "])
+def test_an_empty_feedback_token_is_refused_not_taken_as_open(
+    tmp_path: Path, token: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setenv("HUNCHWISE_INDEX_DIR", str(tmp_path))
+    monkeypatch.setenv("HUNCHWISE_FEEDBACK_TOKEN", token)
+    with pytest.raises(ValueError, match="HUNCHWISE_FEEDBACK_TOKEN is set but empty"):
+        settings_from_env()
