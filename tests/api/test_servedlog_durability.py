@@ -103,7 +103,6 @@ def test_a_write_cut_short_leaves_no_torn_line(tmp_path: Path) -> None:
         f"""
         import resource, signal
         from api.servedlog import ServedLog
-from api.settings import settings_from_env
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
         resource.setrlimit(resource.RLIMIT_FSIZE, (64 * 1024, resource.RLIM_INFINITY))
         log = ServedLog({str(tmp_path)!r}, max_bytes=10**9, backups=2)
