@@ -9,8 +9,14 @@ users paid for. File names and record shapes come from `reranker.servedrecords`.
 
 Durability: a batch is all or nothing. If a write fails part-way (disk full, file made
 read-only), the file is cut back to where the batch began, so no torn line stays behind,
-and the error is raised for the caller to count; the service keeps ranking. With
-`fsync=True` every append is flushed to the disk before it returns.
+and the error is raised for the caller to count; the service keeps ranking. An unfinished
+last line left by a crash is cut off before the next append, so it never ends up in the
+middle of a file. With `fsync=True` every append is flushed to the disk before it returns.
+
+Descriptors: one this object no longer owns is never closed or written to. A file that
+cannot be reopened leaves no descriptor number behind (that number may be another
+connection's socket by the next append), and a lock file made again (the folder was
+removed and recreated) is the one locked from then on, so all processes lock the same file.
 """
 
 from __future__ import annotations
@@ -18,6 +24,7 @@ from __future__ import annotations
 import contextlib
 import fcntl
 import json
+import logging
 import os
 import threading
 from collections.abc import Iterable, Mapping
@@ -28,6 +35,7 @@ from typing import Any
 from reranker.servedrecords import FEEDBACK, SERVED, log_files, rotated_name
 
 LOCK = ".served.lock"
+_log = logging.getLogger("hunchwise.service")
 
 
 def utc_now() -> str:
@@ -68,7 +76,8 @@ class _AppendFile:
             # Drop the old descriptor first: if the open below fails (folder gone, no
             # permission, out of descriptors) we keep no number we no longer own.
             self.drop()
-            fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+            # Read access too: the tail is checked before appending (see ServedLog._repair_tail).
+            fd = os.open(self.path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o644)
             self.fd, self.ino = fd, os.fstat(fd).st_ino
         return self.fd
 
@@ -89,6 +98,7 @@ class ServedLog:
         self.fsync = fsync
         self._thread_lock = threading.Lock()
         self._lock_fd = os.open(self.folder / LOCK, os.O_RDWR | os.O_CREAT, 0o644)
+        self.repaired_bytes = 0  # unfinished tails cut off before appending (see _repair_tail)
         self._served = _AppendFile(self.path)
         self._feedback = _AppendFile(self.folder / FEEDBACK)
 
@@ -100,12 +110,61 @@ class ServedLog:
         os.replace(self.path, self.folder / rotated_name(1))
         self._served.drop()
 
-    def _write(self, target: _AppendFile, data: bytes, *, rotate: bool) -> None:
-        with self._thread_lock:
+    def _lock(self) -> int:
+        """Take the cross-process lock; the lock file at its path, reopened if it was replaced.
+
+        Processes exclude each other only if they lock the same file. If the folder was
+        removed and made again, a descriptor opened before locks the old, deleted file while
+        a process started after locks the new one; so after locking, check that the path
+        still names the locked file, and if not, lock the file it names now.
+        """
+        while True:
+            if self._lock_fd < 0:
+                self._lock_fd = os.open(self.folder / LOCK, os.O_RDWR | os.O_CREAT, 0o644)
             fcntl.flock(self._lock_fd, fcntl.LOCK_EX)
             try:
+                same = os.stat(self.folder / LOCK).st_ino == os.fstat(self._lock_fd).st_ino
+            except FileNotFoundError:
+                same = False
+            if same:
+                return self._lock_fd
+            try:
+                # Open the new lock file first: on error the old one, still ours, stays.
+                fd = os.open(self.folder / LOCK, os.O_RDWR | os.O_CREAT, 0o644)
+            except OSError:
+                fcntl.flock(self._lock_fd, fcntl.LOCK_UN)
+                raise
+            old, self._lock_fd = self._lock_fd, fd
+            os.close(old)  # closing also releases the lock on the stale file
+
+    def _repair_tail(self, target: _AppendFile, fd: int, size: int) -> int:
+        """Cut an unfinished last line (a crash mid-write) off before appending; new size.
+
+        Appending after such a fragment would glue the next line to it: a broken line in
+        the middle of the file, which the reader refuses. Cut back to the last newline.
+        """
+        if size == 0 or os.pread(fd, 1, size - 1) == b"\n":
+            return size
+        end = size
+        while end > 0:
+            start = max(0, end - 65536)
+            chunk = os.pread(fd, end - start, start)
+            cut = chunk.rfind(b"\n")
+            if cut >= 0:
+                end = start + cut + 1
+                break
+            end = start
+        os.ftruncate(fd, end)
+        self.repaired_bytes += size - end
+        _log.warning("%s: cut an unfinished last line (%d bytes)", target.path, size - end)
+        return end
+
+    def _write(self, target: _AppendFile, data: bytes, *, rotate: bool) -> None:
+        with self._thread_lock:
+            lock_fd = self._lock()
+            try:
                 fd = target.current()
-                size = os.fstat(fd).st_size
+                size = self._repair_tail(target, fd, os.fstat(fd).st_size)
                 if rotate and size > 0 and size + len(data) > self.max_bytes:
                     self._rotate()
                     fd, size = target.current(), 0
@@ -119,12 +178,12 @@ class ServedLog:
                 except OSError:
                     # All or nothing: cut back to where this batch began (we hold the lock,
                     # so nobody else appended meanwhile), then let the caller count it.
-                    # If even that fails, the reader skips the unfinished last line, counting it.
+                    # If even that fails, the next append cuts the unfinished line off.
                     with contextlib.suppress(OSError):
                         os.ftruncate(fd, size)
                     raise
             finally:
-                fcntl.flock(self._lock_fd, fcntl.LOCK_UN)
+                fcntl.flock(lock_fd, fcntl.LOCK_UN)
 
     def append(self, records: Iterable[Mapping[str, Any]]) -> None:
         """Append served records as whole lines in one write (all or nothing for a batch)."""

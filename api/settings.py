@@ -104,6 +104,9 @@ class ServiceSettings(BaseSettings):
             raise ValueError(f"default_k ({self.default_k}) exceeds max_k ({self.max_k})")
         if self.admin_token is not None and self.admin_token_file is not None:
             raise ValueError("set the admin token either in HUNCHWISE_ADMIN_TOKEN or in a file")
+        if self.feedback_token is not None and not self.feedback_token.get_secret_value().strip():
+            # An empty token would let every request through while looking configured.
+            raise ValueError("HUNCHWISE_FEEDBACK_TOKEN is set but empty")
         return self
 
     def resolved_admin_token(self) -> str | None:

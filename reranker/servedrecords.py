@@ -13,6 +13,7 @@ A log folder holds
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -21,10 +22,60 @@ from .ranking import Ranking
 
 SERVED = "served.jsonl"
 FEEDBACK = "feedback.jsonl"
+# The keys of a served line ("metadata" too when the request had some), of each of its
+# candidates ("features" too when the service logs them), and of a feedback line.
 SERVED_KEYS = (
     "kind", "request_id", "time", "clue", "k", "model_k", "complete", "index_version",
     "model_version", "in_candidates", "candidates", "decision",
 )  # fmt: skip
+CANDIDATE_KEYS = ("id", "title", "score", "rank", "probability", "pointwise")
+FEEDBACK_KEYS = ("kind", "request_id", "time", "answer")
+
+
+@dataclass(frozen=True)
+class ServedCandidate:
+    """One candidate of a served line, as read back."""
+
+    id: str
+    title: str | None = None
+    score: float | None = None
+    rank: int | None = None
+    probability: float | None = None
+    pointwise: float | None = None
+    features: dict[str, float | None] | None = None
+
+
+@dataclass(frozen=True)
+class ServedLine:
+    """A served line as read back. Only request_id, clue and candidates are required:
+    older logs may lack the later fields (in_candidates, pointwise, model_k)."""
+
+    request_id: str
+    clue: str
+    candidates: tuple[ServedCandidate, ...]
+    metadata: dict[str, Any] = field(default_factory=dict)
+    time: str | None = None
+    k: int | None = None
+    model_k: int | None = None
+    complete: bool | None = None
+    index_version: str | None = None
+    model_version: str | None = None
+    in_candidates: float | None = None
+    decision: dict[str, Any] | None = None
+
+    @property
+    def ids(self) -> tuple[str, ...]:
+        """The candidates' article ids, best first."""
+        return tuple(c.id for c in self.candidates)
+
+
+@dataclass(frozen=True)
+class FeedbackLine:
+    """A feedback line as read back: the right article's id, or None for none of these."""
+
+    request_id: str
+    answer: str | None
+    time: str | None = None
 
 
 def rotated_name(n: int) -> str:
@@ -145,3 +196,59 @@ def check_record(rec: Any, where: dict[str, Any]) -> str:
     if not isinstance(rec.get("metadata", {}) or {}, dict):
         raise LabelledLogError("must be an object", field="metadata", **where)
     return "labelled"
+
+
+def _candidate(item: Any, n: int, where: dict[str, Any]) -> ServedCandidate:
+    if not isinstance(item, dict) or not isinstance(item.get("id"), str):
+        raise LabelledLogError(
+            "must be an object with a string 'id'", field=f"candidates[{n}]", **where
+        )
+    features = item.get("features")
+    return ServedCandidate(
+        id=item["id"],
+        title=item.get("title"),
+        score=item.get("score"),
+        rank=item.get("rank"),
+        probability=item.get("probability"),
+        pointwise=item.get("pointwise"),
+        features=features if isinstance(features, dict) else None,
+    )
+
+
+def parse_served(rec: Any, where: dict[str, Any]) -> ServedLine:
+    """A served line's fields, checked; errors name the file, line and field."""
+    if check_record(rec, where) != "served":
+        raise LabelledLogError("expected a served line", field="kind", **where)
+    return served_from(rec, where)
+
+
+def served_from(rec: dict[str, Any], where: dict[str, Any]) -> ServedLine:
+    """A served line's fields from a record check_record() has called "served"."""
+    meta = rec.get("metadata") or {}
+    decision = rec.get("decision")
+    return ServedLine(
+        request_id=rec["request_id"],
+        clue=rec["clue"],
+        candidates=tuple(_candidate(c, n, where) for n, c in enumerate(rec.get("candidates", []))),
+        metadata=meta if isinstance(meta, dict) else {},
+        time=rec.get("time"),
+        k=rec.get("k"),
+        model_k=rec.get("model_k"),
+        complete=rec.get("complete"),
+        index_version=rec.get("index_version"),
+        model_version=rec.get("model_version"),
+        in_candidates=rec.get("in_candidates"),
+        decision=decision if isinstance(decision, dict) else None,
+    )
+
+
+def parse_feedback(rec: Any, where: dict[str, Any]) -> FeedbackLine:
+    """A feedback line's fields, checked; errors name the file, line and field."""
+    if check_record(rec, where) != "feedback":
+        raise LabelledLogError("expected a feedback line", field="kind", **where)
+    return feedback_from(rec)
+
+
+def feedback_from(rec: dict[str, Any]) -> FeedbackLine:
+    """A feedback line's fields from a record check_record() has called "feedback"."""
+    return FeedbackLine(rec["request_id"], rec["answer"], rec.get("time"))

@@ -226,6 +226,7 @@ def evaluate(
             "index_version": index.version,
             "unresolved_answers": len(table.unresolved),
             "skipped_lines": report.skipped,
+            "torn_lines": report.torn_lines,  # unfinished last lines (a crash), skipped
             "note": "clue-level figures use the full clue; "
             "candidate-level figures use every prefix",
         },

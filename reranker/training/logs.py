@@ -10,7 +10,15 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import LabelledLogError
-from ..servedrecords import FEEDBACK, SERVED, check_record, log_files
+from ..servedrecords import (
+    FEEDBACK,
+    SERVED,
+    ServedLine,
+    check_record,
+    feedback_from,
+    log_files,
+    served_from,
+)
 
 
 @dataclass(frozen=True)
@@ -49,8 +57,10 @@ class LogReport:
 
 def _parse(rec: Any, where: dict[str, Any]) -> tuple[str, Any]:
     kind = check_record(rec, where)
-    if kind != "labelled":
-        return kind, rec
+    if kind == "served":
+        return kind, served_from(rec, where)
+    if kind == "feedback":
+        return kind, feedback_from(rec)
     meta = rec.get("metadata", {}) or {}
     return "labelled", LabelledClue(
         str(rec["clue"]), rec["answer"], meta, where["file"], where["line"]
@@ -83,7 +93,7 @@ def read_logs(
     report = report if report is not None else LogReport()
     digest = hashlib.sha256()
     out: list[LabelledClue] = []
-    served: dict[str, tuple[dict[str, Any], str, int]] = {}
+    served: dict[str, tuple[ServedLine, str, int]] = {}
     feedback: dict[str, Any] = {}
     for path in expand_paths(paths):
         if not path.exists():
@@ -123,21 +133,15 @@ def read_logs(
                     out.append(item)
                 elif kind == "served":
                     report.served += 1
-                    served[item["request_id"]] = (item, str(path), n)
+                    served[item.request_id] = (item, str(path), n)
                 else:
                     report.feedback += 1
-                    feedback[item["request_id"]] = item["answer"]  # the last word on a request wins
+                    feedback[item.request_id] = item.answer  # the last word on a request wins
     for rid, (rec, file, line) in served.items():
         if rid not in feedback:
             report.served_without_feedback += 1
             continue
-        ids = tuple(str(c.get("id")) for c in rec.get("candidates", []) if isinstance(c, dict))
-        meta = rec.get("metadata") or {}
-        out.append(
-            LabelledClue(
-                rec["clue"], feedback[rid], meta if isinstance(meta, dict) else {}, file, line, ids
-            )
-        )
+        out.append(LabelledClue(rec.clue, feedback[rid], rec.metadata, file, line, rec.ids))
     report.feedback_without_served = sum(1 for rid in feedback if rid not in served)
     report.checksum = digest.hexdigest()
     return out

@@ -113,11 +113,16 @@ def serve(
     env: dict[str, str] | None = None,
     ready_timeout: float = 90,
     port: int | None = None,
+    prefix: Sequence[str] = (),
 ) -> Iterator[Server]:
-    """Start `hunchwise serve ARGS` on loopback (a free port unless given); SIGINT at the end."""
+    """Start `hunchwise serve ARGS` on loopback (a free port unless given); SIGINT at the end.
+
+    `prefix` runs the server through a wrapper command (which must exec the rest).
+    """
     port = port if port is not None else free_port()
     output = workdir / f"server-{port}.out"
     cmd = [
+        *prefix,
         sys.executable,
         "-m",
         "api.cli",

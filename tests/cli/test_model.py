@@ -93,6 +93,51 @@ def test_bad_log_line_is_a_one_line_error_and_skip_bad_counts(world: World, tmp_
     assert json.loads(out.stdout)["metrics"]["data"]["skipped_lines"] == 1
 
 
+def _served_and_feedback(world: World, n: int) -> list[dict[str, object]]:
+    """What the service would have logged for the first n training clues, labelled."""
+    clues = [json.loads(line) for line in world.train_log.read_text().splitlines()][:n]
+    lines: list[dict[str, object]] = []
+    for i, c in enumerate(clues):
+        lines.append({"kind": "served", "request_id": f"r{i}", "clue": c["clue"], "candidates": []})
+        lines.append({"kind": "feedback", "request_id": f"r{i}", "answer": c["answer"]})
+    return lines
+
+
+def _write(path: Path, lines: list[dict[str, object]], tail: str = "") -> None:
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines) + tail)
+
+
+@pytest.mark.slow
+def test_served_log_folders_old_and_new_train_and_count_an_unfinished_line(
+    world: World, tmp_path: Path
+) -> None:
+    lines = _served_and_feedback(world, 60)
+    old = tmp_path / "old"  # one file holding both kinds, as logs were written before
+    old.mkdir()
+    _write(old / "served.jsonl", lines, '{"kind": "served", "request_id": "r99", "cl')
+    new = tmp_path / "new"  # served lines rotated in two files, labels in their own file
+    new.mkdir()
+    served = [x for x in lines if x["kind"] == "served"]
+    _write(new / "served.1.jsonl", served[:30])
+    _write(new / "served.jsonl", served[30:])
+    _write(new / "feedback.jsonl", [x for x in lines if x["kind"] == "feedback"])
+    for folder, torn in ((old, 1), (new, 0)):
+        model = tmp_path / f"{folder.name}.json"
+        out = hunchwise(
+            "train", "--index", world.index.path, "--log", folder, "--out", model,
+            "--features", "bm25_score,matched_terms", "--json",
+        )  # fmt: skip
+        assert out.returncode == 0, out.stderr
+        summary = json.loads(out.stdout)
+        assert (summary["clues"], summary["unfinished_last_lines"]) == (60, torn)
+        out = hunchwise(
+            "evaluate", "--index", world.index.path, "--log", folder, "--model", model,
+            "--report", tmp_path / f"{folder.name}-report", "--no-ablation", "--json",
+        )  # fmt: skip
+        assert out.returncode == 0, out.stderr
+        assert json.loads(out.stdout)["metrics"]["data"]["torn_lines"] == torn
+
+
 @pytest.mark.slow
 def test_bad_options_and_missing_files(world: World, tmp_path: Path) -> None:
     out = hunchwise(

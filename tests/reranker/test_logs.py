@@ -43,6 +43,11 @@ BAD_LINES = [
     ({"kind": "gossip", "clue": "x", "answer": "a1"}, "kind", "unknown kind"),
     ({"kind": "served", "clue": "x"}, "request_id", "is required"),
     ({"kind": "served", "request_id": "r", "clue": "x", "candidates": 3}, "candidates", "list"),
+    (
+        {"kind": "served", "request_id": "r", "clue": "x", "candidates": [{"id": "a1"}, {}]},
+        "candidates[1]",
+        "string 'id'",
+    ),
     ({"kind": "feedback", "request_id": "r"}, "answer", "null for none of these"),
     ({"kind": "feedback", "request_id": "r", "answer": 7}, "answer", "must be a string"),
 ]
