@@ -10,8 +10,14 @@ application is only called after the headers have arrived.
 So each connection here starts a timer when it opens and again when the next request's
 first byte arrives; the timer is cancelled once that request is completely received
 (line, headers and body), so the time the application takes is never limited. On expiry
-the connection is closed, with a 408 when no reply is in progress. A connection opened
-while the worker already holds `max_connections` gets a 503 and is closed at once.
+the connection is closed, with a 408 when no reply is in progress.
+
+A connection opened while the worker already holds `max_connections` makes room by closing
+(503) the connection that has waited longest for its request to arrive: clients that
+stall or trickle are the ones that wait long, while a normal client sends its request
+at once. Refusing the newcomer instead would let a few thousand stalled sockets keep
+every new client out for as long as they are renewed. Only when every held connection
+has a complete request the application is working on is the newcomer refused (503).
 
 Limits come from the HUNCHWISE_* environment, as every other setting of a worker does:
 uvicorn builds protocol objects itself and passes them nothing but its own config.
@@ -23,6 +29,7 @@ import asyncio
 import functools
 import logging
 import time
+from collections import OrderedDict
 
 from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
 
@@ -32,6 +39,11 @@ logger = logging.getLogger("uvicorn.error")
 
 WARN_EVERY_SECONDS = 10.0
 _last_warned: dict[str, float] = {}
+
+# Connections waiting for a request to arrive, longest-waiting first (those whose arrival
+# timer runs). One per worker process: uvicorn runs one event loop, and protocol objects
+# are only touched from it.
+_waiting: OrderedDict[GuardedHttpToolsProtocol, None] = OrderedDict()
 
 
 @functools.cache
@@ -69,14 +81,22 @@ class GuardedHttpToolsProtocol(HttpToolsProtocol):
     def connection_made(  # type: ignore[override]
         self, transport: asyncio.Transport
     ) -> None:
-        """Refuse the connection over the cap; otherwise start the arrival deadline."""
+        """Over the cap, make room (or refuse when all are busy); start the arrival deadline."""
         super().connection_made(transport)
         max_connections, _ = _limits()
         if len(self.connections) > max_connections:
-            _warn("busy", f"over {max_connections} open connections: refusing new ones")
-            transport.write(BUSY)
-            transport.close()
-            return
+            oldest = next(iter(_waiting), None)
+            if oldest is None:
+                _warn("busy", f"{max_connections} open connections all busy: refusing new ones")
+                transport.write(BUSY)
+                transport.close()
+                return
+            _warn(
+                "full",
+                f"at {max_connections} open connections: closing those waiting longest "
+                "for their request",
+            )
+            oldest._close_waiting(BUSY)
         self._arm()
 
     def data_received(self, data: bytes) -> None:
@@ -104,18 +124,26 @@ class GuardedHttpToolsProtocol(HttpToolsProtocol):
         if self.arrival_timer is None and not self.transport.is_closing():
             _, seconds = _limits()
             self.arrival_timer = self.loop.call_later(seconds, self._expired)
+            _waiting[self] = None
 
     def _disarm(self) -> None:
         if self.arrival_timer is not None:
             self.arrival_timer.cancel()
             self.arrival_timer = None
+        _waiting.pop(self, None)
 
     def _expired(self) -> None:
         self.arrival_timer = None
+        _waiting.pop(self, None)
         if self.transport.is_closing():
             return
         _warn("slow", "closing connections whose request did not arrive in time")
+        self._close_waiting(TIMED_OUT)
+
+    def _close_waiting(self, reply: bytes) -> None:
+        """Close a connection whose request has not fully arrived, telling the client why."""
+        self._disarm()
         if self.cycle is None or self.cycle.response_complete:
             # Nothing is replying on this connection, so a reply of our own cannot collide.
-            self.transport.write(TIMED_OUT)
+            self.transport.write(reply)
         self.transport.close()

@@ -82,7 +82,8 @@ class ServiceSettings(BaseSettings):
         default=1000,
         ge=1,
         le=100_000,
-        description="open connections a worker keeps; one more is answered 503 and closed",
+        description="open connections a worker keeps; one more closes (503) the one waiting "
+        "longest for its request, or is refused (503) when all are busy",
     )
     request_timeout_seconds: float = Field(
         default=60,

@@ -77,7 +77,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--max-connections",
         type=int,
-        help="open connections per worker; more are answered 503 (default 1000)",
+        help="open connections per worker; one more closes the one waiting longest for its "
+        "request with 503, or gets 503 when all are busy (default 1000)",
     )
     p.add_argument(
         "--request-timeout",

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import shutil
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -9,11 +10,11 @@ import httpx
 import pytest
 
 from api.schemas import MAX_METADATA_DEPTH
-from tests.api.svc_helpers import Server, serve
+from tests.api.svc_helpers import ADMIN_TOKEN, Server, admin_headers, serve
 
 pytestmark = [pytest.mark.slow, pytest.mark.server]
 
-PATHS = ["/v1/rank", "/v1/rank/batch", "/v1/feedback"]
+PATHS = ["/v1/rank", "/v1/rank/batch", "/v1/feedback", "/v1/admin/entries"]
 
 
 def _nested_arrays(depth: int, closed: bool) -> bytes:
@@ -39,9 +40,17 @@ BODIES = {
 
 @pytest.fixture(scope="module")
 def server(index_dir: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterator[Server]:
-    """One 2-worker server for the whole module (no model: parsing comes before ranking)."""
+    """One 2-worker server for the whole module (no model: parsing comes before ranking).
+
+    It serves a copy of the index: admin calls change the index they serve.
+    """
     work = tmp_path_factory.mktemp("nesting")
-    with serve(["--index", str(index_dir)], work, workers=2) as s:
+    own_index = work / "idx"
+    shutil.copytree(index_dir, own_index)
+    token = work / "admin-token"
+    token.write_text(ADMIN_TOKEN, encoding="utf-8")
+    args = ["--index", str(own_index), "--admin-token-file", str(token)]
+    with serve(args, work, workers=2) as s:
         yield s
 
 
@@ -50,7 +59,8 @@ def server(index_dir: Path, tmp_path_factory: pytest.TempPathFactory) -> Iterato
 def test_deep_nesting_is_4xx_without_echo(server: Server, path: str, name: str) -> None:
     body = BODIES[name]
     with httpx.Client(base_url=server.url, timeout=60) as c:
-        r = c.post(path, content=body, headers={"Content-Type": "application/json"})
+        headers = {"Content-Type": "application/json", **admin_headers()}
+        r = c.post(path, content=body, headers=headers)
         assert r.status_code in (400, 422), (r.status_code, r.text[:300])
         detail = r.json()["detail"]
         assert detail

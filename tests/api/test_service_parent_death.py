@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import os
 import signal
+import subprocess
+import sys
+import textwrap
 import time
 from pathlib import Path
 
@@ -66,3 +69,37 @@ def test_workers_end_with_their_parent(index_dir: Path, tmp_path: Path) -> None:
         for pid in workers:  # only when the test failed: do not leave them serving
             if not _gone(pid):
                 os.kill(pid, signal.SIGKILL)
+
+
+# A parent that starts one child running only the parent-pid watch (no prctl: the fallback
+# for systems without it), prints the child's pid, then waits to be killed.
+_PARENT = textwrap.dedent(
+    """
+    import os, subprocess, sys, time
+    watch = "import sys; from api import parentwatch; parentwatch._watch(int(sys.argv[1]))"
+    child = subprocess.Popen([sys.executable, "-c", watch, str(os.getpid())])
+    print(child.pid, flush=True)
+    time.sleep(600)
+    """
+)
+
+
+def test_the_parent_watch_alone_ends_a_child_whose_parent_died() -> None:
+    child = 0
+    with subprocess.Popen(
+        [sys.executable, "-c", _PARENT], stdout=subprocess.PIPE, text=True
+    ) as parent:
+        try:
+            assert parent.stdout is not None
+            child = int(parent.stdout.readline())
+            assert not _gone(child)
+            parent.kill()
+            parent.wait(timeout=WAIT)
+            deadline = time.monotonic() + WAIT
+            while not _gone(child) and time.monotonic() < deadline:
+                time.sleep(0.2)
+            assert _gone(child), "the watch did not end the child after its parent died"
+        finally:
+            parent.kill()
+            if child and not _gone(child):
+                os.kill(child, signal.SIGKILL)
