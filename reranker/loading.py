@@ -144,6 +144,11 @@ def load_model(
     user_features: Sequence[str] = (),
 ) -> ServedModel:
     """Read a model file and check that the running code provides every feature it uses."""
+    if Path(path).is_dir():
+        raise ModelFormatError(
+            f"{path} is a folder, not a model file; give the JSON file 'hunchwise train --out' "
+            "wrote"
+        )
     model = read_model(path)
     reg = registry if registry is not None else default_registry().with_user_features(user_features)
     served = serve(model, reg, source=str(path))

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import RECORDS, CorpusError, position
+from .errors import JSON_ARRAY, RECORDS, CorpusError, position
 
 _QUALIFIED = re.compile(r"^(?P<base>.*?\S)\s*\((?P<qualifier>[^()]+)\)\s*$")
 FORMATS = ("jsonl", "csv", "tsv", "parquet")
@@ -176,6 +176,7 @@ RawItem = tuple[int, Any]
 
 def _raw_jsonl(path: Path) -> Iterator[RawItem]:
     opener = gzip.open if path.suffix.lower() == ".gz" else open
+    first = True
     with opener(path, "rb") as fh:
         for n, raw in enumerate(fh, 1):
             try:
@@ -186,6 +187,11 @@ def _raw_jsonl(path: Path) -> Iterator[RawItem]:
                 continue
             if not text.strip():
                 continue
+            if first and text.lstrip().startswith("["):
+                # One JSON array (often a .json file): say so once, not once per line.
+                yield n, CorpusError(JSON_ARRAY, file=str(path), line=n)
+                return
+            first = False
             try:
                 record = json.loads(text)
             except json.JSONDecodeError as exc:

@@ -9,6 +9,11 @@ class RetrieverError(Exception):
 
 RECORDS = "<records>"  # the "file" of records given in memory (a list, a JSON array)
 
+JSON_ARRAY = (  # a corpus file holding one JSON array, as both JSON Lines readers say it
+    "this is a JSON array, but a corpus file holds one JSON object per line (JSON Lines); "
+    "write each element on a line of its own, e.g. jq -c '.[]'"
+)
+
 
 def position(file: str, n: int) -> str:
     """'line N' in a file; 'item N' among records given in memory, which have no lines."""

@@ -38,7 +38,7 @@ from .counting import (
     run_chunks,
     worker_state,
 )
-from .errors import RECORDS, position
+from .errors import JSON_ARRAY, RECORDS, position
 from .scoring import concat_ranges
 from .store import record_line
 
@@ -145,9 +145,15 @@ def _raw_items(source: str | Path | Iterable[Mapping[str, Any] | Article]) -> It
     if path.exists() and detect_format(path) == "jsonl":
         opener = gzip.open if path.suffix.lower() == ".gz" else open
         with opener(path, "rb") as fh:
+            first = True
             for n, raw in enumerate(fh, 1):
-                if raw.strip():
-                    yield n, raw
+                if not raw.strip():
+                    continue
+                if first and raw.lstrip().startswith(b"["):  # as corpus.iter_raw says it
+                    yield n, ("error", JSON_ARRAY, "")
+                    return
+                first = False
+                yield n, raw
         return
     for n, rec in iter_raw(path):
         yield n, ("error", rec.reason, rec.field) if isinstance(rec, CorpusError) else rec

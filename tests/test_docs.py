@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import argparse
 import re
+from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -53,3 +56,38 @@ def test_readme_feedback_examples_use_the_id_of_your_own_response() -> None:
     for block in calls:
         sent = re.findall(r"request_id\W+([0-9a-f]{16,}\.[0-9a-f]+)", block)
         assert not sent, f"a literal request id in a feedback example: {sent}"
+
+
+def _commands(parser: argparse.ArgumentParser, prefix: str) -> Iterator[tuple[str, Any]]:
+    """(command line, its parser) for every leaf sub-command, e.g. 'hunchwise index info'."""
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for name, sub in action.choices.items():
+                nested = any(isinstance(a, argparse._SubParsersAction) for a in sub._actions)
+                if nested:
+                    yield from _commands(sub, f"{prefix} {name}")
+                else:
+                    yield f"{prefix} {name}", sub
+
+
+def test_readme_commands_show_every_option_the_parser_has() -> None:
+    # The Commands section is what people read instead of --help: an option missing there,
+    # or a help text that has moved on, misleads.
+    from api.cli import build_parser
+
+    readme = (ROOT / "README.md").read_text()
+    commands = list(_commands(build_parser(), "hunchwise"))
+    assert commands
+    for command, sub in commands:
+        assert f"### `{command}`" in readme, f"no README section for {command}"
+        section = readme.split(f"### `{command}`", 1)[1].split("\n#", 1)[0]
+        sub.formatter_class = lambda prog: argparse.HelpFormatter(prog, width=10_000)
+        usage = " ".join(sub.format_usage().removeprefix("usage: ").split())
+        assert f"`{usage}`" in section, f"README usage of {command} differs from: {usage}"
+        for action in sub._actions:
+            if isinstance(action, argparse._HelpAction):
+                continue
+            name = action.option_strings[0] if action.option_strings else action.metavar
+            name = name or action.dest
+            row = f"| `{name}` | {action.help} |"
+            assert row in section, f"README {command}: missing or stale row {row}"

@@ -49,6 +49,14 @@ def human_bytes(n: int) -> str:
     return f"{size:.1f} GiB"
 
 
+def show_progress(as_json: bool = False) -> bool:
+    """Progress bars only for a person watching: not with --json, not into a pipe or file.
+
+    Bars are redrawn with carriage returns; in a log file or a pipe they pile up as noise.
+    """
+    return not as_json and sys.stderr.isatty()
+
+
 def check_k(k: int | None) -> None:
     """Refuse a -k below 1 (None means the command's default)."""
     if k is not None and k < 1:

@@ -39,9 +39,12 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Run the demo and say what to try next."""
+    from .console import show_progress
     from .demo_steps import prepare, run_demo, serve_and_ask
 
-    run = run_demo(args.out, articles=args.articles, ablation=not args.no_ablation)
+    run = run_demo(
+        args.out, articles=args.articles, ablation=not args.no_ablation, progress=show_progress()
+    )
     print()
     print(run.summary)
     print(f"\neverything is in {run.out}:")

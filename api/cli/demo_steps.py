@@ -58,20 +58,30 @@ def prepare(out: Path, *, articles: int | None = None, seed: int = 7) -> Path:
     return data
 
 
-def run_demo(out: str | Path, *, articles: int | None = None, ablation: bool = True) -> DemoRun:
-    """Build the demo index, train the reranker, evaluate it on held-out clues, write a report."""
+def run_demo(
+    out: str | Path, *, articles: int | None = None, ablation: bool = True, progress: bool = True
+) -> DemoRun:
+    """Build the demo index, train the reranker, evaluate it on held-out clues, write a report.
+
+    `progress` shows progress bars on stderr (the command line passes True only on a terminal).
+    """
     out = Path(out).resolve()
+    if out.exists() and not out.is_dir():
+        raise NotADirectoryError(
+            f"{out} is a file, not a folder; the demo writes its index, model and report into "
+            "a folder: choose a new name or an existing folder"
+        )
     out.mkdir(parents=True, exist_ok=True)
     data = prepare(out, articles=articles)
     _say(f"[1/3] indexing {data / 'articles.jsonl'} -> {out / 'index'}")
-    index = build_index(data / "articles.jsonl", out / "index", progress=True)
+    index = build_index(data / "articles.jsonl", out / "index", progress=progress)
     c = index.manifest["counts"]
     _say(
         f"      {c['articles']} articles, {c['terms']} terms, "
         f"{index.manifest['build']['unresolved_links']} unresolved links"
     )
     _say(f"[2/3] training on {data / 'questions_train.jsonl'} -> {out / 'model.json'}")
-    res = train(index, [data / "questions_train.jsonl"], out / "model.json", progress=True)
+    res = train(index, [data / "questions_train.jsonl"], out / "model.json", progress=progress)
     a = res.artifact
     _say(
         f"      {a['training']['clues']} clues, {a['training']['rows']} candidate rows, "
@@ -86,7 +96,7 @@ def run_demo(out: str | Path, *, articles: int | None = None, ablation: bool = T
         [data / "questions_test.jsonl"],
         out / "report",
         run_ablation=ablation,
-        progress=True,
+        progress=progress,
     )
     return DemoRun(
         out=out,

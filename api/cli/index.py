@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import sys
 import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -11,7 +10,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from retriever import Index, ReadReport
 
-from .console import check_k, format_table, human_bytes, print_json
+from .console import check_k, format_table, human_bytes, print_json, show_progress
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -108,11 +107,6 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=cmd_search)
 
 
-def _show_progress(args: argparse.Namespace) -> bool:
-    """A progress bar only for a person watching: not with --json, not into a pipe or file."""
-    return not args.json and sys.stderr.isatty()
-
-
 SHOWN_UNRESOLVED = 5  # unresolved links named in a build summary
 
 
@@ -177,7 +171,7 @@ def cmd_build(args: argparse.Namespace) -> int:
         strip_accents=not args.keep_accents,
         vectors=False if args.no_vectors else {"dim": args.vector_dim},
         skip_bad=args.skip_bad,
-        progress=_show_progress(args),
+        progress=show_progress(args.json),
         report=report,
     )
     _print_summary(_summary(idx, time.perf_counter() - started, report), args.json)
@@ -241,7 +235,7 @@ def _update(args: argparse.Namespace, **change: Any) -> int:
 
     started = time.perf_counter()
     report = ReadReport()
-    idx = update_index(args.index, progress=_show_progress(args), report=report, **change)
+    idx = update_index(args.index, progress=show_progress(args.json), report=report, **change)
     _print_summary(_summary(idx, time.perf_counter() - started, report), args.json)
     return 0
 

@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:
     from reranker import Payoff
 
-from .console import check_k, format_table, print_json
+from .console import check_k, format_table, print_json, show_progress
 
 
 def _fractions(text: str) -> tuple[float, ...]:
@@ -160,7 +160,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         calibration=args.calibration,
         payoff=_payoff(args),
         skip_bad=args.skip_bad,
-        progress=not args.json,
+        progress=show_progress(args.json),
         candidates=args.candidates,
     )
     a = res.artifact
@@ -224,7 +224,7 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         payoff=_payoff(args),
         run_ablation=not args.no_ablation,
         skip_bad=args.skip_bad,
-        progress=not args.json,
+        progress=show_progress(args.json),
     )
     if args.json:
         print_json(

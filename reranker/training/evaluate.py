@@ -154,6 +154,12 @@ def evaluate(
             f"'hunchwise train -k {k}' to evaluate at {k}"
         )
     k = own_k
+    if Path(report_dir).exists() and not Path(report_dir).is_dir():
+        # Said before the evaluation runs, not as an errno once it is done.
+        raise NotADirectoryError(
+            f"{report_dir} is a file, not a folder; the report is a folder (metrics.json, "
+            "plots, report.html): choose a new name or an existing report folder"
+        )
     if plan is None:
         pp = training.get("prefix_plan") or {}
         plan = PrefixPlan(tuple(pp.get("fractions", PrefixPlan().fractions)), pp.get("every_words"))

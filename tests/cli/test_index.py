@@ -166,3 +166,26 @@ def test_unresolved_links_are_named_not_only_counted(
     listed = json.loads(capsys.readouterr().out)
     assert {"from": "z9", "link": "Nowhere"} in listed
     assert len(listed) == load_index(out).manifest["build"]["unresolved_links"]
+
+
+@pytest.mark.parametrize("layout", ["one line", "pretty-printed"])
+def test_a_json_array_corpus_is_named_as_such(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], layout: str
+) -> None:
+    records = [{"id": "a1", "title": "Alpha", "text": "river song"}]
+    corpus = tmp_path / "articles.json"
+    corpus.write_text(json.dumps(records, indent=2 if layout == "pretty-printed" else None))
+    out = tmp_path / "idx"
+    assert main(["index", "build", str(corpus), "--out", str(out), "--no-vectors"]) != 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"{corpus}, line 1: " in err[0]
+    assert "JSON array" in err[0] and "one JSON object per line" in err[0]
+    assert not out.exists()
+    # The library's own reader says the same, once, not once per line of the array.
+    from retriever import CorpusError, ReadReport, read_articles
+
+    with pytest.raises(CorpusError, match="line 1: this is a JSON array"):
+        list(read_articles(corpus))
+    report = ReadReport()
+    assert list(read_articles(corpus, skip_bad=True, report=report)) == []
+    assert report.skipped == 1

@@ -192,3 +192,86 @@ def test_version_prints_the_installed_version() -> None:
 
     out = hunchwise("--version")
     assert out.returncode == 0 and out.stdout.strip() == f"hunchwise {version('hunchwise')}"
+
+
+def _stderr_on_a_terminal(*args: str | Path) -> tuple[int, str]:
+    """Run hunchwise with its stderr on a pseudo-terminal (as in a shell); return code, stderr."""
+    import fcntl
+    import pty
+    import struct
+    import termios
+    import threading
+
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(HERE), str(REPO)]))
+    main_fd, child_fd = pty.openpty()
+    # A new pseudo-terminal is 0 columns wide, and a bar fitted to it is empty: give it 24x100.
+    fcntl.ioctl(child_fd, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 100, 0, 0))
+    chunks: list[bytes] = []
+
+    def drain() -> None:  # keep reading so a full pseudo-terminal never blocks the child
+        while True:
+            try:
+                data = os.read(main_fd, 4096)
+            except OSError:  # EIO once the child's side is closed
+                return
+            if not data:
+                return
+            chunks.append(data)
+
+    reader = threading.Thread(target=drain, daemon=True)
+    reader.start()
+    try:
+        proc = subprocess.run(
+            [sys.executable, "-m", "api.cli", *map(str, args)],
+            stdout=subprocess.DEVNULL,
+            stderr=child_fd,
+            env=env,
+            cwd=REPO,
+            timeout=300,
+        )
+    finally:
+        os.close(child_fd)
+    reader.join(timeout=30)
+    os.close(main_fd)
+    return proc.returncode, b"".join(chunks).decode("utf-8", "replace")
+
+
+@pytest.mark.slow
+def test_fitting_progress_shows_on_a_terminal_only(world: World, tmp_path: Path) -> None:
+    args = ("train", "--index", world.index.path, "--log", world.train_log, "--calibration", "none")
+    # Into a pipe (a log file, CI): no bars redrawn with carriage returns.
+    out = hunchwise(*args, "--out", tmp_path / "piped.json")
+    assert out.returncode == 0, out.stderr
+    assert "fitting" not in out.stderr and "\r" not in out.stderr
+    # On a terminal: the model fitting has its own bar (cross-validation folds, final fit).
+    code, err = _stderr_on_a_terminal(*args, "--out", tmp_path / "tty.json")
+    assert code == 0, err
+    assert "fitting" in err and "fits" in err
+
+
+@pytest.mark.slow
+def test_a_file_where_a_folder_belongs_and_the_reverse(world: World, tmp_path: Path) -> None:
+    model = tmp_path / "model.json"
+    ok = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log, "--out", model,
+        "--features", "bm25_score", "--calibration", "none", "--json",
+    )  # fmt: skip
+    assert ok.returncode == 0, ok.stderr
+    # A report is a folder: a file of that name is said to be one, and left as it was.
+    taken = tmp_path / "notes.txt"
+    taken.write_text("keep me\n")
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", world.test_log, "--model", model,
+        "--report", taken, "--no-ablation",
+    )  # fmt: skip
+    assert out.returncode != 0 and out.stderr.count("\n") == 1
+    assert f"{taken} is a file, not a folder" in out.stderr and "Errno" not in out.stderr
+    assert taken.read_text() == "keep me\n"
+    # A model is a file: a folder given as the model is said to be one.
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", world.test_log,
+        "--model", tmp_path, "--report", tmp_path / "report", "--no-ablation",
+    )  # fmt: skip
+    assert out.returncode != 0 and out.stderr.count("\n") == 1
+    assert f"{tmp_path} is a folder, not a model file" in out.stderr
+    assert "Errno" not in out.stderr
