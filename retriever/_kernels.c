@@ -14,14 +14,16 @@
  * the weight type, in plan order, as the numpy path does; build with -ffp-contract=off so
  * the compiler does not fuse the multiply and add, which would change the last bit.
  *
- * Only the buffer protocol is used (no numpy headers), so building needs only a C compiler
- * and Python's headers.
+ * Only the buffer protocol is used (no numpy headers, see include/hunchwise.h), so building
+ * needs only a C compiler and Python's headers.
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
 #include <stdint.h>
 #include <stdlib.h>
 #include <string.h>
+
+#include "hunchwise.h" /* hw_buffer, hw_overlap: shared with reranker/features/_fused.c */
 
 /* Calls adding more postings than this release the GIL (about 2 ms of work). */
 #define GIL_RELEASE_POSTINGS 2000000
@@ -209,31 +211,6 @@ ANY_ABOVE(double)
 SCORE_QUERY(float)
 SCORE_QUERY(double)
 
-/* Get a C-contiguous buffer of the given struct format ("f|d": float32 or float64). */
-static int get(PyObject *obj, Py_buffer *view, const char *fmt, int writable, const char *name) {
-    if (PyObject_GetBuffer(obj, view,
-                           PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0)) <
-        0)
-        return -1;
-    const char *got = view->format ? view->format : "B";
-    if (got[0] == '<' || got[0] == '=' || got[0] == '@') got++;
-    int ok;
-    if (strcmp(fmt, "f|d") == 0)
-        ok = strcmp(got, "f") == 0 || strcmp(got, "d") == 0;
-    else if (strcmp(fmt, "q") == 0) /* int64: 'l' on LP64 systems, 'q' elsewhere */
-        ok = (strcmp(got, "q") == 0 || strcmp(got, "l") == 0) && view->itemsize == 8;
-    else if (strcmp(fmt, "i") == 0) /* int32 */
-        ok = (strcmp(got, "i") == 0 || strcmp(got, "l") == 0) && view->itemsize == 4;
-    else
-        ok = strcmp(got, fmt) == 0;
-    if (!ok) {
-        PyErr_Format(PyExc_TypeError, "%s: expected array format '%s', got '%s'", name, fmt, got);
-        PyBuffer_Release(view);
-        return -1;
-    }
-    return 0;
-}
-
 PyDoc_STRVAR(search_doc,
 "search(buf, touched, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts)\n"
 "\n"
@@ -275,13 +252,13 @@ static PyObject *search(PyObject *self, PyObject *args) {
         PyErr_NoMemory();
         goto done;
     }
-    if (get(o_buf, &buf, "f|d", 1, "buf") < 0) goto done;
-    if (get(o_touched, &scratch, "i", 1, "touched") < 0) goto done;
+    if (hw_buffer(o_buf, &buf, "float32|float64", 1, "buf") < 0) goto done;
+    if (hw_buffer(o_touched, &scratch, "int32", 1, "touched") < 0) goto done;
     if (scratch.len / 4 < buf.len / buf.itemsize) {
         PyErr_SetString(PyExc_ValueError, "touched must have one int32 slot per article");
         goto done;
     }
-    const char *wfmt = buf.itemsize == 4 ? "f" : "d";
+    const char *wfmt = buf.itemsize == 4 ? "float32" : "float64";
     for (; got_fields < n_fields; got_fields++) {
         PyObject *spec = PyTuple_GET_ITEM(o_fields, got_fields);
         FieldViews *v = &views[got_fields];
@@ -291,9 +268,10 @@ static PyObject *search(PyObject *self, PyObject *args) {
         }
         double scale = PyFloat_AsDouble(PyTuple_GET_ITEM(spec, 3));
         if (scale == -1.0 && PyErr_Occurred()) goto done;
-        if (get(PyTuple_GET_ITEM(spec, 0), &v->indptr_view, "q", 0, "indptr") < 0) goto done;
-        if (get(PyTuple_GET_ITEM(spec, 1), &v->docs_view, "i", 0, "docs") < 0) goto done;
-        if (get(PyTuple_GET_ITEM(spec, 2), &v->weight_view, wfmt, 0, "weight") < 0) goto done;
+        if (hw_buffer(PyTuple_GET_ITEM(spec, 0), &v->indptr_view, "int64", 0, "indptr") < 0 ||
+            hw_buffer(PyTuple_GET_ITEM(spec, 1), &v->docs_view, "int32", 0, "docs") < 0 ||
+            hw_buffer(PyTuple_GET_ITEM(spec, 2), &v->weight_view, wfmt, 0, "weight") < 0)
+            goto done;
         Field *f = &fields[got_fields];
         f->indptr = v->indptr_view.buf;
         f->docs = v->docs_view.buf;
@@ -307,12 +285,12 @@ static PyObject *search(PyObject *self, PyObject *args) {
         }
         f->n_post = n_post;
     }
-    if (get(o_qptr, &qptr, "q", 0, "qptr") < 0) goto done;
-    if (get(o_tids, &tids, "q", 0, "tids") < 0) goto done;
-    if (get(o_qtf, &qtf, "d", 0, "qtf") < 0) goto done;
-    if (get(o_rows, &rows, "q", 1, "out_rows") < 0) goto done;
-    if (get(o_scores, &scores, "d", 1, "out_scores") < 0) goto done;
-    if (get(o_counts, &counts, "q", 1, "out_counts") < 0) goto done;
+    if (hw_buffer(o_qptr, &qptr, "int64", 0, "qptr") < 0) goto done;
+    if (hw_buffer(o_tids, &tids, "int64", 0, "tids") < 0) goto done;
+    if (hw_buffer(o_qtf, &qtf, "float64", 0, "qtf") < 0) goto done;
+    if (hw_buffer(o_rows, &rows, "int64", 1, "out_rows") < 0) goto done;
+    if (hw_buffer(o_scores, &scores, "float64", 1, "out_scores") < 0) goto done;
+    if (hw_buffer(o_counts, &counts, "int64", 1, "out_counts") < 0) goto done;
     {
         const Py_ssize_t n_docs = buf.len / buf.itemsize, n_tids = tids.len / 8;
         const Py_ssize_t n_queries = qptr.len / 8 - 1;
@@ -425,11 +403,13 @@ static PyObject *overlap(PyObject *self, PyObject *args) {
     Py_buffer indptr = {0}, terms = {0}, rows = {0}, tids = {0}, weights = {0}, count = {0};
     Py_buffer weight = {0};
     PyObject *result = NULL;
-    if (get(o_indptr, &indptr, "q", 0, "indptr") < 0 || get(o_terms, &terms, "i", 0, "terms") < 0 ||
-        get(o_rows, &rows, "q", 0, "rows") < 0 || get(o_tids, &tids, "q", 0, "tids") < 0 ||
-        get(o_weights, &weights, "d", 0, "weights") < 0 ||
-        get(o_count, &count, "d", 1, "out_count") < 0 ||
-        get(o_weight, &weight, "d", 1, "out_weight") < 0)
+    if (hw_buffer(o_indptr, &indptr, "int64", 0, "indptr") < 0 ||
+        hw_buffer(o_terms, &terms, "int32", 0, "terms") < 0 ||
+        hw_buffer(o_rows, &rows, "int64", 0, "rows") < 0 ||
+        hw_buffer(o_tids, &tids, "int64", 0, "tids") < 0 ||
+        hw_buffer(o_weights, &weights, "float64", 0, "weights") < 0 ||
+        hw_buffer(o_count, &count, "float64", 1, "out_count") < 0 ||
+        hw_buffer(o_weight, &weight, "float64", 1, "out_weight") < 0)
         goto done;
     {
         const int64_t *ip = indptr.buf, *rw = rows.buf, *td = tids.buf;
@@ -456,27 +436,7 @@ static PyObject *overlap(PyObject *self, PyObject *args) {
             }
         }
         for (Py_ssize_t i = 0; i < n; i++) { /* microseconds of work: the GIL is kept */
-            /* Each clue term is looked up by binary search in the article's sorted list,
-             * starting where the previous (smaller) term was found. */
-            int64_t lo = ip[rw[i]];
-            const int64_t hi = ip[rw[i] + 1];
-            double c = 0, w = 0;
-            for (Py_ssize_t j = 0; j < m && lo < hi; j++) {
-                int64_t a = lo, b = hi;
-                while (a < b) {
-                    const int64_t mid = a + (b - a) / 2;
-                    if (tm[mid] < td[j]) a = mid + 1;
-                    else b = mid;
-                }
-                if (a < hi && tm[a] == td[j]) {
-                    c += 1;
-                    w += wt[j];
-                    a++;
-                }
-                lo = a;
-            }
-            oc[i] = c;
-            ow[i] = w;
+            hw_overlap(tm, ip[rw[i]], ip[rw[i] + 1], td, wt, m, &oc[i], &ow[i]);
         }
     }
     result = Py_None;

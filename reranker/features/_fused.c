@@ -1,17 +1,19 @@
-/* Every fused built-in feature of one candidate set in one call (see fused_builtins in
- * reranker/builtin.py, which holds the plain-Python twin, and reranker/rowtables.py, which
- * fills the per-row tables read here).
+/* Every fused built-in feature of one candidate set in one call (see reranker/fused.py,
+ * which calls it, reranker/builtin.py, which holds the definitions, and
+ * reranker/rowtables.py, which fills the per-row tables read here).
  *
  * Written by hand for speed: for the 20 or so candidates of a clue the features are a few
  * thousand operations (the term overlap is most of them), while computing them with numpy
  * and Python sets costs tens of microseconds of interpreter overhead per clue, several
- * times the arithmetic. The feature functions in builtin.py remain the definitions; tests
- * check this module against them and against the Python twin.
+ * times the arithmetic. The feature functions in builtin.py remain the definitions, and
+ * what runs where this module is not built; tests check this module against them.
  *
- * The output columns are COLUMNS, in that order; builtin.py refuses to use a build whose
- * COLUMNS differ from its FUSED_NAMES (a stale build after an edit).
+ * The column orders below (the output, the row table, the name spans) are each written once,
+ * as an X-macro list giving both the enum and the exported names. The module exports them as
+ * COLUMNS, ROW_VALUES and SPANS; fused.py refuses a build whose lists differ from its
+ * FUSED_NAMES and rowtables' ROW_VALUES and SPANS (a stale build after an edit).
  *
- * Only the buffer protocol is used (no numpy headers).
+ * Only the buffer protocol is used (no numpy headers, see include/hunchwise.h).
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
@@ -20,73 +22,92 @@
 #include <stdlib.h>
 #include <string.h>
 
-enum {
-    BM25_SCORE, BM25_RANK, INVERSE_RANK, GAP_TO_NEXT, GAP_TO_BEST_RIVAL, SCORE_RATIO_TO_TOP,
-    SCORE_ZSCORE, SCORE_SOFTMAX, CLUE_WORDS, LOG_CLUE_WORDS, SCORE_X_CLUE_WORDS,
-    SOFTMAX_X_LOG_WORDS, INLINKS, LOG_INLINKS, LOG_INLINKS_VS_BEST, LOG_POPULARITY,
-    POPULARITY_MISSING, HAS_QUALIFIER, QUALIFIER_IN_CLUE, QUALIFIER_OVERLAP, TITLE_OVERLAP,
-    ALIAS_OVERLAP, MATCHED_TERMS, MATCHED_FRACTION, MATCHED_RARITY, LOG_DOC_LENGTH,
-    QUALIFIER_FREQUENCY, N_COLUMNS
-};
-static const char *const column_names[N_COLUMNS] = {
-    "bm25_score", "bm25_rank", "inverse_rank", "gap_to_next", "gap_to_best_rival",
-    "score_ratio_to_top", "score_zscore", "score_softmax", "clue_words", "log_clue_words",
-    "score_x_clue_words", "softmax_x_log_words", "inlinks", "log_inlinks",
-    "log_inlinks_vs_best", "log_popularity", "popularity_missing", "has_qualifier",
-    "qualifier_in_clue", "qualifier_overlap", "title_overlap", "alias_overlap",
-    "matched_terms", "matched_fraction", "matched_rarity", "log_doc_length",
-    "qualifier_frequency",
-};
+#include "hunchwise.h" /* hw_buffer, hw_overlap: shared with retriever/_kernels.c */
 
-/* The row table's columns (rowtables.ROW_VALUES) and the name spans' (rowtables.SPANS). */
-enum { RV_INLINKS, RV_LOG_INLINKS, RV_LOG_POPULARITY, RV_POPULARITY_MISSING, RV_LOG_DOC_LENGTH,
-       RV_HAS_QUALIFIER, RV_QUALIFIER_FREQUENCY, RV_FILLED, N_ROW_VALUES };
-enum { SP_READY, SP_START, SP_BASE, SP_QUALIFIER, SP_ALIAS, N_SPANS };
+/* The output columns: fused.FUSED_NAMES. */
+#define COLUMN_LIST(X)                                                                       \
+    X(BM25_SCORE, "bm25_score")                                                              \
+    X(BM25_RANK, "bm25_rank")                                                                \
+    X(INVERSE_RANK, "inverse_rank")                                                          \
+    X(GAP_TO_NEXT, "gap_to_next")                                                            \
+    X(GAP_TO_BEST_RIVAL, "gap_to_best_rival")                                                \
+    X(SCORE_RATIO_TO_TOP, "score_ratio_to_top")                                              \
+    X(SCORE_ZSCORE, "score_zscore")                                                          \
+    X(SCORE_SOFTMAX, "score_softmax")                                                        \
+    X(CLUE_WORDS, "clue_words")                                                              \
+    X(LOG_CLUE_WORDS, "log_clue_words")                                                      \
+    X(SCORE_X_CLUE_WORDS, "score_x_clue_words")                                              \
+    X(SOFTMAX_X_LOG_WORDS, "softmax_x_log_words")                                            \
+    X(INLINKS, "inlinks")                                                                    \
+    X(LOG_INLINKS, "log_inlinks")                                                            \
+    X(LOG_INLINKS_VS_BEST, "log_inlinks_vs_best")                                            \
+    X(LOG_POPULARITY, "log_popularity")                                                      \
+    X(POPULARITY_MISSING, "popularity_missing")                                              \
+    X(HAS_QUALIFIER, "has_qualifier")                                                        \
+    X(QUALIFIER_IN_CLUE, "qualifier_in_clue")                                                \
+    X(QUALIFIER_OVERLAP, "qualifier_overlap")                                                \
+    X(TITLE_OVERLAP, "title_overlap")                                                        \
+    X(ALIAS_OVERLAP, "alias_overlap")                                                        \
+    X(MATCHED_TERMS, "matched_terms")                                                        \
+    X(MATCHED_FRACTION, "matched_fraction")                                                  \
+    X(MATCHED_RARITY, "matched_rarity")                                                      \
+    X(LOG_DOC_LENGTH, "log_doc_length")                                                      \
+    X(QUALIFIER_FREQUENCY, "qualifier_frequency")
 
-static int get(PyObject *obj, Py_buffer *view, char kind, int itemsize, int writable,
-               const char *name) {
-    if (PyObject_GetBuffer(obj, view,
-                           PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0)) <
-        0)
-        return -1;
-    const char *f = view->format ? view->format : "B";
-    if (f[0] == '<' || f[0] == '=' || f[0] == '@') f++;
-    int ok = view->itemsize == itemsize && f[1] == '\0' &&
-             (kind == 'f' ? f[0] == 'd' : (f[0] == 'q' || f[0] == 'l' || f[0] == 'i'));
-    if (!ok) {
-        PyErr_Format(PyExc_TypeError, "%s: expected %s%d array, got format '%s'", name,
-                     kind == 'f' ? "float" : "int", itemsize * 8, f);
-        PyBuffer_Release(view);
-        return -1;
-    }
-    return 0;
-}
+/* The row table's columns: rowtables.ROW_VALUES. */
+#define ROW_VALUE_LIST(X)                                                                    \
+    X(RV_INLINKS, "inlinks")                                                                 \
+    X(RV_LOG_INLINKS, "log_inlinks")                                                         \
+    X(RV_LOG_POPULARITY, "log_popularity")                                                   \
+    X(RV_POPULARITY_MISSING, "popularity_missing")                                           \
+    X(RV_LOG_DOC_LENGTH, "log_doc_length")                                                   \
+    X(RV_HAS_QUALIFIER, "has_qualifier")                                                     \
+    X(RV_QUALIFIER_FREQUENCY, "qualifier_frequency")                                         \
+    X(RV_FILLED, "(filled)")
 
-typedef struct {
-    int64_t key;
-    double value;
-} Term;
+/* The name spans' columns: rowtables.SPANS. */
+#define SPAN_LIST(X)                                                                         \
+    X(SP_READY, "ready")                                                                     \
+    X(SP_START, "start")                                                                     \
+    X(SP_BASE, "base")                                                                       \
+    X(SP_QUALIFIER, "qualifier")                                                             \
+    X(SP_ALIAS, "alias")
+
+#define AS_ENUM(id, name) id,
+#define AS_NAME(id, name) name,
+enum { COLUMN_LIST(AS_ENUM) N_COLUMNS };
+enum { ROW_VALUE_LIST(AS_ENUM) N_ROW_VALUES };
+enum { SPAN_LIST(AS_ENUM) N_SPANS };
+static const char *const column_names[] = {COLUMN_LIST(AS_NAME) NULL};
+static const char *const row_value_names[] = {ROW_VALUE_LIST(AS_NAME) NULL};
+static const char *const span_names[] = {SPAN_LIST(AS_NAME) NULL};
 
 static int by_key(const void *a, const void *b) {
-    const int64_t x = ((const Term *)a)->key, y = ((const Term *)b)->key;
+    const int64_t x = *(const int64_t *)a, y = *(const int64_t *)b;
     return (x > y) - (x < y);
 }
 
-/* The items of `seq` as terms sorted by key, duplicates removed: ints (value 0) or
- * (int, float) pairs. Returns the count, or -1 with an exception set. */
-static Py_ssize_t read_terms(PyObject *seq, int pairs, Term **out, const char *name) {
+/* The items of `seq` sorted by term id, duplicates removed: ints, or (int, float) pairs when
+ * `values` is given. Fills *keys (and *values), allocated here; the caller frees *keys only
+ * (the values live in the same block). Returns the count, or -1 with an exception set. */
+static Py_ssize_t read_terms(PyObject *seq, int64_t **keys, double **values, const char *name) {
+    typedef struct {
+        int64_t key; /* first: by_key compares it */
+        double value;
+    } Term;
     PyObject *fast = PySequence_Fast(seq, name);
     if (!fast) return -1;
     const Py_ssize_t m = PySequence_Fast_GET_SIZE(fast);
-    Term *t = PyMem_Malloc((size_t)(m ? m : 1) * sizeof(Term));
-    if (!t) {
-        Py_DECREF(fast);
+    const size_t room = (size_t)(m ? m : 1);
+    Term *t = PyMem_Malloc(room * sizeof(Term));
+    int64_t *k = PyMem_Malloc(room * (sizeof(int64_t) + sizeof(double)));
+    if (!t || !k) {
         PyErr_NoMemory();
-        return -1;
+        goto fail;
     }
     for (Py_ssize_t j = 0; j < m; j++) {
         PyObject *item = PySequence_Fast_GET_ITEM(fast, j);
-        if (pairs) {
+        if (values) {
             if (!PyTuple_Check(item) || PyTuple_GET_SIZE(item) != 2) {
                 PyErr_Format(PyExc_TypeError, "%s: expected (term id, weight) pairs", name);
                 goto fail;
@@ -101,30 +122,38 @@ static Py_ssize_t read_terms(PyObject *seq, int pairs, Term **out, const char *n
     }
     Py_DECREF(fast);
     qsort(t, (size_t)m, sizeof(Term), by_key);
+    double *v = (double *)(k + room);
     Py_ssize_t kept = 0;
-    for (Py_ssize_t j = 0; j < m; j++)
-        if (kept == 0 || t[kept - 1].key != t[j].key) t[kept++] = t[j];
-    *out = t;
+    for (Py_ssize_t j = 0; j < m; j++) {
+        if (kept == 0 || k[kept - 1] != t[j].key) {
+            k[kept] = t[j].key;
+            v[kept++] = t[j].value;
+        }
+    }
+    PyMem_Free(t);
+    *keys = k;
+    if (values) *values = v;
     return kept;
 fail:
     Py_DECREF(fast);
     PyMem_Free(t);
+    PyMem_Free(k);
     return -1;
 }
 
-/* Whether `key` is among the sorted keys t[0..m). */
-static int holds(const Term *t, Py_ssize_t m, int64_t key) {
+/* Whether `key` is among the sorted keys[0..m). */
+static int holds(const int64_t *keys, Py_ssize_t m, int64_t key) {
     Py_ssize_t a = 0, b = m;
     while (a < b) {
         const Py_ssize_t mid = a + (b - a) / 2;
-        if (t[mid].key < key) a = mid + 1;
+        if (keys[mid] < key) a = mid + 1;
         else b = mid;
     }
-    return a < m && t[a].key == key;
+    return a < m && keys[a] == key;
 }
 
 /* How many of ids[0..len) are among the clue's name tokens. */
-static double in_clue(const int32_t *ids, int64_t len, const Term *clue, Py_ssize_t m) {
+static double in_clue(const int32_t *ids, int64_t len, const int64_t *clue, Py_ssize_t m) {
     double c = 0;
     for (int64_t i = 0; i < len; i++) c += holds(clue, m, ids[i]);
     return c;
@@ -177,9 +206,9 @@ PyDoc_STRVAR(candidates_doc,
 "Fill out (float64, n x len(COLUMNS)) with the COLUMNS features of n >= 1 candidates.\n"
 "\n"
 "scores (float64), ranks and rows (int64): the candidates. words: words of the clue seen.\n"
-"table (float64, n_docs x 8) and spans (int64, n_docs x 5): per-row values and name-token\n"
-"    spans into arena (int32), see reranker/rowtables.py. clue_names: name-token ids of\n"
-"    the clue (ints). indptr (int64, n_docs + 1) and terms (int32): article-major term\n"
+"table (float64, n_docs x ROW_VALUES) and spans (int64, n_docs x SPANS): per-row values and\n"
+"    name-token spans into arena (int32), see reranker/rowtables.py. clue_names: name-token\n"
+"    ids of the clue (ints). indptr (int64, n_docs + 1) and terms (int32): article-major term\n"
 "    lists, sorted within a row. clue_terms: (term id, log(N/df)) of the clue's distinct\n"
 "    known body terms. Returns False, writing nothing, when a row is not in the tables yet.");
 
@@ -194,13 +223,18 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
         return NULL;
     Py_buffer out = {0}, sv = {0}, rk = {0}, rw = {0}, tb = {0}, sp = {0}, ar = {0}, ip = {0};
     Py_buffer tm = {0};
-    Term *names = NULL, *clue = NULL;
+    int64_t *names = NULL, *clue = NULL;
+    double *rarities = NULL;
     PyObject *result = NULL;
-    if (get(o_out, &out, 'f', 8, 1, "out") < 0 || get(o_scores, &sv, 'f', 8, 0, "scores") < 0 ||
-        get(o_ranks, &rk, 'i', 8, 0, "ranks") < 0 || get(o_rows, &rw, 'i', 8, 0, "rows") < 0 ||
-        get(o_table, &tb, 'f', 8, 0, "table") < 0 || get(o_spans, &sp, 'i', 8, 0, "spans") < 0 ||
-        get(o_arena, &ar, 'i', 4, 0, "arena") < 0 || get(o_indptr, &ip, 'i', 8, 0, "indptr") < 0 ||
-        get(o_terms, &tm, 'i', 4, 0, "terms") < 0)
+    if (hw_buffer(o_out, &out, "float64", 1, "out") < 0 ||
+        hw_buffer(o_scores, &sv, "float64", 0, "scores") < 0 ||
+        hw_buffer(o_ranks, &rk, "int64", 0, "ranks") < 0 ||
+        hw_buffer(o_rows, &rw, "int64", 0, "rows") < 0 ||
+        hw_buffer(o_table, &tb, "float64", 0, "table") < 0 ||
+        hw_buffer(o_spans, &sp, "int64", 0, "spans") < 0 ||
+        hw_buffer(o_arena, &ar, "int32", 0, "arena") < 0 ||
+        hw_buffer(o_indptr, &ip, "int64", 0, "indptr") < 0 ||
+        hw_buffer(o_terms, &tm, "int32", 0, "terms") < 0)
         goto done;
     const Py_ssize_t n = sv.len / 8, n_docs = ip.len / 8 - 1;
     if (n < 1 || rk.len / 8 != n || rw.len / 8 != n || out.len / 8 != n * N_COLUMNS) {
@@ -253,9 +287,9 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
             goto done;
         }
     }
-    const Py_ssize_t m_names = read_terms(o_names, 0, &names, "clue_names");
+    const Py_ssize_t m_names = read_terms(o_names, &names, NULL, "clue_names");
     if (m_names < 0) goto done;
-    const Py_ssize_t m = read_terms(o_clue_terms, 1, &clue, "clue_terms");
+    const Py_ssize_t m = read_terms(o_clue_terms, &clue, &rarities, "clue_terms");
     if (m < 0) goto done;
     /* matched_fraction divides by the clue's known terms, as given (pairs are distinct) */
     const Py_ssize_t known = PyObject_Length(o_clue_terms);
@@ -289,26 +323,10 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
         o[QUALIFIER_OVERLAP] = nq ? in_qual / (double)nq : 0.0;
         o[TITLE_OVERLAP] = nb ? in_base / (double)nb : 0.0;
         o[ALIAS_OVERLAP] = na ? in_alias / (double)na : 0.0;
-        /* clue terms in the article: each looked up by binary search in the article's sorted
-         * list, starting where the previous (smaller) term was found; rarities are added in
-         * increasing term order, as scoring.overlap does */
-        int64_t lo = indptr[r];
-        const int64_t hi = indptr[r + 1];
-        double count = 0, rarity = 0;
-        for (Py_ssize_t j = 0; j < m && lo < hi; j++) {
-            int64_t a = lo, b = hi;
-            while (a < b) {
-                const int64_t mid = a + (b - a) / 2;
-                if (terms[mid] < clue[j].key) a = mid + 1;
-                else b = mid;
-            }
-            if (a < hi && terms[a] == clue[j].key) {
-                count += 1;
-                rarity += clue[j].value;
-                a++;
-            }
-            lo = a;
-        }
+        /* clue terms in the article; rarities are added in increasing term order, as
+         * scoring.overlap does */
+        double count, rarity;
+        hw_overlap(terms, indptr[r], indptr[r + 1], clue, rarities, m, &count, &rarity);
         o[MATCHED_TERMS] = count;
         o[MATCHED_FRACTION] = count / (double)(known ? known : 1);
         o[MATCHED_RARITY] = rarity;
@@ -329,19 +347,22 @@ static PyMethodDef methods[] = {
     {NULL, NULL, 0, NULL},
 };
 
-static int add_columns(PyObject *mod) {
-    PyObject *cols = PyTuple_New(N_COLUMNS);
-    if (!cols) return -1;
-    for (int i = 0; i < N_COLUMNS; i++) {
-        PyObject *name = PyUnicode_FromString(column_names[i]);
+/* Export the names of a NULL-terminated list as a tuple attribute of the module. */
+static int add_names(PyObject *mod, const char *attr, const char *const *names) {
+    Py_ssize_t n = 0;
+    while (names[n]) n++;
+    PyObject *tuple = PyTuple_New(n);
+    if (!tuple) return -1;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        PyObject *name = PyUnicode_FromString(names[i]);
         if (!name) {
-            Py_DECREF(cols);
+            Py_DECREF(tuple);
             return -1;
         }
-        PyTuple_SET_ITEM(cols, i, name);
+        PyTuple_SET_ITEM(tuple, i, name);
     }
-    if (PyModule_AddObject(mod, "COLUMNS", cols) < 0) {
-        Py_DECREF(cols);
+    if (PyModule_AddObject(mod, attr, tuple) < 0) {
+        Py_DECREF(tuple);
         return -1;
     }
     return 0;
@@ -354,7 +375,9 @@ static struct PyModuleDef module = {
 
 PyMODINIT_FUNC PyInit__fused(void) {
     PyObject *mod = PyModule_Create(&module);
-    if (mod && add_columns(mod) < 0) {
+    if (mod && (add_names(mod, "COLUMNS", column_names) < 0 ||
+                add_names(mod, "ROW_VALUES", row_value_names) < 0 ||
+                add_names(mod, "SPANS", span_names) < 0)) {
         Py_DECREF(mod);
         return NULL;
     }

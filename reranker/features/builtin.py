@@ -1,4 +1,9 @@
-"""The built-in candidate features, grouped for the ablation table."""
+"""The built-in candidate features, grouped for the ablation table.
+
+Each function is the definition of its feature, plain numpy or Python over a CandidateSet.
+`fused_builtins` computes the FUSED_NAMES columns at once by the compiled pass (fused.py)
+where it is built, and by calling these same functions where it is not.
+"""
 
 from __future__ import annotations
 
@@ -6,8 +11,9 @@ from collections.abc import Callable
 
 import numpy as np
 
+from . import fused
 from .clueterms import matched
-from .fused import FUSED_NAMES, fused_builtins
+from .fused import FUSED_NAMES
 from .registry import CandidateSet, DenseInfo, Feature, FeatureRegistry, FusedFeatures
 
 _FEATURES: list[Feature] = []
@@ -272,6 +278,24 @@ SCORE_ONLY = ("bm25_score",)
 _BY_NAME = {f.name: f for f in _FEATURES}
 if set(FUSED_NAMES) - set(_BY_NAME):
     raise ValueError(f"fused features without a function: {set(FUSED_NAMES) - set(_BY_NAME)}")
+_FUSED_FUNCS = tuple(_BY_NAME[n].func for n in FUSED_NAMES)
+
+
+def fused_builtins(cs: CandidateSet) -> np.ndarray:
+    """Every feature of FUSED_NAMES, in that order. float64, shape (n, len(FUSED_NAMES)).
+
+    The compiled pass where it is built; elsewhere the functions above, one call each.
+    """
+    if len(cs) == 0:
+        return np.empty((0, len(FUSED_NAMES)))
+    out = fused.compiled(cs)
+    if out is None:
+        out = np.empty((len(cs), len(FUSED_NAMES)))
+        for j, func in enumerate(_FUSED_FUNCS):
+            out[:, j] = func(cs)
+    return out
+
+
 _FUSED = FusedFeatures(tuple(_BY_NAME[n] for n in FUSED_NAMES), fused_builtins)
 
 

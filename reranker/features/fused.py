@@ -1,35 +1,27 @@
-"""All the built-in features of FUSED_NAMES at once, the way serving and training compute them.
+"""The compiled pass over the built-in features of FUSED_NAMES, the way serving computes them.
 
-The functions in builtin.py define the features and are what the unit tests check by hand.
-Computing them one by one costs a numpy call or a Python loop each, far more than the
-arithmetic at 20 candidates, so `fused_builtins` computes them together:
-- compiled (reranker/_fused.c, built at install): one call fills the whole matrix from the
-  candidates' scores, the per-row tables of rowtables.py and the clue's term and name ids;
-- its plain-Python twin, for a machine where the C module did not build: rows of one work
-  array filled block by block, then put in FUSED_NAMES order.
-Built-ins left out of FUSED_NAMES still work, one function call each.
-tests/reranker/test_fused.py checks both against the functions, column by column.
+The functions in builtin.py define the features. Computing them one by one costs a numpy call
+or a Python loop each, far more than the arithmetic at 20 candidates, so reranker/_fused.c
+(built at install) fills the whole matrix in one call from the candidates' scores, the
+per-row tables of rowtables.py and the clue's term and name ids. `builtin.fused_builtins`
+uses it where it is built and calls the definitions themselves where it is not (a machine
+without a C compiler): there is no third copy. tests/reranker/test_fused.py checks the
+compiled pass against the definitions, column by column.
 """
 
 from __future__ import annotations
 
 import importlib
-import itertools
-import math
 from typing import Any
 
 import numpy as np
 
-from .clueterms import body_terms, matched
+from .clueterms import body_terms
 from .registry import CandidateSet
-from .rowtables import ROW_VALUES, name_table, row_values, values_table
+from .rowtables import ROW_VALUES, SPANS, name_table, values_table
 
-_fused: Any
-try:
-    _fused = importlib.import_module("reranker.features._fused")  # built by setup.py from _fused.c
-except ImportError:  # pragma: no cover - a machine without a C compiler at install time
-    _fused = None
-
+# The columns of the fused matrix, in order: the one list of them. The compiled module
+# exports the order it was built with, checked against this one at import below.
 FUSED_NAMES = (
     "bm25_score", "bm25_rank", "inverse_rank", "gap_to_next", "gap_to_best_rival",
     "score_ratio_to_top", "score_zscore", "score_softmax",
@@ -40,23 +32,37 @@ FUSED_NAMES = (
     "matched_terms", "matched_fraction", "matched_rarity", "log_doc_length",
     "qualifier_frequency",
 )  # fmt: skip
-if _fused is not None and tuple(_fused.COLUMNS) != FUSED_NAMES:
-    raise ImportError(
-        "reranker/_fused.c was built from another version of the features; "
-        "rebuild it with: python3 -m pip install -e ."
-    )
 
 
-def fused_builtins(cs: CandidateSet) -> np.ndarray:
-    """Every feature of FUSED_NAMES, in that order. float64, shape (n, len(FUSED_NAMES))."""
-    if len(cs) == 0:
-        return np.empty((0, len(FUSED_NAMES)))
-    if _fused is not None:
-        return _compiled(cs)
-    return _python(cs)
+def check_layout(module: Any) -> None:
+    """Raise ImportError unless `module` (the built _fused) lays out its output and the row
+    tables as FUSED_NAMES, ROW_VALUES and SPANS say (a build from another version of them)."""
+    for what, ours in (("COLUMNS", FUSED_NAMES), ("ROW_VALUES", ROW_VALUES), ("SPANS", SPANS)):
+        built = tuple(getattr(module, what, ()))
+        if built != ours:
+            at = next(i for i in range(len(built) + 1) if built[i : i + 1] != ours[i : i + 1])
+            raise ImportError(
+                f"reranker/features/_fused.c was built with other {what} than the Python code "
+                f"(first difference at position {at}: built {built[at : at + 1]}, Python "
+                f"{ours[at : at + 1]}); edit the X-macro lists in _fused.c to match, then "
+                "rebuild with: python3 -m pip install -e ."
+            )
 
 
-def _compiled(cs: CandidateSet) -> np.ndarray:
+_fused: Any
+try:
+    _fused = importlib.import_module("reranker.features._fused")  # built by setup.py from _fused.c
+except ImportError:  # pragma: no cover - a machine without a C compiler at install time
+    _fused = None
+if _fused is not None:
+    check_layout(_fused)
+
+
+def compiled(cs: CandidateSet) -> np.ndarray | None:
+    """Every feature of FUSED_NAMES by the compiled pass, in that order (float64, shape
+    (n, len(FUSED_NAMES)), n >= 1), or None where the compiled module is not built."""
+    if _fused is None:
+        return None
     index = cs.index
     out = np.empty((len(cs), len(FUSED_NAMES)))
     terms = body_terms(index, cs.tokens)
@@ -78,93 +84,3 @@ def _compiled(cs: CandidateSet) -> np.ndarray:
             if not fill_out():
                 raise RuntimeError("the feature tables were not filled; this is a bug")
     return out
-
-
-# -- the plain-Python twin ----------------------------------------------------------------
-# Rows of the work array, grouped so that each block is written by one operation.
-_WORK = (
-    "score_softmax", "bm25_score", "(score minus mean)", "gap_to_best_rival",
-    "score_ratio_to_top", "score_zscore", "softmax_x_log_words", "score_x_clue_words",
-    "bm25_rank", "inverse_rank", "gap_to_next", "clue_words", "log_clue_words",
-    # per row, from the row table (rowtables.ROW_VALUES order)
-    "inlinks", "log_inlinks", "log_popularity", "popularity_missing", "log_doc_length",
-    "has_qualifier", "qualifier_frequency", "(filled)",
-    "log_inlinks_vs_best",
-    # per row and clue: 0 unless a name token of the row is in the clue
-    "qualifier_in_clue", "qualifier_overlap", "title_overlap", "alias_overlap",
-    "matched_terms", "matched_fraction", "matched_rarity",
-)  # fmt: skip
-_ORDER = np.array([_WORK.index(name) for name in FUSED_NAMES])
-if _WORK[13:21] != ROW_VALUES:
-    raise ValueError("work rows 13-20 must be rowtables.ROW_VALUES")
-
-
-def within_clue(s: list[float], ranks: list[float], words: int, f: np.ndarray) -> None:
-    """Rows 0-12 of the work array: the score features that compare a candidate with its
-    rivals, and the clue length. Sums run left to right, as in the compiled code."""
-    n = len(s)
-    best = max(s)
-    lead = s.index(best)  # the first best, as a stable sort would put it
-    mean = _sum(s) / n
-    exps = [math.exp(x - best) for x in s]
-    total = _sum(exps)
-    soft = [e / total for e in exps]
-    centred = [x - mean for x in s]
-    sd = math.sqrt(_sum([c * c for c in centred]) / n)
-    rival = [x - best for x in s]  # everyone's best rival is the leader, except the leader's
-    if n > 1:
-        rival[lead] = best - max(s[:lead] + s[lead + 1 :])
-    log_words = math.log1p(words)
-    f[0:13] = (
-        soft,
-        s,
-        centred,
-        rival,
-        [x / best for x in s] if best > 0 else [0.0] * n,
-        [c / sd for c in centred] if sd > 0 else [0.0] * n,
-        [p * log_words for p in soft],
-        [x * words for x in s],
-        ranks,
-        [1.0 / r for r in ranks],
-        [a - b for a, b in itertools.pairwise(s)] + [0.0],
-        [float(words)] * n,
-        [log_words] * n,
-    )
-
-
-def _sum(values: list[float]) -> float:
-    # Not sum(): from Python 3.12 it compensates rounding, and the compiled code does not.
-    total = 0.0
-    for v in values:
-        total += v
-    return total
-
-
-def _python(cs: CandidateSet) -> np.ndarray:
-    f = np.empty((len(_WORK), len(cs)))  # one contiguous row per feature
-    within_clue(cs.scores.tolist(), cs.ranks.tolist(), len(cs.words), f)
-    # popularity, document length, qualifier: one gather from the row table
-    f[13:21] = row_values(cs.index, cs.rows).T
-    np.subtract(f[14], np.maximum.reduce(f[14]), out=f[21])
-    # qualifier and title words in the clue: a set test per candidate (20 or so, not the
-    # corpus), and the fractions only for the few that share a word with the clue
-    f[22:26] = 0.0
-    clue = cs.token_set
-    disjoint, common = clue.isdisjoint, clue.intersection
-    for j, e in enumerate(cs.names):
-        if disjoint(e.tokens):
-            continue
-        qual, base, alias = e.qualifier_tokens, e.base, e.aliases
-        in_clue = len(common(qual)) if qual else 0
-        f[22:26, j] = (
-            1.0 if in_clue else 0.0,
-            in_clue / len(qual) if qual else 0.0,
-            len(common(base)) / len(base) if base else 0.0,
-            len(common(alias)) / len(alias) if alias else 0.0,
-        )
-    # term overlap
-    count, rarity, known = matched(cs)
-    f[26] = count
-    np.divide(count, known if known else 1, out=f[27])  # count is all 0 when nothing is known
-    f[28] = rarity
-    return f.T.take(_ORDER, axis=1)

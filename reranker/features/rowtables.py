@@ -1,11 +1,14 @@
-"""Per-row tables of the built-in features, filled the first time a row is a candidate.
+"""Per-row tables the compiled features read, filled the first time a row is a candidate.
 
 Two tables, each one row per article and never looped over whole:
 - the row values: what the features need of a row that does not depend on the clue
-  (ROW_VALUES), read by both the compiled features and their Python twin;
-- the name table, read by the compiled features only: each row's base-name, qualifier and
-  alias tokens as small integer ids (one numbering per index, handed out as rows are seen),
-  so that testing them against a clue is integer work.
+  (ROW_VALUES);
+- the name table: each row's base-name, qualifier and alias tokens as small integer ids
+  (one numbering per index, handed out as rows are seen), so that testing them against a
+  clue is integer work.
+
+The column orders ROW_VALUES and SPANS are the ones _fused.c was built with (fused.py
+checks it at import).
 
 The tables start as zeros, which the operating system hands out page by page as rows are
 touched, so a large index costs nothing up front.
@@ -20,7 +23,7 @@ import numpy as np
 
 from retriever import Index
 
-from .names import analyze_names, index_cache, row_names
+from .names import analyze_names, index_cache
 
 # Columns of the row-values table; the last is 1 once the row is filled.
 ROW_VALUES = (
@@ -32,19 +35,6 @@ ROW_VALUES = (
 SPANS = ("ready", "start", "base", "qualifier", "alias")
 
 
-def row_values(index: Index, rows: np.ndarray) -> np.ndarray:
-    """The ROW_VALUES of `rows`, by one gather (rows not seen before are filled first).
-
-    float64, shape (len(rows), len(ROW_VALUES)).
-    """
-    table = values_table(index)
-    values = table[rows]
-    if values[:, -1].all():
-        return values
-    fill_values(index, rows[values[:, -1] == 0])
-    return table[rows]
-
-
 def values_table(index: Index) -> np.ndarray:
     """The whole row-values table of `index` (rows not seen yet are zeros)."""
     cache = index_cache(index)
@@ -54,29 +44,25 @@ def values_table(index: Index) -> np.ndarray:
     return table
 
 
-def fill_values(index: Index, rows: np.ndarray) -> None:
-    """Compute and store the row values of `rows` (for the Python twin, from row_names)."""
-    new = np.unique(rows)
-    names = row_names(index, new.tolist())
-    qualified = [bool(e.qualifier_tokens) for e in names]
-    _store_values(index, new, qualified, [e.qualifier_count for e in names])
-
-
 def _store_values(
     index: Index, rows: np.ndarray, qualified: Sequence[bool], qualifier_count: Sequence[int]
 ) -> None:
     inl = np.asarray(index.inlinks[rows], dtype=np.float64)
     pop = np.asarray(index.popularity[rows], dtype=np.float64)
     missing = np.isnan(pop)
+    columns: dict[str, np.ndarray | Sequence[bool] | float] = {
+        "inlinks": inl,
+        "log_inlinks": np.log1p(inl),
+        "log_popularity": np.log1p(np.where(missing, 0.0, pop)),
+        "popularity_missing": missing,
+        "log_doc_length": np.log1p(np.asarray(index.doc_len[rows], dtype=np.float64)),
+        "has_qualifier": qualified,
+        "qualifier_frequency": np.log1p(np.asarray(qualifier_count, dtype=np.float64)),
+        "(filled)": 1.0,
+    }
     fill = np.empty((rows.size, len(ROW_VALUES)))
-    fill[:, 0] = inl
-    fill[:, 1] = np.log1p(inl)
-    fill[:, 2] = np.log1p(np.where(missing, 0.0, pop))
-    fill[:, 3] = missing
-    fill[:, 4] = np.log1p(np.asarray(index.doc_len[rows], dtype=np.float64))
-    fill[:, 5] = qualified
-    fill[:, 6] = np.log1p(np.asarray(qualifier_count, dtype=np.float64))
-    fill[:, 7] = 1.0
+    for j, name in enumerate(ROW_VALUES):
+        fill[:, j] = columns[name]
     values_table(index)[rows] = fill
 
 

@@ -1,9 +1,10 @@
 """reranker/fused.py: all built-in features at once, equal to the functions.
 
 The functions are the definitions (hand-checked in test_builtin.py); serving computes the same
-columns together in `fused_builtins`, compiled (reranker/_fused.c) or by its plain-Python
-twin. These tests compare all three on real candidate sets of the demo corpus and on edge
-cases, and check that the per-row tables are filled lazily.
+columns together in `builtin.fused_builtins`: by the compiled pass (reranker/_fused.c) where it
+is built, else by calling the functions. These tests compare the compiled pass with the
+functions on real candidate sets of the demo corpus, edge cases and random sets, and check
+that the per-row tables are filled lazily.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import gc
 import json
 import os
 import sys
+import types
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -38,16 +40,13 @@ def by_function(cs: CandidateSet) -> np.ndarray:
 
 
 def assert_fused_equals_functions(cs: CandidateSet) -> None:
-    """Fused matrix (compiled where built, and the Python twin) == per-function columns, to
-    float rounding (sums may be added in another order)."""
-    fused = FU.fused_builtins(cs)
+    """Fused matrix (compiled where built) == per-function columns, to float rounding (sums
+    may be added in another order)."""
+    fused = B.fused_builtins(cs)
     assert fused.shape == (len(cs), len(FU.FUSED_NAMES))
     assert fused.dtype == np.float64 and fused.flags.c_contiguous
     expected = by_function(cs)
     np.testing.assert_allclose(fused, expected, rtol=1e-12, atol=1e-12)
-    if len(cs):
-        twin = FU._python(dataclasses.replace(cs, memo={}))
-        np.testing.assert_allclose(twin, expected, rtol=1e-12, atol=1e-12)
 
 
 def test_fused_names_are_builtins_once_each() -> None:
@@ -74,7 +73,7 @@ def test_fused_equals_the_functions_on_demo_candidate_sets(
             # the registry takes the fused path for the fused built-ins and gives the same
             # matrix (the dense group is plain numpy, outside the fused pass)
             fused = list(FU.FUSED_NAMES)
-            np.testing.assert_array_equal(reg.matrix(cs, fused), FU.fused_builtins(cs))
+            np.testing.assert_array_equal(reg.matrix(cs, fused), B.fused_builtins(cs))
             checked += 1
     assert checked > 250
 
@@ -111,6 +110,23 @@ needs_compiled = pytest.mark.skipif(FU._fused is None, reason="reranker._fused i
 @needs_compiled
 def test_compiled_columns_are_the_fused_names() -> None:
     assert FU._fused.COLUMNS == FU.FUSED_NAMES
+    assert FU._fused.ROW_VALUES == RT.ROW_VALUES
+    assert FU._fused.SPANS == RT.SPANS
+
+
+@needs_compiled
+@pytest.mark.parametrize("what", ["COLUMNS", "ROW_VALUES", "SPANS"])
+def test_a_build_with_another_layout_is_refused(what: str) -> None:
+    # A build from another version of the lists (two columns swapped, or one added) must not
+    # be used: it would put values under the wrong names.
+    built = {k: getattr(FU._fused, k) for k in ("COLUMNS", "ROW_VALUES", "SPANS")}
+    FU.check_layout(types.SimpleNamespace(**built))  # the real build passes
+    swapped = list(built[what])
+    swapped[1], swapped[2] = swapped[2], swapped[1]
+    with pytest.raises(ImportError, match=rf"other {what} .*position 1.*pip install -e"):
+        FU.check_layout(types.SimpleNamespace(**{**built, what: tuple(swapped)}))
+    with pytest.raises(ImportError, match=rf"other {what} .*position {len(swapped)}"):
+        FU.check_layout(types.SimpleNamespace(**{**built, what: (*built[what], "extra")}))
 
 
 @needs_compiled
@@ -128,7 +144,7 @@ def test_compiled_columns_are_the_fused_names() -> None:
         max_size=8,
     ),
 )
-def test_compiled_equals_its_python_twin(
+def test_compiled_equals_the_functions_on_random_sets(
     tiny_index: Index, scores: list[float], words: int, picks: list[int], clue: list[str]
 ) -> None:
     # Ties, zeros, negative and single scores, repeated rows and clue words, ranks as the
@@ -143,13 +159,13 @@ def test_compiled_equals_its_python_twin(
         scores=np.array(scores),
         ranks=np.arange(1, n + 1, dtype=np.int64),
     )
-    np.testing.assert_allclose(FU._compiled(cs), FU._python(cs), rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(FU.compiled(cs), by_function(cs), rtol=1e-12, atol=1e-12)
 
 
 @needs_compiled
 def test_compiled_rejects_bad_input(tiny_index: Index) -> None:
     cs = make_set(tiny_index, CLUE, ["a1", "a2"], np.array([2.0, 1.0]))
-    FU._compiled(cs)  # fills the tables of both rows
+    FU.compiled(cs)  # fills the tables of both rows
     names, values = RT.name_table(tiny_index), RT.values_table(tiny_index)
     indptr, terms = tiny_index.article_term_lists()
 
@@ -209,7 +225,7 @@ def test_name_table_survives_growing(tiny_index: Index) -> None:
 def test_fused_equals_the_functions_without_the_compiled_part(
     tiny_index: Index, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    # The plain-Python twin, as on a machine where reranker._fused did not build.
+    # The functions themselves, as on a machine where reranker._fused did not build.
     monkeypatch.setattr(FU, "_fused", None)
     for ids, scores in ((["a3"], [3.0]), (["a4", "a1", "a2", "a5"], [1.0, 3.0, 3.0, 0.5])):
         assert_fused_equals_functions(make_set(tiny_index, CLUE, ids, np.array(scores)))
@@ -217,7 +233,7 @@ def test_fused_equals_the_functions_without_the_compiled_part(
 
 def test_no_candidates(tiny_index: Index) -> None:
     empty = make_set(tiny_index, CLUE, [], np.array([]))
-    assert FU.fused_builtins(empty).shape == (0, len(FU.FUSED_NAMES))
+    assert B.fused_builtins(empty).shape == (0, len(FU.FUSED_NAMES))
 
 
 def _fresh(demo_dir: Path) -> Index:
@@ -240,12 +256,13 @@ def test_names_are_analyzed_only_for_the_rows_asked_for(
     rows = sorted({h.row for h in hits})
     default_registry().matrix(candidate_set(index, clue, hits), default_registry().names)
     cache = F.index_cache(index)
-    assert np.flatnonzero(cache["row_values"][:, -1]).tolist() == rows
-    if compiled:  # the name table, not the strings, and only these rows
+    if compiled:  # the tables, not the strings, and only these rows
+        assert np.flatnonzero(cache["row_values"][:, -1]).tolist() == rows
         assert "row_names" not in cache
         spans = RT.name_table(index).spans
         assert np.flatnonzero(spans[:, 0]).tolist() == rows
-    else:
+    else:  # the functions read the index directly: no tables, the names of these rows
+        assert "row_values" not in cache and "name_table" not in cache
         assert [r for r, e in enumerate(cache["row_names"]) if e is not None] == rows
     # Reference: the analyzer applied to the stored names of each row, one by one.
     analyze = index.analyzer.tokens
@@ -272,7 +289,8 @@ def test_index_cache_goes_with_its_index(demo_dir: Path) -> None:
     key = id(index)
     clue = "This river town is known for its stone bridges"
     default_registry().matrix(candidate_set(index, clue, index.search(clue)), FU.FUSED_NAMES)
-    assert {"row_values", "body_terms"} <= set(F._CACHES[key])
+    tables = {"row_values", "name_table"} if FU._fused is not None else set()
+    assert {"body_terms", *tables} <= set(F._CACHES[key])
     del index  # nothing cached may keep the index alive
     gc.collect()
     assert key not in F._CACHES
@@ -285,14 +303,14 @@ def test_threads_filling_the_tables_at_once_get_the_same_features(demo_dir: Path
     lines = (demo_dir / "questions_test.jsonl").read_text(encoding="utf-8").splitlines()
     clues = [json.loads(line)["clue"] for line in lines[:80]]
     reference = _fresh(demo_dir)
-    expected = [FU.fused_builtins(candidate_set(reference, c, reference.search(c))) for c in clues]
+    expected = [B.fused_builtins(candidate_set(reference, c, reference.search(c))) for c in clues]
     index = _fresh(demo_dir)
     sets = [candidate_set(index, c, index.search(c)) for c in clues]
     old = sys.getswitchinterval()
     sys.setswitchinterval(1e-6)
     try:
         with ThreadPoolExecutor(4) as pool:
-            got = list(pool.map(FU.fused_builtins, sets))
+            got = list(pool.map(B.fused_builtins, sets))
     finally:
         sys.setswitchinterval(old)
     for g, e in zip(got, expected, strict=True):
