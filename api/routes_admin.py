@@ -10,7 +10,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Body, Depends, HTTPException
 
 from reranker import RerankerError
-from retriever import IndexFormatError, RetrieverError
+from retriever import IndexFormatError, RetrieverError, check_titles
 
 from . import schemas as s
 from .deps import Runtime, RuntimeDep, SettingsDep, field_error, require_admin
@@ -96,25 +96,14 @@ def put_entries(
             f"List should have at most {settings.max_entries_per_call} items (got {len(articles)})",
             "too_long",
         )
-    _check_titles(runtime, articles)
+    index = runtime.serving.current.index
+    # Checked against the served index before taking the admin lock; update_index checks again.
+    check_titles(zip(index.ids, index.titles, strict=True), articles)
     try:
         change = runtime.serving.put_entries([a.model_dump() for a in articles])
     except IndexFormatError as exc:
         raise _not_applied(runtime, "updating the index", exc) from exc
     return _change(change, runtime)
-
-
-def _check_titles(runtime: Runtime, articles: list[s.ArticleIn]) -> None:
-    """A title may not move to another id (the reader would name no list position for it)."""
-    index = runtime.serving.current.index
-    wanted = {a.title.strip(): i for i, a in enumerate(articles)}
-    new_ids = {a.id for a in articles}
-    for doc_id, title in zip(index.ids, index.titles, strict=True):
-        i = wanted.get(title)
-        if i is not None and doc_id not in new_ids:
-            raise field_error(
-                ("body", i, "title"), f"title {title!r} already belongs to article {doc_id!r}"
-            )
 
 
 @admin.delete("/entries/{doc_id:path}", response_model=s.ChangeOut, responses={**_404, **_409})

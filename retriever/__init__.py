@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
-from .build import build_index, update_index
+from .build import build_index, check_titles, update_index
 from .corpus import Article, ReadReport, read_articles, split_title
 from .errors import CorpusError, IndexFormatError, RetrieverError, UnknownDocumentError
 from .index import Document, Hit, Index, load_index
@@ -23,6 +23,7 @@ __all__ = [
     "RetrieverError",
     "UnknownDocumentError",
     "build_index",
+    "check_titles",
     "load_index",
     "read_articles",
     "split_title",

@@ -9,7 +9,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 import scipy.sparse as sp
@@ -211,6 +211,34 @@ def _existing_counts(index: Index, keep_rows: np.ndarray) -> tuple[sp.csr_matrix
     return tf[keep_rows], vocab
 
 
+class _Titled(Protocol):
+    @property
+    def id(self) -> str: ...
+    @property
+    def title(self) -> str: ...
+
+
+def check_titles(
+    owners: Iterable[tuple[str, str]], articles: Sequence[_Titled], *, remove: Iterable[str] = ()
+) -> None:
+    """Refuse a title that another article keeps: the name would no longer say which is meant.
+
+    owners: (id, title) of the articles there now; articles: those being added or replaced
+    (an id among them or in `remove` gives its title up). The CorpusError names the article
+    by its position among `articles`, from 1, and the field.
+    """
+    changed = set(remove) | {a.id for a in articles}
+    owner_of = {title: doc_id for doc_id, title in owners if doc_id not in changed}
+    for i, a in enumerate(articles, start=1):
+        owner = owner_of.get(a.title.strip())
+        if owner is not None and owner != a.id:
+            raise CorpusError(
+                f"title {a.title.strip()!r} already belongs to article {owner!r}",
+                line=i,
+                field="title",
+            )
+
+
 def update_index(
     index_dir: str | Path,
     add: str | Path | Iterable[Mapping[str, Any] | Article] = (),
@@ -236,13 +264,7 @@ def update_index(
     removed = set(remove) - set(new_by_id)
     existing = list(old._store.articles())
     changed = removed | set(new_by_id)
-    title_owner = {a.title: a.id for a in existing if a.id not in changed}
-    for a in new_articles:
-        if title_owner.get(a.title, a.id) != a.id:
-            owner = title_owner[a.title]
-            raise CorpusError(
-                f"title {a.title!r} already belongs to article {owner!r}", field="title"
-            )
+    check_titles(((a.id, a.title) for a in existing), new_articles, remove=remove)
     keep = [r for r, a in enumerate(existing) if a.id not in changed]
     counts, vocab = _existing_counts(old, np.asarray(keep, dtype=np.int64))
     old_ids = {a.id for a in existing}
