@@ -1,0 +1,166 @@
+"""Benchmark: what the word vectors add to an index (build time, memory, disk) and how fast
+dense search is beside the BM25 query, exact and approximate, with the approximate
+search's recall against the exact one.
+
+Not a test (no assertions on time). Run:
+    python tests/benchmarks/bench_dense.py --articles 100000
+It generates an invented corpus of that size with corpus_demo, then, each in its own
+process so peak memory is its own: builds the index without vectors, builds it again with
+the default vectors plus an HNSW graph (built whatever the corpus size, so both dense
+modes can be timed on one index), and times per clue, on held-out clues: the BM25 query
+(top k), the clue's vector, exact dense search (blocked product over the memory-mapped
+vectors) and approximate dense search (the graph's candidates rescored exactly). Ratios
+are against the BM25 query measured in the same process.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import json
+import resource
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from corpus_demo import generate_corpus
+from retriever import build_index, load_index
+
+
+def _peak_rss_mib() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # Linux: KiB
+
+
+def _pct(values: list[float], q: float) -> float:
+    values = sorted(values)
+    return values[min(len(values) - 1, int(q * len(values)))]
+
+
+def _folder_mib(folder: Path, names: tuple[str, ...]) -> float:
+    total = sum(p.stat().st_size for p in folder.iterdir() if p.name.startswith(names))
+    return total / 2**20
+
+
+def build(work: Path, with_vectors: bool) -> None:
+    """Child: build one index, print its build seconds and peak RSS as JSON."""
+    out = work / ("index-vec" if with_vectors else "index-bm25")
+    vectors: object = {"ann_min_articles": 1} if with_vectors else False
+    t = time.perf_counter()
+    build_index(work / "data" / "articles.jsonl", out, vectors=vectors)
+    seconds = time.perf_counter() - t
+    print(json.dumps({"seconds": seconds, "peak_rss_mib": _peak_rss_mib()}))
+
+
+def measure(work: Path, queries: int, k: int) -> None:
+    """Child: time the BM25 query and both dense searches per clue, and the graph's recall."""
+    index = load_index(work / "index-vec")
+    dense = index.dense
+    assert dense is not None and dense.approximate, "the index was built without its graph"
+    gc.collect()
+    gc.freeze()
+    with open(work / "data" / "questions_test.jsonl", encoding="utf-8") as fh:
+        clues = [json.loads(line)["clue"] for line in fh][:queries]
+    tokens = [index.analyzer.tokens(c) for c in clues]
+    qvecs = [dense.vectors.query_vector(*index.term_ids(t)) for t in tokens]
+    # One pass to warm caches and the graph, then the timed pass.
+    for t, q in zip(tokens, qvecs, strict=True):
+        index.search_tokens(t, k)
+        dense.search([q], k, exact=True)
+        dense.search([q], k)
+    bm25_ms, qvec_ms, exact_ms, ann_ms, recalls = [], [], [], [], []
+    for t, q in zip(tokens, qvecs, strict=True):
+        t0 = time.perf_counter()
+        index.search_tokens(t, k)
+        t1 = time.perf_counter()
+        dense.vectors.query_vector(*index.term_ids(t))
+        t2 = time.perf_counter()
+        [(exact_rows, _)] = dense.search([q], k, exact=True)
+        t3 = time.perf_counter()
+        [(ann_rows, _)] = dense.search([q], k)
+        t4 = time.perf_counter()
+        bm25_ms.append((t1 - t0) * 1e3)
+        qvec_ms.append((t2 - t1) * 1e3)
+        exact_ms.append((t3 - t2) * 1e3)
+        ann_ms.append((t4 - t3) * 1e3)
+        if exact_rows.size:
+            recalls.append(np.isin(exact_rows, ann_rows).mean())
+    rows = {
+        "BM25 query (top k)": bm25_ms,
+        "clue vector": qvec_ms,
+        "dense exact": exact_ms,
+        "dense approximate (HNSW + exact rescoring)": ann_ms,
+    }
+    base = statistics.fmean(bm25_ms)
+    print(f"\n{index.n_docs:,} articles, {len(clues)} clues, k={k}\n")
+    print("| step | p50 ms | p95 ms | mean ms | mean / BM25 query |")
+    print("|---|---|---|---|---|")
+    for name, ms in rows.items():
+        mean = statistics.fmean(ms)
+        print(
+            f"| {name} | {_pct(ms, 0.5):.3f} | {_pct(ms, 0.95):.3f} | {mean:.3f} "
+            f"| {mean / base:.2f} |"
+        )
+    print(
+        f"\napproximate recall@{k} against exact: {statistics.fmean(recalls):.4f} "
+        f"(min {min(recalls):.2f}, {len(recalls)} clues with a vector)"
+    )
+
+
+def _child(args: list[str]) -> str:
+    done = subprocess.run(
+        [sys.executable, __file__, *args], check=True, capture_output=True, text=True
+    )
+    return done.stdout
+
+
+def main() -> None:
+    """Parse options, build both indexes in a temporary folder, print markdown tables."""
+    ap = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
+    ap.add_argument("--articles", type=int, default=100_000, help="corpus size (default 100000)")
+    ap.add_argument("--queries", type=int, default=300, help="clues to time (default 300)")
+    ap.add_argument("--k", type=int, default=20, help="results per search (default 20)")
+    ap.add_argument(
+        "--work", type=Path, default=None, help="folder to keep the data in (default: temporary)"
+    )
+    ap.add_argument("--child", choices=["bm25", "vectors", "measure"], help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.child == "measure":
+        measure(args.work, args.queries, args.k)
+        return
+    if args.child is not None:
+        build(args.work, args.child == "vectors")
+        return
+    with tempfile.TemporaryDirectory() as tmp:
+        work = args.work or Path(tmp)
+        data = work / "data"
+        if not (data / "articles.jsonl").exists():
+            n_questions = max(2 * args.queries, 200)
+            generate_corpus(data, n_articles=args.articles, n_questions=n_questions, seed=11)
+        plain = json.loads(_child(["--child", "bm25", "--work", str(work)]).splitlines()[-1])
+        vec = json.loads(_child(["--child", "vectors", "--work", str(work)]).splitlines()[-1])
+        disk = _folder_mib(work / "index-vec", ("docvec", "wordvec", "termvec"))
+        print(f"\nbuild of {args.articles:,} articles, each in its own process\n")
+        print("| index | build s | build peak RSS MiB | vector files MiB |")
+        print("|---|---|---|---|")
+        print(f"| BM25 only | {plain['seconds']:.1f} | {plain['peak_rss_mib']:,.0f} | - |")
+        print(
+            f"| BM25 + vectors + HNSW graph | {vec['seconds']:.1f} | "
+            f"{vec['peak_rss_mib']:,.0f} | {disk:,.0f} |"
+        )
+        print(
+            f"\nadded by the vectors: build x{vec['seconds'] / plain['seconds']:.2f}, "
+            f"peak RSS x{vec['peak_rss_mib'] / plain['peak_rss_mib']:.2f}"
+        )
+        opts = ["--queries", str(args.queries), "--k", str(args.k)]
+        print(_child(["--child", "measure", "--work", str(work), *opts]))
+
+
+if __name__ == "__main__":
+    main()
