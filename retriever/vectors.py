@@ -1,10 +1,11 @@
 """Word vectors learned from the index's own analyzed text, and one vector per article.
 
 At build time gensim's word2vec (skip-gram) is trained on every article's analyzed tokens
-(title then text), seeded and on one worker thread so the same corpus and settings give the
-same vectors. Each word also gets a fixed weight, its IDF over the article texts at training
-time. An article's vector is the weighted sum of its words' vectors (each token counts once
-per occurrence), scaled to unit length; a clue's vector is made the same way, so a cosine is
+(title then text), seeded; on one thread (`threads=1`) the same corpus and settings give the
+same vectors, on more (the default uses up to 4 cores) they differ a little from build to
+build. Each word also gets a fixed weight, its IDF over the article texts at training time.
+An article's vector is the weighted sum of its words' vectors (each token counts once per
+occurrence), scaled to unit length; a clue's vector is made the same way, so a cosine is
 one dot product. Articles added later get vectors from the stored words and weights without
 training again, and an article's vector depends only on its own text.
 
@@ -28,6 +29,7 @@ from tqdm.auto import tqdm
 
 from . import columns, store
 from .analyzer import Analyzer
+from .counting import cores
 from .errors import IndexFormatError
 
 WORDVEC, WORDVEC_WEIGHT, WORDVEC_TERMS = "wordvec", "wordvec_weight", "wordvec_terms"
@@ -54,11 +56,16 @@ class VectorSettings:
     ann_m: int = 16  # HNSW graph degree
     ann_ef_construction: int = 100
     ann_ef_search: int = 256
+    # Training threads; 0: up to 4 of this machine's cores. Only 1 gives the very same
+    # vectors on every build (gensim's threads update shared weights in no fixed order).
+    threads: int = 0
 
     def __post_init__(self) -> None:
         for name in ("dim", "window", "epochs", "min_count", "negative", "ann_m"):
             if int(getattr(self, name)) < 1:
                 raise ValueError(f"vector setting {name} must be at least 1")
+        if int(self.threads) < 0:
+            raise ValueError("vector setting threads must be 0 (up to 4 cores) or more")
         if self.dtype not in ("float32", "float16"):
             raise ValueError(f"vector dtype must be float32 or float16, got {self.dtype!r}")
         if self.ann_min_articles < 1 or self.ann_ef_search < 1 or self.ann_ef_construction < 1:
@@ -134,7 +141,7 @@ def train(
             sg=1,
             epochs=settings.epochs,
             seed=settings.seed,
-            workers=1,  # one thread: the same corpus and seed give the same vectors
+            workers=settings.threads or min(cores(), 4),
             callbacks=[_Epochs()],
         )
     except RuntimeError as exc:  # gensim: "you must first build vocabulary before training"

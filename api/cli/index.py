@@ -69,6 +69,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         "--vector-dim", type=int, default=200, help="word vector dimensions (default 200)"
     )
     p.add_argument(
+        "--vector-threads",
+        type=int,
+        default=0,
+        help="threads training the word vectors (default 0: up to 4 cores); 1 gives the "
+        "same vectors on every build",
+    )
+    p.add_argument(
         "--skip-bad",
         action="store_true",
         help="skip bad lines (and report them) instead of stopping",
@@ -169,7 +176,9 @@ def cmd_build(args: argparse.Namespace) -> int:
         stemmer=None if args.stemmer == "none" else args.stemmer,
         stopwords=args.stopwords,
         strip_accents=not args.keep_accents,
-        vectors=False if args.no_vectors else {"dim": args.vector_dim},
+        vectors=False
+        if args.no_vectors
+        else {"dim": args.vector_dim, "threads": args.vector_threads},
         skip_bad=args.skip_bad,
         progress=show_progress(args.json),
         report=report,
