@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import logging
 import traceback
+from collections.abc import Callable
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Body, Depends, HTTPException
@@ -50,16 +51,22 @@ def _not_applied(runtime: Runtime, what: str, exc: Exception) -> HTTPException:
     )
 
 
+def _counted_reload(runtime: Runtime, what: str, swap: Callable[[], Change]) -> s.ChangeOut:
+    """Run a swap of the served files, counted in /metrics; any failure is a 409 and the old
+    files keep serving."""
+    try:
+        change = swap()
+    except Exception as exc:  # whatever fails to load is refused; the old pair keeps serving
+        runtime.metrics.reloads.labels("admin", "failed").inc()
+        raise _not_applied(runtime, what, exc) from exc
+    runtime.metrics.reloads.labels("admin", "ok").inc()
+    return _change(change, runtime)
+
+
 @admin.post("/reload", response_model=s.ChangeOut, responses=_409)
 def reload(runtime: RuntimeDep) -> s.ChangeOut:
     """Read the index folder and the model file again and swap them in (all workers follow)."""
-    try:
-        change = runtime.serving.reload()
-    except Exception as exc:  # whatever fails to load is refused; the old pair keeps serving
-        runtime.metrics.reloads.labels("admin", "failed").inc()
-        raise _not_applied(runtime, "reload", exc) from exc
-    runtime.metrics.reloads.labels("admin", "ok").inc()
-    return _change(change, runtime)
+    return _counted_reload(runtime, "reload", runtime.serving.reload)
 
 
 @admin.put("/model", response_model=s.ChangeOut, responses=_409)
@@ -72,13 +79,10 @@ def put_model(
     """Serve a new model: checked and loaded first, then written over the configured model
     file (temp file + rename) and taken up by every worker. A model that does not load is
     refused with 409 and changes nothing."""
-    try:
-        change = runtime.serving.put_model(json.dumps(artifact, indent=1))
-    except Exception as exc:
-        runtime.metrics.reloads.labels("admin", "failed").inc()
-        raise _not_applied(runtime, "loading the new model", exc) from exc
-    runtime.metrics.reloads.labels("admin", "ok").inc()
-    return _change(change, runtime)
+    text = json.dumps(artifact, indent=1)
+    return _counted_reload(
+        runtime, "loading the new model", lambda: runtime.serving.put_model(text)
+    )
 
 
 @admin.post("/entries", response_model=s.ChangeOut, responses=_409)

@@ -2,12 +2,11 @@
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
 import pytest
 
-from ..retriever.foldoc import require_foldoc
+from ..retriever.foldoc import require_dictionary, require_foldoc
 from .evaluate import evaluate, format_table
 from .jargon_clues import JARGON_DICT, JARGON_INDEX, mask, shares_run
 
@@ -15,12 +14,7 @@ from .jargon_clues import JARGON_DICT, JARGON_INDEX, mask, shares_run
 def require_jargon() -> None:
     """Skip when dict-jargon is not installed, unless HUNCHWISE_REQUIRE_FOLDOC=1."""
     require_foldoc()
-    if JARGON_DICT.exists() and JARGON_INDEX.exists():
-        return
-    reason = f"{JARGON_DICT} not found (apt-get install dict-jargon)"
-    if os.environ.get("HUNCHWISE_REQUIRE_FOLDOC") == "1":
-        pytest.fail(f"HUNCHWISE_REQUIRE_FOLDOC=1 but {reason}")
-    pytest.skip(reason)
+    require_dictionary((JARGON_DICT, JARGON_INDEX), "dict-jargon")
 
 
 def test_masking_and_overlap_check() -> None:

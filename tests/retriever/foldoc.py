@@ -34,14 +34,20 @@ def b64_number(text: str) -> int:
     return value
 
 
-def require_foldoc() -> None:
-    """Skip the calling test when FOLDOC is not installed, unless HUNCHWISE_REQUIRE_FOLDOC=1."""
-    if FOLDOC_DICT.exists() and FOLDOC_INDEX.exists():
+def require_dictionary(files: tuple[Path, Path], package: str) -> None:
+    """Skip the calling test when a Debian dictionary package's files are missing, unless
+    HUNCHWISE_REQUIRE_FOLDOC=1 (CI installs them, so there a missing file is a failure)."""
+    if all(f.exists() for f in files):
         return
-    reason = f"{FOLDOC_DICT} not found (apt-get install dict-foldoc)"
+    reason = f"{files[0]} not found (apt-get install {package})"
     if os.environ.get("HUNCHWISE_REQUIRE_FOLDOC") == "1":
         pytest.fail(f"HUNCHWISE_REQUIRE_FOLDOC=1 but {reason}")
     pytest.skip(reason)
+
+
+def require_foldoc() -> None:
+    """Skip the calling test when FOLDOC is not installed, unless HUNCHWISE_REQUIRE_FOLDOC=1."""
+    require_dictionary((FOLDOC_DICT, FOLDOC_INDEX), "dict-foldoc")
 
 
 def link_name(ref: str) -> str:
