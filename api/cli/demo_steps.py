@@ -74,7 +74,9 @@ def run_demo(
     out.mkdir(parents=True, exist_ok=True)
     data = prepare(out, articles=articles)
     _say(f"[1/3] indexing {data / 'articles.jsonl'} -> {out / 'index'}")
-    index = build_index(data / "articles.jsonl", out / "index", progress=progress)
+    # One training thread: the demo's vectors, and so its figures, are the same on every run.
+    vectors = {"threads": 1}
+    index = build_index(data / "articles.jsonl", out / "index", progress=progress, vectors=vectors)
     c = index.manifest["counts"]
     _say(
         f"      {c['articles']} articles, {c['terms']} terms, "
