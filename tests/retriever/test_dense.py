@@ -81,7 +81,7 @@ def records() -> list[dict[str, Any]]:
 def test_index_uses_the_graph_above_the_threshold(
     tmp_path: Path, records: list[dict[str, Any]]
 ) -> None:
-    opts = {"dim": 16, "epochs": 2, "seed": 3}
+    opts = {"dim": 16, "epochs": 2, "seed": 3, "threads": 1}
     big = build_index(records, tmp_path / "g", vectors={**opts, "ann_min_articles": 100})
     small = build_index(records, tmp_path / "e", vectors=opts)
     assert big.manifest["vectors"]["ann"]["library"] == "faiss"
