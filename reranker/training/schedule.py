@@ -23,7 +23,7 @@ from ..decision import Payoff, Prefixes
 from ..schedule import ThresholdSchedule
 
 # Thresholds tried; 1.0 never answers (probabilities are kept below 1).
-GRID = np.round(np.r_[np.linspace(0.05, 0.99, 95), 1.0], 6)
+GRID: np.ndarray = np.asarray(np.round(np.r_[np.linspace(0.05, 0.99, 95), 1.0], 6))
 MAX_BINS = 10  # more distinct shares than this are binned by tenths
 MAX_SWEEPS = 20
 
