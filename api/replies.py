@@ -13,6 +13,7 @@ from reranker import Ranking
 from . import schemas as s
 
 Action = Literal["answer", "wait", "abstain"]
+Basis = Literal["payoff", "share", "whole_clue", "single", "default"]
 
 
 def json_reply(model: BaseModel) -> Response:
@@ -51,6 +52,7 @@ def rank_result(request_id: str, r: Ranking, include_features: bool) -> s.RankRe
         id=d.doc_id,
         probability=d.probability,
         threshold=d.threshold,
+        threshold_basis=cast(Basis, d.basis),
         reason=d.reason,
     )
     return s.RankResult(

@@ -72,6 +72,7 @@ def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Res
         k=k,
         payoff=_payoff(body.payoff),
         complete=body.complete,
+        revealed=body.revealed,
         metadata=body.metadata,
         include_features=body.include_features or loaded.model is not None,
     )
@@ -99,6 +100,7 @@ def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Res
         k=k,
         model_k=set_k,
         complete=body.complete,
+        revealed=body.revealed,
         ranked_by=_ranked_by(loaded),
         note=NO_MODEL_NOTE if loaded.model is None else None,
         index_version=r.index_version,
@@ -131,6 +133,7 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
         k=k,
         payoff=_payoff(body.payoff),
         complete=body.complete,
+        revealed=body.revealed,
         include_features=body.include_features or loaded.model is not None,
     )
     ranked = time.perf_counter()
@@ -153,6 +156,7 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
         k=k,
         model_k=set_k,
         complete=body.complete,
+        revealed=body.revealed,
         ranked_by=_ranked_by(loaded),
         note=NO_MODEL_NOTE if loaded.model is None else None,
         index_version=loaded.index.version,

@@ -4,7 +4,14 @@ from __future__ import annotations
 
 from typing import Annotated, Any, Literal
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StringConstraints
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    model_validator,
+)
 
 from .jsonshape import json_shape
 
@@ -76,6 +83,19 @@ class _RankOptions(_Strict):
     complete: bool = Field(
         default=False, description="the clue is finished: no more words are coming"
     )
+    revealed: FiniteFloat | None = Field(
+        default=None,
+        gt=0,
+        le=1,
+        description="share of the whole clue these words are, in (0, 1]: picks the model's "
+        "threshold for that share; without it, the whole-clue threshold",
+    )
+
+    @model_validator(mode="after")
+    def _complete_is_all_revealed(self) -> _RankOptions:
+        if self.complete and self.revealed is not None and self.revealed != 1:
+            raise ValueError("revealed must be 1 (or left out) when complete is true")
+        return self
 
 
 class RankRequest(_RankOptions):
@@ -122,7 +142,12 @@ class DecisionOut(BaseModel):
     id: str | None = Field(description="chosen article id when action is 'answer'")
     probability: float | None
     threshold: float = Field(description="probability an answer had to reach")
-    reason: str
+    threshold_basis: Literal["payoff", "share", "whole_clue", "single", "default"] = Field(
+        description="where the threshold came from: the request's payoff, the model's "
+        "threshold for the share revealed, its whole-clue threshold (no share given), its "
+        "single threshold (a model without a schedule), or 0.5 without a model"
+    )
+    reason: str = Field(description="why this action, and why this threshold")
 
 
 class TimingOut(BaseModel):
@@ -158,6 +183,7 @@ class RankResponse(RankResult):
         "null without a model"
     )
     complete: bool
+    revealed: float | None = Field(default=None, description="the share revealed, as sent")
     ranked_by: Literal["probability", "bm25"]
     note: str | None = Field(default=None, description="set when no model is loaded")
     index_version: str
@@ -175,6 +201,7 @@ class BatchRankResponse(BaseModel):
         "null without a model"
     )
     complete: bool
+    revealed: float | None = Field(default=None, description="the share revealed, as sent")
     ranked_by: Literal["probability", "bm25"]
     note: str | None = None
     index_version: str

@@ -194,3 +194,40 @@ def _check_decision(c: _Checker, decision: Any) -> None:
             c.positive(payoff["reward"], "decision.payoff.reward")
         if "penalty" in payoff:
             c.number(payoff["penalty"], "decision.payoff.penalty", low=0.0)
+        if "reward_fall" in payoff:
+            c.number(payoff["reward_fall"], "decision.payoff.reward_fall", low=0.0, high=1.0)
+        if "cost_per_word" in payoff:
+            c.number(payoff["cost_per_word"], "decision.payoff.cost_per_word", low=0.0)
+    if "wait_threshold" in decision:
+        c.number(decision["wait_threshold"], "decision.wait_threshold", low=0.0, high=1.0)
+    _check_schedule(c, decision.get("schedule"))
+
+
+def _check_schedule(c: _Checker, schedule: Any) -> None:
+    """decision.schedule: share bins' upper edges (increasing, the last 1), one threshold each."""
+    if schedule is None:  # a model without one serves its single threshold
+        return
+    c.obj(schedule, "decision.schedule")
+    shares = c.get(schedule, "shares", "decision.schedule.shares", required=True)
+    if not isinstance(shares, list) or not shares:
+        raise c.fail("decision.schedule.shares", "a non-empty list", shares)
+    for i, v in enumerate(shares):
+        c.number(v, f"decision.schedule.shares[{i}]", low=1e-12, high=1.0)
+        if i and v <= shares[i - 1]:
+            raise c.fail(f"decision.schedule.shares[{i}]", "above the share before it", v)
+    if shares[-1] != 1.0:
+        raise c.fail(
+            f"decision.schedule.shares[{len(shares) - 1}]", "1 (the whole clue)", shares[-1]
+        )
+    thresholds = c.get(schedule, "thresholds", "decision.schedule.thresholds", required=True)
+    if not isinstance(thresholds, list) or len(thresholds) != len(shares):
+        raise c.fail(
+            "decision.schedule.thresholds",
+            f"a list of {len(shares)} numbers (one per share)",
+            thresholds,
+        )
+    for i, v in enumerate(thresholds):
+        c.number(v, f"decision.schedule.thresholds[{i}]", low=0.0, high=1.0)
+    none = schedule.get("none_abstain")
+    if none is not None:
+        c.number(none, "decision.schedule.none_abstain", low=0.0, high=1.0)

@@ -2,7 +2,8 @@
 
 `load_model` returns one frozen `ServedModel`, everything the ranking path needs: the plain
 linear model, the feature registry that computes its columns, the metadata columns, the
-decision threshold and the model's k (the candidate-set size its features were learned on).
+decision threshold (and the schedule of thresholds by share revealed) and the model's k
+(the candidate-set size its features were learned on).
 """
 
 from __future__ import annotations
@@ -27,6 +28,7 @@ from .features import (
 )
 from .model import LinearModel, read_model
 from .presence import PresenceModel, distribute, evidence
+from .schedule import ThresholdSchedule
 
 DEFAULT_K = 20  # candidates per clue when neither the caller nor a model says otherwise
 
@@ -43,6 +45,8 @@ class ServedModel:
     k: int
     presence: PresenceModel  # P(the answer is among the candidates), from clue-level evidence
     candidates: CandidatePolicy  # how the candidate sets it was trained on were made
+    # One threshold per share of the clue revealed; None (older files): `threshold` throughout.
+    schedule: ThresholdSchedule | None = None
 
     @property
     def version(self) -> str:
@@ -122,8 +126,17 @@ def serve(
         raise ModelMismatchError(
             f"{source}: metadata columns must come after the computed features"
         )
+    decision = data.get("decision") or {}
     if threshold is None:
-        threshold = (data.get("decision") or {}).get("threshold", 0.5)
+        threshold = decision.get("threshold", 0.5)
+    schedule = None
+    if decision.get("schedule") is not None:
+        try:  # read_model checked every field; a model built in memory is checked here
+            schedule = ThresholdSchedule.from_dict(decision["schedule"])
+        except (KeyError, TypeError, ValueError) as exc:
+            raise ModelFormatError(
+                f"{source}: decision.schedule is damaged ({exc}); retrain"
+            ) from exc
     return ServedModel(
         model=model,
         registry=registry,
@@ -133,6 +146,7 @@ def serve(
         k=_artifact_k(model, source),  # a damaged training.k fails here, not at a request
         presence=PresenceModel.from_dict(data.get("presence"), source=source),
         candidates=CandidatePolicy.from_dict(data.get("candidates"), source=source),
+        schedule=schedule,
     )
 
 

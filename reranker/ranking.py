@@ -12,7 +12,7 @@ import numpy as np
 from retriever import Hit, Index
 
 from .candidates import CandidatePolicy, find_candidates
-from .decision import Decision, Payoff, decide
+from .decision import Decision, Payoff, choose_threshold, decide
 from .features import DenseInfo, FeatureRegistry, candidate_set, default_registry
 from .loading import DEFAULT_K, ServedModel
 
@@ -77,6 +77,19 @@ def _ks(model: ServedModel | None, k: int | None) -> tuple[int, int]:
     return want, depth
 
 
+def check_revealed(revealed: float | None, complete: bool) -> float | None:
+    """The share revealed, checked: in (0, 1], and 1 (or not given) on a complete clue."""
+    if revealed is None:
+        return None
+    if isinstance(revealed, bool) or not 0.0 < revealed <= 1.0:
+        raise ValueError(f"revealed={revealed!r}: the share of the clue revealed must be in (0, 1]")
+    if complete and revealed != 1.0:
+        raise ValueError(
+            f"revealed={revealed}: a complete clue is all revealed; send 1 or leave it out"
+        )
+    return float(revealed)
+
+
 def _policy(model: ServedModel | None) -> CandidatePolicy:
     """The model's candidate sets; BM25's top k without a model."""
     return _BM25 if model is None else model.candidates
@@ -117,6 +130,7 @@ def _rank_hits(
     set_k: int | None,
     payoff: Payoff | None,
     complete: bool,
+    revealed: float | None,
     include_features: bool,
     metadata: dict[str, Any] | None,
     registry: FeatureRegistry | None,
@@ -155,13 +169,20 @@ def _rank_hits(
         )
         for j, i in enumerate(order)
     ]
-    if payoff is not None:
-        threshold = payoff.break_even
-    else:
-        threshold = model.threshold if model is not None else 0.5
+    schedule = None if model is None else model.schedule
+    threshold, basis, why = choose_threshold(
+        payoff, schedule, None if model is None else model.threshold, revealed
+    )
     top = cands[0] if cands else None
     decision = decide(
-        top.doc_id if top else None, top.probability if top else None, threshold, complete=complete
+        top.doc_id if top else None,
+        top.probability if top else None,
+        threshold,
+        complete=complete,
+        basis=basis,
+        why=why,
+        none_of_these=None if among is None else 1.0 - among,
+        none_abstain=None if schedule is None or payoff is not None else schedule.none_abstain,
     )
     return Ranking(
         clue=clue,
@@ -184,6 +205,7 @@ def rank_clue(
     k: int | None = None,
     payoff: Payoff | None = None,
     complete: bool = False,
+    revealed: float | None = None,
     include_features: bool = False,
     metadata: dict[str, Any] | None = None,
     registry: FeatureRegistry | None = None,
@@ -193,8 +215,11 @@ def rank_clue(
     With a model, the probabilities are computed over the model's own k candidates (what it
     was trained on) and the reply is the best `k` of them; k defaults to the model's and
     may not exceed it (ValueError). Without a model, k BM25 candidates (default 20).
+    revealed: the share of the whole clue these words are, in (0, 1]; it picks the model's
+    threshold for that share (the whole-clue one when not given).
     """
     keep, depth = _ks(model, k)
+    revealed = check_revealed(revealed, complete)
     # Analyzed once, for the search and the features (words: the clue-length features).
     analyzer = index.analyzer
     tokens, words = analyzer.tokens(clue), analyzer.words(clue)
@@ -211,6 +236,7 @@ def rank_clue(
         set_k=None if model is None else depth,
         payoff=payoff,
         complete=complete,
+        revealed=revealed,
         include_features=include_features,
         metadata=metadata,
         registry=registry,
@@ -225,11 +251,13 @@ def rank_clues(
     k: int | None = None,
     payoff: Payoff | None = None,
     complete: bool = False,
+    revealed: float | None = None,
     include_features: bool = False,
     registry: FeatureRegistry | None = None,
 ) -> list[Ranking]:
     """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many)."""
     keep, depth = _ks(model, k)
+    revealed = check_revealed(revealed, complete)
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]
     found = find_candidates(index, [t for t, _ in analyzed], depth, _policy(model))
@@ -246,6 +274,7 @@ def rank_clues(
             set_k=None if model is None else depth,
             payoff=payoff,
             complete=complete,
+            revealed=revealed,
             include_features=include_features,
             metadata=None,
             registry=registry,

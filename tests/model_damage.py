@@ -48,6 +48,17 @@ CASES: list[tuple[str, Damage, str]] = [
     ("negative penalty", _set("decision.payoff.penalty", -1.0), "decision.payoff.penalty"),
     ("number as feature name", _set("feature_names.0", 5), "feature_names"),
     ("nan in presence", _set("presence.coef.0", float("nan")), "presence.coef"),
+    (
+        "schedule threshold above 1",
+        _set("decision.schedule.thresholds.0", 1.5),
+        "decision.schedule.thresholds[0]",
+    ),
+    (
+        "schedule shares out of order",
+        _set("decision.schedule.shares.0", 1.0),
+        "decision.schedule.shares[1]",
+    ),
+    ("reward fall above 1", _set("decision.payoff.reward_fall", 2), "decision.payoff.reward_fall"),
 ]
 
 

@@ -17,7 +17,7 @@ from typing import Any
 import httpx
 
 from corpus_demo import DEFAULT_DATA_DIR, generate_corpus
-from reranker import load_model
+from reranker import Payoff, load_model
 from reranker.training import evaluate, train
 from retriever import build_index
 
@@ -36,16 +36,23 @@ class DemoRun:
     sample_response: dict[str, Any] = field(default_factory=dict)
 
 
+# An invented payoff that values speed: a right answer is worth 1 at the first word and half
+# of that after the whole clue; a wrong one costs 1; abstaining 0.
+DEMO_PAYOFF = Payoff(reward=1.0, penalty=1.0, reward_fall=0.5)
+
+
 def _say(message: str) -> None:
     print(message, flush=True)
 
 
-def sample_clue(data_dir: Path) -> str:
-    """The first few sentences of the first test clue: what an application sees mid-clue."""
+def sample_clue(data_dir: Path) -> tuple[str, float]:
+    """The first words of the first test clue, what an application sees mid-clue, and the
+    share of the clue they are."""
     with open(data_dir / "questions_test.jsonl", encoding="utf-8") as fh:
         clue = str(json.loads(fh.readline())["clue"])
     words = clue.split()
-    return " ".join(words[: max(8, int(len(words) * 0.6))])
+    kept = min(len(words), max(8, int(len(words) * 0.6)))
+    return " ".join(words[:kept]), round(kept / len(words), 3)
 
 
 def prepare(out: Path, *, articles: int | None = None, seed: int = 7) -> Path:
@@ -83,12 +90,21 @@ def run_demo(
         f"{index.manifest['build']['unresolved_links']} unresolved links"
     )
     _say(f"[2/3] training on {data / 'questions_train.jsonl'} -> {out / 'model.json'}")
-    res = train(index, [data / "questions_train.jsonl"], out / "model.json", progress=progress)
+    res = train(
+        index,
+        [data / "questions_train.jsonl"],
+        out / "model.json",
+        payoff=DEMO_PAYOFF,
+        progress=progress,
+    )
     a = res.artifact
     _say(
         f"      {a['training']['clues']} clues, {a['training']['rows']} candidate rows, "
         f"C={a['C']}, "
-        f"calibration={a['calibration']['method']}, threshold={a['decision']['threshold']:.2f}"
+        f"calibration={a['calibration']['method']}, threshold={a['decision']['threshold']:.2f}, "
+        "thresholds by share revealed "
+        + " / ".join(f"{t:.2f}" for t in a["decision"]["schedule"]["thresholds"])
+        + " (a right answer's reward falls by half across the clue)"
     )
     _say(f"[3/3] evaluating on held-out {data / 'questions_test.jsonl'} -> {out / 'report'}")
     model = load_model(out / "model.json", index=index)
@@ -156,8 +172,8 @@ def serve_and_ask(
                 if proc.poll() is not None or time.monotonic() > deadline:
                     raise RuntimeError(f"the server did not start (command: {' '.join(cmd)})")
                 time.sleep(0.2)
-            clue = sample_clue(data)
-            body: dict[str, Any] = {"clue": clue, "k": SHOWN}
+            clue, share = sample_clue(data)
+            body: dict[str, Any] = {"clue": clue, "k": SHOWN, "revealed": share}
             reply = client.post("/v1/rank", json=body)
             reply.raise_for_status()
         run.sample_request, run.sample_response = body, reply.json()

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     from reranker import Payoff
@@ -22,6 +22,28 @@ def _fractions(text: str) -> tuple[float, ...]:
     if not values or any(not 0 < v <= 1 for v in values):
         raise argparse.ArgumentTypeError("prefix fractions must be between 0 (exclusive) and 1")
     return values
+
+
+def _unit_share(text: str) -> float:
+    """A number between 0 and 1 (both included)."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not 0.0 <= value <= 1.0:
+        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1, got {text!r}")
+    return value
+
+
+def _at_least_zero(text: str) -> float:
+    """A finite number of at least 0."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not (0.0 <= value < float("inf")):
+        raise argparse.ArgumentTypeError(f"expected a number of at least 0, got {text!r}")
+    return value
 
 
 def _common(p: argparse.ArgumentParser) -> None:
@@ -54,6 +76,21 @@ def _common(p: argparse.ArgumentParser) -> None:
         "--reward", type=float, default=None, help="payoff of a right answer (default 1)"
     )
     p.add_argument("--penalty", type=float, default=None, help="cost of a wrong answer (default 1)")
+    p.add_argument(
+        "--reward-fall",
+        type=_unit_share,
+        default=None,
+        metavar="SHARE",
+        help="share of the reward lost by waiting for the whole clue, 0-1: a right answer after "
+        "share s of the clue earns reward * (1 - SHARE * s) (default 0)",
+    )
+    p.add_argument(
+        "--cost-per-word",
+        type=_at_least_zero,
+        default=None,
+        metavar="COST",
+        help="taken off a right answer's reward per word read, never below 0 (default 0)",
+    )
     p.add_argument(
         "--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping"
     )
@@ -106,6 +143,14 @@ def register(sub: argparse._SubParsersAction) -> None:
         default="auto",
         help="post-hoc calibration on held-out folds; auto keeps it only if log-loss improves",
     )
+    p.add_argument(
+        "--abstain-if-none",
+        type=_unit_share,
+        default=None,
+        metavar="SHARE",
+        help="on a complete clue, abstain when the 'none of these' share is at least SHARE, 0-1 "
+        "(default: never)",
+    )
     p.set_defaults(func=cmd_train)
 
     p = sub.add_parser("evaluate", help="score a model on held-out logs and write a report folder")
@@ -126,12 +171,26 @@ def register(sub: argparse._SubParsersAction) -> None:
 def _payoff(args: argparse.Namespace) -> Payoff | None:
     from reranker import Payoff
 
-    if args.reward is None and args.penalty is None:
+    given = (args.reward, args.penalty, args.reward_fall, args.cost_per_word)
+    if all(v is None for v in given):
         return None
     return Payoff(
         args.reward if args.reward is not None else 1.0,
         args.penalty if args.penalty is not None else 1.0,
+        args.reward_fall or 0.0,
+        args.cost_per_word or 0.0,
     )
+
+
+def _schedule_text(schedule: dict[str, Any]) -> str:
+    lows = [0.0, *schedule["shares"][:-1]]
+    parts = zip(lows, schedule["shares"], schedule["thresholds"], strict=True)
+    return ", ".join(f"{a:.0%}-{b:.0%}: {t:.2f}" for a, b, t in parts)
+
+
+def _rules_text(rules: dict[str, Any]) -> str:
+    names = (("schedule", "per share"), ("one_threshold", "one"), ("whole_clue", "wait"))
+    return ", ".join(f"{name} {rules[k]['mean_payoff']:.3f}" for k, name in names)
 
 
 def _candidates_text(c: dict[str, object]) -> str:
@@ -159,6 +218,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         metadata_features=args.meta_feature,
         calibration=args.calibration,
         payoff=_payoff(args),
+        none_abstain=args.abstain_if_none,
         skip_bad=args.skip_bad,
         progress=show_progress(args.json),
         candidates=args.candidates,
@@ -174,6 +234,8 @@ def cmd_train(args: argparse.Namespace) -> int:
         "cv_log_loss": min(a["cv_log_loss"].values()),
         "calibration": a["calibration"]["method"],
         "threshold": a["decision"]["threshold"],
+        "thresholds_by_share": _schedule_text(a["decision"]["schedule"]),
+        "mean_payoff_held_out": _rules_text(a["decision"]["rules"]),
         "candidates": _candidates_text(a["candidates"]),
         "recall_at_k": a["training"]["recall_at_k_full_clue"],
         "unresolved_answers": a["training"]["unresolved_count"],

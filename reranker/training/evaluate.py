@@ -22,6 +22,8 @@ from .estimator import Reranker
 from .fitting import grouped_folds, oof_proba
 from .logs import LogReport, read_logs
 from .report import summary_text, write_report
+from .report_speed import speed_text
+from .schedule import compare_rules, replay_rows
 from .table import PrefixPlan, TrainingTable, build_table
 from .train import prefix_tops, top_rows
 
@@ -163,12 +165,14 @@ def evaluate(
     if plan is None:
         pp = training.get("prefix_plan") or {}
         plan = PrefixPlan(tuple(pp.get("fractions", PrefixPlan().fractions)), pp.get("every_words"))
-    if payoff is None:  # the model's own payoff and its tuned threshold
-        pay = (art.get("decision") or {}).get("payoff") or {}
-        payoff = Payoff(float(pay.get("reward", 1.0)), float(pay.get("penalty", 1.0)))
+    decided = art.get("decision") or {}
+    if payoff is None:  # the model's own payoff and its tuned thresholds
+        pay = decided.get("payoff") or {}
+        payoff = Payoff(**{k: float(pay.get(k, v)) for k, v in Payoff().to_dict().items()})
         threshold = model.threshold
+        wait = float(decided.get("wait_threshold", threshold))
     else:  # a payoff given here is decided at its break-even point
-        threshold = payoff.break_even
+        threshold = wait = payoff.break_even
     report = LogReport()
     clues = read_logs(logs, skip_bad=skip_bad, report=report)
     table = build_table(
@@ -208,7 +212,11 @@ def evaluate(
     }
     tops = prefix_tops(table, prob)
     commits = simulate_commits(
-        tops["clue"], tops["fraction"], tops["prob"], tops["right"], threshold, payoff
+        tops["clue"], tops["fraction"], tops["prob"], tops["right"], threshold, payoff,
+        words=tops["words"],
+    )  # fmt: skip
+    speed = compare_rules(
+        replay_rows(tops), payoff, schedule=model.schedule, single=threshold, wait=wait
     )
     top_row = np.zeros(table.y.size, dtype=bool)
     top_row[top_rows(table.group, prob)] = True
@@ -219,9 +227,10 @@ def evaluate(
         "candidate": candidate,
         "decision": {
             "threshold": threshold,
-            "payoff": {"reward": payoff.reward, "penalty": payoff.penalty},
+            "payoff": payoff.to_dict(),
             **commits,
         },
+        "speed": speed,  # the schedule and two simple rules, under this payoff
         "data": {
             "logs": [str(p) for p in logs],
             "clues": table.n_clues,
@@ -255,7 +264,14 @@ def evaluate(
         unresolved=table.unresolved,
     )
     summary = summary_text(metrics, rows) + "\n\n" + decision_text(metrics["decision"], prefix_rows)
+    summary += "\n\n" + speed_text(speed)
     return Evaluation(metrics, rows, paths, summary)
+
+
+def _speed_terms(pay: dict[str, Any]) -> str:
+    fall, cost = pay.get("reward_fall", 0.0), pay.get("cost_per_word", 0.0)
+    out = f", reward falls {fall:.0%} across the clue" if fall else ""
+    return out + (f", {cost:g} off a right answer per word read" if cost else "")
 
 
 def decision_text(d: dict[str, Any], prefix_rows: list[dict[str, Any]]) -> str:
@@ -263,7 +279,7 @@ def decision_text(d: dict[str, Any], prefix_rows: list[dict[str, Any]]) -> str:
     pay = d["payoff"]
     lines = [
         f"decision (threshold {d['threshold']:.2f}, reward {pay['reward']:g}, "
-        f"penalty {pay['penalty']:g}, abstain 0)",
+        f"penalty {pay['penalty']:g}, abstain 0{_speed_terms(pay)})",
         f"  answer at the first prefix that clears it: commit rate {d['commit_rate']:.3f}, "
         f"accuracy {d['accuracy_when_committed']:.3f}, mean payoff {d['mean_payoff']:.3f}, "
         f"mean share of the clue seen {d['mean_fraction_at_commit']:.2f}",

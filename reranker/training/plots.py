@@ -171,3 +171,39 @@ def ablation_chart(rows: Sequence[dict[str, Any]], path: Any) -> Path:
     axes[0].invert_yaxis()
     fig.tight_layout()
     return _save(fig, path)
+
+
+def payoff_curve(
+    curve: Sequence[dict[str, Any]], rules: dict[str, Any], path: Any, title: str = ""
+) -> Path:
+    """Mean payoff per clue against the threshold, for one threshold at every prefix and for
+    waiting for the whole clue; the schedule's mean payoff as a horizontal line."""
+    if not curve:
+        raise ValueError("no payoff curve to plot")
+    x = np.array([float(r["threshold"]) for r in curve])
+    fig = Figure(figsize=(7, 4.5))
+    ax = fig.subplots()
+    ax.plot(x, [_num(r["one_threshold"]) for r in curve], "-", label="one threshold, any prefix")
+    ax.plot(x, [_num(r["whole_clue"]) for r in curve], "-", label="wait for the whole clue")
+    for key, label, color in (
+        ("one_threshold", "one threshold (chosen)", "#4c72b0"),
+        ("whole_clue", "whole clue (chosen)", "#dd8452"),
+    ):
+        rule = rules.get(key)
+        if rule:
+            ax.plot([rule["threshold"]], [rule["mean_payoff"]], "o", color=color, label=label)
+    if rules.get("schedule"):
+        ax.axhline(
+            rules["schedule"]["mean_payoff"],
+            color="#55a868",
+            linestyle="--",
+            label="threshold per share revealed",
+        )
+    ax.axhline(0.0, color="#9e9e9e", linewidth=0.8)
+    ax.set_xlabel("threshold")
+    ax.set_ylabel("mean payoff per clue")
+    if title:
+        ax.set_title(title)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    return _save(fig, path)

@@ -16,6 +16,7 @@ import numpy as np
 from retriever import atomicfile
 
 from . import plots
+from .report_speed import speed_section
 
 CANDIDATE_KEYS = ("accuracy", "roc_auc", "log_loss", "brier", "ece", "n", "positive_rate")
 CANDIDATE_MODELS = ("model", "bm25_only", "all_wrong")
@@ -254,8 +255,9 @@ def write_report(
             + _rows_html(unresolved, ("line", "file", "answer")),
         ),
     ]
+    sections.append(speed_section(metrics, out))
     for key, value in metrics.items():
-        if key not in ("clue", "candidate"):
+        if key not in ("clue", "candidate", "speed"):
             body = _kv_table(value) if isinstance(value, Mapping) else _kv_table({key: value})
             sid = "extra-" + re.sub(r"[^A-Za-z0-9_-]+", "-", str(key))
             sections.append(_section(sid, str(key), body))

@@ -22,6 +22,7 @@ from .fusion import tune_fusion
 from .logs import LogReport, read_logs
 from .measures import candidate_metrics, clue_log_loss, clue_metrics
 from .presence import fit_presence
+from .schedule import replay_rows, tune_schedule
 from .table import PrefixPlan, TrainingTable, build_table
 
 
@@ -56,15 +57,19 @@ def top_rows(group: np.ndarray, prob: np.ndarray) -> np.ndarray:
 
 
 def prefix_tops(table: TrainingTable, prob: np.ndarray) -> dict[str, np.ndarray]:
-    """Per clue prefix: clue id, fraction revealed, top probability, top is right."""
+    """Per clue prefix: clue id, fraction revealed, words read, top probability, top is right,
+    and the "none of these" share (1 minus the prefix's candidates' probabilities)."""
     g, p, right = top_of_groups(table.group, prob, table.y)
     rows = np.searchsorted(table.group, g)  # groups are numbered in table order, so sorted
+    among = np.add.reduceat(prob, rows) if rows.size else np.zeros(0)
     return {
         "group": g,
         "clue": table.clue_id[rows],
         "fraction": table.fraction[rows],
+        "words": table.words[rows],
         "prob": p,
         "right": right,
+        "none": np.clip(1.0 - among, 0.0, 1.0),
     }
 
 
@@ -80,6 +85,7 @@ def train(
     metadata_features: Sequence[str] = (),
     calibration: str = "auto",
     payoff: Payoff | None = None,
+    none_abstain: float | None = None,
     skip_bad: bool = False,
     progress: bool = False,
     registry: FeatureRegistry | None = None,
@@ -128,10 +134,10 @@ def train(
     # in proportion to the pointwise probabilities. Decisions are tuned on that distribution.
     presence, q_oof = fit_presence(table, estimator.oof_proba_)
     tops = prefix_tops(table, q_oof)
-    tuned = tune_threshold(tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff)
-    at_break_even = simulate_commits(
-        tops["clue"], tops["fraction"], tops["prob"], tops["right"], payoff.break_even, payoff
-    )
+    held_out = (tops["clue"], tops["fraction"], tops["prob"], tops["right"])
+    tuned = tune_threshold(*held_out, payoff, words=tops["words"])
+    at_break_even = simulate_commits(*held_out, payoff.break_even, payoff, words=tops["words"])
+    schedule, rules = tune_schedule(replay_rows(tops), payoff, none_abstain=none_abstain)
     notes = []
     if table.unresolved:
         notes.append(
@@ -170,9 +176,14 @@ def train(
         decision={
             "threshold": tuned["threshold"],
             "break_even": payoff.break_even,
-            "payoff": {"reward": payoff.reward, "penalty": payoff.penalty},
+            "payoff": payoff.to_dict(),
             "tuned_on_held_out": tuned,
             "at_break_even": at_break_even,
+            # One threshold per share revealed (serving picks by the request's share), and
+            # the three rules' figures on the same cross-fitted held-out prefixes.
+            "schedule": schedule.to_dict(),
+            "wait_threshold": rules["whole_clue"]["threshold"],
+            "rules": rules,
         },
     )
     # Ready to serve as load_model would leave it, so rank_clue and evaluate take it directly.

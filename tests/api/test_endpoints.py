@@ -307,3 +307,43 @@ def test_feedback_naming_no_article_says_ids_titles_and_aliases_are_taken(client
     [err] = r.json()["detail"]
     assert err["loc"] == ["body", "answer"]
     assert "no article with id, title or alias 'Nothing Called This'" in err["msg"]
+
+
+def test_revealed_share_selects_the_schedule_threshold(
+    make_client: Any, model_path: Path, tmp_path: Path, test_questions: list[dict[str, Any]]
+) -> None:
+    # A copy of the session model with a schedule of distinct thresholds, so each share
+    # revealed names its own: (0, 0.2] 0.95, (0.2, 0.4] 0.85, ..., (0.8, 1] 0.55.
+    art = json.loads(model_path.read_text(encoding="utf-8"))
+    thresholds = [0.95, 0.85, 0.75, 0.65, 0.55]
+    art["decision"]["schedule"] = {
+        "shares": [0.2, 0.4, 0.6, 0.8, 1.0],
+        "thresholds": thresholds,
+        "none_abstain": None,
+    }
+    scheduled = tmp_path / "scheduled.json"
+    scheduled.write_text(json.dumps(art), encoding="utf-8")
+    clue = test_questions[0]["clue"]
+    with make_client(model_path=scheduled) as c:
+        for revealed, expected in [(0.1, 0.95), (0.2, 0.95), (0.3, 0.85), (0.75, 0.65), (1, 0.55)]:
+            body = c.post("/v1/rank", json={"clue": clue, "revealed": revealed}).json()
+            d = body["decision"]
+            assert (d["threshold"], d["threshold_basis"]) == (expected, "share"), body
+            assert body["revealed"] == revealed
+            assert f"(revealed {revealed:.2f})" in d["reason"]
+            top = body["candidates"][0]["probability"]
+            assert d["action"] == ("answer" if top >= expected else "wait")
+        d = c.post("/v1/rank", json={"clue": clue}).json()["decision"]
+        assert (d["threshold"], d["threshold_basis"]) == (0.55, "whole_clue")
+        batch = c.post("/v1/rank/batch", json={"clues": [clue, clue], "revealed": 0.5}).json()
+        assert [r["decision"]["threshold"] for r in batch["results"]] == [0.75, 0.75]
+        # a payoff in the request still wins over the schedule
+        d = c.post(
+            "/v1/rank", json={"clue": clue, "revealed": 0.3, "payoff": {"reward": 1, "penalty": 3}}
+        ).json()["decision"]
+        assert (d["threshold"], d["threshold_basis"]) == (0.75, "payoff")
+        for bad in ({"revealed": 0}, {"revealed": 1.5}, {"revealed": "0.5"}):
+            r = c.post("/v1/rank", json={"clue": clue, **bad})
+            assert r.status_code == 422 and "revealed" in r.text, r.text
+        r = c.post("/v1/rank", json={"clue": clue, "revealed": 0.5, "complete": True})
+        assert r.status_code == 422 and "revealed must be 1" in r.text, r.text

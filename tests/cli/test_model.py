@@ -34,6 +34,7 @@ def test_train_then_evaluate(world: World, tmp_path: Path) -> None:
     out = hunchwise(
         "train", "--index", world.index.path, "--log", world.train_log, "--out", model,
         "--feature", "userfeatures:title_chars", "--reward", "1", "--penalty", "3", "--json",
+        "--reward-fall", "0.5", "--cost-per-word", "0.01", "--abstain-if-none", "0.9",
     )  # fmt: skip
     assert out.returncode == 0, out.stderr
     summary = json.loads(out.stdout)
@@ -42,6 +43,9 @@ def test_train_then_evaluate(world: World, tmp_path: Path) -> None:
     assert summary["unresolved_answers"] == world.n_unresolved_train
     assert "user:title_chars" in art["feature_names"]
     assert art["decision"]["break_even"] == 0.75
+    pay = art["decision"]["payoff"]
+    assert (pay["reward_fall"], pay["cost_per_word"]) == (0.5, 0.01)
+    assert art["decision"]["schedule"]["none_abstain"] == 0.9
 
     report = tmp_path / "report"
     out = hunchwise(
@@ -54,6 +58,10 @@ def test_train_then_evaluate(world: World, tmp_path: Path) -> None:
     assert list(report.glob("*.png"))
     metrics = json.loads((report / "metrics.json").read_text())
     assert metrics["data"]["model_version"] == art["model_version"]
+    # the model's payoff (speed included) scores the three rules; the curve is drawn
+    assert metrics["speed"]["payoff"] == pay
+    assert set(metrics["speed"]["rules"]) == {"schedule", "one_threshold", "whole_clue"}
+    assert "answering early" in out.stdout and (report / "payoff.png").exists()
 
     # Without the user feature the model cannot load: one-line error naming the feature.
     out = hunchwise(
@@ -172,6 +180,27 @@ def test_bad_options_and_missing_files(world: World, tmp_path: Path) -> None:
     assert out.returncode != 0 and out.stderr.count("\n") == 1
     assert "-k 5" in out.stderr and "model's k (20)" in out.stderr
     assert not (tmp_path / "rep").exists()
+
+
+@pytest.mark.parametrize(
+    ("option", "value", "message"),
+    [
+        ("--reward-fall", "1.5", "expected a number between 0 and 1, got '1.5'"),
+        ("--reward-fall", "half", "expected a number between 0 and 1, got 'half'"),
+        ("--cost-per-word", "-0.1", "expected a number of at least 0, got '-0.1'"),
+        ("--cost-per-word", "inf", "expected a number of at least 0, got 'inf'"),
+        ("--abstain-if-none", "nan", "expected a number between 0 and 1, got 'nan'"),
+    ],
+)
+def test_speed_options_are_checked_before_anything_runs(
+    tmp_path: Path, option: str, value: str, message: str
+) -> None:
+    out = hunchwise(
+        "train", "--index", tmp_path / "idx", "--log", tmp_path / "log.jsonl",
+        "--out", tmp_path / "m.json", option, value,
+    )  # fmt: skip
+    assert out.returncode == 2 and f"argument {option}: {message}" in out.stderr, out.stderr
+    assert not (tmp_path / "m.json").exists()
 
 
 @pytest.mark.slow

@@ -10,7 +10,7 @@ from typing import Any
 
 import pytest
 
-from reranker import ModelFormatError, load_model, read_model, save_model
+from reranker import ModelFormatError, load_model, rank_clue, read_model, save_model
 from reranker.training.train import TrainResult
 from tests.model_damage import CASES, Damage, damaged
 from tests.reranker.conftest import REPO, World
@@ -82,3 +82,29 @@ def test_saved_version_matches_a_reread(
     assert read_model(tmp_path / "m.json").version == written["model_version"]
     other = save_model(model, tmp_path / "n.json", decision={"threshold": 0.4})
     assert other["model_version"] != written["model_version"]
+
+
+def test_the_schedule_round_trips_and_a_file_without_one_keeps_its_single_threshold(
+    world: World, world_trained: TrainResult, artifact: dict[str, Any], tmp_path: Path
+) -> None:
+    decision = artifact["decision"]
+    served = load_model(_write(tmp_path / "with.json", artifact))
+    assert served.schedule is not None
+    assert served.schedule.to_dict() == decision["schedule"]
+    assert served.schedule == world_trained.model.schedule
+    assert decision["rules"]["schedule"]["thresholds"] == decision["schedule"]["thresholds"]
+    clue = "This song is known for"
+    r = rank_clue(world.index, served, clue, revealed=0.2)
+    assert (r.decision.threshold, r.decision.basis) == (served.schedule.span(0.2)[0], "share")
+    # An older file: no schedule, so every request gets the single threshold.
+    old = {k: v for k, v in artifact.items()}
+    old["decision"] = {k: v for k, v in decision.items() if k != "schedule"}
+    plain = load_model(_write(tmp_path / "without.json", old))
+    assert plain.schedule is None
+    r = rank_clue(world.index, plain, clue, revealed=0.2)
+    assert (r.decision.threshold, r.decision.basis) == (decision["threshold"], "single")
+
+
+def _write(path: Path, data: dict[str, Any]) -> Path:
+    path.write_text(json.dumps(data), encoding="utf-8")
+    return path

@@ -8,7 +8,16 @@ import numpy as np
 import pytest
 
 from reranker import Payoff, decide
-from reranker.decision import ABSTAIN, ANSWER, WAIT, simulate_commits, tune_threshold
+from reranker.decision import (
+    ABSTAIN,
+    ANSWER,
+    WAIT,
+    Prefixes,
+    choose_threshold,
+    simulate_commits,
+    tune_threshold,
+)
+from reranker.schedule import ThresholdSchedule
 
 
 def test_break_even_worked_example() -> None:
@@ -134,3 +143,109 @@ def test_tune_threshold_matches_brute_force_on_random_prefixes() -> None:
     brute = [_brute_force_payoff(rows, float(t), pay) for t in grid]
     assert best["mean_payoff"] == pytest.approx(max(brute))
     assert best["threshold"] == pytest.approx(grid[int(np.argmax(brute))])
+
+
+# -- valuing an early answer --------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"reward_fall": 1.5}, "reward_fall must be between 0 and 1"),
+        ({"reward_fall": -0.1}, "reward_fall must be between 0 and 1"),
+        ({"reward_fall": float("nan")}, "reward_fall must be between 0 and 1"),
+        ({"cost_per_word": -1.0}, "cost_per_word must be a number >= 0"),
+        ({"cost_per_word": float("inf")}, "cost_per_word must be a number >= 0"),
+    ],
+)
+def test_speed_payoff_validation(kwargs: dict[str, float], message: str) -> None:
+    with pytest.raises(ValueError, match=message):
+        Payoff(1, 1, **kwargs)
+
+
+def test_right_value_falls_with_the_share_and_the_words() -> None:
+    # reward 2, falling by half across the clue: 2 * (1 - 0.5 * s) = 2, 1.5, 1 at s = 0, 0.5, 1.
+    pay = Payoff(2, 1, reward_fall=0.5)
+    assert pay.right_value([0.0, 0.5, 1.0]).tolist() == [2.0, 1.5, 1.0]
+    # and 0.1 off per word read: at s = 0.5 after 4 words 1.5 - 0.4 = 1.1; never below 0.
+    pay = Payoff(2, 1, reward_fall=0.5, cost_per_word=0.1)
+    assert pay.right_value([0.5, 1.0], [4, 30]).tolist() == pytest.approx([1.1, 0.0])
+    with pytest.raises(ValueError, match="needs the words read"):
+        pay.right_value(0.5)
+    assert not Payoff().values_speed and pay.values_speed
+
+
+# Three clues, two prefixes each: (clue, share, words read, top probability, top right, none).
+SPEED_ROWS = [
+    (1, 0.5, 4, 0.70, 1, 0.20),
+    (1, 1.0, 8, 0.90, 1, 0.05),
+    (2, 0.5, 5, 0.60, 0, 0.30),
+    (2, 1.0, 10, 0.80, 1, 0.15),
+    (3, 0.5, 3, 0.20, 0, 0.50),
+    (3, 1.0, 6, 0.40, 0, 0.60),
+]
+
+
+def _speed_prefixes() -> Prefixes:
+    rows = list(SPEED_ROWS)
+    np.random.default_rng(1).shuffle(rows)  # input order must not matter
+    c, f, w, p, r, n = (np.array(v) for v in zip(*rows, strict=True))
+    return Prefixes(c, f, p, r.astype(bool), words=w, none=n)
+
+
+def test_replay_of_a_schedule_by_hand() -> None:
+    rows = _speed_prefixes()
+    # Reward 1 falling by half across the clue: a right answer earns 0.75 at half the clue,
+    # 0.5 on the whole clue; a wrong one costs 1.
+    pay = Payoff(1, 1, reward_fall=0.5)
+    # Schedule: 0.65 up to half the clue, 0.75 after.
+    #   clue 1: 0.70 >= 0.65 at 0.5, right             -> +0.75
+    #   clue 2: 0.60 < 0.65; 0.80 >= 0.75 at 1.0, right -> +0.5
+    #   clue 3: 0.20, 0.40: never                       -> 0
+    # mean (0.75 + 0.5 + 0) / 3; answered 2/3, both right, at shares 0.5 and 1.0.
+    sched = ThresholdSchedule((0.5, 1.0), (0.65, 0.75))
+    res = rows.play(sched.per_row(rows.fraction), pay)
+    assert res["mean_payoff"] == pytest.approx(1.25 / 3)
+    assert res["commit_rate"] == pytest.approx(2 / 3)
+    assert res["accuracy_when_committed"] == 1.0
+    assert res["mean_fraction_at_commit"] == pytest.approx(0.75)
+    # One threshold 0.55 everywhere: clue 1 +0.75 at 0.5, clue 2 answers at 0.5, wrong: -1.
+    assert rows.play(0.55, pay)["mean_payoff"] == pytest.approx(-0.25 / 3)
+    # Waiting for the whole clue at 0.75: clue 1 +0.5, clue 2 +0.5, clue 3 0.
+    assert rows.play(0.75, pay, whole_clue_only=True)["mean_payoff"] == pytest.approx(1 / 3)
+    # 0.05 off per word as well: clue 1 earns 0.75 - 4 * 0.05 = 0.55, clue 2 0.5 - 10 * 0.05 = 0.
+    costly = Payoff(1, 1, reward_fall=0.5, cost_per_word=0.05)
+    assert rows.play(sched.per_row(rows.fraction), costly)["mean_payoff"] == pytest.approx(0.55 / 3)
+    # Abstaining on the whole clue when none of these >= 0.1: clue 2 (none 0.15) is dropped.
+    res = rows.play(0.75, pay, whole_clue_only=True, none_abstain=0.1)
+    assert res["mean_payoff"] == pytest.approx(0.5 / 3)
+
+
+def test_schedule_bins_and_validation() -> None:
+    s = ThresholdSchedule((0.2, 0.4, 1.0), (0.9, 0.8, 0.6))
+    # (0, 0.2] -> bin 0, (0.2, 0.4] -> bin 1, (0.4, 1] -> bin 2; float noise at an edge stays
+    assert s.bin_of([0.05, 0.2, 0.2 + 1e-12, 0.21, 0.4, 0.7, 1.0]).tolist() == [0, 0, 0, 1, 1, 2, 2]
+    assert s.span(0.3) == (0.8, 0.2, 0.4)
+    assert ThresholdSchedule.from_dict(s.to_dict()) == s
+    for shares, thresholds, message in [
+        ((0.5, 0.9), (0.5, 0.5), "last schedule share must be 1"),
+        ((0.5, 0.5, 1.0), (0.5, 0.5, 0.5), "must increase"),
+        ((0.5, 1.0), (0.5,), "one threshold per share bin"),
+        ((0.5, 1.0), (0.5, 1.2), "between 0 and 1"),
+    ]:
+        with pytest.raises(ValueError, match=message):
+            ThresholdSchedule(shares, thresholds)
+
+
+def test_choose_threshold_says_why() -> None:
+    s = ThresholdSchedule((0.5, 1.0), (0.9, 0.6))
+    assert choose_threshold(None, s, 0.7, 0.3)[:2] == (0.9, "share")
+    assert "0%-50% of the clue revealed" in choose_threshold(None, s, 0.7, 0.3)[2]
+    assert choose_threshold(None, s, 0.7, 0.8)[:2] == (0.6, "share")
+    assert choose_threshold(None, s, 0.7, None)[:2] == (0.6, "whole_clue")
+    assert choose_threshold(None, None, 0.7, 0.3)[:2] == (0.7, "single")
+    assert choose_threshold(Payoff(1, 3), s, 0.7, 0.3)[:2] == (0.75, "payoff")
+    assert choose_threshold(None, None, None, None)[:2] == (0.5, "default")
+    d = decide("a1", 0.95, 0.6, complete=True, none_of_these=0.04, none_abstain=0.03)
+    assert d.action == ABSTAIN and "none of these 0.040 >= 0.030" in d.reason
+    assert decide("a1", 0.95, 0.6, none_of_these=0.04, none_abstain=0.03).action == ANSWER

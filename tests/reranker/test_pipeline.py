@@ -81,7 +81,9 @@ def test_decision_uses_the_tuned_threshold_or_a_given_payoff(
     world: World, model: ServedModel, world_trained: TrainResult, clues: list[str]
 ) -> None:
     r = rank_clue(world.index, model, clues[1])
-    assert r.decision.threshold == world_trained.artifact["decision"]["threshold"]
+    # no share revealed given: the schedule's whole-clue threshold
+    whole = world_trained.artifact["decision"]["schedule"]["thresholds"][-1]
+    assert (r.decision.threshold, r.decision.basis) == (whole, "whole_clue")
     top = r.candidates[0]
     expected = "answer" if (top.probability or 0) >= r.decision.threshold else "wait"
     assert r.decision.action == expected

@@ -61,7 +61,8 @@ def test_unresolved_answers_are_counted_and_listed(
 
 def test_threshold_is_tuned_on_out_of_fold_probabilities(world_trained: TrainResult) -> None:
     d = world_trained.artifact["decision"]
-    assert d["break_even"] == 0.5 and d["payoff"] == {"reward": 1.0, "penalty": 1.0}
+    assert d["break_even"] == 0.5
+    assert d["payoff"] == {"reward": 1.0, "penalty": 1.0, "reward_fall": 0.0, "cost_per_word": 0.0}
     tops = prefix_tops(world_trained.table, world_trained.oof_distribution)
     again = tune_threshold(tops["clue"], tops["fraction"], tops["prob"], tops["right"], Payoff())
     assert d["threshold"] == again["threshold"] == d["tuned_on_held_out"]["threshold"]
@@ -100,7 +101,7 @@ def test_options_reach_the_artifact(world: World, tmp_path: Path) -> None:
     assert art["training"]["k"] == 5
     assert art["training"]["prefix_plan"]["every_words"] == 3
     assert art["decision"]["break_even"] == 0.75
-    assert art["decision"]["payoff"] == {"reward": 1.0, "penalty": 3.0}
+    assert art["decision"]["payoff"]["penalty"] == 3.0
     # every prefix keeps at most k candidates
     assert np.bincount(res.table.group).max() <= 5
     # the prefixes are every 3 words, plus the whole clue

@@ -1,0 +1,97 @@
+"""The report's "answering early" section: a threshold per share revealed against two rules.
+
+`speed_section` returns an HTML fragment (and draws the payoff curve beside the report);
+`speed_text` the same figures for the terminal. Both read `metrics["speed"]` as
+`reranker.training.schedule.compare_rules` wrote it.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+from pathlib import Path
+from typing import Any
+
+from . import plots
+
+RULE_NAMES = {
+    "schedule": "threshold per share revealed",
+    "one_threshold": "answer at the first prefix that clears one threshold",
+    "whole_clue": "always wait for the whole clue",
+}
+COLUMNS = ("mean payoff", "answered", "right when answered", "share seen when answering")
+
+
+def payoff_words(pay: dict[str, Any]) -> str:
+    """The payoff in words: reward, penalty and what waiting costs."""
+    text = f"reward {pay.get('reward', 1):g}, penalty {pay.get('penalty', 1):g}, abstain 0"
+    fall, cost = pay.get("reward_fall", 0.0), pay.get("cost_per_word", 0.0)
+    if fall:
+        text += f"; the reward falls by {fall:.0%} across the clue"
+    if cost:
+        text += f"; a right answer loses {cost:g} per word read"
+    if not (fall or cost):
+        text += "; an early answer is worth no more than a late one"
+    return text
+
+
+def _thresholds(rule: dict[str, Any]) -> str:
+    if "thresholds" in rule:
+        lo = [0.0, *rule["shares"][:-1]]
+        parts = [
+            f"{a:.0%}-{b:.0%}: {t:.2f}"
+            for a, b, t in zip(lo, rule["shares"], rule["thresholds"], strict=True)
+        ]
+        if rule.get("none_abstain") is not None:
+            parts.append(f"abstain if none of these >= {rule['none_abstain']:.2f}")
+        return "; ".join(parts)
+    return f"{rule['threshold']:.2f}"
+
+
+def _cells(rule: dict[str, Any]) -> list[str]:
+    return [
+        f"{rule['mean_payoff']:.3f}",
+        f"{rule['commit_rate']:.1%}",
+        f"{rule['accuracy_when_committed']:.1%}",
+        f"{rule['mean_fraction_at_commit']:.0%}",
+    ]
+
+
+def speed_section(metrics: dict[str, Any], out_dir: Any) -> str:
+    """The section as HTML ("" when the metrics hold no speed figures); draws payoff.png."""
+    speed = metrics.get("speed")
+    if not speed:
+        return ""
+    rules = speed["rules"]
+    png = plots.payoff_curve(speed["curve"], rules, Path(out_dir) / "payoff.png")
+    rows = []
+    for key, name in RULE_NAMES.items():
+        if key in rules:
+            cells = [name, *_cells(rules[key]), _thresholds(rules[key])]
+            rows.append("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in cells) + "</tr>")
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in ("rule", *COLUMNS, "thresholds"))
+    image = base64.b64encode(png.read_bytes()).decode("ascii")
+    intro = (
+        f"Payoff: {payoff_words(speed['payoff'])}. Each rule replays every clue prefix by "
+        "prefix; a clue never answered scores 0. Mean payoff is per clue."
+    )
+    return (
+        '<section id="answering-early"><h2>Answering early</h2>'
+        f"<p>{html.escape(intro)}</p><table><tr>{head}</tr>{''.join(rows)}</table>"
+        f'<img src="data:image/png;base64,{image}" alt="mean payoff against the threshold">'
+        "</section>"
+    )
+
+
+def speed_text(speed: dict[str, Any]) -> str:
+    """Terminal lines: the three rules' mean payoffs under the payoff."""
+    lines = [f"answering early ({payoff_words(speed['payoff'])})"]
+    for key, name in RULE_NAMES.items():
+        rule = speed["rules"].get(key)
+        if rule:
+            lines.append(
+                f"  {name + ':':<54} mean payoff {rule['mean_payoff']:.3f}, answered "
+                f"{rule['commit_rate']:.1%}, right {rule['accuracy_when_committed']:.1%}, "
+                f"share seen {rule['mean_fraction_at_commit']:.0%}; thresholds {_thresholds(rule)}"
+            )
+    return "\n".join(lines)
