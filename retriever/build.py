@@ -85,8 +85,7 @@ def _write(
         "seconds": round(time.perf_counter() - started, 3),
     }
     created = datetime.now(UTC).isoformat(timespec="seconds")
-    stamp = [checksum, params.to_dict(), analyzer.config.to_dict()]
-    version = hashlib.sha256(json.dumps(stamp, sort_keys=True).encode()).hexdigest()[:12]
+    version = index_version(checksum, params, analyzer.config)
     manifest = {
         "format": store.FORMAT_NAME,
         "format_version": store.FORMAT_VERSION,
@@ -110,6 +109,12 @@ def _write(
     build_info["bytes_on_disk"] = store.folder_size(tmp)
     # Written last: its presence marks a whole index.
     store.write_json(tmp / store.MANIFEST, manifest)
+
+
+def index_version(checksum: str, params: bm25.BM25Params, analyzer: AnalyzerConfig) -> str:
+    """Short identifier of an index's content and parameters (its manifest's index_version)."""
+    stamp = [checksum, params.to_dict(), analyzer.to_dict()]
+    return hashlib.sha256(json.dumps(stamp, sort_keys=True).encode()).hexdigest()[:12]
 
 
 def _resolve_settings(
@@ -192,6 +197,8 @@ def build_index(
             "problems": report.problems[:5],
             "workers": n_workers,
         }
+        if isinstance(corpus, str | Path):
+            build["corpus"] = str(Path(corpus).resolve())  # for a printed rebuild command
         _write(tmp, state.keys, state.counter, None, an, p, checksum, build, started)
         del state
         if vec_settings is not None:

@@ -1,4 +1,4 @@
-"""Sub-commands `index build|info|add|remove` and `search`."""
+"""Sub-commands `index build|info|add|remove|tune` and `search`."""
 
 from __future__ import annotations
 
@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from retriever import Index, ReadReport
 
+from . import index_tune
 from .console import check_k, format_table, human_bytes, print_json, show_progress
 
 
@@ -105,6 +106,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("ids", nargs="+", metavar="ID", help="article ids to remove")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_remove)
+
+    p = isub.add_parser(
+        "tune", help="choose BM25's k1, b and IDF variant from labelled logs by held-out recall"
+    )
+    index_tune.add_arguments(p)
+    p.set_defaults(func=index_tune.cmd_tune)
 
     p = sub.add_parser("search", help="BM25 candidates for a clue")
     p.add_argument("index", type=Path, help="index folder")
