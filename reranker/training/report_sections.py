@@ -51,7 +51,7 @@ def header_html(about: Mapping[str, Any]) -> str:
         ("evaluated at", e.get("evaluated_at")),
         ("index version", e.get("index_version")),
     ]
-    return table(("", ""), [(k, v) for k, v in rows if v is not None])
+    return table(("what", "value"), [(k, v) for k, v in rows if v is not None])
 
 
 def warnings_html(warnings: Sequence[Mapping[str, Any]], ablation_run: bool) -> str:
