@@ -63,6 +63,11 @@ def check_k(k: int | None) -> None:
         raise ValueError(f"-k must be at least 1, got {k}")
 
 
+def warn(message: str) -> None:
+    """Print a one-line warning to stderr (results stay on stdout, so pipes get clean data)."""
+    print(f"hunchwise: warning: {message}", file=sys.stderr)
+
+
 def fail(message: str, code: int = 2) -> int:
     """Print a one-line error to stderr and return the exit code."""
     print(f"hunchwise: error: {message}", file=sys.stderr)

@@ -39,7 +39,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Run the demo and say what to try next."""
-    from .console import show_progress
+    from .console import show_progress, warn
     from .demo_steps import prepare, run_demo, serve_and_ask
 
     run = run_demo(
@@ -47,6 +47,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
     )
     print()
     print(run.summary)
+    for w in run.metrics.get("warnings") or []:
+        warn(w["message"])
     print(f"\neverything is in {run.out}:")
     print(
         f"  index   {run.index}\n  model   {run.model}\n"

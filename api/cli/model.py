@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from reranker import Payoff
 
-from .console import check_k, format_table, print_json, show_progress
+from .console import check_k, format_table, print_json, show_progress, warn
 
 
 def _fractions(text: str) -> tuple[float, ...]:
@@ -241,11 +241,15 @@ def cmd_train(args: argparse.Namespace) -> int:
         "unresolved_answers": a["training"]["unresolved_count"],
         "skipped_lines": a["training"]["skipped_lines"],
         "unfinished_last_lines": a["training"]["torn_lines"],
+        "warnings": res.warnings,
     }
+    for message in res.warnings:
+        warn(message)
     if args.json:
         print_json(summary)
         return 0
-    print(format_table(["", "value"], [(k, v) for k, v in summary.items()]))
+    shown = {k: v for k, v in summary.items() if k != "warnings"}
+    print(format_table(["", "value"], [(k, v) for k, v in shown.items()]))
     tuning = a["training"]["fusion_tuning"]
     if tuning:
         print("\nfusion weight (BM25's share) chosen by recall@k on the training prefixes:")
@@ -288,6 +292,8 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         skip_bad=args.skip_bad,
         progress=show_progress(args.json),
     )
+    for message in ev.warnings:
+        warn(message)
     if args.json:
         print_json(
             {"metrics": ev.metrics, "ablation": ev.ablation, "report": str(ev.paths.get("report"))}

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -18,9 +18,11 @@ from ..features.builtin import SCORE_ONLY
 from ..loading import ServedModel
 from ..presence import distribute_groups
 from . import measures as M
+from .comparisons import about, baselines, fitting_notes, model_losses, same_logs_warning
 from .estimator import Reranker
 from .fitting import grouped_folds, oof_proba
 from .logs import LogReport, read_logs
+from .misses import worst_missed
 from .report import summary_text, write_report
 from .report_speed import speed_text
 from .schedule import compare_rules, replay_rows
@@ -42,28 +44,37 @@ GROUP_ORDER = (
 
 @dataclass
 class Evaluation:
-    """The outcome of an evaluation: metrics, ablation rows, report files and a text summary."""
+    """The outcome of an evaluation: metrics, ablation rows, report files, a text summary and
+    the warnings (every comparison the model loses), also in metrics["warnings"]."""
 
     metrics: dict[str, Any]
     ablation: list[dict[str, Any]]
     paths: dict[str, Path]
     summary: str
+    warnings: list[str] = field(default_factory=list)
 
 
 def _score_row(
-    name: str, kind: str, names: Sequence[str], table: TrainingTable, p: np.ndarray
+    name: str,
+    kind: str,
+    groups: Sequence[str],
+    names: Sequence[str],
+    table: TrainingTable,
+    p: np.ndarray,
 ) -> dict[str, Any]:
     full = table.fraction == 1.0
     clue = M.clue_metrics(table.group[full], table.y[full], p[full], table.score[full])
     return {
         "name": name,
         "kind": kind,
+        "groups": list(groups),
         "features": list(names),
         "log_loss": float(log_loss(table.y, p, labels=[0, 1])),
         "brier": float(brier_score_loss(table.y, p, labels=[0, 1])),
         "roc_auc": float(roc_auc_score(table.y, p)) if np.unique(table.y).size == 2 else None,
         "ece": M.expected_calibration_error(table.y, p),
         "top1": clue["top1_reranked"],
+        "clue_log_loss": clue["clue_log_loss"],
         "top_candidate_ece": clue["top_candidate_ece"],
     }
 
@@ -104,25 +115,31 @@ def ablation(
     n_folds: int = 5,
     progress: bool = False,
 ) -> list[dict[str, Any]]:
-    """Baseline, each group alone, forward additions, drop-one and full, on one grouped CV."""
+    """Baseline, each group alone, forward additions, drop-one and full, on one grouped CV.
+
+    Each row names the feature groups it uses ("groups"; the baseline's is "bm25 score") and
+    lists its features ("features").
+    """
     splits = grouped_folds(table.y, table.clue_id, n_folds)
     full = [n for names in groups.values() for n in names]
-    plan: list[tuple[str, str, list[str]]] = [("bm25 score only", "baseline", list(SCORE_ONLY))]
-    plan += [(f"{g} alone", "alone", names) for g, names in groups.items()]
+    every = list(groups)
+    plan: list[tuple[str, str, list[str], list[str]]] = [
+        ("bm25 score only", "baseline", ["bm25 score"], list(SCORE_ONLY))
+    ]
+    plan += [(f"{g} alone", "alone", [g], names) for g, names in groups.items()]
     acc: list[str] = list(SCORE_ONLY)
-    for g, names in groups.items():
+    for i, (g, names) in enumerate(groups.items()):
         acc = acc + [n for n in names if n not in acc]
-        plan.append((f"+ {g}", "forward", list(acc)))
+        plan.append((f"+ {g}", "forward", ["bm25 score", *every[: i + 1]], list(acc)))
     if len(groups) > 1:
-        plan += [
-            (f"- {g}", "drop-one", [n for n in full if n not in names])
-            for g, names in groups.items()
-        ]
-    plan.append(("full model", "full", full))
+        for g, names in groups.items():
+            rest = [n for n in full if n not in names]
+            plan.append((f"- {g}", "drop-one", [h for h in every if h != g], rest))
+    plan.append(("full model", "full", every, full))
     rows = []
-    for name, kind, names in tqdm(plan, desc="ablation", unit=" fits", disable=not progress):
+    for name, kind, used, names in tqdm(plan, desc="ablation", unit=" fits", disable=not progress):
         p = oof_proba(_columns(table, names), table.y, splits, C)
-        rows.append(_score_row(name, kind, names, table, p))
+        rows.append(_score_row(name, kind, used, names, table, p))
     return rows
 
 
@@ -246,16 +263,26 @@ def evaluate(
             "candidate-level figures use every prefix",
         },
     }
-    rows = (
-        ablation(table, feature_groups(model), model.model.C_, n_folds, progress)
-        if run_ablation
-        else []
-    )
+    groups = feature_groups(model)
+    rows = ablation(table, groups, model.model.C_, n_folds, progress) if run_ablation else []
+    notes = fitting_notes(n_folds=n_folds, C=model.model.C_, version=model.version)
+    metrics["about"] = about(model, groups, metrics["data"], notes, n_folds)
+    metrics["baselines"] = baselines(table, bm25_only, clue, candidate, notes)
+    found = model_losses(metrics["baselines"], rows, n_clues=clue["n_clues"])
+    same = same_logs_warning(str(training.get("checksum") or ""), report.checksum)
+    metrics["warnings"] = ([same] if same else []) + found
+    metrics["worst_missed"] = worst_missed(index, table, prob)
+    reliability_candidate = M.reliability_table(table.y, pointwise)
+    metrics["reliability"] = {
+        "interval": "95% Wilson (1927) score interval of the share right in each bin",
+        "top_candidate": clue["top_candidate_reliability"],
+        "every_candidate": reliability_candidate,
+    }
     inlinks = np.asarray(index.inlinks[table.row])
     paths = write_report(
         report_dir,
         metrics,
-        reliability_candidate=M.reliability_table(table.y, pointwise),
+        reliability_candidate=reliability_candidate,
         reliability_top=clue["top_candidate_reliability"],
         prefix_rows=prefix_rows,
         ablation_rows=rows,
@@ -265,7 +292,8 @@ def evaluate(
     )
     summary = summary_text(metrics, rows) + "\n\n" + decision_text(metrics["decision"], prefix_rows)
     summary += "\n\n" + speed_text(speed)
-    return Evaluation(metrics, rows, paths, summary)
+    messages = [w["message"] for w in metrics["warnings"]]
+    return Evaluation(metrics, rows, paths, summary, messages)
 
 
 def _speed_terms(pay: dict[str, Any]) -> str:

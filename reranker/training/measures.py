@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 
 DEFAULT_KS = (1, 5, 10, 20)
+# The standard normal quantile at 0.975 (scipy.special.ndtri(0.975)): a 95% two-sided interval.
+Z_95 = 1.959963984540054
 
 
 def _labels_and_probs(y_true: Any, prob: Any) -> tuple[np.ndarray, np.ndarray]:
@@ -48,8 +51,37 @@ def expected_calibration_error(y_true: Any, prob: Any, n_bins: int = 10) -> floa
     return float(np.abs(sum_y - sum_p).sum() / len(y))
 
 
+def wilson_interval(successes: int, n: int, z: float = Z_95) -> tuple[float, float]:
+    """Wilson (1927) score interval for a binomial proportion: (low, high), (0, 1) when n is 0.
+
+    E. B. Wilson, "Probable inference, the law of succession, and statistical inference",
+    JASA 22 (1927) 209-212: with p = successes / n,
+
+        centre = (p + z^2 / 2n) / (1 + z^2 / n)
+        half   = z / (1 + z^2 / n) * sqrt(p (1 - p) / n + z^2 / 4n^2)
+
+    Written out here (a few lines) rather than importing statsmodels, which serving-side
+    installs do not carry; the tests compare it with statsmodels' proportion_confint.
+    Unlike the normal (Wald) interval it stays inside [0, 1] and is not empty at p = 0 or 1.
+    """
+    if n < 0 or not 0 <= successes <= n:
+        raise ValueError(f"need 0 <= successes <= n, got {successes} of {n}")
+    if n == 0:
+        return 0.0, 1.0
+    p = successes / n
+    z2 = z * z
+    denom = 1.0 + z2 / n
+    centre = (p + z2 / (2 * n)) / denom
+    half = z / denom * math.sqrt(p * (1 - p) / n + z2 / (4 * n * n))
+    return float(max(0.0, centre - half)), float(min(1.0, centre + half))
+
+
 def reliability_table(y_true: Any, prob: Any, n_bins: int = 10) -> list[dict[str, Any]]:
-    """Per equal-width bin: lo, hi, count, mean_prob and frac_positive (None when empty)."""
+    """Per equal-width bin: lo, hi, count, mean_prob, frac_positive and its 95% Wilson interval.
+
+    ci_low and ci_high bound the share of right answers in the bin (Wilson 1927, see
+    `wilson_interval`); mean_prob, frac_positive and the interval are None when the bin is empty.
+    """
     y, p = _labels_and_probs(y_true, prob)
     idx = _bin_index(p, n_bins)
     count = np.bincount(idx, minlength=n_bins)
@@ -58,6 +90,7 @@ def reliability_table(y_true: Any, prob: Any, n_bins: int = 10) -> list[dict[str
     rows = []
     for i in range(n_bins):
         c = int(count[i])
+        low, high = wilson_interval(round(float(sum_y[i])), c) if c else (None, None)
         rows.append(
             {
                 "lo": i / n_bins,
@@ -65,6 +98,8 @@ def reliability_table(y_true: Any, prob: Any, n_bins: int = 10) -> list[dict[str
                 "count": c,
                 "mean_prob": float(sum_p[i] / c) if c else None,
                 "frac_positive": float(sum_y[i] / c) if c else None,
+                "ci_low": low,
+                "ci_high": high,
             }
         )
     return rows

@@ -41,7 +41,11 @@ def _num(value: Any) -> float:
 
 
 def reliability_diagram(table: Sequence[dict[str, Any]], path: Any, title: str) -> Path:
-    """Bars of the share of right answers per probability bin, the diagonal, counts below."""
+    """Bars of the share of right answers per probability bin, the diagonal, counts below.
+
+    Where the bins carry ci_low and ci_high (`measures.reliability_table`: 95% Wilson score
+    intervals), each bin's point gets them as an error bar.
+    """
     if not table:
         raise ValueError("reliability table is empty")
     lo = np.array([_num(r["lo"]) for r in table])
@@ -62,7 +66,24 @@ def reliability_diagram(table: Sequence[dict[str, Any]], path: Any, title: str) 
         alpha=0.8,
         label="share right in bin",
     )
-    top.plot(conf, frac, "o", color="#222222", markersize=4, label="(mean prob, share right)")
+    low = np.array([_num(r.get("ci_low")) for r in table])
+    high = np.array([_num(r.get("ci_high")) for r in table])
+    if np.isfinite(low).any():
+        # Bars from the share right down to ci_low and up to ci_high (not drawn where NaN).
+        yerr = np.vstack([np.nan_to_num(frac - low), np.nan_to_num(high - frac)])
+        top.errorbar(
+            conf,
+            frac,
+            yerr=np.clip(yerr, 0, None),
+            fmt="o",
+            color="#222222",
+            markersize=4,
+            capsize=3,
+            elinewidth=1,
+            label="(mean prob, share right), 95% Wilson interval",
+        )
+    else:
+        top.plot(conf, frac, "o", color="#222222", markersize=4, label="(mean prob, share right)")
     top.plot([0, 1], [0, 1], "--", color="#c44e52", label="perfect calibration")
     top.set_xlim(0, 1)
     top.set_ylim(0, 1)

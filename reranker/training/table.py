@@ -77,6 +77,7 @@ class TrainingTable:
     unresolved: list[dict[str, Any]] = field(default_factory=list)
     n_clues: int = 0
     n_prefixes: int = 0
+    clues: list[LabelledClue] = field(default_factory=list)  # the kept clues, by clue_id
 
     def columns(self, names: Sequence[str]) -> np.ndarray:
         """The feature columns `names`, in that order."""
@@ -113,6 +114,7 @@ class Prefixes:
     owners: list[tuple[int, float, int | None, dict[str, Any]]]  # clue, fraction, gold, meta
     unresolved: list[dict[str, Any]]
     n_clues: int
+    kept: list[LabelledClue] = field(default_factory=list)  # clue n of owners is kept[n]
 
 
 def labelled_prefixes(index: Index, clues: Sequence[LabelledClue], plan: PrefixPlan) -> Prefixes:
@@ -134,6 +136,7 @@ def labelled_prefixes(index: Index, clues: Sequence[LabelledClue], plan: PrefixP
         for m in cuts:
             out.texts.append(" ".join(words[:m]))
             out.owners.append((out.n_clues, plan.label(m, len(words)), gold, c.metadata))
+        out.kept.append(c)
         out.n_clues += 1
     return out
 
@@ -223,4 +226,5 @@ def build_table(
         unresolved=unresolved,
         n_clues=n_clues,
         n_prefixes=len(texts),
+        clues=pre.kept,
     )

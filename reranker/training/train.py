@@ -17,6 +17,7 @@ from ..features import FEATURE_SET_VERSION, FeatureRegistry, MetadataColumns
 from ..features.builtin import DENSE, default_registry
 from ..loading import ServedModel, serve
 from ..model import save_model
+from .comparisons import training_losses
 from .estimator import Reranker
 from .fusion import tune_fusion
 from .logs import LogReport, read_logs
@@ -39,6 +40,8 @@ class TrainResult:
     # Held-out per-clue distribution of every table row (what the threshold was tuned on).
     oof_distribution: np.ndarray
     notes: list[str] = field(default_factory=list)
+    # Comparisons the held-out figures lose (comparisons.training_losses), as sentences.
+    warnings: list[str] = field(default_factory=list)
 
 
 def top_of_groups(
@@ -143,6 +146,8 @@ def train(
         notes.append(
             f"{len(table.unresolved)} gold answers matched no article (listed in the artifact)"
         )
+    oof = _oof_metrics(table, estimator.oof_proba_, q_oof)
+    losses = training_losses(table, oof["clue"], oof["candidate"]["log_loss"])
     artifact = save_model(
         estimator.model_,
         out,
@@ -172,7 +177,7 @@ def train(
         },
         presence=presence.to_dict(),
         candidates=policy.to_dict(),
-        metrics=_oof_metrics(table, estimator.oof_proba_, q_oof),
+        metrics=oof,
         decision={
             "threshold": tuned["threshold"],
             "break_even": payoff.break_even,
@@ -188,7 +193,8 @@ def train(
     )
     # Ready to serve as load_model would leave it, so rank_clue and evaluate take it directly.
     served = serve(estimator.model_, reg, source=str(out))
-    return TrainResult(served, estimator, artifact, table, report, q_oof, notes)
+    messages = [w["message"] for w in losses]
+    return TrainResult(served, estimator, artifact, table, report, q_oof, notes, messages)
 
 
 def _oof_metrics(table: TrainingTable, oof: np.ndarray, q_oof: np.ndarray) -> dict[str, Any]:

@@ -304,3 +304,35 @@ def test_a_file_where_a_folder_belongs_and_the_reverse(world: World, tmp_path: P
     assert out.returncode != 0 and out.stderr.count("\n") == 1
     assert f"{tmp_path} is a folder, not a model file" in out.stderr
     assert "Errno" not in out.stderr
+
+
+@pytest.mark.slow
+def test_warnings_go_to_stderr_when_the_model_loses_to_a_baseline(
+    world: World, tmp_path: Path
+) -> None:
+    from tests.reranker.test_evaluate import reversed_score_model
+
+    # Popularity alone knows nothing of the clue: held out, it loses to the BM25 order.
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log,
+        "--out", tmp_path / "pop.json", "--features", "popularity",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    lost = "hunchwise: warning: the model (on held-out folds of its training clues) loses to "
+    assert (
+        lost + "the baseline 'retrieval score alone (BM25 order)' on top-1 accuracy" in out.stderr
+    )
+    assert "hunchwise: warning" not in out.stdout
+
+    model = reversed_score_model(world, tmp_path)
+    out = hunchwise(
+        "evaluate", "--index", world.index.path, "--log", world.test_log, "--model", model,
+        "--report", tmp_path / "rep", "--no-ablation", "--json",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    metrics = json.loads(out.stdout)["metrics"]  # stdout stays clean JSON
+    lines = out.stderr.splitlines()
+    assert lines == [f"hunchwise: warning: {w['message']}" for w in metrics["warnings"]]
+    assert any(
+        "loses to the baseline 'retrieval score alone' on top-1 accuracy" in s for s in lines
+    )

@@ -151,3 +151,101 @@ def test_evaluate_refuses_a_k_other_than_the_models(
         world.index, model, [world.test_log], tmp_path / "rep", k=model_k, run_ablation=False
     )
     assert ev.metrics["data"]["k"] == model_k
+
+
+def reversed_score_model(world: World, folder: Path) -> Path:
+    """A deliberately poor model file: the BM25-score-only model with its coefficient negated,
+    so it puts the retriever's order upside down and must lose to it on top-1."""
+    train(
+        world.index,
+        [world.train_log],
+        folder / "score_only.json",
+        features=["bm25_score"],
+        calibration="none",
+    )
+    art = json.loads((folder / "score_only.json").read_text())
+    art["coef"] = [-c for c in art["coef"]]
+    path = folder / "reversed.json"
+    path.write_text(json.dumps(art))
+    return path
+
+
+def test_report_page_explains_itself_and_warns_when_a_baseline_wins(
+    world: World, tmp_path: Path
+) -> None:
+    from html.parser import HTMLParser
+
+    model = load_model(reversed_score_model(world, tmp_path), index=world.index)
+    ev = evaluate(world.index, model, [world.test_log], tmp_path / "rep", n_folds=3)
+    m = ev.metrics
+    clue = m["clue"]
+    assert clue["top1_reranked"] < clue["top1_bm25"]  # upside down: it must lose
+    lost = (
+        "the model loses to the baseline 'retrieval score alone' on top-1 accuracy: "
+        f"{clue['top1_reranked']:.3f} against {clue['top1_bm25']:.3f}"
+    )
+    assert any(w.startswith(lost) for w in ev.warnings)
+    on_disk = json.loads((tmp_path / "rep" / "metrics.json").read_text())
+    assert [w["message"] for w in on_disk["warnings"]] == ev.warnings
+
+    # The header: what was trained (from the model file) and what was evaluated.
+    art = model.artifact
+    about = on_disk["about"]
+    assert about["model"]["version"] == model.version
+    assert about["model"]["trained_at"] == art["created_at"]
+    assert about["model"]["training_logs"] == [str(world.train_log)]
+    assert about["model"]["training_clues"] == art["training"]["clues"]
+    assert about["model"]["feature_groups"] == {"retrieval": ["bm25_score"]}
+    assert about["evaluation"]["logs"] == [str(world.test_log)]
+    assert about["evaluation"]["clues"] == len(world.test_log.read_text().splitlines())
+
+    class Sections(HTMLParser):
+        """Text of each <section> by id, and the classes of its elements (stdlib html.parser)."""
+
+        def __init__(self) -> None:
+            super().__init__()
+            self.text: dict[str, str] = {}
+            self.classes: dict[str, set[str]] = {}
+            self.order: list[str] = []
+
+        def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+            a = dict(attrs)
+            if tag == "section":
+                self.order.append(a.get("id") or "")
+            elif self.order:
+                self.classes.setdefault(self.order[-1], set()).add(a.get("class") or "")
+
+        def handle_data(self, data: str) -> None:
+            if self.order:
+                self.text[self.order[-1]] = self.text.get(self.order[-1], "") + data
+
+    page = Sections()
+    page.feed((tmp_path / "rep" / "report.html").read_text(encoding="utf-8"))
+    assert page.order[:2] == ["warnings", "about"]  # visible first
+    assert "warning" in page.classes["warnings"] and lost in page.text["warnings"]
+    about_text = page.text["about"]
+    for shown in (str(world.train_log), str(world.test_log), model.version, art["created_at"]):
+        assert shown in about_text
+    assert "the saved model as trained" in about_text
+    assert "refit by 3-fold cross-validation grouped by clue on the evaluated clues" in about_text
+    assert "'full model' included" in about_text and "not the saved model" in about_text
+    # The ablation names groups, and lists each group's features once.
+    assert page.text["ablation"].count("bm25_score") == 1
+
+    # Worst-missed clues: each row is a clue of the evaluated file, worst first.
+    missed = on_disk["worst_missed"]
+    assert 0 < len(missed) <= 10
+    lines = world.test_log.read_text().splitlines()
+    for r in missed:
+        src = json.loads(lines[r["line"] - 1])
+        assert (r["clue"], r["answer"], r["file"]) == (
+            src["clue"],
+            src["answer"],
+            str(world.test_log),
+        )
+        assert r["answer_rank"] is None or r["answer_rank"] > 1
+        probs = [t["probability"] for t in r["top"]]
+        assert len(probs) == 3 and probs == sorted(probs, reverse=True)
+    ranks = [r["answer_rank"] or 10**6 for r in missed]
+    assert ranks == sorted(ranks, reverse=True)
+    assert missed[0]["top"][0]["title"] in page.text["worst-missed"]

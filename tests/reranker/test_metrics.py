@@ -10,6 +10,7 @@ import pytest
 import pytrec_eval
 from sklearn.calibration import calibration_curve
 from sklearn.metrics import accuracy_score, brier_score_loss, log_loss, roc_auc_score
+from statsmodels.stats.proportion import proportion_confint
 
 from reranker.training.measures import (
     baseline_all_wrong,
@@ -18,6 +19,7 @@ from reranker.training.measures import (
     clue_metrics,
     expected_calibration_error,
     reliability_table,
+    wilson_interval,
 )
 
 # --- ECE, Guo et al. (2017) "On Calibration of Modern Neural Networks", eq. (3) -------------
@@ -298,3 +300,47 @@ def test_by_prefix_rejects_inconsistent_input() -> None:
         by_prefix(**mixed, payoff={"reward": 1, "penalty": 1})
     with pytest.raises(ValueError, match="reward"):
         by_prefix(**PREFIX_CASE, payoff={"reward": 1})
+
+
+# --- Wilson (1927) score intervals, checked against statsmodels' proportion_confint ----------
+
+
+@pytest.mark.parametrize(
+    ("successes", "n"), [(0, 1), (1, 1), (0, 10), (3, 10), (10, 10), (37, 120), (999, 1000)]
+)
+def test_wilson_interval_equals_statsmodels(successes: int, n: int) -> None:
+    # Reference: statsmodels.stats.proportion.proportion_confint(method="wilson"), alpha 0.05.
+    low, high = wilson_interval(successes, n)
+    ref_low, ref_high = proportion_confint(successes, n, alpha=0.05, method="wilson")
+    assert low == pytest.approx(ref_low, abs=1e-12)
+    assert high == pytest.approx(ref_high, abs=1e-12)
+    assert 0.0 <= low <= successes / n + 1e-12 and successes / n <= high + 1e-12 <= 1.0 + 1e-12
+
+
+def test_wilson_interval_worked_example() -> None:
+    # Wilson (1927), 3 right of 10, z = 1.96: z^2/n = 0.38416, so the denominator is 1.38416;
+    # centre (0.3 + 0.19208) / 1.38416 = 0.355508; half 1.96 / 1.38416 * sqrt(0.3 * 0.7 / 10 +
+    # 3.8416 / 400) = 1.416022 * sqrt(0.030604) = 0.247719 -> (0.107789, 0.603227).
+    low, high = wilson_interval(3, 10, z=1.96)
+    assert low == pytest.approx(0.107789, abs=1e-6)
+    assert high == pytest.approx(0.603227, abs=1e-6)
+    assert wilson_interval(0, 0) == (0.0, 1.0)
+    for bad in ((-1, 3), (4, 3)):
+        with pytest.raises(ValueError, match="successes"):
+            wilson_interval(*bad)
+
+
+def test_reliability_bins_carry_statsmodels_wilson_intervals() -> None:
+    rng = np.random.default_rng(5)
+    p = rng.random(500)
+    y = (rng.random(500) < p).astype(int)
+    table = reliability_table(y, p)
+    idx = np.minimum((p * 10).astype(int), 9)
+    for i, row in enumerate(table):
+        right, count = int(y[idx == i].sum()), int((idx == i).sum())
+        assert row["count"] == count
+        # Reference: statsmodels' proportion_confint(method="wilson") of the bin's counts.
+        ref = proportion_confint(right, count, alpha=0.05, method="wilson")
+        assert (row["ci_low"], row["ci_high"]) == pytest.approx(ref, abs=1e-12)
+    empty = reliability_table([0, 1], [0.05, 0.15])[5]
+    assert empty["count"] == 0 and empty["ci_low"] is None and empty["ci_high"] is None

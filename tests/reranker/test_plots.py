@@ -102,3 +102,16 @@ def test_overwrite_replaces_file(tmp_path: Path) -> None:
     target.write_bytes(b"old")
     rows = [{"fraction": 1.0, "top1_accuracy": 0.5, "commit_rate": 0.5, "mean_payoff": 0.1}]
     _check_png(plots.prefix_curves(rows, target))
+
+
+def test_reliability_diagram_draws_the_wilson_intervals(tmp_path: Path) -> None:
+    rng = np.random.default_rng(3)
+    p = rng.random(80)
+    y = (rng.random(80) < p).astype(int)
+    table = reliability_table(y, p)
+    bare = [{k: v for k, v in r.items() if k not in ("ci_low", "ci_high")} for r in table]
+    with_bars = _check_png(plots.reliability_diagram(table, tmp_path / "bars.png", "t"))
+    without = _check_png(plots.reliability_diagram(bare, tmp_path / "bare.png", "t"))
+    # Same bins, same points: only the error bars (and the legend's wording) differ.
+    assert with_bars.shape == without.shape
+    assert np.abs(with_bars - without).sum() > 0

@@ -50,6 +50,27 @@ def test_hand_worked_two_clue_example() -> None:
     )
 
 
+def test_the_table_path_gives_the_hand_worked_shares() -> None:
+    # The two clues above through distribute_groups, as evaluation calls it. A presence model
+    # reading only sum_p (mean 0, scale 1) with coef c and intercept b gives P(among) 0.9 for
+    # clue A (sum 1.2) and 0.4 for clue B (sum 0.3) when
+    #   1.2 c + b = logit(0.9) = ln 9 and 0.3 c + b = logit(0.4) = ln(2/3),
+    # so c = (ln 9 - ln(2/3)) / 0.9 and b = ln 9 - 1.2 c.
+    c = (math.log(9) - math.log(2 / 3)) / 0.9
+    model = PresenceModel(
+        mean=np.zeros(len(EVIDENCE)),
+        scale=np.ones(len(EVIDENCE)),
+        coef=np.array([c, 0, 0, 0, 0]),
+        intercept=math.log(9) - 1.2 * c,
+    )
+    groups = np.array([0, 0, 0, 1, 1])
+    p = np.array([0.6, 0.3, 0.3, 0.2, 0.1])
+    q, among = distribute_groups(model, groups, p, np.ones(5), np.full(5, 6))
+    np.testing.assert_allclose(among, [0.9, 0.4], rtol=1e-12)
+    np.testing.assert_allclose(q, [0.45, 0.225, 0.225, 0.4 * 2 / 3, 0.4 / 3], rtol=1e-12)
+    assert clue_log_loss(groups, np.array([1, 0, 0, 0, 0]), q) == pytest.approx(0.654667, abs=1e-6)
+
+
 def test_a_pointwise_sum_past_one_is_clipped_not_negative() -> None:
     # p sums to 1.3 in a clue whose answer is missing: "none" would be -0.3; it is clipped.
     loss = clue_log_loss(np.array([0, 0]), np.array([0, 0]), np.array([0.7, 0.6]))

@@ -110,13 +110,17 @@ def test_report_files_sections_and_embedded_images(tmp_path: Path) -> None:
     text = paths["report"].read_text(encoding="utf-8")
     parser = _Collect()
     parser.feed(text)
-    # The page reads top-down: clue level first, then candidate level, prefix, ablation, in-links,
-    # unresolved answers; extra metrics keys follow so nothing is lost.
+    # The page reads top-down: warnings and what was trained and evaluated first, then clue
+    # level, candidate level, prefix, ablation, worst misses, in-links, unresolved answers;
+    # extra metrics keys follow so nothing is lost.
     assert parser.sections == [
+        "warnings",
+        "about",
         "clue-level",
         "candidate-level",
         "by-prefix",
         "ablation",
+        "worst-missed",
         "inlinks",
         "unresolved",
         "extra-decision",
