@@ -13,7 +13,7 @@ from typing import Any, Literal
 
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
 
-from reranker import Payoff, Ranking, model_k, rank_clue, rank_clues
+from reranker import Payoff, Ranking, model_k, rank_clues
 from reranker.servedrecords import feedback_record, served_record
 
 from . import schemas as s
@@ -30,6 +30,7 @@ from .deps import (
 from .handlers import SafeJSONResponse
 from .replies import json_reply, rank_result
 from .servedlog import utc_now
+from .settings import ServiceSettings
 from .state import Loaded
 
 router = APIRouter()
@@ -57,56 +58,70 @@ def _record(runtime: Runtime, rankings: list[Ranking]) -> None:
         runtime.metrics.decisions.labels(r.decision.action).inc()
 
 
+def _rank_and_log(
+    body: s.RankRequest | s.BatchRankRequest,
+    clues: list[str],
+    metadata: list[dict[str, Any] | None],
+    runtime: Runtime,
+    settings: ServiceSettings,
+) -> tuple[Loaded, int, list[tuple[str, Ranking]], float]:
+    """Rank the clues on the files served now, log what is served, count it: (the files,
+    the k used, (request id, ranking) per clue, when ranking ended)."""
+    loaded = runtime.serving.current
+    k = check_k(body.k, settings, _model_k(loaded))
+    rankings = rank_clues(
+        loaded.index,
+        loaded.model,
+        clues,
+        k=k,
+        payoff=_payoff(body.payoff),
+        complete=body.complete,
+        revealed=body.revealed,
+        metadata=metadata,
+        include_features=body.include_features or loaded.model is not None,
+    )
+    ranked = time.perf_counter()
+    served = [(runtime.ids.new(), r) for r in rankings]
+    when = utc_now()
+    log_records(
+        runtime,
+        [
+            served_record(rid, r, k, body.complete, when, meta, features=settings.log_features)
+            for (rid, r), meta in zip(served, metadata, strict=True)
+        ],
+    )
+    _record(runtime, rankings)
+    return loaded, k, served, ranked
+
+
+def _reply_fields(
+    body: s.RankRequest | s.BatchRankRequest, loaded: Loaded, k: int, started: float, ranked: float
+) -> dict[str, Any]:
+    """What a single and a batch reply both say about how they were ranked."""
+    done = time.perf_counter()
+    return {
+        "k": k,
+        "model_k": _model_k(loaded),
+        "complete": body.complete,
+        "revealed": body.revealed,
+        "ranked_by": _ranked_by(loaded),
+        "note": NO_MODEL_NOTE if loaded.model is None else None,
+        "index_version": loaded.index.version,
+        "model_version": loaded.model_version,
+        "timing": s.TimingOut(rank_ms=(ranked - started) * 1e3, total_ms=(done - started) * 1e3),
+    }
+
+
 @router.post("/v1/rank", response_model=s.RankResponse, tags=["rank"])
 def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Response:
     """Candidates for one clue, sorted by calibrated probability, and what to do now."""
     started = time.perf_counter()
     check_clue(body.clue, settings, ("body", "clue"))
-    loaded = runtime.serving.current
-    set_k = _model_k(loaded)
-    k = check_k(body.k, settings, set_k)
-    r = rank_clue(
-        loaded.index,
-        loaded.model,
-        body.clue,
-        k=k,
-        payoff=_payoff(body.payoff),
-        complete=body.complete,
-        revealed=body.revealed,
-        metadata=body.metadata,
-        include_features=body.include_features or loaded.model is not None,
+    loaded, k, [(rid, r)], ranked = _rank_and_log(
+        body, [body.clue], [body.metadata], runtime, settings
     )
-    ranked = time.perf_counter()
-    rid = runtime.ids.new()
-    log_records(
-        runtime,
-        [
-            served_record(
-                rid,
-                r,
-                k,
-                body.complete,
-                utc_now(),
-                body.metadata,
-                features=settings.log_features,
-            )
-        ],
-    )
-    _record(runtime, [r])
     res = rank_result(rid, r, body.include_features)
-    done = time.perf_counter()
-    reply = s.RankResponse(
-        **dict(res),
-        k=k,
-        model_k=set_k,
-        complete=body.complete,
-        revealed=body.revealed,
-        ranked_by=_ranked_by(loaded),
-        note=NO_MODEL_NOTE if loaded.model is None else None,
-        index_version=r.index_version,
-        model_version=r.model_version,
-        timing=s.TimingOut(rank_ms=(ranked - started) * 1e3, total_ms=(done - started) * 1e3),
-    )
+    reply = s.RankResponse(**dict(res), **_reply_fields(body, loaded, k, started, ranked))
     return json_reply(reply)
 
 
@@ -123,46 +138,11 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
         )
     for i, clue in enumerate(body.clues):
         check_clue(clue, settings, ("body", "clues", i))
-    loaded = runtime.serving.current
-    set_k = _model_k(loaded)
-    k = check_k(body.k, settings, set_k)
-    rankings = rank_clues(
-        loaded.index,
-        loaded.model,
-        body.clues,
-        k=k,
-        payoff=_payoff(body.payoff),
-        complete=body.complete,
-        revealed=body.revealed,
-        include_features=body.include_features or loaded.model is not None,
+    loaded, k, served, ranked = _rank_and_log(
+        body, list(body.clues), [None] * len(body.clues), runtime, settings
     )
-    ranked = time.perf_counter()
-    rids = [runtime.ids.new() for _ in rankings]
-    when = utc_now()
-    log_records(
-        runtime,
-        [
-            served_record(rid, r, k, body.complete, when, None, features=settings.log_features)
-            for rid, r in zip(rids, rankings, strict=True)
-        ],
-    )
-    _record(runtime, rankings)
-    results = [
-        rank_result(rid, r, body.include_features) for rid, r in zip(rids, rankings, strict=True)
-    ]
-    done = time.perf_counter()
-    reply = s.BatchRankResponse(
-        results=results,
-        k=k,
-        model_k=set_k,
-        complete=body.complete,
-        revealed=body.revealed,
-        ranked_by=_ranked_by(loaded),
-        note=NO_MODEL_NOTE if loaded.model is None else None,
-        index_version=loaded.index.version,
-        model_version=loaded.model_version,
-        timing=s.TimingOut(rank_ms=(ranked - started) * 1e3, total_ms=(done - started) * 1e3),
-    )
+    results = [rank_result(rid, r, body.include_features) for rid, r in served]
+    reply = s.BatchRankResponse(results=results, **_reply_fields(body, loaded, k, started, ranked))
     return json_reply(reply)
 
 

@@ -174,8 +174,8 @@ class RankResult(BaseModel):
     )
 
 
-class RankResponse(RankResult):
-    """Reply to POST /v1/rank."""
+class RankedHow(BaseModel):
+    """What a single and a batch reply both say about how they were ranked."""
 
     k: int = Field(description="candidates asked for (at most this many are returned)")
     model_k: int | None = Field(
@@ -191,22 +191,14 @@ class RankResponse(RankResult):
     timing: TimingOut
 
 
-class BatchRankResponse(BaseModel):
+class RankResponse(RankResult, RankedHow):
+    """Reply to POST /v1/rank."""
+
+
+class BatchRankResponse(RankedHow):
     """Reply to POST /v1/rank/batch: one result per clue, in order."""
 
     results: list[RankResult]
-    k: int = Field(description="candidates asked for (at most this many are returned)")
-    model_k: int | None = Field(
-        description="candidates the probabilities were computed over (the model's k); "
-        "null without a model"
-    )
-    complete: bool
-    revealed: float | None = Field(default=None, description="the share revealed, as sent")
-    ranked_by: Literal["probability", "bm25"]
-    note: str | None = None
-    index_version: str
-    model_version: str | None
-    timing: TimingOut
 
 
 class FeedbackRequest(_Strict):

@@ -218,29 +218,19 @@ def rank_clue(
     revealed: the share of the whole clue these words are, in (0, 1]; it picks the model's
     threshold for that share (the whole-clue one when not given).
     """
-    keep, depth = _ks(model, k)
-    revealed = check_revealed(revealed, complete)
-    # Analyzed once, for the search and the features (words: the clue-length features).
-    analyzer = index.analyzer
-    tokens, words = analyzer.tokens(clue), analyzer.words(clue)
-    [(hits, dense)] = find_candidates(index, [tokens], depth, _policy(model))
-    return _rank_hits(
+    [ranking] = rank_clues(
         index,
         model,
-        clue,
-        tokens,
-        words,
-        hits,
-        dense,
-        keep=keep,
-        set_k=None if model is None else depth,
+        [clue],
+        k=k,
         payoff=payoff,
         complete=complete,
         revealed=revealed,
         include_features=include_features,
-        metadata=metadata,
+        metadata=[metadata],
         registry=registry,
     )
+    return ranking
 
 
 def rank_clues(
@@ -253,11 +243,17 @@ def rank_clues(
     complete: bool = False,
     revealed: float | None = None,
     include_features: bool = False,
+    metadata: Sequence[dict[str, Any] | None] | None = None,
     registry: FeatureRegistry | None = None,
 ) -> list[Ranking]:
-    """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many)."""
+    """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many);
+    `metadata`, when given, holds one clue's metadata (or None) per clue."""
     keep, depth = _ks(model, k)
     revealed = check_revealed(revealed, complete)
+    if metadata is not None and len(metadata) != len(clues):
+        raise ValueError(f"metadata holds {len(metadata)} items for {len(clues)} clues")
+    metas = list(metadata) if metadata is not None else [None] * len(clues)
+    # Analyzed once, for the search and the features (words: the clue-length features).
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]
     found = find_candidates(index, [t for t, _ in analyzed], depth, _policy(model))
@@ -276,8 +272,8 @@ def rank_clues(
             complete=complete,
             revealed=revealed,
             include_features=include_features,
-            metadata=None,
+            metadata=meta,
             registry=registry,
         )
-        for c, (t, w), (hits, dense) in zip(clues, analyzed, found, strict=True)
+        for c, (t, w), (hits, dense), meta in zip(clues, analyzed, found, metas, strict=True)
     ]

@@ -13,6 +13,7 @@ if TYPE_CHECKING:
     from retriever import BM25Params
 
 from .console import check_k, format_table, print_json, show_progress
+from .options import add_log_option
 
 K1_DEFAULT = "0.4:2.0:0.2"
 B_DEFAULT = "0.3:1.0:0.1"
@@ -59,14 +60,7 @@ def idf_list(text: str) -> tuple[str, ...]:
 def add_arguments(p: argparse.ArgumentParser) -> None:
     """The options of `index tune`."""
     p.add_argument("--index", type=Path, required=True, help="index folder to tune")
-    p.add_argument(
-        "--log",
-        type=Path,
-        action="append",
-        required=True,
-        metavar="FILE",
-        help="labelled log (clue + answer lines) or served log with feedback; repeat for several",
-    )
+    add_log_option(p)
     p.add_argument("-k", type=int, default=20, help="recall is measured in the top k (default 20)")
     p.add_argument(
         "--k1",

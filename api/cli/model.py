@@ -10,6 +10,7 @@ if TYPE_CHECKING:
     from reranker import Payoff
 
 from .console import check_k, format_table, print_json, show_progress, warn
+from .options import add_log_option, at_least_zero, unit_share
 
 
 def _fractions(text: str) -> tuple[float, ...]:
@@ -24,40 +25,11 @@ def _fractions(text: str) -> tuple[float, ...]:
     return values
 
 
-def _unit_share(text: str) -> float:
-    """A number between 0 and 1 (both included)."""
-    try:
-        value = float(text)
-    except ValueError:
-        value = float("nan")
-    if not 0.0 <= value <= 1.0:
-        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1, got {text!r}")
-    return value
-
-
-def _at_least_zero(text: str) -> float:
-    """A finite number of at least 0."""
-    try:
-        value = float(text)
-    except ValueError:
-        value = float("nan")
-    if not (0.0 <= value < float("inf")):
-        raise argparse.ArgumentTypeError(f"expected a number of at least 0, got {text!r}")
-    return value
-
-
 def _common(p: argparse.ArgumentParser) -> None:
     p.add_argument(
         "--index", type=Path, required=True, help="index folder built by 'hunchwise index build'"
     )
-    p.add_argument(
-        "--log",
-        type=Path,
-        action="append",
-        required=True,
-        metavar="FILE",
-        help="labelled log (clue + answer lines) or served log with feedback; repeat for several",
-    )
+    add_log_option(p)
     p.add_argument(
         "-k",
         type=int,
@@ -78,7 +50,7 @@ def _common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--penalty", type=float, default=None, help="cost of a wrong answer (default 1)")
     p.add_argument(
         "--reward-fall",
-        type=_unit_share,
+        type=unit_share,
         default=None,
         metavar="SHARE",
         help="share of the reward lost by waiting for the whole clue, 0-1: a right answer after "
@@ -86,7 +58,7 @@ def _common(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument(
         "--cost-per-word",
-        type=_at_least_zero,
+        type=at_least_zero,
         default=None,
         metavar="COST",
         help="taken off a right answer's reward per word read, never below 0 (default 0)",
@@ -145,7 +117,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument(
         "--abstain-if-none",
-        type=_unit_share,
+        type=unit_share,
         default=None,
         metavar="SHARE",
         help="on a complete clue, abstain when the 'none of these' share is at least SHARE, 0-1 "

@@ -104,6 +104,12 @@ def wait_ready(server: Server, workers: int, timeout: float) -> None:
     )
 
 
+def serve_command(args: Sequence[str], port: int, workers: int) -> list[str]:
+    """The command line of `hunchwise serve ARGS` on loopback at `port`."""
+    host = ["--host", HOST, "--port", str(port), "--workers", str(workers)]
+    return [sys.executable, "-m", "api.cli", "serve", *args, *host]
+
+
 @contextlib.contextmanager
 def serve(
     args: Sequence[str],
@@ -121,20 +127,7 @@ def serve(
     """
     port = port if port is not None else free_port()
     output = workdir / f"server-{port}.out"
-    cmd = [
-        *prefix,
-        sys.executable,
-        "-m",
-        "api.cli",
-        "serve",
-        *args,
-        "--host",
-        HOST,
-        "--port",
-        str(port),
-        "--workers",
-        str(workers),
-    ]
+    cmd = [*prefix, *serve_command(args, port, workers)]
     with open(output, "wb") as out:
         proc = subprocess.Popen(
             cmd,

@@ -9,7 +9,7 @@ Not a test: it prints a table. For 1 and 2 workers it measures
   * the server's resident memory (parent plus workers, psutil).
 Peer measured in the same run: the library call `rank_clue` in one thread, without HTTP.
 
-    python tests/benchmarks/bench_service.py [--articles 100000] [--work runs/bench-service]
+    python -m tests.benchmarks.bench_service [--articles 100000] [--work runs/bench-service]
 """
 
 from __future__ import annotations
@@ -21,7 +21,6 @@ import json
 import os
 import shutil
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -33,8 +32,9 @@ import httpx
 import numpy as np
 import psutil
 
+from tests.api.svc_helpers import HOST, free_port, serve_command
+
 ROOT = Path(__file__).resolve().parents[2]
-HOST = "127.0.0.1"
 LUA = """
 counter = 0
 request = function()
@@ -123,13 +123,6 @@ def library_peer(index: Path, model: Path, clues: list[str], seconds: float) -> 
     return n / (time.perf_counter() - start)
 
 
-def free_port() -> int:
-    """An unused loopback port."""
-    with socket.socket() as s:
-        s.bind((HOST, 0))
-        return int(s.getsockname()[1])
-
-
 def start_server(
     index: Path, model: Path, workers: int, logs: Path
 ) -> tuple[subprocess.Popen[bytes], str]:
@@ -137,24 +130,9 @@ def start_server(
     port = free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("HUNCHWISE_")}
     proc = subprocess.Popen(
-        [
-            sys.executable,
-            "-m",
-            "api.cli",
-            "serve",
-            "--index",
-            str(index),
-            "--model",
-            str(model),
-            "--host",
-            HOST,
-            "--port",
-            str(port),
-            "--workers",
-            str(workers),
-            "--log-dir",
-            str(logs),
-        ],
+        serve_command(
+            ["--index", str(index), "--model", str(model), "--log-dir", str(logs)], port, workers
+        ),
         cwd=ROOT,
         env=env,
         stdout=subprocess.DEVNULL,

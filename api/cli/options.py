@@ -1,0 +1,40 @@
+"""Argument types and options that several commands share."""
+
+from __future__ import annotations
+
+import argparse
+from collections.abc import Callable
+from pathlib import Path
+
+
+def bounded_number(low: float, high: float, describe: str) -> Callable[[str], float]:
+    """An argparse type: a number from `low` to `high` (both included), else `describe` says
+    what was expected."""
+
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            value = float("nan")  # fails the range check below, with the same message
+        if not low <= value <= high:
+            raise argparse.ArgumentTypeError(f"expected {describe}, got {text!r}")
+        return value
+
+    return parse
+
+
+unit_share = bounded_number(0.0, 1.0, "a number between 0 and 1")
+# Finite: the upper bound is the largest float, so "inf" is refused.
+at_least_zero = bounded_number(0.0, 1.7976931348623157e308, "a number of at least 0")
+
+
+def add_log_option(p: argparse.ArgumentParser) -> None:
+    """--log FILE, repeatable and required: the labelled or served logs a command reads."""
+    p.add_argument(
+        "--log",
+        type=Path,
+        action="append",
+        required=True,
+        metavar="FILE",
+        help="labelled log (clue + answer lines) or served log with feedback; repeat for several",
+    )
