@@ -311,7 +311,7 @@ def decision_text(d: dict[str, Any], prefix_rows: list[dict[str, Any]]) -> str:
         f"  answer at the first prefix that clears it: commit rate {d['commit_rate']:.3f}, "
         f"accuracy {d['accuracy_when_committed']:.3f}, mean payoff {d['mean_payoff']:.3f}, "
         f"mean share of the clue seen {d['mean_fraction_at_commit']:.2f}",
-        f"  always wait for the whole clue:           commit rate "
+        f"  the same threshold on whole clues only:   commit rate "
         f"{d['full_clue_commit_rate']:.3f}, mean payoff {d['full_clue_mean_payoff']:.3f}",
         "",
         "share seen  clues  top-1   commit  accuracy if committed  mean payoff",

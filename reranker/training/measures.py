@@ -259,8 +259,9 @@ def by_prefix(
 ) -> list[dict[str, Any]]:
     """Per share of the clue revealed: top-1 accuracy, commit rate, accuracy when committed, payoff.
 
-    A group answers when one of its rows is committed: +reward if that row is right, -penalty
-    if wrong; a group that waits scores 0. Fractions are grouped by exact value.
+    A group answers when one of its rows is committed: +reward if that row is right (less its
+    `reward_fall` share times the share seen, when the payoff has one), -penalty if wrong; a
+    group that waits scores 0. Fractions are grouped by exact value.
     """
     y, p = _labels_and_probs(y_true, prob)
     n = len(y)
@@ -284,7 +285,15 @@ def by_prefix(
     answered = n_committed == 1
     right = np.add.reduceat((com & (y == 1))[order].astype(np.int64), starts) == 1
     top_right = y[order[starts]] == 1
-    gain = np.where(answered, np.where(right, reward, -penalty), 0.0)
+    # A payoff that values speed pays a right answer less the more of the clue was seen (the
+    # cost per word needs each clue's word count, which this table does not have).
+    fall = (
+        payoff.get("reward_fall", 0.0)
+        if isinstance(payoff, Mapping)
+        else getattr(payoff, "reward_fall", 0.0)
+    )
+    reward_now = reward * (1.0 - float(fall) * group_frac)
+    gain = np.where(answered, np.where(right, reward_now, -penalty), 0.0)
 
     rows = []
     for f in np.unique(group_frac):

@@ -285,6 +285,14 @@ def test_by_prefix_hand_example(payoff: object) -> None:
     ]
 
 
+def test_by_prefix_pays_less_for_a_late_right_answer() -> None:
+    # Same case, reward falling by half across the clue (hand arithmetic, own metric):
+    # 0.5: g0 right earns 1 x (1 - 0.5 x 0.5) = 0.75, g1 wrong -3: payoff (0.75 - 3) / 2 = -1.125
+    # 1.0: g3 right earns 1 x (1 - 0.5 x 1.0) = 0.5, g2 waits: payoff 0.5 / 2 = 0.25
+    rows = by_prefix(**PREFIX_CASE, payoff={"reward": 1.0, "penalty": 3.0, "reward_fall": 0.5})
+    assert [r["mean_payoff"] for r in rows] == [-1.125, 0.25]
+
+
 def test_by_prefix_nothing_committed_gives_none() -> None:
     case = dict(PREFIX_CASE, committed=[False] * 8)
     rows = by_prefix(**case, payoff={"reward": 1, "penalty": 1})
