@@ -191,7 +191,7 @@ class RankedHow(BaseModel):
     timing: TimingOut
 
 
-class RankResponse(RankResult, RankedHow):
+class RankResponse(RankedHow, RankResult):
     """Reply to POST /v1/rank."""
 
 

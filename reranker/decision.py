@@ -130,6 +130,14 @@ def choose_threshold(
     return 0.5, "default", BASIS_TEXT["default"]
 
 
+def _apart(value: float, other: float) -> str:
+    """`value` to 3 decimals, or more when that is needed to tell it from `other`."""
+    for places in range(3, 10):
+        if f"{value:.{places}f}" != f"{other:.{places}f}":
+            return f"{value:.{places}f}"
+    return f"{value:.3f}"
+
+
 def decide(
     top_id: str | None,
     top_probability: float | None,
@@ -172,13 +180,15 @@ def decide(
             ANSWER,
             top_id,
             top_probability,
-            f"top probability {top_probability:.3f} >= threshold {threshold:.3f}",
+            f"top probability {_apart(top_probability, threshold)} >= threshold "
+            f"{_apart(threshold, top_probability)}",
         )
     return made(
         idle,
         None,
         top_probability,
-        f"top probability {top_probability:.3f} < threshold {threshold:.3f}",
+        f"top probability {_apart(top_probability, threshold)} < threshold "
+        f"{_apart(threshold, top_probability)}",
     )
 
 

@@ -46,6 +46,11 @@ def test_decide_answer_wait_abstain() -> None:
     assert "0.600 < threshold 0.750" in d.reason
     assert decide("a1", 0.6, 0.75, complete=True).action == ABSTAIN
     assert decide("a1", 0.9, 0.75, complete=True).action == ANSWER
+
+
+def test_reason_shows_enough_decimals_to_tell_probability_from_threshold() -> None:
+    # 0.72988 and 0.73 both read 0.730 at three decimals, which read as "0.730 < 0.730".
+    assert "0.7299 < threshold 0.7300" in decide("a1", 0.72988, 0.73).reason
     d = decide(None, None, 0.5)
     assert d.action == WAIT and "no candidates" in d.reason
     assert decide(None, None, 0.5, complete=True).action == ABSTAIN
