@@ -123,7 +123,12 @@ def test_a_threshold_only_change_reaches_every_worker(
 ) -> None:
     served = _served(model_path, tmp_path)
     artifact = json.loads(model_path.read_text(encoding="utf-8"))
-    old_threshold = artifact["decision"]["threshold"]
+    # A request without `revealed` gets the whole-clue threshold: the schedule's last one when
+    # the model has a schedule, else the single threshold.
+    schedule = artifact["decision"].get("schedule")
+    where = schedule["thresholds"] if schedule else artifact["decision"]
+    slot = len(where) - 1 if schedule else "threshold"
+    old_threshold = where[slot]
     new_threshold = 0.91 if old_threshold != 0.91 else 0.76
     clue = test_questions[0]["clue"]
     args = ["--index", str(index_dir), "--model", str(served)]
@@ -133,7 +138,10 @@ def test_a_threshold_only_change_reaches_every_worker(
         # The same fitted numbers, another threshold (as retraining with another payoff
         # gives); the file's own model_version field is left as it was.
         changed = json.loads(json.dumps(artifact))
-        changed["decision"]["threshold"] = new_threshold
+        if schedule:
+            changed["decision"]["schedule"]["thresholds"][-1] = new_threshold
+        else:
+            changed["decision"]["threshold"] = new_threshold
         _put_in_place(served, json.dumps(changed))
         with httpx.Client(base_url=server.url, timeout=30) as c:
             r = c.post("/v1/admin/reload", headers=admin_headers())
