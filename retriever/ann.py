@@ -15,6 +15,7 @@ from typing import Any
 
 import numpy as np
 
+from . import atomicfile
 from .errors import IndexFormatError
 
 ANN_FILE = "docvec.faiss"
@@ -46,9 +47,8 @@ def build(folder: Path, docvec: np.ndarray, settings: Any, threads: int = 1) -> 
     index.hnsw.efConstruction = settings.ann_ef_construction
     for s in range(0, docvec.shape[0], _ADD_BLOCK):
         index.add(np.ascontiguousarray(docvec[s : s + _ADD_BLOCK], dtype=np.float32))
-    tmp = folder / f".{ANN_FILE}.tmp"
-    faiss.write_index(index, str(tmp))
-    tmp.rename(folder / ANN_FILE)
+    with atomicfile.replacing(folder / ANN_FILE) as tmp:
+        faiss.write_index(index, str(tmp))
     return {
         "library": "faiss",
         "kind": type(index).__name__,

@@ -9,6 +9,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from retriever import atomicfile
+
 from ..errors import LabelledLogError
 from ..servedrecords import (
     FEEDBACK,
@@ -149,14 +151,7 @@ def read_logs(
 
 def write_labelled(path: str | Path, clues: Iterable[LabelledClue]) -> None:
     """Write clues in the training form, through a temporary file and a rename."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp")
-    with open(tmp, "w", encoding="utf-8") as fh:
+    with atomicfile.replacing(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
         for c in clues:
-            fh.write(
-                json.dumps(
-                    {"clue": c.clue, "answer": c.answer, "metadata": c.metadata}, ensure_ascii=False
-                )
-                + "\n"
-            )
-    tmp.replace(path)
+            record = {"clue": c.clue, "answer": c.answer, "metadata": c.metadata}
+            fh.write(json.dumps(record, ensure_ascii=False) + "\n")
