@@ -8,7 +8,7 @@ from typing import Literal, cast
 from fastapi import Response
 from pydantic import BaseModel
 
-from reranker import Ranking
+from reranker import Explanation, Ranking, ServedModel, explain_row
 
 from . import schemas as s
 
@@ -31,8 +31,41 @@ def finite(features: dict[str, float]) -> dict[str, float | None]:
     return {k: v if math.isfinite(v) else None for k, v in features.items()}
 
 
-def rank_result(request_id: str, r: Ranking, include_features: bool) -> s.RankResult:
-    """The reply part for one ranked clue."""
+def _number(v: float) -> float | None:
+    return v if math.isfinite(v) else None
+
+
+def explanation_out(e: Explanation) -> s.ExplanationOut:
+    """An explanation as its reply body (NaN/inf values as null)."""
+    return s.ExplanationOut(
+        features=[
+            s.FeaturePartOut(
+                name=p.name,
+                value=_number(p.value),
+                scaled=_number(p.scaled),
+                coefficient=p.coefficient,
+                contribution=_number(p.contribution),
+            )
+            for p in e.parts
+        ],
+        intercept=e.intercept,
+        logit=e.logit,
+        raw_probability=e.raw_probability,
+        calibration=e.calibration,
+        pointwise=e.pointwise,
+        how=e.how,
+    )
+
+
+def _explained(model: ServedModel, features: dict[str, float]) -> s.ExplanationOut:
+    return explanation_out(explain_row(model, features))
+
+
+def rank_result(
+    request_id: str, r: Ranking, include_features: bool, explain: ServedModel | None = None
+) -> s.RankResult:
+    """The reply part for one ranked clue; `explain`: the model whose logits to take apart
+    (the ranking must carry the candidates' features)."""
     cands = [
         s.CandidateOut(
             id=c.doc_id,
@@ -43,6 +76,7 @@ def rank_result(request_id: str, r: Ranking, include_features: bool) -> s.RankRe
             probability=c.probability,
             pointwise=c.pointwise,
             features=finite(c.features) if include_features else None,
+            explanation=None if explain is None else _explained(explain, c.features),
         )
         for c in r.candidates
     ]

@@ -13,7 +13,7 @@ from typing import Any, Literal
 
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
 
-from reranker import Payoff, Ranking, model_k, rank_clues
+from reranker import Payoff, Ranking, ServedModel, model_k, rank_clues
 from reranker.servedrecords import feedback_record, served_record
 
 from . import schemas as s
@@ -48,6 +48,11 @@ def _ranked_by(loaded: Loaded) -> Literal["probability", "bm25"]:
 
 def _model_k(loaded: Loaded) -> int | None:
     return None if loaded.model is None else model_k(loaded.model)
+
+
+def _explainer(body: s.RankRequest | s.BatchRankRequest, loaded: Loaded) -> ServedModel | None:
+    """The model to explain the reply's candidates with (None: no explanations)."""
+    return loaded.model if body.explain else None
 
 
 def _record(runtime: Runtime, rankings: list[Ranking]) -> None:
@@ -120,7 +125,7 @@ def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Res
     loaded, k, [(rid, r)], ranked = _rank_and_log(
         body, [body.clue], [body.metadata], runtime, settings
     )
-    res = rank_result(rid, r, body.include_features)
+    res = rank_result(rid, r, body.include_features, _explainer(body, loaded))
     reply = s.RankResponse(**dict(res), **_reply_fields(body, loaded, k, started, ranked))
     return json_reply(reply)
 
@@ -141,7 +146,8 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
     loaded, k, served, ranked = _rank_and_log(
         body, list(body.clues), [None] * len(body.clues), runtime, settings
     )
-    results = [rank_result(rid, r, body.include_features) for rid, r in served]
+    explainer = _explainer(body, loaded)
+    results = [rank_result(rid, r, body.include_features, explainer) for rid, r in served]
     reply = s.BatchRankResponse(results=results, **_reply_fields(body, loaded, k, started, ranked))
     return json_reply(reply)
 

@@ -79,6 +79,11 @@ class _RankOptions(_Strict):
         "k: probabilities are always computed over the model's k candidates, k only cuts the reply",
     )
     include_features: bool = Field(default=False, description="add each candidate's features")
+    explain: bool = Field(
+        default=False,
+        description="add each candidate's explanation: every feature's raw and scaled value "
+        "and its contribution to the logit, the intercept, and how the probabilities follow",
+    )
     payoff: PayoffIn | None = Field(default=None, description="overrides the model's threshold")
     complete: bool = Field(
         default=False, description="the clue is finished: no more words are coming"
@@ -113,6 +118,30 @@ class BatchRankRequest(_RankOptions):
     clues: list[Clue] = Field(min_length=1, description="clues to rank, answered in order")
 
 
+class FeaturePartOut(BaseModel):
+    """One feature's part in a candidate's logit."""
+
+    name: str
+    value: float | None = Field(description="the feature's value for this candidate")
+    scaled: float | None = Field(description="(value - mean) / scale, as the model standardizes")
+    coefficient: float
+    contribution: float | None = Field(description="coefficient * scaled: its part of the logit")
+
+
+class ExplanationOut(BaseModel):
+    """How the model reached a candidate's probability."""
+
+    features: list[FeaturePartOut] = Field(description="by absolute contribution, largest first")
+    intercept: float
+    logit: float = Field(description="intercept + the contributions' sum")
+    raw_probability: float = Field(description="1 / (1 + exp(-logit))")
+    calibration: str = Field(
+        description="the calibrator between raw_probability and pointwise: none, platt or isotonic"
+    )
+    pointwise: float = Field(description="raw_probability after the calibrator")
+    how: str = Field(description="the steps in words, down to the served probability")
+
+
 class CandidateOut(BaseModel):
     """One candidate article."""
 
@@ -132,6 +161,9 @@ class CandidateOut(BaseModel):
     )
     features: dict[str, float | None] | None = Field(
         default=None, description="feature values (only when include_features is true)"
+    )
+    explanation: ExplanationOut | None = Field(
+        default=None, description="only when explain is true and a model is loaded"
     )
 
 

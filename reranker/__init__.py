@@ -15,6 +15,7 @@ from .errors import (
     RerankerError,
     TrainingError,
 )
+from .explain import Explanation, FeaturePart, explain_row
 from .features import CandidateSet, Feature, FeatureRegistry, default_registry
 from .loading import ServedModel, load_model, model_k
 from .model import LinearModel, read_model, save_model
@@ -23,8 +24,10 @@ from .ranking import Ranking, ScoredCandidate, rank_clue, rank_clues
 __all__ = [
     "CandidateSet",
     "Decision",
+    "Explanation",
     "Feature",
     "FeatureError",
+    "FeaturePart",
     "FeatureRegistry",
     "LabelledLogError",
     "LinearModel",
@@ -38,6 +41,7 @@ __all__ = [
     "TrainingError",
     "decide",
     "default_registry",
+    "explain_row",
     "load_model",
     "model_k",
     "rank_clue",

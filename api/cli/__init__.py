@@ -5,12 +5,12 @@ from __future__ import annotations
 import argparse
 from collections.abc import Callable, Sequence
 
-from . import demo, index, model, serve
+from . import demo, features, index, model, rank, serve
 from .console import fail
 
 # Each module adds its sub-commands; a sub-command stores its handler as `func`. The modules
 # import the heavy libraries inside their handlers, so `hunchwise --help` answers at once.
-COMMAND_MODULES = [index, model, serve, demo]
+COMMAND_MODULES = [index, model, rank, features, serve, demo]
 
 
 def _version() -> str:

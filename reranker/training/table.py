@@ -78,6 +78,7 @@ class TrainingTable:
     n_clues: int = 0
     n_prefixes: int = 0
     clues: list[LabelledClue] = field(default_factory=list)  # the kept clues, by clue_id
+    texts: list[str] = field(default_factory=list)  # each clue prefix's text, by group
 
     def columns(self, names: Sequence[str]) -> np.ndarray:
         """The feature columns `names`, in that order."""
@@ -227,4 +228,5 @@ def build_table(
         n_clues=n_clues,
         n_prefixes=len(texts),
         clues=pre.kept,
+        texts=texts,
     )
