@@ -103,3 +103,15 @@ def test_export_refuses_an_unknown_output_format(index_dir: Path, tmp_path: Path
     res = run("features", "export", "--index", index_dir, "--log", log, "--out", tmp_path / "t.xls")
     assert res.returncode == 2
     assert "t.xls: cannot tell the format from the name" in res.stderr
+
+
+@pytest.mark.slow
+def test_export_to_parquet_holds_the_same_rows(
+    demo: dict[str, Path], index_dir: Path, model_path: Path, tmp_path: Path
+) -> None:
+    pq = pytest.importorskip("pyarrow.parquet")
+    args = ["--index", index_dir, "--log", demo["test"], "--model", model_path]
+    assert run("features", "export", *args, "--out", tmp_path / "t.jsonl").returncode == 0
+    res = run("features", "export", *args, "--out", tmp_path / "t.parquet")
+    assert res.returncode == 0, res.stderr
+    assert pq.read_table(tmp_path / "t.parquet").to_pylist() == read_jsonl(tmp_path / "t.jsonl")
