@@ -21,6 +21,7 @@ from . import vectors as vecs
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
 from .counting import TermCounter, count_articles, default_workers, no_gc
+from .errors import IndexFormatError
 from .index import Index, load_index
 from .ingest import Keys, ingest
 from .links import NameResolver, count_inlinks
@@ -293,6 +294,11 @@ def update_index(
     """
     started = time.perf_counter()
     old = load_index(index_dir)
+    if "shard" in old.manifest:
+        raise IndexFormatError(
+            f"{index_dir}: this is one shard of a sharded index, weighted with the whole "
+            "corpus's statistics; rebuild the whole index with --shards instead"
+        )
     report = report if report is not None else ReadReport()
     missing = [d for d in remove if d not in old.ids]
     if missing:
