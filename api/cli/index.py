@@ -85,6 +85,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--shards",
         type=int,
+        metavar="N",
         default=0,
         help="build N shards of contiguous articles whose searches equal one index's "
         "(no word vectors yet; search only)",
