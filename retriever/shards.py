@@ -316,7 +316,15 @@ class _Runner:
         if self.ray is None:
             return [fn(*args) for args in calls]
         task = self.ray.remote(num_cpus=1, max_retries=0)(fn)
-        return list(self.ray.get([task.remote(*args) for args in calls]))
+        try:
+            return list(self.ray.get([task.remote(*args) for args in calls]))
+        except self.ray.exceptions.RayTaskError as exc:
+            # The task's own error (a bad line, say) as a single build raises it, without
+            # the remote traceback Ray puts in its message.
+            cause = getattr(exc, "cause", None)
+            if isinstance(cause, Exception):
+                raise cause from None
+            raise
 
     def close(self) -> None:
         if self._started:

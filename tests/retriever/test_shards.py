@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from retriever import BM25Params, IndexFormatError, build_index, load_index
+from retriever import BM25Params, CorpusError, IndexFormatError, build_index, load_index
 from retriever.index import Index
 from retriever.postings import FieldCounts
 from retriever.sharded import ShardedIndex
@@ -361,3 +361,25 @@ def test_sharded_folder_refused_where_a_single_index_is_needed(skewed: Pair) -> 
 def test_split_items_covers_every_item() -> None:
     assert split_items(10, 3) == [(0, 3), (3, 6), (6, 10)]
     assert split_items(2, 4) == [(0, 1), (1, 2)]
+
+
+def test_bad_line_in_a_ray_task_is_named_in_one_line(ray_cluster: None, tmp_path: Path) -> None:
+    corpus = tmp_path / "bad.jsonl"
+    corpus.write_text(
+        '{"id":"a","title":"A","text":"alpha"}\n{"id":"b","title":"B"}\n'
+        '{"id":"c","title":"C","text":"gamma"}\n',
+        encoding="utf-8",
+    )
+    with pytest.raises(CorpusError) as caught:
+        build_sharded(corpus, tmp_path / "idx", shards=2, ray_address="local")
+    assert str(caught.value) == f"{corpus}, line 2, field 'text': is required"
+    assert not (tmp_path / "idx").exists()
+
+
+def test_corpus_error_survives_pickling() -> None:
+    """How a Ray task's error reaches the driver."""
+    import pickle
+
+    err = CorpusError("is required", file="c.jsonl", line=2, field="text")
+    back = pickle.loads(pickle.dumps(err))
+    assert (str(back), back.file, back.line, back.field) == (str(err), "c.jsonl", 2, "text")
