@@ -218,7 +218,7 @@ def _build_sharded(args: argparse.Namespace, started: float) -> int:
     from retriever.shards import build_sharded
 
     if args.shards < 1:
-        raise ValueError("--ray needs --shards N (N at least 1)")
+        raise ValueError("--shards must be at least 1 (--ray needs --shards N)")
     out = build_sharded(
         args.corpus,
         args.out,
