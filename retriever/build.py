@@ -7,6 +7,7 @@ import json
 import time
 from collections.abc import Iterable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, Protocol
@@ -20,19 +21,35 @@ from . import vectors as vecs
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
 from .counting import TermCounter, count_articles, default_workers, no_gc
+from .errors import IndexFormatError
 from .index import Index, load_index
 from .ingest import Keys, ingest
 from .links import NameResolver, count_inlinks
-from .postings import FieldCounts, term_major, weight_dtype
+from .postings import CorpusStats, FieldCounts, term_major, weight_dtype
 
 
-def _write_keys(tmp: Path, keys: Keys) -> tuple[int, int, int]:
+@dataclass(frozen=True)
+class KnownLinks:
+    """In-links resolved over a whole corpus, for a shard of it: the shard's rows' in-link
+    counts, its unresolved (id, link) pairs and the corpus's count of ambiguous aliases."""
+
+    inlinks: np.ndarray
+    unresolved: list[tuple[str, str]]
+    ambiguous: int
+
+
+def _write_keys(tmp: Path, keys: Keys, known: KnownLinks | None = None) -> tuple[int, int, int]:
     """In-links and the key columns; returns (unresolved links, ambiguous aliases,
-    qualified titles)."""
-    resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
-    inlinks, missing = count_inlinks(resolver, keys.links, len(keys))
-    store.write_unresolved(tmp, [(keys.ids[row], name) for row, name in missing])
-    store.save_array(tmp, "inlinks", inlinks)
+    qualified titles). `known`: in-links already resolved over the whole corpus."""
+    if known is None:
+        resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
+        inlinks, missing = count_inlinks(resolver, keys.links, len(keys))
+        unresolved = [(keys.ids[row], name) for row, name in missing]
+        ambiguous = len(resolver.ambiguous_aliases)
+    else:
+        inlinks, unresolved, ambiguous = known.inlinks, known.unresolved, known.ambiguous
+    store.write_unresolved(tmp, unresolved)
+    store.save_array(tmp, "inlinks", inlinks.astype(np.int32))
     store.save_array(tmp, "popularity", np.asarray(keys.popularity, dtype=np.float64))
     split = [split_title(title) for title in keys.titles]
     columns.write_strings(tmp, "ids", keys.ids, sort_index=True)
@@ -40,10 +57,10 @@ def _write_keys(tmp: Path, keys: Keys) -> tuple[int, int, int]:
     columns.write_strings(tmp, "bases", (s[0] for s in split))
     columns.write_strings(tmp, "qualifiers", (s[1] for s in split))
     columns.write_strings(tmp, "aliases", (columns.JsonListColumn.encode(a) for a in keys.aliases))
-    return len(missing), len(resolver.ambiguous_aliases), sum(1 for s in split if s[1])
+    return len(unresolved), ambiguous, sum(1 for s in split if s[1])
 
 
-def _write(
+def write_folder(
     tmp: Path,
     keys: Keys,
     counter: TermCounter,
@@ -53,19 +70,32 @@ def _write(
     checksum: str,
     build: dict[str, Any],
     started: float,
+    *,
+    stats: CorpusStats | None = None,
+    known: KnownLinks | None = None,
+    shard: dict[str, Any] | None = None,
 ) -> None:
-    """Write everything but the article store into the temporary index folder `tmp`."""
+    """Write everything but the article store into the temporary index folder `tmp`.
+
+    For one shard of a bigger corpus (retriever/shards.py): `stats` (the corpus's vocabulary,
+    document frequencies and lengths), `known` (its in-links) and `shard` (where the rows
+    sit, for the manifest); the weights are then those the whole corpus's build gives.
+    """
     # The key columns and in-links are plain Python work; the postings are numpy and scipy
     # loops that release the GIL, so the two run side by side.
     with ThreadPoolExecutor(1, thread_name_prefix="hunchwise-keys") as pool:
-        keys_job = pool.submit(_write_keys, tmp, keys)
+        keys_job = pool.submit(_write_keys, tmp, keys, known)
         # `body_order[i]` is the counted row that becomes row i (updates count rows out of
         # order).
-        all_terms, (tf_body, tf_title), (fwd_indptr, fwd_terms) = term_major(counter, body_order)
+        vocab = stats.terms if stats is not None else None
+        all_terms, (tf_body, tf_title), (fwd_indptr, fwd_terms) = term_major(
+            counter, body_order, vocab
+        )
         store.save_array(tmp, "body_fwd_indptr", fwd_indptr)
         store.save_array(tmp, "body_fwd_terms", fwd_terms)
         del fwd_indptr, fwd_terms
-        body, title = FieldCounts(tf_body, params), FieldCounts(tf_title, params)
+        body = FieldCounts(tf_body, params, stats.body if stats is not None else None)
+        title = FieldCounts(tf_title, params, stats.title if stats is not None else None)
         del tf_body, tf_title
         dtype = weight_dtype(body.idf, title.idf)
         for prefix, fld in (("body", body), ("title", title)):
@@ -106,6 +136,8 @@ def _write(
         "weights": np.dtype(dtype).name,
         "build": build_info,
     }
+    if shard is not None:
+        manifest["shard"] = shard
     build_info["bytes_on_disk"] = store.folder_size(tmp)
     # Written last: its presence marks a whole index.
     store.write_json(tmp / store.MANIFEST, manifest)
@@ -199,7 +231,7 @@ def build_index(
         }
         if isinstance(corpus, str | Path):
             build["corpus"] = str(Path(corpus).resolve())  # for a printed rebuild command
-        _write(tmp, state.keys, state.counter, None, an, p, checksum, build, started)
+        write_folder(tmp, state.keys, state.counter, None, an, p, checksum, build, started)
         del state
         if vec_settings is not None:
             vecs.add_to_folder(tmp, an, vec_settings, progress=progress)
@@ -262,6 +294,11 @@ def update_index(
     """
     started = time.perf_counter()
     old = load_index(index_dir)
+    if "shard" in old.manifest:
+        raise IndexFormatError(
+            f"{index_dir}: this is one shard of a sharded index, weighted with the whole "
+            "corpus's statistics; rebuild the whole index with --shards instead"
+        )
     report = report if report is not None else ReadReport()
     missing = [d for d in remove if d not in old.ids]
     if missing:
@@ -324,7 +361,7 @@ def update_index(
     del old  # release the memory maps before the folder is swapped
     with store.atomic_folder(Path(index_dir)) as tmp:
         store.write_store(tmp, final)
-        _write(tmp, Keys.of(final), counter, order, an, params, checksum, build, started)
+        write_folder(tmp, Keys.of(final), counter, order, an, params, checksum, build, started)
         if vec_entry:
             # The stored word vectors and weights give every article its vector again
             # (no training; a kept article's vector comes out as before).

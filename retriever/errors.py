@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 
 class RetrieverError(Exception):
     """Base class of every error the retrieval core raises on purpose."""
@@ -40,6 +42,14 @@ class CorpusError(RetrieverError):
     def __init__(self, message: str, *, file: str = "", line: int = 0, field: str = "") -> None:
         self.file, self.line, self.field, self.reason = file, line, field, message
         super().__init__(located(message, file, line, field))
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        """Pickled by its fields: raised in a Ray task, it comes back as it was."""
+        return (_corpus_error, (self.reason, self.file, self.line, self.field))
+
+
+def _corpus_error(message: str, file: str, line: int, field: str) -> CorpusError:
+    return CorpusError(message, file=file, line=line, field=field)
 
 
 class IndexFormatError(RetrieverError):

@@ -9,7 +9,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal, overload
 
 import numpy as np
 
@@ -19,19 +19,10 @@ from .bm25 import BM25Params
 from .counting import cores
 from .dense import DenseSearcher
 from .errors import IndexFormatError, UnknownDocumentError
+from .hits import Hit
 from .links import NameResolver
+from .sharded import ShardedIndex
 from .vectors import DenseVectors
-
-
-@dataclass(frozen=True)
-class Hit:
-    """One retrieved article: its id, title, BM25 score, 1-based rank and row in the index."""
-
-    doc_id: str
-    title: str
-    score: float
-    rank: int
-    row: int
 
 
 @dataclass(frozen=True)
@@ -315,6 +306,22 @@ class Index:
         return f"Index({str(self.path)!r}, articles={self.n_docs}, terms={self.n_terms})"
 
 
-def load_index(folder: str | Path, *, title_weight: float | None = None) -> Index:
-    """Open an index folder (arrays are memory-mapped, so loading is fast and shared)."""
+@overload
+def load_index(
+    folder: str | Path, *, title_weight: float | None = None, sharded: Literal[False] = False
+) -> Index: ...
+@overload
+def load_index(
+    folder: str | Path, *, title_weight: float | None = None, sharded: Literal[True]
+) -> Index | ShardedIndex: ...
+def load_index(
+    folder: str | Path, *, title_weight: float | None = None, sharded: bool = False
+) -> Index | ShardedIndex:
+    """Open an index folder (arrays are memory-mapped, so loading is fast and shared).
+
+    sharded=True also opens a sharded index's folder (retriever/shards.py), which can only
+    be searched for now; without it such a folder is refused with a message saying so.
+    """
+    if sharded and store.is_sharded(Path(folder)):
+        return ShardedIndex(Path(folder), lambda path: Index(path, title_weight=title_weight))
     return Index(folder, title_weight=title_weight)

@@ -8,10 +8,12 @@ need (ids, titles, aliases, links, popularity), never the article texts.
 
 from __future__ import annotations
 
+import contextlib
 import gzip
+import itertools
 import json
 from collections import deque
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Generator, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
@@ -56,13 +58,15 @@ class Keys:
     aliases: list[tuple[str, ...]] = field(default_factory=list)
     links: list[tuple[str, ...]] = field(default_factory=list)
     popularity: list[float] = field(default_factory=list)
+    lines: list[int] = field(default_factory=list)  # where each came from in its file
 
     def __len__(self) -> int:
         return len(self.ids)
 
     def append(self, meta: Meta) -> None:
         """Add one article's keys."""
-        _, _, doc_id, title, aliases, links, pop = meta
+        line, _, doc_id, title, aliases, links, pop = meta
+        self.lines.append(line)
         self.ids.append(doc_id)
         self.titles.append(title)
         self.aliases.append(aliases)
@@ -137,7 +141,14 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     return ChunkOut(pid, fresh, metas, errors, encoded, body, title)
 
 
-def _raw_items(source: str | Path | Iterable[Mapping[str, Any] | Article]) -> Iterator[RawItem]:
+def count_items(source: str | Path) -> int:
+    """Raw items (lines or rows, blank lines not counted) of a corpus file."""
+    return sum(1 for _ in _raw_items(source))
+
+
+def _raw_items(
+    source: str | Path | Iterable[Mapping[str, Any] | Article],
+) -> Generator[RawItem, None, None]:
     if not isinstance(source, str | Path):
         yield from enumerate(source, 1)
         return
@@ -266,12 +277,23 @@ def ingest(
     skip_bad: bool,
     report: ReadReport,
     bar: Any,
+    items: tuple[int, int] | None = None,
 ) -> Ingest:
-    """Read, validate, store (into `store_fh`) and count every article of `source`."""
+    """Read, validate, store (into `store_fh`) and count every article of `source`.
+
+    `items`: only the raw items (lines or rows, bad ones included, blank lines not) from
+    position start to stop, counted from 0: one shard of a corpus.
+    """
     file = str(source) if isinstance(source, str | Path) else RECORDS
     state = Ingest(file, store_fh, skip_bad, report)
     sent: deque[list[RawItem]] = deque()
-    tasks = _tasks(file, _raw_items(source), bar, sent)
-    for out in run_chunks(ingest_chunk, tasks, analyzer, workers):
-        state.add(out, sent.popleft())
+    # closing: a shard stops reading before the end, and the file must not wait for the
+    # garbage collector to be closed.
+    with contextlib.closing(_raw_items(source)) as all_items:
+        raw: Iterator[RawItem] = all_items
+        if items is not None:
+            raw = itertools.islice(all_items, items[0], items[1])
+        tasks = _tasks(file, raw, bar, sent)
+        for out in run_chunks(ingest_chunk, tasks, analyzer, workers):
+            state.add(out, sent.popleft())
     return state

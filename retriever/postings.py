@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -16,22 +18,60 @@ from .counting import TermCounter
 _WEIGHT_SLICE = 1 << 21
 
 
-class FieldCounts:
-    """Term-major counts of one field and its per-term IDF."""
+@dataclass(frozen=True)
+class FieldStats:
+    """One field's statistics over a whole corpus, for a part of it written on its own.
 
-    def __init__(self, tf: sp.csc_matrix, params: bm25.BM25Params) -> None:
+    df: articles holding each term of the shared vocabulary (int64); n_docs: articles in
+    the corpus; total_len: the field's tokens over the corpus (avgdl = total_len / n_docs).
+    """
+
+    df: np.ndarray
+    n_docs: int
+    total_len: int
+
+
+@dataclass(frozen=True)
+class CorpusStats:
+    """The statistics a part of a corpus needs to get the weights a whole build gives it:
+    the corpus's sorted vocabulary and each field's FieldStats over that vocabulary."""
+
+    terms: Sequence[str]
+    body: FieldStats
+    title: FieldStats
+
+
+class FieldCounts:
+    """Term-major counts of one field and its per-term IDF.
+
+    With `stats`, the counts are some rows of a bigger corpus (a shard): IDF and average
+    length come from the corpus's figures, so every weight equals the whole build's.
+    """
+
+    def __init__(
+        self, tf: sp.csc_matrix, params: bm25.BM25Params, stats: FieldStats | None = None
+    ) -> None:
         self.tf = tf
         n_docs = tf.shape[0]
         if not tf.has_sorted_indices:
             tf.sort_indices()
         self.doc_len = np.bincount(tf.indices, weights=tf.data, minlength=n_docs).astype(np.int64)
-        self.avgdl = float(self.doc_len.sum()) / n_docs if n_docs else 0.0
-        self.df = np.diff(tf.indptr)
+        self.df = np.diff(tf.indptr)  # postings per term here (weights() walks them)
+        if stats is None:
+            total, n_all, df_all = int(self.doc_len.sum()), n_docs, self.df
+        else:
+            if stats.df.size != self.df.size:
+                raise ValueError(
+                    f"the corpus statistics cover {stats.df.size} terms, these counts "
+                    f"{self.df.size}"
+                )
+            total, n_all, df_all = int(stats.total_len), int(stats.n_docs), stats.df
+        self.avgdl = float(total) / n_all if n_all else 0.0
         # The IDF (and the okapi floor's mean) is over the terms this field contains, as in
         # rank_bm25; the shared vocabulary also holds terms seen only in the other field.
-        present = self.df > 0
-        self.idf = np.zeros(self.df.size, dtype=np.float64)
-        self.idf[present] = bm25.idf(self.df[present], n_docs, params)
+        present = df_all > 0
+        self.idf = np.zeros(df_all.size, dtype=np.float64)
+        self.idf[present] = bm25.idf(df_all[present], n_all, params)
 
     def weights(self, params: bm25.BM25Params, dtype: type[np.floating[Any]]) -> np.ndarray:
         """BM25 weight of every posting, in term-major order, computed slice by slice."""
@@ -72,11 +112,22 @@ def weight_dtype(*idfs: np.ndarray) -> type[np.floating[Any]]:
     return np.float32
 
 
+def sorted_terms(terms: Iterable[str]) -> list[str]:
+    """Distinct terms in the vocabulary's order (code points: the same corpus always gives
+    the same index, and a sharded build's driver sorts its union the same way)."""
+    names = np.asarray(list(terms), dtype=object)
+    return [str(t) for t in names[np.argsort(names.astype(str), kind="stable")]]
+
+
 def term_major(
-    counter: TermCounter, order: np.ndarray | None
+    counter: TermCounter, order: np.ndarray | None, vocab: Sequence[str] | None = None
 ) -> tuple[list[str], list[sp.csc_matrix], tuple[np.ndarray, np.ndarray]]:
     """Sorted vocabulary of the used terms, each field's (articles x terms) CSC counts, and
-    the body's article-major term ids (indptr, sorted term ids per article)."""
+    the body's article-major term ids (indptr, sorted term ids per article).
+
+    `vocab`: a given sorted vocabulary (a whole corpus's, for one shard of it) to use
+    instead; it must hold every term these articles use.
+    """
     n_terms = len(counter.terms)
     used = np.zeros(n_terms, dtype=bool)
     rows = []
@@ -87,17 +138,25 @@ def term_major(
         rows.append(m)
     names = np.asarray(counter.terms, dtype=object)
     used_ids = np.flatnonzero(used)
-    # Sorted and without unused terms: the same corpus always gives the same index.
-    ranked = used_ids[np.argsort(names[used_ids].astype(str), kind="stable")]
     new_id = np.full(n_terms, -1, dtype=np.int32)
-    new_id[ranked] = np.arange(ranked.size, dtype=np.int32)
+    if vocab is None:
+        ranked = used_ids[np.argsort(names[used_ids].astype(str), kind="stable")]
+        new_id[ranked] = np.arange(ranked.size, dtype=np.int32)
+        out_terms = [str(t) for t in names[ranked]]
+    else:
+        position = {t: i for i, t in enumerate(vocab)}
+        for i in used_ids.tolist():
+            gid = position.get(counter.terms[i])
+            if gid is None:
+                raise ValueError(f"term {counter.terms[i]!r} is not in the given vocabulary")
+            new_id[i] = gid
+        out_terms = list(vocab)
+    width = len(out_terms)
     mats = []
     forward: tuple[np.ndarray, np.ndarray] | None = None
     while rows:
         m = rows.pop(0)
-        remapped = sp.csr_matrix(
-            (m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], ranked.size)
-        )
+        remapped = sp.csr_matrix((m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], width))
         del m
         if forward is None:  # the body comes first
             remapped.sort_indices()
@@ -106,4 +165,4 @@ def term_major(
         del remapped
     if forward is None:  # pragma: no cover - the body is always counted
         raise RuntimeError("no body field was counted")
-    return [str(t) for t in names[ranked]], mats, forward
+    return out_terms, mats, forward

@@ -21,6 +21,9 @@ from .errors import IndexFormatError
 
 FORMAT_NAME = "hunchwise-index"
 FORMAT_VERSION = 3
+# A folder of shards (retriever/shards.py writes it, retriever/sharded.py reads it): its
+# manifest lists ordinary index folders holding contiguous rows of one corpus.
+SHARDS_FORMAT = "hunchwise-shards"
 MANIFEST = "manifest.json"
 STORE = "store.jsonl"
 STORE_OFFSETS = "store_offsets"
@@ -181,6 +184,12 @@ def read_manifest(folder: Path) -> dict[str, Any]:
         raise IndexFormatError(
             f"{path}: the manifest is not valid JSON; rebuild the index"
         ) from exc
+    if isinstance(manifest, dict) and manifest.get("format") == SHARDS_FORMAT:
+        raise IndexFormatError(
+            f"{folder}: this folder holds an index built in {len(manifest.get('shards', []))} "
+            "shards, which can only be searched for now ('hunchwise search'); serving, "
+            "training and updating need an index built without --shards"
+        )
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
         raise IndexFormatError(f"{folder}: {MANIFEST} does not describe a hunchwise index")
     version = manifest.get("format_version")
@@ -190,6 +199,15 @@ def read_manifest(folder: Path) -> dict[str, Any]:
             f"(it reads version {FORMAT_VERSION}); rebuild the index with this version"
         )
     return manifest
+
+
+def is_sharded(folder: Path) -> bool:
+    """True when `folder` holds a sharded index (its manifest says so)."""
+    try:
+        data = json.loads((folder / MANIFEST).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(data, dict) and data.get("format") == SHARDS_FORMAT
 
 
 _RENAME_EXCHANGE = 2

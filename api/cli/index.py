@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     from retriever import Index, ReadReport
+    from retriever.sharded import ShardedIndex
 
 from . import index_tune
 from .console import check_k, format_table, human_bytes, print_json, show_progress
@@ -80,6 +81,20 @@ def register(sub: argparse._SubParsersAction) -> None:
         "--skip-bad",
         action="store_true",
         help="skip bad lines (and report them) instead of stopping",
+    )
+    p.add_argument(
+        "--shards",
+        type=int,
+        metavar="N",
+        default=0,
+        help="build N shards of contiguous articles whose searches equal one index's "
+        "(no word vectors yet; search only)",
+    )
+    p.add_argument(
+        "--ray",
+        metavar="ADDRESS",
+        help="with --shards: run the build's tasks on this Ray cluster, or 'local' to start "
+        "one here (needs the 'cluster' extra; default: in this process)",
     )
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
     p.set_defaults(func=cmd_build)
@@ -171,6 +186,8 @@ def cmd_build(args: argparse.Namespace) -> int:
     from retriever import ReadReport, build_index
 
     started = time.perf_counter()
+    if args.shards or args.ray:
+        return _build_sharded(args, started)
     report = ReadReport()
     idx = build_index(
         args.corpus,
@@ -191,6 +208,49 @@ def cmd_build(args: argparse.Namespace) -> int:
         report=report,
     )
     _print_summary(_summary(idx, time.perf_counter() - started, report), args.json)
+    return 0
+
+
+def _build_sharded(args: argparse.Namespace, started: float) -> int:
+    """`index build --shards N [--ray ADDRESS]`."""
+    from retriever import AnalyzerConfig, BM25Params
+    from retriever.sharded import read_manifest
+    from retriever.shards import build_sharded
+
+    if args.shards < 1:
+        raise ValueError("--shards must be at least 1 (--ray needs --shards N)")
+    out = build_sharded(
+        args.corpus,
+        args.out,
+        shards=args.shards,
+        ray_address=args.ray,
+        analyzer=AnalyzerConfig(
+            stemmer=None if args.stemmer == "none" else args.stemmer,
+            stopwords=args.stopwords,
+            strip_accents=not args.keep_accents,
+        ),
+        params=BM25Params(
+            k1=args.k1, b=args.b, epsilon=args.epsilon, idf=args.idf, title_weight=args.title_weight
+        ),
+        skip_bad=args.skip_bad,
+    )
+    m = read_manifest(out)
+    summary = {
+        "index": str(out),
+        "index_version": m["index_version"],
+        "articles": m["articles"],
+        "shards": [s["articles"] for s in m["shards"]],
+        "skipped_lines": m["build"]["skipped_lines"],
+        "seconds": round(time.perf_counter() - started, 2),
+    }
+    if args.json:
+        print_json(summary)
+    else:
+        print(
+            f"index {out} (version {summary['index_version']}): {summary['articles']} articles "
+            f"in {len(summary['shards'])} shards, {summary['skipped_lines']} bad lines "
+            f"skipped, {summary['seconds']} s"
+        )
     return 0
 
 
@@ -263,7 +323,7 @@ def cmd_search(args: argparse.Namespace) -> int:
     check_k(args.k)
     if not args.clue.strip():
         raise ValueError("the clue is empty; give the words to search for (quote them)")
-    idx = load_index(args.index)
+    idx = load_index(args.index, sharded=True)
     hits = idx.search(args.clue, k=args.k)
     if args.json:
         print_json(
@@ -281,7 +341,7 @@ def cmd_search(args: argparse.Namespace) -> int:
     return 0
 
 
-def _why_nothing(idx: Index, clue: str) -> str:
+def _why_nothing(idx: Index | ShardedIndex, clue: str) -> str:
     """Why a non-empty clue found no candidates, in the analyzer's terms."""
     if not idx.analyzer.words(clue):
         return (

@@ -1,0 +1,144 @@
+"""A sharded index's folder: its top manifest, and searching all its shards as one index.
+
+The folder holds ordinary index folders (`shard-000`, ...) of contiguous rows of one corpus,
+built with the whole corpus's statistics (retriever/shards.py), so an article's score is the
+one a single index gives it. A search asks every shard for its k best and merges them by
+(score descending, row ascending), rows counted over the whole corpus: exactly how a single
+index orders its hits and breaks its ties.
+"""
+
+from __future__ import annotations
+
+import heapq
+import json
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any, Protocol
+
+from . import store
+from .analyzer import Analyzer
+from .errors import IndexFormatError
+from .hits import Hit
+
+SHARDS_FORMAT_VERSION = 1
+
+
+class Shard(Protocol):
+    """What searching needs from one shard (an `Index`)."""
+
+    n_docs: int
+    manifest: dict[str, Any]
+    analyzer: Analyzer
+
+    def search_token_lists(
+        self, token_lists: Sequence[Sequence[str]], k: int = 20
+    ) -> list[list[Hit]]: ...
+
+
+def write_manifest(folder: Path, manifest: dict[str, Any]) -> None:
+    """Write the top manifest (atomically, last: its presence marks a whole sharded index)."""
+    store.write_json(
+        folder / store.MANIFEST,
+        {"format": store.SHARDS_FORMAT, "format_version": SHARDS_FORMAT_VERSION, **manifest},
+    )
+
+
+def read_manifest(folder: Path) -> dict[str, Any]:
+    """The top manifest of a sharded index's folder, checked."""
+
+    path = folder / store.MANIFEST
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise IndexFormatError(f"{path}: unreadable ({exc}); rebuild the index") from exc
+    if not isinstance(data, dict) or data.get("format") != store.SHARDS_FORMAT:
+        raise IndexFormatError(f"{folder}: not a sharded hunchwise index")
+    if data.get("format_version") != SHARDS_FORMAT_VERSION:
+        raise IndexFormatError(
+            f"{folder}: sharded index format version {data.get('format_version')} is not "
+            f"supported (this hunchwise reads {SHARDS_FORMAT_VERSION}); rebuild the index"
+        )
+    if not isinstance(data.get("shards"), list) or not data["shards"]:
+        raise IndexFormatError(f"{path}: field 'shards' must be a non-empty list; rebuild")
+    return data
+
+
+class ShardedIndex:
+    """The shards of one corpus searched as one index (search only, for now)."""
+
+    def __init__(self, folder: Path, open_shard: Callable[[Path], Shard]) -> None:
+        self.path = folder
+        self.manifest = read_manifest(folder)
+        self.shards: list[Shard] = []
+        self.first_rows: list[int] = []
+        expected = 0
+        stats_sha = self.manifest.get("stats", {}).get("sha256")
+        for i, entry in enumerate(self.manifest["shards"]):
+            try:
+                sub = folder / str(entry["folder"])
+                first, n = int(entry["first_row"]), int(entry["articles"])
+            except (KeyError, TypeError, ValueError) as exc:
+                raise IndexFormatError(
+                    f"{folder / store.MANIFEST}: shard {i} lacks field {exc}; rebuild"
+                ) from exc
+            shard = open_shard(sub)
+            info = shard.manifest.get("shard", {})
+            if first != expected or shard.n_docs != n or info.get("first_row") != first:
+                raise IndexFormatError(
+                    f"{sub}: holds rows {info.get('first_row')}.. ({shard.n_docs} articles), "
+                    f"the top manifest says {first}.. ({n}); rebuild the index"
+                )
+            if info.get("stats_sha256") != stats_sha:
+                raise IndexFormatError(
+                    f"{sub}: built with other corpus statistics than its siblings; rebuild"
+                )
+            self.shards.append(shard)
+            self.first_rows.append(first)
+            expected += n
+        self.n_docs = expected
+        self.analyzer = self.shards[0].analyzer
+
+    @property
+    def version(self) -> str:
+        """Short identifier of this index's content and parameters."""
+        return str(self.manifest["index_version"])
+
+    def __len__(self) -> int:
+        return self.n_docs
+
+    def search_token_lists(
+        self, token_lists: Sequence[Sequence[str]], k: int = 20
+    ) -> list[list[Hit]]:
+        """Top-k of every shard merged by (score desc, global row asc), per token list."""
+        if k < 1:
+            raise ValueError(f"k must be at least 1, got {k}")
+        per_shard = [s.search_token_lists(token_lists, k) for s in self.shards]
+        out = []
+        for q in range(len(token_lists)):
+            pool = (
+                (-h.score, first + h.row, h)
+                for first, lists in zip(self.first_rows, per_shard, strict=True)
+                for h in lists[q]
+            )
+            best = heapq.nsmallest(k, pool, key=lambda t: (t[0], t[1]))
+            out.append(
+                [Hit(h.doc_id, h.title, h.score, i + 1, row) for i, (_, row, h) in enumerate(best)]
+            )
+        return out
+
+    def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
+        """Top-k articles for already-analyzed tokens, best first (ties by row)."""
+        return self.search_token_lists([tokens], k)[0]
+
+    def search(self, clue: str, k: int = 20) -> list[Hit]:
+        """Top-k articles for a free-text clue, best first."""
+        return self.search_tokens(self.analyzer.tokens(clue), k)
+
+    def search_many(self, clues: Sequence[str], k: int = 20) -> list[list[Hit]]:
+        """`search` for each clue, in order."""
+        return self.search_token_lists(self.analyzer.tokens_many(clues), k)
+
+    def __repr__(self) -> str:
+        return (
+            f"ShardedIndex({str(self.path)!r}, articles={self.n_docs}, shards={len(self.shards)})"
+        )

@@ -1,0 +1,428 @@
+"""Build one index as several shards, on a Ray cluster or in this process, equal to one build.
+
+Pass 1 counts contiguous ranges of the corpus's items (lines or rows), one task per shard:
+each field's document frequencies, token totals and article count, plus the names links
+resolve to (ids, titles, aliases) and the links. The driver reduces them to the corpus's
+sorted vocabulary, document frequencies, lengths and in-links, the figures a single build
+computes, and writes the statistics with a SHA-256 checksum. Pass 2 writes every shard as an
+ordinary index folder with the builder's own code (`build.write_folder`), given those
+statistics, so each posting weight equals the single build's bit for bit; a top manifest
+lists the shards (retriever/sharded.py reads it and merges searches).
+
+Ray is optional and imported only here, only when asked for: without it the same two
+functions run one after the other in this process. On a cluster of several machines the
+output folder must be on storage every node sees (the tasks write the shards there).
+Word vectors are not built for sharded indexes yet.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import itertools
+import json
+import os
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import bm25, columns, sharded, store
+from .analyzer import Analyzer, AnalyzerConfig
+from .build import KnownLinks, index_version, write_folder
+from .corpus import CorpusError, ReadReport, file_checksum
+from .counting import no_gc
+from .errors import IndexFormatError, RetrieverError, position
+from .ingest import Keys, count_items, ingest
+from .links import NameResolver, count_inlinks
+from .postings import CorpusStats, FieldStats, sorted_terms
+
+STATS_FOLDER = "corpus_stats"
+
+
+class ClusterError(RetrieverError):
+    """Raised when the Ray cluster a sharded build asks for is missing or unreachable."""
+
+
+@dataclass
+class ShardCounts:
+    """What pass 1 learns about one shard (its items start..stop of the corpus)."""
+
+    start: int
+    stop: int
+    terms: list[str]  # the shard's terms, in the order it met them
+    body_df: np.ndarray  # articles holding each of `terms`, per field (int64)
+    title_df: np.ndarray
+    body_len: int  # tokens of the field over the shard
+    title_len: int
+    keys: Keys
+    skipped: int
+    problems: list[str]
+
+
+class _NoBar:
+    def update(self, n: int) -> None:
+        """Progress is not shown inside tasks."""
+
+
+def split_items(n_items: int, n_shards: int) -> list[tuple[int, int]]:
+    """`n_shards` contiguous (start, stop) ranges of `n_items` items (sizes differ by 1 at
+    most; empty ones are left out)."""
+    if n_shards < 1:
+        raise ValueError(f"the number of shards must be at least 1, got {n_shards}")
+    cuts = [n_items * i // n_shards for i in range(n_shards + 1)]
+    return [(a, b) for a, b in itertools.pairwise(cuts) if b > a]
+
+
+def count_shard(
+    corpus: str, span: tuple[int, int], analyzer: dict[str, Any], skip_bad: bool
+) -> ShardCounts:
+    """Pass 1 on items span[0]..span[1] of `corpus`: term statistics and name keys."""
+    an = Analyzer(AnalyzerConfig.from_dict(analyzer))
+    report = ReadReport()
+    with no_gc(), open(os.devnull, "wb") as sink:
+        state = ingest(
+            corpus, an, sink, workers=1, skip_bad=skip_bad, report=report, bar=_NoBar(), items=span
+        )
+    n_terms = len(state.counter.terms)
+    found = {}
+    for name in ("body", "title"):
+        m = state.counter.matrix(name)
+        # Each (article, term) pair is stored once, so a column's entries are its articles.
+        found[name] = (
+            np.bincount(m.indices, minlength=n_terms).astype(np.int64),
+            int(m.data.sum(dtype=np.int64)),
+        )
+    return ShardCounts(
+        span[0],
+        span[1],
+        list(state.counter.terms),
+        found["body"][0],
+        found["title"][0],
+        found["body"][1],
+        found["title"][1],
+        state.keys,
+        report.skipped,
+        report.problems,
+    )
+
+
+def reduce_stats(parts: Sequence[ShardCounts]) -> CorpusStats:
+    """The corpus's vocabulary, document frequencies and lengths from every shard's counts."""
+    used: set[str] = set()
+    for p in parts:
+        used.update(t for t, b, h in zip(p.terms, p.body_df, p.title_df, strict=True) if b or h)
+    terms = sorted_terms(used)
+    where = {t: i for i, t in enumerate(terms)}
+    body_df = np.zeros(len(terms), dtype=np.int64)
+    title_df = np.zeros(len(terms), dtype=np.int64)
+    for p in parts:
+        ids = np.asarray([where.get(t, -1) for t in p.terms], dtype=np.int64)
+        keep = ids >= 0
+        np.add.at(body_df, ids[keep], p.body_df[keep])
+        np.add.at(title_df, ids[keep], p.title_df[keep])
+    n = sum(len(p.keys) for p in parts)
+    return CorpusStats(
+        terms,
+        FieldStats(body_df, n, sum(p.body_len for p in parts)),
+        FieldStats(title_df, n, sum(p.title_len for p in parts)),
+    )
+
+
+def join_keys(corpus: str, parts: Sequence[ShardCounts]) -> Keys:
+    """Every shard's keys in row order; an id or title met in two shards is refused, as a
+    single build refuses it (a sharded build cannot skip it: the rows are already counted)."""
+    keys = Keys()
+    seen: dict[str, dict[str, int]] = {"id": {}, "title": {}}
+    for p in parts:
+        k = p.keys
+        for i, line in enumerate(k.lines):
+            for fld, value in (("id", k.ids[i]), ("title", k.titles[i])):
+                first = seen[fld].setdefault(value, line)
+                if first != line:
+                    raise CorpusError(
+                        f"duplicate {fld} {value!r} (first seen on {position(corpus, first)})",
+                        file=corpus,
+                        line=line,
+                        field=fld,
+                    )
+            keys.append((line, 0, k.ids[i], k.titles[i], k.aliases[i], k.links[i], k.popularity[i]))
+    return keys
+
+
+def resolve_links(keys: Keys, parts: Sequence[ShardCounts]) -> list[KnownLinks]:
+    """In-links over the whole corpus (links joined to every shard's names), split by shard."""
+    resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
+    inlinks, missing = count_inlinks(resolver, keys.links, len(keys))
+    out, first = [], 0
+    for p in parts:
+        last = first + len(p.keys)
+        unresolved = [(keys.ids[row], name) for row, name in missing if first <= row < last]
+        out.append(KnownLinks(inlinks[first:last], unresolved, len(resolver.ambiguous_aliases)))
+        first = last
+    return out
+
+
+def _stats_digest(stats: CorpusStats) -> str:
+    h = hashlib.sha256()
+    h.update(json.dumps([stats.body.n_docs, stats.body.total_len, stats.title.total_len]).encode())
+    h.update("\n".join(stats.terms).encode("utf-8"))
+    for df in (stats.body.df, stats.title.df):
+        h.update(np.ascontiguousarray(df, dtype="<i8").tobytes())
+    return h.hexdigest()
+
+
+def _ids_digest(ids: Sequence[str]) -> str:
+    return hashlib.sha256("\n".join(ids).encode("utf-8")).hexdigest()
+
+
+def shard_entry(
+    number: int, part: ShardCounts, first_row: int, stats_sha256: str
+) -> dict[str, Any]:
+    """What pass 2 needs to know of a shard, and its shard manifest records."""
+    return {
+        "number": number,
+        "first_row": first_row,
+        "articles": len(part.keys),
+        "items": [part.start, part.stop],
+        "stats_sha256": stats_sha256,
+        "ids_sha256": _ids_digest(part.keys.ids),
+    }
+
+
+def write_stats(folder: Path, stats: CorpusStats) -> str:
+    """Write the corpus statistics into `folder`; returns their SHA-256."""
+    folder.mkdir(parents=True, exist_ok=True)
+    columns.write_vocab(folder, stats.terms)
+    store.save_array(folder, "body_df", stats.body.df.astype(np.int64))
+    store.save_array(folder, "title_df", stats.title.df.astype(np.int64))
+    digest = _stats_digest(stats)
+    info = {
+        "articles": stats.body.n_docs,
+        "terms": len(stats.terms),
+        "body_length": stats.body.total_len,
+        "title_length": stats.title.total_len,
+        "sha256": digest,
+    }
+    store.write_json(folder / "stats.json", info)
+    return digest
+
+
+def read_stats(folder: Path, sha256: str) -> CorpusStats:
+    """The statistics `write_stats` wrote, refused unless their checksum is `sha256`."""
+    try:
+        info = json.loads((folder / "stats.json").read_text(encoding="utf-8"))
+        n_terms, n = int(info["terms"]), int(info["articles"])
+        terms = columns.Vocab(folder, n_terms).terms.tolist()
+        body = np.array(store.open_array(folder, "body_df", "int64", n_terms))
+        title = np.array(store.open_array(folder, "title_df", "int64", n_terms))
+        stats = CorpusStats(
+            terms,
+            FieldStats(body, n, int(info["body_length"])),
+            FieldStats(title, n, int(info["title_length"])),
+        )
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise IndexFormatError(f"{folder}: the corpus statistics are unreadable ({exc})") from exc
+    if _stats_digest(stats) != sha256:
+        raise IndexFormatError(f"{folder}: the corpus statistics do not match their checksum")
+    return stats
+
+
+def write_shard(
+    corpus: str,
+    span: tuple[int, int],
+    settings: dict[str, Any],
+    stats_dir: str,
+    known: KnownLinks,
+    shard: dict[str, Any],
+    folder: str,
+) -> int:
+    """Pass 2: write items span[0]..span[1] as an index folder weighted with the corpus's
+    statistics (checked against their checksum); returns its article count."""
+    started = time.perf_counter()
+    stats = read_stats(Path(stats_dir), shard["stats_sha256"])
+    an = Analyzer(AnalyzerConfig.from_dict(settings["analyzer"]))
+    params = bm25.BM25Params(**settings["bm25"])
+    out = Path(folder)
+    out.mkdir(parents=True, exist_ok=True)
+    report = ReadReport()
+    with no_gc():
+        with store.open_store(out) as fh:
+            state = ingest(
+                corpus,
+                an,
+                fh,
+                workers=1,
+                skip_bad=settings["skip_bad"],
+                report=report,
+                bar=_NoBar(),
+                items=span,
+            )
+        if _ids_digest(state.keys.ids) != shard["ids_sha256"]:
+            raise CorpusError(
+                "the corpus changed while it was being indexed; build again", file=corpus
+            )
+        store.save_array(out, store.STORE_OFFSETS, state.store_offsets())
+        build = {"skipped_lines": report.skipped, "problems": report.problems[:5], "workers": 1}
+        write_folder(
+            out,
+            state.keys,
+            state.counter,
+            None,
+            an,
+            params,
+            settings["checksum"],
+            build,
+            started,
+            stats=stats,
+            known=known,
+            shard=shard,
+        )
+    return len(state.keys)
+
+
+class _Runner:
+    """Runs a function over argument tuples: as Ray tasks, or here one after the other."""
+
+    def __init__(self, ray_address: str | None) -> None:
+        self.ray: Any = None
+        self._started = False
+        if ray_address is None:
+            return
+        try:
+            import ray
+        except ImportError as exc:
+            raise ClusterError(
+                "Ray is not installed: pip install 'hunchwise[cluster]', or build without "
+                "--ray (the same shards are then built in this process)"
+            ) from exc
+        if not ray.is_initialized():
+            try:
+                if ray_address == "local":
+                    ray.init(include_dashboard=False, log_to_driver=False)
+                else:
+                    ray.init(address=ray_address, log_to_driver=False)
+            except (ConnectionError, RuntimeError, ValueError) as exc:
+                raise ClusterError(
+                    f"cannot reach the Ray cluster at {ray_address!r}: {exc}"
+                ) from exc
+            self._started = True
+        self.ray = ray
+
+    def map(self, fn: Callable[..., Any], calls: Sequence[tuple[Any, ...]]) -> list[Any]:
+        if self.ray is None:
+            return [fn(*args) for args in calls]
+        task = self.ray.remote(num_cpus=1, max_retries=0)(fn)
+        try:
+            return list(self.ray.get([task.remote(*args) for args in calls]))
+        except self.ray.exceptions.RayTaskError as exc:
+            # The task's own error (a bad line, say) as a single build raises it, without
+            # the remote traceback Ray puts in its message.
+            cause = getattr(exc, "cause", None)
+            if isinstance(cause, Exception):
+                raise cause from None
+            raise
+
+    def close(self) -> None:
+        if self._started:
+            self.ray.shutdown()
+
+
+def build_sharded(
+    corpus: str | Path,
+    out_dir: str | Path,
+    *,
+    shards: int | None = None,
+    spans: Sequence[tuple[int, int]] | None = None,
+    ray_address: str | None = None,
+    analyzer: AnalyzerConfig | None = None,
+    params: bm25.BM25Params | None = None,
+    skip_bad: bool = False,
+) -> Path:
+    """Build `corpus` (a file) into `out_dir` as shards whose searches equal one index's.
+
+    shards: how many near-equal contiguous ranges of items; or `spans`, the (start, stop)
+    item ranges themselves (contiguous, from 0 to the end). ray_address: None (this
+    process), 'local' (start Ray here unless it runs already) or a cluster's address.
+    Returns the folder, which `load_index(out_dir, sharded=True)` opens.
+    """
+    started = time.perf_counter()
+    path = Path(corpus).resolve()
+    if not path.is_file():
+        raise CorpusError("no such corpus file", file=str(corpus))
+    n_items = count_items(path)
+    if spans is None:
+        spans = split_items(n_items, shards if shards is not None else 1)
+    else:
+        ends = [s for span in spans for s in span]
+        if (
+            not spans
+            or ends[0] != 0
+            or ends[-1] != n_items
+            or ends != sorted(ends)
+            or any(ends[i] != ends[i + 1] for i in range(1, len(ends) - 1, 2))
+        ):
+            raise ValueError(f"spans must cover items 0..{n_items} contiguously: {list(spans)}")
+    an = analyzer if analyzer is not None else AnalyzerConfig()
+    p = params if params is not None else bm25.BM25Params()
+    checksum = file_checksum(path)
+    runner = _Runner(ray_address)
+    try:
+        with store.atomic_folder(Path(out_dir)) as tmp:
+            calls = [(str(path), tuple(s), an.to_dict(), skip_bad) for s in spans]
+            parts = [pt for pt in runner.map(count_shard, calls) if len(pt.keys)]
+            if not parts:
+                raise CorpusError("the corpus has no valid articles", file=str(corpus))
+            keys = join_keys(str(path), parts)
+            stats = reduce_stats(parts)
+            links = resolve_links(keys, parts)
+            digest = write_stats(tmp / STATS_FOLDER, stats)
+            settings = {
+                "analyzer": an.to_dict(),
+                "bm25": p.to_dict(),
+                "skip_bad": skip_bad,
+                "checksum": checksum,
+            }
+            entries, writes, first = [], [], 0
+            for i, (part, known) in enumerate(zip(parts, links, strict=True)):
+                name = f"shard-{i:03d}"
+                shard = shard_entry(i, part, first, digest)
+                writes.append(
+                    (
+                        str(path),
+                        (part.start, part.stop),
+                        settings,
+                        str(tmp / STATS_FOLDER),
+                        known,
+                        shard,
+                        str(tmp / name),
+                    )
+                )
+                entries.append({"folder": name, "first_row": first, "articles": len(part.keys)})
+                first += len(part.keys)
+            runner.map(write_shard, writes)
+            sharded.write_manifest(
+                tmp,
+                {
+                    "index_version": index_version(checksum + f"/shards={len(parts)}", p, an),
+                    "created_at": datetime.now(UTC).isoformat(timespec="seconds"),
+                    "corpus_checksum": checksum,
+                    "analyzer": an.to_dict(),
+                    "bm25": p.to_dict(),
+                    "articles": first,
+                    "shards": entries,
+                    "stats": {"folder": STATS_FOLDER, "sha256": digest},
+                    "build": {
+                        "corpus": str(path),
+                        "skipped_lines": sum(pt.skipped for pt in parts),
+                        "ray": ray_address or "",
+                        "seconds": round(time.perf_counter() - started, 3),
+                    },
+                },
+            )
+    finally:
+        runner.close()
+    return Path(out_dir)

@@ -1,0 +1,57 @@
+"""`hunchwise index build --shards` and `hunchwise search` on the sharded folder (no Ray: the
+same build runs in the command's own process)."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from retriever import IndexFormatError, build_index, update_index
+from tests.retriever.helpers import write_jsonl
+
+EXE = shutil.which("hunchwise")
+
+
+def run(*args: str) -> subprocess.CompletedProcess[str]:
+    """Run the installed `hunchwise` script."""
+    assert EXE is not None, "the hunchwise console script is not installed (pip install -e .)"
+    return subprocess.run([EXE, *args], capture_output=True, text=True, timeout=120)
+
+
+@pytest.mark.slow
+def test_build_shards_then_search_as_one_index(
+    tmp_path: Path, small_records: list[dict[str, Any]]
+) -> None:
+    corpus = write_jsonl(tmp_path / "c.jsonl", small_records)
+    single = build_index(corpus, tmp_path / "single", vectors=False)
+    out = tmp_path / "sharded"
+    res = run("index", "build", str(corpus), "--out", str(out), "--shards", "2", "--json")
+    assert res.returncode == 0, res.stderr
+    summary = json.loads(res.stdout)
+    assert summary["articles"] == 5 and summary["shards"] == [2, 3]
+    for clue in ("reed baskets from the marsh", "Quillfen river", "estuary ferries"):
+        got = json.loads(run("search", str(out), clue, "-k", "4", "--json").stdout)
+        want = [
+            {"rank": h.rank, "id": h.doc_id, "title": h.title, "score": h.score}
+            for h in single.search(clue, k=4)
+        ]
+        assert got == want and got
+    refused = run("index", "add", str(out), str(corpus))
+    assert refused.returncode != 0 and "built in 2 shards" in refused.stderr
+
+
+def test_one_shard_cannot_be_updated_alone(
+    tmp_path: Path, small_records: list[dict[str, Any]]
+) -> None:
+    """Its weights use the whole corpus's statistics; an update would recount them locally."""
+    from retriever.shards import build_sharded
+
+    corpus = write_jsonl(tmp_path / "c.jsonl", small_records)
+    out = build_sharded(corpus, tmp_path / "sharded", shards=2)
+    with pytest.raises(IndexFormatError, match="one shard of"):
+        update_index(out / "shard-000", remove=["m1"])
