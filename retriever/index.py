@@ -324,4 +324,11 @@ def load_index(
     """
     if sharded and store.is_sharded(Path(folder)):
         return ShardedIndex(Path(folder), lambda path: Index(path, title_weight=title_weight))
-    return Index(folder, title_weight=title_weight)
+    index = Index(folder, title_weight=title_weight)
+    if "shard" in index.manifest:
+        # Opened alone, one shard would search, serve or train on part of the corpus.
+        raise IndexFormatError(
+            f"{index.path} is one shard of the sharded index in {index.path.parent}; open "
+            "that folder instead (load_index(..., sharded=True), or hunchwise search on it)"
+        )
+    return index

@@ -303,7 +303,7 @@ def test_shard_local_statistics_are_caught(skewed: Pair, tmp_path: Path) -> None
             shard_entry(i, part, first, digest),
             str(folder),
         )
-        shards.append(load_index(folder))
+        shards.append(Index(folder))  # alone: load_index refuses a single shard
         firsts.append(first)
         first += len(part.keys)
     problems = stats_mismatches_local(skewed.single, shards, tmp_path)
@@ -356,6 +356,15 @@ def test_in_process_build_equals_the_ray_build(skewed: Pair, tmp_path: Path) -> 
 def test_sharded_folder_refused_where_a_single_index_is_needed(skewed: Pair) -> None:
     with pytest.raises(IndexFormatError, match="built in 3 shards"):
         load_index(skewed.sharded.path)
+
+
+def test_one_shard_alone_is_refused(skewed: Pair) -> None:
+    # A shard holds part of the corpus: opened alone it would search or serve that part only.
+    shard = skewed.sharded.shards[1]
+    with pytest.raises(IndexFormatError, match="one shard of the sharded index"):
+        load_index(shard.path)
+    with pytest.raises(IndexFormatError, match="one shard of the sharded index"):
+        load_index(shard.path, sharded=True)
 
 
 def test_split_items_covers_every_item() -> None:
