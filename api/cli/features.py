@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Any
 
 from .console import check_k, print_json, show_progress, warn
 from .model import _fractions
-from .options import add_log_option
+from .options import add_feature_option, add_index_option, add_log_option
 from .records import output_format, plain, write_rows
 
 if TYPE_CHECKING:
@@ -37,9 +37,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         "export",
         help="write the training table (one row per clue prefix and candidate) to a file",
     )
-    p.add_argument(
-        "--index", type=Path, required=True, help="index folder built by 'hunchwise index build'"
-    )
+    add_index_option(p)
     add_log_option(p)
     p.add_argument(
         "--out",
@@ -72,13 +70,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         metavar="N",
         help="instead of --prefixes, take a prefix every N words",
     )
-    p.add_argument(
-        "--feature",
-        action="append",
-        default=[],
-        metavar="MODULE:FUNCTION",
-        help="register a user-defined feature function (repeatable)",
-    )
+    add_feature_option(p, "register a user-defined feature function (repeatable)")
     p.add_argument(
         "--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping"
     )

@@ -10,7 +10,7 @@ if TYPE_CHECKING:
     from reranker import Payoff
 
 from .console import check_k, format_table, print_json, show_progress, warn
-from .options import add_log_option, at_least_zero, unit_share
+from .options import add_feature_option, add_index_option, add_log_option, at_least_zero, unit_share
 
 
 def _fractions(text: str) -> tuple[float, ...]:
@@ -26,9 +26,7 @@ def _fractions(text: str) -> tuple[float, ...]:
 
 
 def _common(p: argparse.ArgumentParser) -> None:
-    p.add_argument(
-        "--index", type=Path, required=True, help="index folder built by 'hunchwise index build'"
-    )
+    add_index_option(p)
     add_log_option(p)
     p.add_argument(
         "-k",
@@ -37,13 +35,7 @@ def _common(p: argparse.ArgumentParser) -> None:
         help="candidates per clue (train: default 20, kept in the model; "
         "evaluate: only the model's)",
     )
-    p.add_argument(
-        "--feature",
-        action="append",
-        default=[],
-        metavar="MODULE:FUNCTION",
-        help="register a user-defined feature function (repeatable)",
-    )
+    add_feature_option(p, "register a user-defined feature function (repeatable)")
     p.add_argument(
         "--reward", type=float, default=None, help="payoff of a right answer (default 1)"
     )

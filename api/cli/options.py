@@ -38,3 +38,15 @@ def add_log_option(p: argparse.ArgumentParser) -> None:
         metavar="FILE",
         help="labelled log (clue + answer lines) or served log with feedback; repeat for several",
     )
+
+
+def add_index_option(p: argparse.ArgumentParser) -> None:
+    """--index DIR, required: the index folder a command reads."""
+    p.add_argument(
+        "--index", type=Path, required=True, help="index folder built by 'hunchwise index build'"
+    )
+
+
+def add_feature_option(p: argparse.ArgumentParser, help: str) -> None:
+    """--feature MODULE:FUNCTION, repeatable: user-defined feature functions."""
+    p.add_argument("--feature", action="append", default=[], metavar="MODULE:FUNCTION", help=help)

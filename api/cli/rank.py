@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .console import check_k, show_progress
-from .options import unit_share
+from .options import add_feature_option, add_index_option, unit_share
 from .records import ClueIn, json_line, output_format, read_clues, write_rows
 
 if TYPE_CHECKING:
@@ -28,9 +28,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "clue", nargs="?", default=None, help="clue text (quote it); or give --input instead"
     )
-    p.add_argument(
-        "--index", type=Path, required=True, help="index folder built by 'hunchwise index build'"
-    )
+    add_index_option(p)
     p.add_argument(
         "--model", type=Path, required=True, help="model file written by 'hunchwise train'"
     )
@@ -67,13 +65,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="add each candidate's explanation: every feature's value, scaled value and "
         "contribution to the logit",
     )
-    p.add_argument(
-        "--feature",
-        action="append",
-        default=[],
-        metavar="MODULE:FUNCTION",
-        help="user feature function the model was trained with (repeatable)",
-    )
+    add_feature_option(p, "user feature function the model was trained with (repeatable)")
     p.set_defaults(func=cmd_rank)
 
 

@@ -21,6 +21,7 @@ from multiprocessing.connection import Connection
 from pathlib import Path
 
 from ..parentwatch import PARENT_ENV
+from .options import add_feature_option
 
 ENV_PREFIX = "HUNCHWISE_"
 STARTUP_FAILURE_NOTE = "worker-failed.txt"  # as api.app writes it (not imported: it is heavy)
@@ -46,13 +47,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--port", type=int, default=8000, help="port (default 8000; 0: any free port)")
     p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
     p.add_argument("--log-dir", type=Path, help="folder of the served log served.jsonl")
-    p.add_argument(
-        "--feature",
-        action="append",
-        default=[],
-        metavar="MODULE:FUNCTION",
-        help="user feature function the model was trained with (repeatable)",
-    )
+    add_feature_option(p, "user feature function the model was trained with (repeatable)")
     p.add_argument(
         "--state-dir",
         type=Path,
