@@ -133,7 +133,12 @@ def test_a_build_with_another_layout_is_refused(what: str) -> None:
 @settings(max_examples=300, deadline=None)
 @given(
     scores=st.lists(
-        st.one_of(st.sampled_from([0.0, 1.0, 2.5, -1.0]), st.floats(-50, 50, allow_nan=False)),
+        # No subnormal scores: no retrieval score is that small, and a subnormal top score
+        # makes the ratio to it overflow to -inf in both implementations alike.
+        st.one_of(
+            st.sampled_from([0.0, 1.0, 2.5, -1.0]),
+            st.floats(-50, 50, allow_nan=False, allow_subnormal=False),
+        ),
         min_size=1,
         max_size=40,
     ),
