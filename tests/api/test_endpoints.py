@@ -298,6 +298,11 @@ def test_cors_is_off_unless_configured(make_client: Any) -> None:
     with make_client(cors_origins=["http://app.example"]) as c:
         r = c.options("/v1/rank", headers=headers)
         assert r.headers["access-control-allow-origin"] == "http://app.example"
+        # The model deploy call is a PUT: a browser's preflight for it must be allowed too.
+        put = {"Origin": "http://app.example", "Access-Control-Request-Method": "PUT"}
+        r = c.options("/v1/admin/model", headers=put)
+        assert r.status_code == 200
+        assert "PUT" in r.headers["access-control-allow-methods"]
 
 
 def test_feedback_naming_no_article_says_ids_titles_and_aliases_are_taken(client: Any) -> None:
