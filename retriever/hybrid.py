@@ -15,14 +15,39 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
+from typing import Protocol
 
 import numpy as np
 
-if TYPE_CHECKING:
-    from .index import Index
+from .analyzer import Analyzer
+from .columns import StringColumn
+from .dense import DenseSearcher
+from .hits import Hit
 
 FUSIONS = ("minmax", "rrf")
+
+
+class HybridSource(Protocol):
+    """What hybrid search needs of an index (`retriever.index.Index` has all of it).
+
+    A protocol rather than the Index class itself, so this module does not import the
+    module that imports it.
+    """
+
+    analyzer: Analyzer
+    ids: StringColumn
+    titles: StringColumn
+
+    @property
+    def dense(self) -> DenseSearcher | None: ...
+
+    def search_token_lists(
+        self, token_lists: Sequence[Sequence[str]], k: int = 20
+    ) -> list[list[Hit]]: ...
+
+    def term_ids(self, tokens: Sequence[str]) -> tuple[np.ndarray, np.ndarray]: ...
+
+    def score_tokens(self, tokens: Sequence[str]) -> np.ndarray: ...
 
 
 @dataclass(frozen=True)
@@ -98,7 +123,7 @@ def fuse(
 
 
 def search_hybrid_many(
-    index: Index,
+    index: HybridSource,
     clues: Sequence[str],
     k: int = 20,
     *,
@@ -165,6 +190,6 @@ def search_hybrid_many(
     return out
 
 
-def search_hybrid(index: Index, clue: str, k: int = 20, **options: object) -> HybridResult:
+def search_hybrid(index: HybridSource, clue: str, k: int = 20, **options: object) -> HybridResult:
     """`search_hybrid_many` for one clue."""
     return search_hybrid_many(index, [clue], k, **options)[0]  # type: ignore[arg-type]
