@@ -30,28 +30,17 @@ def build_parser() -> argparse.ArgumentParser:
             "the same seed always gives byte-identical files."
         ),
     )
-    p.add_argument(
-        "--articles",
-        type=int,
-        default=DEFAULT_ARTICLES,
-        help="number of articles to write (default %(default)s; 100000 or 1000000 for benchmarks)",
-    )
-    p.add_argument(
-        "--questions",
-        type=int,
-        default=DEFAULT_QUESTIONS,
-        help="total number of questions, split about 80/20 into train and test "
-        "(default %(default)s)",
-    )
-    p.add_argument(
-        "--seed", type=int, default=DEFAULT_SEED, help="random seed (default %(default)s)"
-    )
-    p.add_argument(
-        "--out",
-        type=Path,
-        default=DEFAULT_DATA_DIR,
-        help="output folder, created if missing (default: corpus_demo/data)",
-    )
+    options: tuple[tuple[str, type, object, str], ...] = (
+        ("--articles", int, DEFAULT_ARTICLES, "number of articles to write (default "
+         "%(default)s; 100000 or 1000000 for benchmarks)"),
+        ("--questions", int, DEFAULT_QUESTIONS, "total number of questions, split about "
+         "80/20 into train and test (default %(default)s)"),
+        ("--seed", int, DEFAULT_SEED, "random seed (default %(default)s)"),
+        ("--out", Path, DEFAULT_DATA_DIR, "output folder, created if missing (default: "
+         "corpus_demo/data)"),
+    )  # fmt: skip
+    for flag, kind, default, text in options:
+        p.add_argument(flag, type=kind, default=default, help=text)
     p.add_argument("--no-progress", action="store_true", help="never show the progress bar")
     return p
 

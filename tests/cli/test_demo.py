@@ -23,16 +23,20 @@ def _hunchwise() -> list[str]:
     return [str(exe)] if exe.exists() else [sys.executable, "-m", "api.cli"]
 
 
-def test_demo_out_naming_a_file_is_a_plain_error(tmp_path: Path) -> None:
-    taken = tmp_path / "notes.txt"
-    taken.write_text("keep me\n")
-    proc = subprocess.run(
-        [*_hunchwise(), "demo", "--no-serve", "--out", str(taken)],
+def _demo_without_serving(out: Path, timeout: float) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [*_hunchwise(), "demo", "--no-serve", "--out", str(out)],
         capture_output=True,
         text=True,
         env=ENV,
-        timeout=300,
+        timeout=timeout,
     )
+
+
+def test_demo_out_naming_a_file_is_a_plain_error(tmp_path: Path) -> None:
+    taken = tmp_path / "notes.txt"
+    taken.write_text("keep me\n")
+    proc = _demo_without_serving(taken, timeout=300)
     assert proc.returncode != 0 and proc.stderr.count("\n") == 1
     assert f"{taken} is a file, not a folder" in proc.stderr and "Errno" not in proc.stderr
     assert taken.read_text() == "keep me\n"
@@ -40,13 +44,7 @@ def test_demo_out_naming_a_file_is_a_plain_error(tmp_path: Path) -> None:
 
 def test_demo_without_serving_builds_trains_evaluates_and_reports(tmp_path: Path) -> None:
     out = tmp_path / "demo"
-    proc = subprocess.run(
-        [*_hunchwise(), "demo", "--no-serve", "--out", str(out)],
-        capture_output=True,
-        text=True,
-        env=ENV,
-        timeout=900,
-    )
+    proc = _demo_without_serving(out, timeout=900)
     assert proc.returncode == 0, proc.stderr[-2000:]
     text = proc.stdout
     for heading in ("clue level", "candidate level", "feature ablation", "top_candidate_ece"):

@@ -89,12 +89,18 @@ BAD_LINES = [
 ]
 
 
+def corpus_with_bad_line(folder: Path, line: str) -> Path:
+    """A corpus file of one good article then `line` (so the bad line is line 2)."""
+    path = folder / "bad.jsonl"
+    path.write_text('{"id": "a1", "title": "First", "text": "ok"}\n' + line + "\n")
+    return path
+
+
 @pytest.mark.parametrize(("line", "lineno", "field", "reason"), BAD_LINES)
 def test_bad_lines_name_file_line_and_field(
     tmp_path: Path, line: str, lineno: int, field: str | None, reason: str
 ) -> None:
-    path = tmp_path / "bad.jsonl"
-    path.write_text('{"id": "a1", "title": "First", "text": "ok"}\n' + line + "\n")
+    path = corpus_with_bad_line(tmp_path, line)
     with pytest.raises(CorpusError) as err:
         list(read_articles(path))
     msg = str(err.value)

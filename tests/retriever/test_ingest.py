@@ -13,15 +13,14 @@ from retriever import CorpusError, ReadReport, build_index, read_articles
 from retriever.counting import CHUNK
 
 from .foldoc import synthetic_articles
-from .test_corpus import BAD_LINES
+from .test_corpus import BAD_LINES, corpus_with_bad_line
 
 
 @pytest.mark.parametrize(("line", "lineno", "field", "reason"), BAD_LINES)
 def test_build_fails_with_the_same_error_as_the_reader(
     tmp_path: Path, line: str, lineno: int, field: str | None, reason: str
 ) -> None:
-    path = tmp_path / "bad.jsonl"
-    path.write_text('{"id": "a1", "title": "First", "text": "ok"}\n' + line + "\n")
+    path = corpus_with_bad_line(tmp_path, line)
     with pytest.raises(CorpusError) as read_err:
         list(read_articles(path))
     with pytest.raises(CorpusError) as build_err:
