@@ -198,20 +198,22 @@ def check_record(rec: Any, where: dict[str, Any]) -> str:
     return "labelled"
 
 
+# Fields read back as they were written (absent in older lines: None).
+_CANDIDATE_AS_IS = ("title", "score", "rank", "probability", "pointwise")
+_SERVED_AS_IS = (
+    "time", "k", "model_k", "complete", "index_version", "model_version", "in_candidates"
+)  # fmt: skip
+
+
 def _candidate(item: Any, n: int, where: dict[str, Any]) -> ServedCandidate:
     if not isinstance(item, dict) or not isinstance(item.get("id"), str):
         raise LabelledLogError(
             "must be an object with a string 'id'", field=f"candidates[{n}]", **where
         )
     features = item.get("features")
+    copied = {name: item.get(name) for name in _CANDIDATE_AS_IS}
     return ServedCandidate(
-        id=item["id"],
-        title=item.get("title"),
-        score=item.get("score"),
-        rank=item.get("rank"),
-        probability=item.get("probability"),
-        pointwise=item.get("pointwise"),
-        features=features if isinstance(features, dict) else None,
+        id=item["id"], features=features if isinstance(features, dict) else None, **copied
     )
 
 
@@ -226,19 +228,14 @@ def served_from(rec: dict[str, Any], where: dict[str, Any]) -> ServedLine:
     """A served line's fields from a record check_record() has called "served"."""
     meta = rec.get("metadata") or {}
     decision = rec.get("decision")
+    copied = {name: rec.get(name) for name in _SERVED_AS_IS}
     return ServedLine(
         request_id=rec["request_id"],
         clue=rec["clue"],
         candidates=tuple(_candidate(c, n, where) for n, c in enumerate(rec.get("candidates", []))),
         metadata=meta if isinstance(meta, dict) else {},
-        time=rec.get("time"),
-        k=rec.get("k"),
-        model_k=rec.get("model_k"),
-        complete=rec.get("complete"),
-        index_version=rec.get("index_version"),
-        model_version=rec.get("model_version"),
-        in_candidates=rec.get("in_candidates"),
         decision=decision if isinstance(decision, dict) else None,
+        **copied,
     )
 
 
