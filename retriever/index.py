@@ -13,7 +13,7 @@ from typing import Any, Literal, overload
 
 import numpy as np
 
-from . import columns, hybrid, scoring, store
+from . import bounds, columns, hybrid, scoring, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .counting import cores
@@ -56,6 +56,8 @@ class _FieldPostings:
             raise IndexFormatError(
                 f"{folder}: {prefix}_indptr does not match the postings; rebuild the index"
             )
+        # None for a folder written before the bounds existed: scored exhaustively.
+        self.bounds = bounds.open_bounds(folder, prefix, n_terms, n_postings, dtype)
 
 
 class Index:

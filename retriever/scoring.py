@@ -106,13 +106,18 @@ def top_k_many(
     *,
     touched: np.ndarray | None = None,
     use_kernel: bool = True,
+    prune: bool | None = None,
+    work: np.ndarray | None = None,
 ) -> list[tuple[np.ndarray, np.ndarray]]:
     """Rows (int64) and scores (float64) of each query's k best articles with a non-zero
     score, best first, ties by row.
 
     `buf` (the weights' type, one slot per article) must be all zeros on entry and is all
     zeros again on return. `touched` (int32, one slot per article) is the kernel's scratch;
-    pass one to reuse it across calls.
+    pass one to reuse it across calls. `prune`: let the kernel skip postings that cannot
+    change the result (None: where `prunable` says it pays; True: wherever the index has
+    the bounds; False: never); the result is the same either way. `work` (int64,
+    one per query), filled by the kernel only: the postings each query read.
     """
     if k < 1:
         raise ValueError(f"k must be at least 1, got {k}")
@@ -121,15 +126,43 @@ def top_k_many(
         rows = np.empty(n * k, dtype=np.int64)
         scores = np.empty(n * k, dtype=np.float64)
         counts = np.empty(n, dtype=np.int64)
-        fields = tuple((fld.indptr, fld.docs, fld.weight, float(sc)) for fld, sc in p.fields)
+        use_bounds = prune is not False and prunable(p, buf.size if prune is None else None)
+        fields = tuple(
+            (fld.indptr, fld.docs, fld.weight, float(sc))
+            + ((fld.bounds.term_max, fld.bounds.block_max) if use_bounds else ())  # type: ignore[attr-defined]
+            for fld, sc in p.fields
+        )
         if touched is None:
             touched = np.empty(buf.size, dtype=np.int32)
-        _kernels.search(buf, touched, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts)
+        _kernels.search(
+            buf, touched, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts, use_bounds, work
+        )
         return [
             (rows[q * k : q * k + c], scores[q * k : q * k + c])
             for q, c in enumerate(counts.tolist())
         ]
     return [_numpy_top_k(buf, p, q, k) for q in range(n)]
+
+
+# Below this many articles every query is scored exhaustively: its postings are a few
+# thousand at most, and the bookkeeping of pruning would cost more than it skips
+# (common practice, no source; the benchmark shows the cross-over).
+PRUNE_MIN_ARTICLES = 20_000
+
+
+def prunable(p: Plan, n_docs: int | None) -> bool:
+    """Whether the kernel may prune this plan's queries: a corpus of `n_docs` articles big
+    enough (None: any size), and every field with stored weight maxima over float32 weights
+    (never negative, see postings.weight_dtype; float64 ones may be, which the bounds
+    cannot handle).
+
+    The kernel then also decides per query (retriever/_prune.h): a query with one list,
+    few postings next to k, or whose bounds prune too little is scored exhaustively.
+    """
+    return (n_docs is None or n_docs >= PRUNE_MIN_ARTICLES) and all(
+        getattr(fld, "bounds", None) is not None and fld.weight.dtype == np.float32
+        for fld, _ in p.fields
+    )
 
 
 def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, np.ndarray]:
