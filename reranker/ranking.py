@@ -4,12 +4,14 @@ from __future__ import annotations
 
 import functools
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from retriever import Hit, Index
+from retriever.index import batch_threads
 
 from .candidates import CandidatePolicy, find_candidates
 from .decision import Decision, Payoff, choose_threshold, decide
@@ -245,14 +247,34 @@ def rank_clues(
     include_features: bool = False,
     metadata: Sequence[dict[str, Any] | None] | None = None,
     registry: FeatureRegistry | None = None,
+    threads: int | None = None,
 ) -> list[Ranking]:
     """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many);
-    `metadata`, when given, holds one clue's metadata (or None) per clue."""
+    `metadata`, when given, holds one clue's metadata (or None) per clue.
+
+    threads: how many threads share a batch (None: up to the cores, for batches of 64
+    clues or more); the search kernel releases the GIL, so they overlap there. The
+    rankings are the same whatever the count.
+    """
     keep, depth = _ks(model, k)
     revealed = check_revealed(revealed, complete)
     if metadata is not None and len(metadata) != len(clues):
         raise ValueError(f"metadata holds {len(metadata)} items for {len(clues)} clues")
     metas = list(metadata) if metadata is not None else [None] * len(clues)
+    n_threads = batch_threads(len(clues), threads)
+    if n_threads > 1:
+        step = -(-len(clues) // n_threads)
+        parts = [(clues[i : i + step], metas[i : i + step]) for i in range(0, len(clues), step)]
+
+        def part(cm: tuple[Sequence[str], list[dict[str, Any] | None]]) -> list[Ranking]:
+            return rank_clues(
+                index, model, cm[0], k=k, payoff=payoff, complete=complete,
+                revealed=revealed, include_features=include_features, metadata=cm[1],
+                registry=registry, threads=1,
+            )  # fmt: skip
+
+        with ThreadPoolExecutor(len(parts), thread_name_prefix="hunchwise-rank") as pool:
+            return [r for done in pool.map(part, parts) for r in done]
     # Analyzed once, for the search and the features (words: the clue-length features).
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]

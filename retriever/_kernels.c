@@ -25,8 +25,11 @@
 
 #include "hunchwise.h" /* hw_buffer, hw_overlap: shared with reranker/features/_fused.c */
 
-/* Calls adding more postings than this release the GIL (about 2 ms of work). */
+/* Calls adding more postings than this (about 2 ms of work), or batches of this many
+ * queries (a pruned query reads few postings, but a batch still takes milliseconds),
+ * release the GIL. */
 #define GIL_RELEASE_POSTINGS 2000000
+#define GIL_RELEASE_QUERIES 16
 
 typedef struct { /* one field's term-major postings */
     const int64_t *indptr; /* term t's postings are [indptr[t], indptr[t + 1]) */
@@ -377,7 +380,9 @@ static PyObject *search(PyObject *self, PyObject *args) {
          * corpora). For a single clue of a few hundred microseconds, handing the GIL over
          * can cost more than the call: in a server whose other thread is busy, taking it
          * back waits for the interpreter's switch interval (5 ms by default). */
-        PyThreadState *saved = work > GIL_RELEASE_POSTINGS ? PyEval_SaveThread() : NULL;
+        PyThreadState *saved = work > GIL_RELEASE_POSTINGS || n_queries >= GIL_RELEASE_QUERIES
+                                    ? PyEval_SaveThread()
+                                    : NULL;
         int64_t *out_w = workv.obj ? workv.buf : NULL;
         int oom = 0;
         for (Py_ssize_t q = 0; q < n_queries && !damaged && !oom; q++) {

@@ -134,6 +134,28 @@ static int cmp_int32(const void *a, const void *b) {
     return (x > y) - (x < y);
 }
 
+/* Exact scores of rows cand[0..c) (ascending, distinct) into ex: every list in plan order,
+ * each product rounded to T and added as the exhaustive kernel adds it. */
+#define EXACT_SCORES(T)                                                                      \
+    static void exact_##T(const PList *L, Py_ssize_t n, const int32_t *cand, Py_ssize_t c,   \
+                          T *ex, int64_t *work) {                                            \
+        for (Py_ssize_t i = 0; i < c; i++) ex[i] = 0;                                        \
+        for (Py_ssize_t li = 0; li < n && c > 0; li++) {                                     \
+            const PList *l = &L[li];                                                         \
+            const T *w = (const T *)l->w, x = (T)l->x;                                       \
+            int64_t cur = l->lo;                                                             \
+            for (Py_ssize_t i = 0; i < c && cur < l->hi; i++) {                              \
+                cur = gallop(l->docs, cur, l->hi, cand[i]);                                  \
+                if (cur < l->hi && l->docs[cur] == cand[i]) {                                \
+                    ex[i] += w[cur] * x;                                                     \
+                    (*work)++;                                                               \
+                }                                                                            \
+            }                                                                                \
+        }                                                                                    \
+    }
+EXACT_SCORES(float)
+EXACT_SCORES(double)
+
 /* Returns the pairs written, -2 when pruning does not pay for this query (nothing written,
  * buf still zero: the caller scores it exhaustively), -3 when out of memory. */
 #define PRUNE_QUERY(T, EPS)                                                                  \
@@ -173,7 +195,8 @@ static int cmp_int32(const void *a, const void *b) {
         /* Step 1: lists by decreasing bound into buf, until the rest cannot reach theta. */ \
         Py_ssize_t n_touched = 0, j = 0;                                                     \
         int64_t done = 0;                                                                    \
-        double theta = 0, mx = 0;                                                            \
+        double theta = 0;                                                                    \
+        int64_t probe = 0; /* postings read by probes */                                     \
         int stopped = 0;                                                                     \
         for (; j < n && !stopped; j++) {                                                     \
             const PList *l = &L[ord[j]];                                                     \
@@ -185,22 +208,48 @@ static int cmp_int32(const void *a, const void *b) {
             }                                                                                \
             const int32_t *docs = l->docs;                                                   \
             const T *w = (const T *)l->w, x = (T)l->x;                                       \
+            int bad = 0;                                                                     \
             for (int64_t p = l->lo; p < l->hi; p++) {                                        \
                 const int32_t d = docs[p];                                                   \
+                bad |= (uint32_t)d >= (uint32_t)n_docs;                                      \
+                if (bad) break;                                                              \
                 touched[n_touched] = d;                                                      \
                 n_touched += buf[d] == 0;                                                    \
                 buf[d] += w[p] * x;                                                          \
-                mx = buf[d] > mx ? buf[d] : mx;                                              \
+            }                                                                                \
+            if (bad) { /* a damaged index: the exhaustive kernel reports it */               \
+                for (Py_ssize_t i = 0; i < n_touched; i++) buf[touched[i]] = 0;              \
+                return -2;                                                                   \
             }                                                                                \
             done += len;                                                                     \
             const double rest = sc->rest[j] * (1 + m);                                       \
-            if (n_touched >= heap->cap && rest < mx * (1 - m)) {                             \
+            /* theta: the k-th best exact score of the best partial sums (real scores of   \
+             * real articles, so no more than the final k-th best). */                       \
+            /* Checked once the bounds left are under half the total: before that, no     \
+             * article's score is likely to exceed them. */                                  \
+            if (n_touched >= heap->cap && rest >= theta && 2 * rest < r) {                    \
                 if (prune_reserve(sc, n, n_touched) < 0) return -3;                          \
                 Py_ssize_t c = 0;                                                            \
                 for (Py_ssize_t i = 0; i < n_touched; i++)                                   \
                     if (buf[touched[i]] > 0) sc->sel[c++] = (double)buf[touched[i]];         \
                 if (c >= heap->cap) {                                                        \
-                    theta = kth_largest(sc->sel, c, heap->cap) * (1 - m);                    \
+                    const double v = kth_largest(sc->sel, c, heap->cap);                     \
+                    Py_ssize_t e = 0;                                                        \
+                    for (Py_ssize_t i = 0; i < n_touched && e < 4 * heap->cap; i++)          \
+                        if ((double)buf[touched[i]] >= v) sc->cand[e++] = touched[i];         \
+                    qsort(sc->cand, e, sizeof(int32_t), cmp_int32);                          \
+                    Py_ssize_t u = 0;                                                        \
+                    for (Py_ssize_t i = 0; i < e; i++)                                       \
+                        if (u == 0 || sc->cand[u - 1] != sc->cand[i]) sc->cand[u++] = sc->cand[i]; \
+                    T *ex = (T *)sc->exact;                                                  \
+                    exact_##T(L, n, sc->cand, u, ex, &probe);                                \
+                    Py_ssize_t g = 0;                                                        \
+                    for (Py_ssize_t i = 0; i < u; i++)                                       \
+                        if (ex[i] > 0) sc->sel[g++] = (double)ex[i];                         \
+                    if (g >= heap->cap) {                                                    \
+                        const double th = kth_largest(sc->sel, g, heap->cap);                \
+                        if (th > theta) theta = th;                                          \
+                    }                                                                        \
                     stopped = rest < theta;                                                  \
                 }                                                                            \
             }                                                                                \
@@ -216,9 +265,40 @@ static int cmp_int32(const void *a, const void *b) {
             const double p = (double)buf[touched[i]];                                        \
             if (p > 0 && (p + rest0) * (1 + m) >= theta) sc->cand[c++] = touched[i];         \
         }                                                                                    \
-        if ((double)c * (double)n * 8 > (double)total) {                                     \
-            for (Py_ssize_t i = 0; i < n_touched; i++) buf[touched[i]] = 0;                  \
-            return -2;                                                                       \
+        if ((double)c * (double)(n - j) * 6 > (double)(total - done)) {                      \
+            /* Too many candidates to probe for: the lists left are read in full, adding     \
+             * only to candidates (the others are zeroed and stay so). */                    \
+            for (Py_ssize_t i = 0; i < n_touched; i++) {                                     \
+                const double p = (double)buf[touched[i]];                                    \
+                if (!(p > 0 && (p + rest0) * (1 + m) >= theta)) buf[touched[i]] = 0;         \
+            }                                                                                \
+            for (; j < n; j++) {                                                             \
+                const PList *l = &L[ord[j]];                                                 \
+                const int32_t *docs = l->docs;                                               \
+                const T *w = (const T *)l->w, x = (T)l->x;                                   \
+                int bad = 0;                                                                 \
+                for (int64_t p = l->lo; p < l->hi; p++) {                                    \
+                    const int32_t d = docs[p];                                               \
+                    bad |= (uint32_t)d >= (uint32_t)n_docs;                                  \
+                    if (bad) break;                                                          \
+                    if (buf[d] > 0) buf[d] += w[p] * x;                                      \
+                }                                                                            \
+                if (bad) {                                                                   \
+                    for (Py_ssize_t i = 0; i < c; i++) buf[sc->cand[i]] = 0;                 \
+                    return -2;                                                               \
+                }                                                                            \
+                done += l->hi - l->lo;                                                       \
+                const double rest = sc->rest[j];                                             \
+                Py_ssize_t kept = 0;                                                         \
+                for (Py_ssize_t i = 0; i < c; i++) {                                         \
+                    const int32_t d = sc->cand[i];                                           \
+                    if (((double)buf[d] + rest) * (1 + m) >= theta) sc->cand[kept++] = d;    \
+                    else buf[d] = 0;                                                         \
+                }                                                                            \
+                c = kept;                                                                    \
+            }                                                                                \
+            for (Py_ssize_t i = 0; i < c; i++) buf[sc->cand[i]] = 0;                         \
+            n_touched = 0;                                                                   \
         }                                                                                    \
         qsort(sc->cand, c, sizeof(int32_t), cmp_int32);                                      \
         { /* a row whose sum stayed zero for a while was listed twice */                     \
@@ -248,7 +328,7 @@ static int cmp_int32(const void *a, const void *b) {
                         cur = gallop(l->docs, bs, be, d);                                    \
                         if (cur < l->hi && l->docs[cur] == d) {                              \
                             p += (double)(T)(w[cur] * x);                                    \
-                            (*work)++;                                                       \
+                            probe++;                                                         \
                         }                                                                    \
                     }                                                                        \
                 } else {                                                                     \
@@ -268,20 +348,8 @@ static int cmp_int32(const void *a, const void *b) {
         }                                                                                    \
         /* Step 3: exact scores of the survivors, every list in plan order. */               \
         T *ex = (T *)sc->exact;                                                              \
-        for (Py_ssize_t i = 0; i < c; i++) ex[i] = 0;                                        \
-        for (Py_ssize_t li = 0; li < n && c > 0; li++) {                                     \
-            const PList *l = &L[li];                                                         \
-            const T *w = (const T *)l->w, x = (T)l->x;                                       \
-            int64_t cur = l->lo;                                                             \
-            for (Py_ssize_t i = 0; i < c && cur < l->hi; i++) {                              \
-                cur = gallop(l->docs, cur, l->hi, sc->cand[i]);                              \
-                if (cur < l->hi && l->docs[cur] == sc->cand[i]) {                            \
-                    ex[i] += w[cur] * x;                                                     \
-                    (*work)++;                                                               \
-                }                                                                            \
-            }                                                                                \
-        }                                                                                    \
-        *work += done;                                                                       \
+        exact_##T(L, n, sc->cand, c, ex, &probe);                                            \
+        *work += done + probe;                                                                       \
         for (Py_ssize_t i = 0; i < c; i++) {                                                 \
             const double s = (double)ex[i];                                                  \
             if (s != 0 && (heap->size < heap->cap ||                                         \

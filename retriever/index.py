@@ -42,6 +42,20 @@ class Document:
     row: int
 
 
+BATCH_THREADS_FROM = 64  # clues in a batch before it is shared between threads
+
+
+def batch_threads(n_clues: int, threads: int | None) -> int:
+    """Threads for a batch of `n_clues`: `threads` when given (at least 1), else one per core
+    this process may use for batches of BATCH_THREADS_FROM clues or more (a smaller batch
+    is over before the threads pay for themselves); never more than the clues."""
+    if threads is not None and threads < 1:
+        raise ValueError(f"threads must be at least 1, got {threads}")
+    if threads is None:
+        threads = cores() if n_clues >= BATCH_THREADS_FROM else 1
+    return max(1, min(threads, n_clues))
+
+
 class _FieldPostings:
     """Term-major postings of one field: CSR arrays over the shared vocabulary."""
 
@@ -109,6 +123,9 @@ class Index:
         self.popularity = store.open_array(self.path, "popularity", "float64", self.n_docs)
         self._store = store.StoreReader(self.path, self.n_docs)
         self._local = threading.local()
+        # Whether searches may skip postings that cannot change the top k (None: where it
+        # pays, see scoring.prunable; False: score every posting). Same hits either way.
+        self.prune: bool | None = None
 
     # -- identity -------------------------------------------------------
     @property
@@ -245,7 +262,9 @@ class Index:
         if not token_lists:
             return []
         plan = self._plan(token_lists)
-        results = scoring.top_k_many(self._buffer(), plan, k, touched=self._scratch())
+        results = scoring.top_k_many(
+            self._buffer(), plan, k, touched=self._scratch(), prune=self.prune
+        )
         rows = np.concatenate([r for r, _ in results])
         ids, titles = self.ids.take(rows), self.titles.take(rows)
         out: list[list[Hit]] = []
@@ -276,10 +295,10 @@ class Index:
     def search_many(
         self, clues: Sequence[str], k: int = 20, *, threads: int | None = None
     ) -> list[list[Hit]]:
-        """`search` for each clue, in order, on `threads` threads (default: up to 2 cores
-        for batches of 64 clues or more; the kernel releases the GIL for batches this big)."""
-        if threads is None:
-            threads = min(cores(), 2) if len(clues) >= 64 else 1
+        """`search` for each clue, in order, on `threads` threads (default: see
+        `batch_threads`; the kernel releases the GIL for batches this big). The hits are the
+        same whatever the count."""
+        threads = batch_threads(len(clues), threads)
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
