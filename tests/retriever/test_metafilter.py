@@ -183,9 +183,7 @@ def test_bad_filters_name_the_field(
     assert info.value.field == field and words in str(info.value)
 
 
-def test_updates_keep_the_columns_in_step(
-    records: list[dict[str, Any]], tmp_path: Path
-) -> None:
+def test_updates_keep_the_columns_in_step(records: list[dict[str, Any]], tmp_path: Path) -> None:
     folder = tmp_path / "u"
     build_index(records[:30], folder, vectors=False)
     new = {"id": "n1", "title": "New", "text": "w1a w2b", "metadata": {"kind": "lake"}}
