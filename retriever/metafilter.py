@@ -31,18 +31,22 @@ def _type_name(kind: str) -> str:
     return {"string": "a string", "number": "a number", "bool": "true or false"}[kind]
 
 
+def _finite_number(value: Any) -> bool:
+    if not isinstance(value, int | float) or isinstance(value, bool):
+        return False
+    try:
+        return math.isfinite(float(value))
+    except OverflowError:  # an integer beyond float range
+        return False
+
+
 def _check_value(f: MetaField, value: Any, op: str) -> Any:
     """The value, if it has the field's type; else a FilterError naming the field."""
     kind = f.kind
     ok = (
         (kind == "string" and isinstance(value, str))
         or (kind == "bool" and isinstance(value, bool))
-        or (
-            kind == "number"
-            and isinstance(value, int | float)
-            and not isinstance(value, bool)
-            and math.isfinite(value)
-        )
+        or (kind == "number" and _finite_number(value))
     )
     if not ok:
         raise FilterError(

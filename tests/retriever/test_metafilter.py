@@ -166,6 +166,8 @@ def test_filtered_dense_search_equals_brute_force_over_the_allowed_rows(
         ({"kind": 3}, "kind", "needs a string"),
         ({"year": "1800"}, "year", "needs a number"),
         ({"year": {"gte": True}}, "year", "needs a number"),
+        ({"year": {"lt": 10**400}}, "year", "needs a number"),
+        ({"year": float("nan")}, "year", "needs a number"),
         ({"old": 1}, "old", "needs true or false"),
         ({"kind": {"gt": "a"}}, "kind", "compares numbers"),
         ({"kind": {"like": "t%"}}, "kind", "unknown operator"),
