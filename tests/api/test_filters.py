@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import contextlib
+import shutil
 from collections import Counter
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+import httpx
 import numpy as np
 import pytest
 
@@ -15,7 +17,7 @@ from reranker import load_model, rank_clue
 from reranker.servedrecords import parse_served
 from retriever import load_index
 from retriever.snippets import ELLIPSIS, MAX_CHARS
-from tests.api.svc_helpers import TestClient, read_jsonl
+from tests.api.svc_helpers import ADMIN_TOKEN, TestClient, admin_headers, read_jsonl, serve
 
 Factory = Callable[..., contextlib.AbstractContextManager[TestClient]]
 
@@ -132,3 +134,41 @@ def test_snippets_only_when_asked_hold_matched_words_and_are_bounded(
         assert snip.removeprefix(ELLIPSIS).removesuffix(ELLIPSIS) in text
         if terms & set(idx.analyzer.tokens(text)):  # its text holds a term of the clue
             assert terms & set(idx.analyzer.tokens(snip))
+
+
+@pytest.mark.slow
+@pytest.mark.server
+def test_live_server_filters_and_admin_entry_calls_keep_the_columns_in_step(
+    index_dir: Path, tmp_path: Path
+) -> None:
+    # A real `hunchwise serve` on loopback: an article of a new kind added through the admin
+    # call is found by a filter on that kind at once, and gone once removed.
+    folder = tmp_path / "idx"
+    shutil.copytree(index_dir, folder)
+    env = {"HUNCHWISE_ADMIN_TOKEN": ADMIN_TOKEN}
+    new = {
+        "id": "zz1",
+        "title": "Glimmerpond",
+        "text": "Glimmerpond is a still lake of the north where herons wade among the reeds.",
+        "metadata": {"kind": "lake"},
+    }
+    body = {"clue": "a still lake where herons wade", "k": 5, "filter": {"kind": "lake"}}
+    with (
+        serve(["--index", str(folder)], tmp_path, env=env) as server,
+        httpx.Client(base_url=server.url, timeout=60) as c,
+    ):
+        r = c.post("/v1/rank", json=body)  # no lake yet: no candidate, and no error
+        assert r.status_code == 200 and r.json()["candidates"] == [], r.text
+        r = c.post("/v1/rank", json={**body, "filter": {"kind": 1}})
+        assert r.status_code == 422 and r.json()["detail"][0]["loc"] == ["body", "filter", "kind"]
+        r = c.post("/v1/rank", json={**body, "filter": {"kind": "town"}, "snippet": True})
+        assert r.status_code == 200, r.text
+        assert all(len(x["snippet"]) <= MAX_CHARS for x in r.json()["candidates"])
+        added = c.post("/v1/admin/entries", json=[new], headers=admin_headers())
+        assert added.status_code == 200, added.text
+        r = c.post("/v1/rank", json=body)
+        assert r.status_code == 200, r.text
+        assert [x["id"] for x in r.json()["candidates"]] == ["zz1"]  # k=5: one match only
+        assert c.delete("/v1/admin/entries/zz1", headers=admin_headers()).status_code == 200
+        r = c.post("/v1/rank", json={**body, "filter": {"kind": {"in": ["lake", "town"]}}})
+        assert r.status_code == 200 and "zz1" not in [x["id"] for x in r.json()["candidates"]]
