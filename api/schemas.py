@@ -166,9 +166,7 @@ class CandidateOut(BaseModel):
     explanation: ExplanationOut | None = Field(
         default=None, description="only when explain is true and a model is loaded"
     )
-    snippet: str | None = Field(
-        default=None, description="its text around the clue's words (only when snippet is true)"
-    )
+    snippet: str | None = Field(default=None, description="its text around the clue's words")
 
 
 class DecisionOut(BaseModel):
@@ -222,9 +220,7 @@ class RankedHow(BaseModel):
     revealed: float | None = Field(default=None, description="the share revealed, as sent")
     ranked_by: Literal["probability", "bm25"]
     note: str | None = Field(default=None, description="set when no model is loaded")
-    filter: dict[str, Any] | None = Field(
-        default=None, description="the metadata filter the candidates were chosen under"
-    )
+    filter: dict[str, Any] | None = Field(default=None, description="the metadata filter used")
     index_version: str
     model_version: str | None
     timing: TimingOut

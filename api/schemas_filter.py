@@ -25,11 +25,7 @@ def _bounded(value: dict[str, Any]) -> dict[str, Any]:
     return value
 
 
-MetadataFilter = Annotated[
-    dict[str, Any],
-    AfterValidator(_bounded),
-    Field(description=FILTER_DESCRIPTION, examples=[FILTER_EXAMPLE]),
-]
+MetadataFilter = Annotated[dict[str, Any], AfterValidator(_bounded)]
 
 
 class FilterOptions(BaseModel):

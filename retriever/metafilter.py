@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import bisect
 import math
+import reprlib
 from collections.abc import Mapping
 from typing import Any
 
@@ -25,6 +26,11 @@ from .metacolumns import MetaColumns, MetaField
 RANGE_OPS = ("gt", "gte", "lt", "lte")
 OPERATORS = ("eq", "in", *RANGE_OPS)
 MAX_IN = 10_000  # values one "in" list may hold (a cap on work, common practice, no source)
+
+
+def _shown(value: Any) -> str:
+    """A value for an error message, cut short (a request may send anything)."""
+    return reprlib.repr(value)
 
 
 def _type_name(kind: str) -> str:
@@ -50,7 +56,7 @@ def _check_value(f: MetaField, value: Any, op: str) -> Any:
     )
     if not ok:
         raise FilterError(
-            f"'{op}' needs {_type_name(kind)} (the field holds {kind} values), got {value!r}",
+            f"'{op}' needs {_type_name(kind)} (the field holds {kind} values), got {_shown(value)}",
             field=f.name,
         )
     return value
@@ -94,13 +100,13 @@ def _condition(f: MetaField, cond: Any) -> np.ndarray:
     for op, arg in cond.items():
         if op not in OPERATORS:
             raise FilterError(
-                f"unknown operator {op!r}; use one of {', '.join(OPERATORS)}", field=f.name
+                f"unknown operator {_shown(op)}; use one of {', '.join(OPERATORS)}", field=f.name
             )
         if op == "eq":
             mask &= _equal(f, column, [_check_value(f, arg, op)])
         elif op == "in":
             if not isinstance(arg, list):
-                raise FilterError(f"'in' needs a list of values, got {arg!r}", field=f.name)
+                raise FilterError(f"'in' needs a list of values, got {_shown(arg)}", field=f.name)
             if len(arg) > MAX_IN:
                 raise FilterError(f"'in' lists at most {MAX_IN} values", field=f.name)
             mask &= _equal(f, column, [_check_value(f, v, op) for v in arg])
@@ -128,7 +134,7 @@ def compile_filter(spec: Mapping[str, Any], meta: MetaColumns) -> np.ndarray:
     Raises FilterError naming the field for an unknown field, a wrong type or a bad operator.
     """
     if not isinstance(spec, Mapping):
-        raise FilterError(f"a filter is a JSON object of field conditions, got {spec!r}")
+        raise FilterError(f"a filter is a JSON object of field conditions, got {_shown(spec)}")
     mask = np.ones(meta.n_docs, dtype=bool)
     for name, cond in spec.items():
         f = meta.fields.get(name)
