@@ -11,7 +11,6 @@ passages with the index's own analyzer.
 from __future__ import annotations
 
 import re
-from collections import Counter
 from collections.abc import Collection
 
 from .analyzer import Analyzer
@@ -49,20 +48,22 @@ def snippet(text: str, analyzer: Analyzer, terms: Collection[str]) -> str:
     limit = MAX_CHARS - 2 * len(ELLIPSIS)
     # Sliding window: for each first word, the longest run that fits; count distinct terms.
     best, best_at = -1, (0, 0)
-    held: Counter[str] = Counter()
-    j = 0  # one past the window's last word
+    held: dict[str, int] = {}  # matched term -> how many words of the window hold it
+    distinct = 0
+    j = 0  # one past the window's last word; the window is empty when j == i
     for i in range(len(spans)):
-        if j < i:
-            j = i
-            held.clear()
+        j = max(j, i)
         while j < len(spans) and spans[j][1] - spans[i][0] <= limit:
-            held.update(matched[j])
+            for t in matched[j]:
+                distinct += held.get(t, 0) == 0
+                held[t] = held.get(t, 0) + 1
             j += 1
-        if j > i and len(held) > best:
-            best, best_at = len(held), (i, j - 1)
         if j > i:
-            held.subtract(matched[i])
-            held += Counter()  # drop the terms no longer held
+            if distinct > best:
+                best, best_at = distinct, (i, j - 1)
+            for t in matched[i]:
+                held[t] -= 1
+                distinct -= held[t] == 0
     a, b = best_at
     if best > 0:  # centre the passage on its matched words
         first = next(x for x in range(a, b + 1) if matched[x])
