@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import threading
 from collections import Counter
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import cached_property
@@ -13,7 +13,7 @@ from typing import Any, Literal, overload
 
 import numpy as np
 
-from . import bounds, columns, hybrid, scoring, store
+from . import bounds, columns, hybrid, metafilter, scoring, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .counting import cores
@@ -21,6 +21,7 @@ from .dense import DenseSearcher
 from .errors import IndexFormatError, UnknownDocumentError
 from .hits import Hit
 from .links import NameResolver
+from .metacolumns import MetaColumns
 from .sharded import ShardedIndex
 from .vectors import DenseVectors
 
@@ -144,6 +145,21 @@ class Index:
         vectors = DenseVectors.open(self.path, self.manifest)
         return DenseSearcher(vectors) if vectors is not None else None
 
+    @cached_property
+    def meta_columns(self) -> MetaColumns:
+        """The articles' metadata columns (opened on first use; IndexFormatError for an
+        index built before them)."""
+        return MetaColumns(self.path, self.n_docs)
+
+    def filter_mask(self, spec: Mapping[str, Any]) -> np.ndarray:
+        """Boolean mask of the rows a metadata filter keeps (see retriever/metafilter.py);
+        FilterError names the field of a bad condition."""
+        return metafilter.compile_filter(spec, self.meta_columns)
+
+    def text_of(self, row: int) -> str:
+        """The stored text of the article in `row`."""
+        return str(self._store.record(row)["text"])
+
     def row_of(self, doc_id: str) -> int:
         """Row of an article id; raises UnknownDocumentError."""
         row = self.ids.find(doc_id)
@@ -246,24 +262,33 @@ class Index:
         scores = self.score_tokens(tokens)
         return {int(r): float(scores[r]) for r in np.asarray(rows).tolist()}
 
-    def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
+    def search_tokens(
+        self, tokens: Sequence[str], k: int = 20, *, allowed: np.ndarray | None = None
+    ) -> list[Hit]:
         """Top-k articles for already-analyzed tokens, best first (ties by row).
 
-        Candidates are the articles holding at least one known query term.
+        Candidates are the articles holding at least one known query term (and, with
+        `allowed`, a boolean mask over the rows, only the rows it keeps).
         """
-        return self.search_token_lists([tokens], k)[0]
+        return self.search_token_lists([tokens], k, allowed=allowed)[0]
 
     def search_token_lists(
-        self, token_lists: Sequence[Sequence[str]], k: int = 20
+        self,
+        token_lists: Sequence[Sequence[str]],
+        k: int = 20,
+        *,
+        allowed: np.ndarray | None = None,
     ) -> list[list[Hit]]:
         """`search_tokens` for each list of already-analyzed tokens, in this thread."""
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         if not token_lists:
             return []
+        if allowed is not None and allowed.shape != (self.n_docs,):
+            raise ValueError(f"allowed must hold one entry per article ({self.n_docs})")
         plan = self._plan(token_lists)
         results = scoring.top_k_many(
-            self._buffer(), plan, k, touched=self._scratch(), prune=self.prune
+            self._buffer(), plan, k, touched=self._scratch(), prune=self.prune, allowed=allowed
         )
         rows = np.concatenate([r for r, _ in results])
         ids, titles = self.ids.take(rows), self.titles.take(rows)

@@ -108,9 +108,11 @@ def top_k_many(
     use_kernel: bool = True,
     prune: bool | None = None,
     work: np.ndarray | None = None,
+    allowed: np.ndarray | None = None,
 ) -> list[tuple[np.ndarray, np.ndarray]]:
     """Rows (int64) and scores (float64) of each query's k best articles with a non-zero
-    score, best first, ties by row.
+    score, best first, ties by row; with `allowed` (bool, one per article), only among the
+    rows it keeps, before the cut to k (fewer than k come back when fewer match).
 
     `buf` (the weights' type, one slot per article) must be all zeros on entry and is all
     zeros again on return. `touched` (int32, one slot per article) is the kernel's scratch;
@@ -122,7 +124,9 @@ def top_k_many(
     if k < 1:
         raise ValueError(f"k must be at least 1, got {k}")
     n = p.n_queries
-    if use_kernel and _kernels is not None:
+    # The compiled kernel takes no row mask: a filtered query runs the numpy twin, which
+    # gives the same scores bit for bit and drops the masked rows before its top-k cut.
+    if use_kernel and _kernels is not None and allowed is None:
         rows = np.empty(n * k, dtype=np.int64)
         scores = np.empty(n * k, dtype=np.float64)
         counts = np.empty(n, dtype=np.int64)
@@ -141,7 +145,7 @@ def top_k_many(
             (rows[q * k : q * k + c], scores[q * k : q * k + c])
             for q, c in enumerate(counts.tolist())
         ]
-    return [_numpy_top_k(buf, p, q, k) for q in range(n)]
+    return [_numpy_top_k(buf, p, q, k, allowed) for q in range(n)]
 
 
 # Pruning is used where asked for (prune=True), not by default: on the benchmark's clue
@@ -171,7 +175,9 @@ def prunable(p: Plan, n_docs: int | None) -> bool:
     )
 
 
-def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, np.ndarray]:
+def _numpy_top_k(
+    buf: np.ndarray, p: Plan, q: int, k: int, allowed: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """The numpy path of top_k_many for query q: touched articles, their scores, a partial sort."""
     lo, hi = int(p.qptr[q]), int(p.qptr[q + 1])
     ranges = [
@@ -197,6 +203,9 @@ def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, 
             scores = buf[touched].astype(np.float64)
             keep = scores != 0
             cand, scores = touched[keep], scores[keep]
+        if allowed is not None:
+            keep = allowed[cand]
+            cand, scores = cand[keep], scores[keep]
         if cand.size > k:
             kth = np.partition(scores, cand.size - k)[cand.size - k]
             top = scores >= kth
