@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import functools
 import gc
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
+from pathlib import Path
 from typing import Any
 
 import anyio
@@ -13,7 +14,7 @@ from fastapi import FastAPI, HTTPException
 from fastapi.middleware.cors import CORSMiddleware
 from threadpoolctl import threadpool_limits
 
-from retriever import atomicfile
+from retriever import Index, atomicfile, load_index
 
 from . import routes, routes_admin, schemas
 from .deps import Runtime, admin_refusal
@@ -73,11 +74,18 @@ _ADMIN: dict[int | str, dict[str, Any]] = {
 STARTUP_FAILURE_NOTE = "worker-failed.txt"  # in the state folder: why a worker could not start
 
 
-def create_app(settings: ServiceSettings | None = None, *, resume: bool = False) -> FastAPI:
+def create_app(
+    settings: ServiceSettings | None = None,
+    *,
+    resume: bool = False,
+    open_index: Callable[[Path], Index] = load_index,
+) -> FastAPI:
     """A new application; the index and model are loaded when its lifespan starts.
 
     resume: start from the last good files in the state folder, as a worker of
     `hunchwise serve` does (its siblings may serve files newer than the configured ones).
+    open_index: how the index folder is opened (`load_index`; the Ray front of
+    api/rayserve.py opens a sharded folder whose shards search on the cluster).
     """
     settings = settings if settings is not None else ServiceSettings()  # type: ignore[call-arg]
     metrics = Metrics()
@@ -87,7 +95,9 @@ def create_app(settings: ServiceSettings | None = None, *, resume: bool = False)
         # Loaded once per process into one read-only container; requests share it.
         try:
             runtime = await anyio.to_thread.run_sync(
-                functools.partial(Runtime.start, settings, metrics, resume=resume)
+                functools.partial(
+                    Runtime.start, settings, metrics, resume=resume, open_index=open_index
+                )
             )
         except Exception as exc:
             # uvicorn stops every worker when one cannot start; the note lets `hunchwise

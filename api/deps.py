@@ -4,14 +4,17 @@ from __future__ import annotations
 
 import hmac
 import logging
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Annotated, Any
 
 from fastapi import Depends, HTTPException, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from fastapi.security.utils import get_authorization_scheme_param
+
+from retriever import Index, load_index
 
 from .metrics import Metrics
 from .requestids import RequestIds, shared_secret
@@ -40,15 +43,23 @@ class Runtime:
     log_error: str | None = None  # why the last served-log write failed; None once one works
 
     @classmethod
-    def start(cls, settings: ServiceSettings, metrics: Metrics, *, resume: bool = False) -> Runtime:
+    def start(
+        cls,
+        settings: ServiceSettings,
+        metrics: Metrics,
+        *,
+        resume: bool = False,
+        open_index: Callable[[Path], Index] = load_index,
+    ) -> Runtime:
         """Load the index and model, open the served log, start the reload watcher.
 
         resume: start from the last good files in the state folder (see `Serving`).
+        open_index: how an index folder is opened (see `Serving`).
         """
         token = settings.resolved_admin_token()
         secret = settings.request_secret.get_secret_value() if settings.request_secret else None
         ids = RequestIds(shared_secret(secret, settings.state_dir))
-        serving = Serving(settings, resume=resume)
+        serving = Serving(settings, resume=resume, open_index=open_index)
         log = None
         if settings.log_dir is not None:
             log = ServedLog(

@@ -25,7 +25,7 @@ import os
 import shutil
 import tempfile
 import threading
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -109,8 +109,17 @@ class Serving:
     files into service as a new generation.
     """
 
-    def __init__(self, settings: ServiceSettings, *, resume: bool = False) -> None:
+    def __init__(
+        self,
+        settings: ServiceSettings,
+        *,
+        resume: bool = False,
+        open_index: Callable[[Path], Index] = load_index,
+    ) -> None:
         self.settings = settings
+        # How an index folder becomes the index served: `load_index`, or a sharded folder
+        # searched on a Ray cluster (api/rayserve.py).
+        self._open_index = open_index
         self._own_state = settings.state_dir is None
         # Without a shared folder (one process), a private one holds the snapshots.
         self.state_dir: Path = (
@@ -171,7 +180,7 @@ class Serving:
         index = (
             keep.index
             if keep is not None and keep.marker.index_generation == marker.index_generation
-            else load_index(marker.index_dir)
+            else self._open_index(Path(marker.index_dir))
         )
         if keep is not None and keep.marker.model_generation == marker.model_generation:
             return index, keep.model

@@ -63,6 +63,13 @@ def read_manifest(folder: Path) -> dict[str, Any]:
     return data
 
 
+def merge_scored(lists: Sequence[Sequence[tuple[float, int]]], k: int) -> list[tuple[float, int]]:
+    """The k best of several shards' (score, global row) lists for one query, ordered by
+    (score descending, row ascending): how a single index orders its hits and breaks ties."""
+    pool = (pair for pairs in lists for pair in pairs)
+    return heapq.nsmallest(k, pool, key=lambda p: (-p[0], p[1]))
+
+
 class ShardedIndex:
     """The shards of one corpus searched as one index (search only, for now)."""
 
@@ -90,7 +97,9 @@ class ShardedIndex:
                 )
             if info.get("stats_sha256") != stats_sha:
                 raise IndexFormatError(
-                    f"{sub}: built with other corpus statistics than its siblings; rebuild"
+                    f"{sub}: built with other corpus statistics than its siblings (its "
+                    f"statistics checksum {str(info.get('stats_sha256'))[:12]}, the top "
+                    f"manifest's {str(stats_sha)[:12]}); rebuild the index"
                 )
             self.shards.append(shard)
             self.first_rows.append(first)
@@ -115,14 +124,17 @@ class ShardedIndex:
         per_shard = [s.search_token_lists(token_lists, k) for s in self.shards]
         out = []
         for q in range(len(token_lists)):
-            pool = (
-                (-h.score, first + h.row, h)
+            by_row = {
+                first + h.row: h
                 for first, lists in zip(self.first_rows, per_shard, strict=True)
                 for h in lists[q]
-            )
-            best = heapq.nsmallest(k, pool, key=lambda t: (t[0], t[1]))
+            }
+            best = merge_scored([[(h.score, r) for r, h in by_row.items()]], k)
             out.append(
-                [Hit(h.doc_id, h.title, h.score, i + 1, row) for i, (_, row, h) in enumerate(best)]
+                [
+                    Hit(by_row[row].doc_id, by_row[row].title, score, i + 1, row)
+                    for i, (score, row) in enumerate(best)
+                ]
             )
         return out
 

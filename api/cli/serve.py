@@ -87,6 +87,20 @@ def register(sub: argparse._SubParsersAction) -> None:
         metavar="SECONDS",
         help="close an idle kept-alive connection after this long (default 5)",
     )
+    p.add_argument(
+        "--ray",
+        metavar="ADDRESS",
+        help="serve a sharded index (index build --shards) on Ray Serve: one deployment per "
+        "shard and the API in front, on this Ray cluster, or 'local' to start one here "
+        "(needs the 'cluster' extra)",
+    )
+    p.add_argument(
+        "--shard-replicas",
+        type=int,
+        metavar="N",
+        default=1,
+        help="with --ray: replicas of each shard's deployment (default 1)",
+    )
     p.set_defaults(func=cmd_serve)
 
 
@@ -208,14 +222,53 @@ def _ensure_descriptors(max_connections: int) -> None:
             )
 
 
-def cmd_serve(args: argparse.Namespace) -> int:
-    """Run the service until interrupted."""
-    import uvicorn
+# Options of the uvicorn server that Ray Serve's HTTP proxy does not take.
+_UVICORN_ONLY = ("workers", "max_connections", "request_timeout", "keep_alive", "access_log")
 
+
+def _serve_on_ray(args: argparse.Namespace) -> int:
+    """`serve --ray ADDRESS`: the sharded index on Ray Serve (api/rayserve.py)."""
+    given = [
+        "--" + name.replace("_", "-")
+        for name in _UVICORN_ONLY
+        if getattr(args, name) not in (None, False, 1)
+    ]
+    if given:
+        raise ValueError(
+            f"{', '.join(given)}: not with --ray (Ray Serve's HTTP proxy serves the requests; "
+            "scale the shards with --shard-replicas)"
+        )
+    if not 1 <= args.port <= 65535:
+        raise ValueError("--port must be between 1 and 65535 with --ray")
+    try:
+        from .. import rayserve
+    except ImportError as exc:
+        raise ValueError(
+            f"--ray needs Ray Serve ({exc}); install it: pip install 'hunchwise[cluster]'"
+        ) from exc
     from ..settings import settings_from_env
 
+    return rayserve.run(
+        settings_from_env(),
+        args.ray,
+        host=args.host,
+        port=args.port,
+        shard_replicas=args.shard_replicas,
+    )
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    """Run the service until interrupted."""
+    from ..settings import settings_from_env
+
+    if args.ray is None and args.shard_replicas != 1:
+        raise ValueError("--shard-replicas: only with --ray")
     with _state_folder(args.state_dir) as state_dir:
         os.environ.update(_environment(args, state_dir))
+        if args.ray is not None:
+            return _serve_on_ray(args)
+        import uvicorn
+
         # Workers compare their parent pid with this, to end when this process is gone.
         os.environ[PARENT_ENV] = str(os.getpid())
         metrics_dir = state_dir / "metrics"

@@ -1,0 +1,194 @@
+"""Sharded serving on Ray Serve: one deployment per shard, and the HTTP API in front of them.
+
+Each shard deployment (`ShardSearcher`, replicas configurable) memory-maps its shard folder
+and answers "the top k for these analysed query terms" with (score, global row) pairs. The
+front deployment (`Front`) is the ordinary FastAPI application of api/app.py, mounted as the
+Serve ingress: the same routes, served log, feedback and request ids as `hunchwise serve`.
+The one thing swapped is how the index folder is opened (the `open_index` seam of
+`create_app` -> `Runtime.start` -> `Serving`): a `retriever.shardview.ShardedView`, which
+reads the candidates' rows from the shard folders and sends every search to all shard
+deployments at once, merging their lists as a single index orders its hits.
+
+Ray is imported here and in retriever/shards.py only; `hunchwise serve --ray` imports this
+module, plain `hunchwise serve` never does.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import signal
+import threading
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any, cast
+
+import ray
+from fastapi import FastAPI
+from ray import serve
+
+from reranker import load_model
+from retriever import Index, IndexFormatError
+from retriever.sharded import read_manifest
+from retriever.shardview import Scored, ShardedView, local_search
+
+from .app import create_app
+from .settings import ServiceSettings
+
+APP_NAME = "hunchwise"
+
+
+def describe(index: Index, first_row: int) -> dict[str, Any]:
+    """What a shard deployment and the front must agree on about one shard."""
+    info = index.manifest.get("shard", {})
+    return {
+        "folder": index.path.name,
+        "first_row": first_row,
+        "articles": index.n_docs,
+        "index_version": index.version,
+        "stats_sha256": info.get("stats_sha256"),
+    }
+
+
+@serve.deployment(ray_actor_options={"num_cpus": 1})
+class ShardSearcher:
+    """One shard's folder, memory-mapped; searches it for analysed query terms."""
+
+    def __init__(self, folder: str, first_row: int, stats_sha256: str) -> None:
+        self.index = Index(folder)
+        self.first_row = first_row
+        got = self.index.manifest.get("shard", {}).get("stats_sha256")
+        if got != stats_sha256:
+            raise IndexFormatError(
+                f"{folder}: statistics checksum {str(got)[:12]}, the top manifest's "
+                f"{stats_sha256[:12]}: built with other corpus statistics; rebuild the index"
+            )
+
+    def search(self, token_lists: list[list[str]], k: int) -> list[Scored]:
+        """Per query, this shard's top k as (score, global row), best first."""
+        return local_search(self.index, self.first_row, token_lists, k)
+
+    def describe(self) -> dict[str, Any]:
+        """This shard's identity (see `describe`)."""
+        return describe(self.index, self.first_row)
+
+
+@serve.deployment(ray_actor_options={"num_cpus": 1})
+@serve.ingress()
+class Front:
+    """The HTTP API (api/app.py) over a sharded index whose shards search on the cluster."""
+
+    def __init__(self, settings: ServiceSettings, shards: list[Any]) -> None:
+        self.settings = settings
+        self.shards = shards  # DeploymentHandles, in shard order
+
+    def __serve_build_asgi_app__(self) -> FastAPI:
+        return create_app(self.settings, open_index=self.open_index)
+
+    def fan_out(self, token_lists: Sequence[Sequence[str]], k: int) -> list[list[Scored]]:
+        """Every shard's top k, asked of all shards before waiting for any."""
+        lists = [list(t) for t in token_lists]
+        pending = [h.search.remote(lists, k) for h in self.shards]
+        return [p.result() for p in pending]
+
+    def open_index(self, folder: Path) -> Index:
+        """The sharded folder as one index searched by the shard deployments, refused if a
+        deployment serves another shard than the folder's."""
+        view = ShardedView(folder, search=self.fan_out)
+        pending = [h.describe.remote() for h in self.shards]
+        served = [p.result() for p in pending]
+        if len(served) != len(view.shards):
+            raise IndexFormatError(
+                f"{folder}: {len(view.shards)} shards, but {len(served)} shard deployments run"
+            )
+        for shard, first, remote in zip(view.shards, view.first_rows, served, strict=True):
+            here = describe(shard, first)
+            if remote != here:
+                diff = sorted(k for k in here if here[k] != remote.get(k))
+                raise IndexFormatError(
+                    f"{shard.path}: the shard deployment serves another shard ({', '.join(diff)} "
+                    "differ); restart the sharded service on this folder"
+                )
+        return view
+
+
+def check_files(settings: ServiceSettings) -> str:
+    """Open the sharded folder and the model as the front will; a one-line summary.
+
+    Refuses (IndexFormatError naming the shard) a folder whose shards were built with other
+    statistics than the top manifest's, before anything is deployed.
+    """
+    view = ShardedView(settings.index_dir)
+    model = (
+        None
+        if settings.model_path is None
+        else load_model(settings.model_path, index=view, user_features=settings.user_features)
+    )
+    what = f"model {model.version}" if model is not None else "no model: BM25 order only"
+    return (
+        f"serving sharded index {view.version} ({view.n_docs} articles in "
+        f"{len(view.shards)} shards), {what}"
+    )
+
+
+def deployment(settings: ServiceSettings, shard_replicas: int) -> Any:
+    """The Serve application: one `ShardSearcher` per shard folder, `Front` over them."""
+    manifest = read_manifest(settings.index_dir)
+    sha = str(manifest.get("stats", {}).get("sha256"))
+    handles: list[Any] = [
+        cast(Any, ShardSearcher)
+        .options(name=f"shard-{i:03d}", num_replicas=shard_replicas)
+        .bind(str(settings.index_dir / str(entry["folder"])), int(entry["first_row"]), sha)
+        for i, entry in enumerate(manifest["shards"])
+    ]
+    return cast(Any, Front).options(name="front").bind(settings, handles)
+
+
+def run(
+    settings: ServiceSettings, address: str, *, host: str, port: int, shard_replicas: int
+) -> int:
+    """Serve until SIGINT or SIGTERM on the Ray cluster at `address` ('local': start one
+    here); then delete the application (a local cluster stops with this process)."""
+    if shard_replicas < 1:
+        raise ValueError(f"--shard-replicas must be at least 1, got {shard_replicas}")
+    summary = check_files(settings)
+    local = address == "local"
+    n_shards = len(read_manifest(settings.index_dir)["shards"])
+    ray.init(
+        address=None if local else address,
+        # Each replica asks for one CPU; a local cluster counts at least one per replica,
+        # so a small machine still places them all (a real cluster is sized for them).
+        num_cpus=max(os.cpu_count() or 1, n_shards * shard_replicas + 1) if local else None,
+        include_dashboard=False if local else None,
+        log_to_driver=False,
+    )
+    stop = threading.Event()
+
+    def on_signal(*_: Any) -> None:
+        if not stop.is_set() and serving.is_set():
+            stop.set()
+        else:  # still deploying (or asked twice): give up where it is, and clean up
+            raise KeyboardInterrupt
+
+    serving = threading.Event()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, on_signal)
+    try:
+        serve.start(http_options={"host": host, "port": port})
+        serve.run(
+            deployment(settings, shard_replicas), name=APP_NAME, route_prefix="/", blocking=False
+        )
+        print(
+            f"{summary}, {shard_replicas} replica(s) per shard on Ray at "
+            f"{ray.get_runtime_context().gcs_address}, http://{host}:{port}",
+            flush=True,
+        )
+        serving.set()
+        stop.wait()
+    finally:
+        with contextlib.suppress(Exception):  # whatever failed above was reported already
+            serve.delete(APP_NAME)
+            if local:
+                serve.shutdown()
+        ray.shutdown()
+    return 0

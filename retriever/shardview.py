@@ -1,0 +1,230 @@
+"""A sharded index's folder read as one `Index`, searched by a pluggable fan-out.
+
+Ranking a clue needs more of an index than its search: the candidates' ids, titles, names,
+lengths, in-links and body terms (reranker/features). `ShardedView` gives all of that by
+global row from the shards' own memory-mapped folders, and asks a `ShardSearch` for each
+shard's top k, merged by `sharded.merge_scored`: in this process (`local_search`), or on
+other machines (api/rayserve.py sends the analysed terms to one Ray Serve deployment per
+shard). Every shard holds the corpus's whole vocabulary, so term ids agree across shards
+and a term's document frequency is the sum of the shards' own.
+
+What the view copies into memory: the per-row arrays (lengths, in-links, popularity: 16
+bytes an article) and the article-major term lists the compiled features read by global
+row (4 bytes per distinct term of each article, about the size of one body postings file).
+"""
+
+from __future__ import annotations
+
+import functools
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import replace
+from pathlib import Path
+from typing import Any, cast, overload
+
+import numpy as np
+
+from .columns import JsonListColumn, StringColumn
+from .errors import FilterError, IndexFormatError
+from .hits import Hit
+from .index import Document, Index, _FieldPostings
+from .sharded import ShardedIndex, merge_scored
+
+# Per query, best first: (score, global row).
+Scored = list[tuple[float, int]]
+# token lists, k -> per shard, per query, its top k as (score, global row).
+ShardSearch = Callable[[Sequence[Sequence[str]], int], list[list[Scored]]]
+
+
+def local_search(
+    shard: Index, first_row: int, token_lists: Sequence[Sequence[str]], k: int
+) -> list[Scored]:
+    """One shard's top k per query, rows counted over the whole corpus."""
+    return [
+        [(h.score, first_row + h.row) for h in hits]
+        for hits in shard.search_token_lists(token_lists, k)
+    ]
+
+
+class ConcatStrings(StringColumn):
+    """Several shards' string columns read as one, by global row."""
+
+    def __init__(self, parts: Sequence[StringColumn], starts: np.ndarray) -> None:
+        # The parent's memory maps are the parts' own; nothing of its own to open.
+        self._parts = list(parts)
+        self._starts = starts  # first row of each part, then the total
+        self._len = int(starts[-1])
+
+    def _locate(self, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        part = np.searchsorted(self._starts, rows, side="right") - 1
+        return part, rows - self._starts[part]
+
+    def _at(self, row: int) -> str:
+        part = int(np.searchsorted(self._starts, row, side="right")) - 1
+        return self._parts[part][row - int(self._starts[part])]
+
+    @overload
+    def __getitem__(self, row: int) -> str: ...
+    @overload
+    def __getitem__(self, row: slice) -> list[str]: ...
+    def __getitem__(self, row: int | slice) -> str | list[str]:
+        if isinstance(row, slice):
+            return [self._at(r) for r in range(*row.indices(self._len))]
+        r = int(row) + (self._len if int(row) < 0 else 0)
+        if not 0 <= r < self._len:
+            raise IndexError(f"row {row} out of range for {self._len} strings")
+        return self._at(r)
+
+    def __iter__(self) -> Iterator[str]:
+        for part in self._parts:
+            yield from part
+
+    def take(self, rows: np.ndarray) -> list[str]:
+        """The strings of several global rows, each shard's asked once."""
+        rows = np.asarray(rows, dtype=np.int64)
+        if rows.size and (int(rows.min()) < 0 or int(rows.max()) >= self._len):
+            raise IndexError(f"rows out of range for {self._len} strings")
+        out = [""] * rows.size
+        part, local = self._locate(rows)
+        for p in np.unique(part).tolist():
+            at = np.flatnonzero(part == p)
+            for i, text in zip(at.tolist(), self._parts[p].take(local[at]), strict=True):
+                out[i] = text
+        return out
+
+    def find(self, value: str) -> int | None:
+        """Global row holding `value` (each shard's sorted order searched in turn)."""
+        for start, part in zip(self._starts.tolist(), self._parts, strict=False):
+            row = part.find(value)
+            if row is not None:
+                return int(start) + row
+        return None
+
+
+def _summed_postings(fields: Sequence[_FieldPostings]) -> _FieldPostings:
+    """A field whose `indptr` gives each term's corpus-wide document frequency (the sum
+    of the shards'), for the features that read it; its postings are left to the shards."""
+    merged = _FieldPostings.__new__(_FieldPostings)
+    merged.indptr = functools.reduce(np.add, (f.indptr for f in fields))
+    merged.docs = np.empty(0, dtype=np.int32)
+    merged.weight = np.empty(0, dtype=fields[0].weight.dtype)
+    return merged
+
+
+class ShardedView(Index):
+    """A sharded index as one read-only `Index`: rows from the shards' folders, searches
+    from `search` (default: the shards opened here, one after the other)."""
+
+    def __init__(
+        self,
+        folder: str | Path,
+        search: ShardSearch | None = None,
+        *,
+        title_weight: float | None = None,
+    ) -> None:
+        # ShardedIndex checks the top manifest, each shard's rows and statistics checksum.
+        sharded = ShardedIndex(Path(folder), functools.partial(Index, title_weight=title_weight))
+        shards = [cast(Index, s) for s in sharded.shards]
+        self.shards = shards
+        self.first_rows = list(sharded.first_rows)
+        first = shards[0]
+        for s in shards[1:]:
+            if s.n_terms != first.n_terms:
+                raise IndexFormatError(
+                    f"{s.path}: {s.n_terms} terms, {first.path} has {first.n_terms}; the "
+                    "shards of one index share the corpus's vocabulary, rebuild the index"
+                )
+        self.path = Path(folder)
+        self.manifest = sharded.manifest
+        self.n_docs = sharded.n_docs
+        self.n_terms = first.n_terms
+        self.analyzer, self.params, self.vocab = first.analyzer, first.params, first.vocab
+        self.title_weight = first.title_weight
+        starts = np.array([*self.first_rows, self.n_docs], dtype=np.int64)
+        self._starts = starts
+
+        def column(name: str) -> ConcatStrings:
+            return ConcatStrings([getattr(s, name) for s in shards], starts)
+
+        self.ids, self.titles = column("ids"), column("titles")
+        self.bases, self.qualifiers = column("bases"), column("qualifiers")
+        self.aliases = JsonListColumn(ConcatStrings([s.aliases._strings for s in shards], starts))
+        self.body = _summed_postings([s.body for s in shards])
+        self.title_field = _summed_postings([s.title_field for s in shards])
+        self.doc_len = np.concatenate([s.doc_len for s in shards])
+        self.inlinks = np.concatenate([s.inlinks for s in shards])
+        self.popularity = np.concatenate([s.popularity for s in shards])
+        lists = [s.article_term_lists() for s in shards]
+        ends = np.cumsum([int(ip[-1]) for ip, _ in lists])
+        offsets = np.concatenate([[0], ends[:-1]]).astype(np.int64)
+        self._fwd_indptr = np.concatenate(
+            [np.zeros(1, np.int64)]
+            + [ip[1:] + off for (ip, _), off in zip(lists, offsets, strict=True)]
+        )
+        self._fwd_terms = np.concatenate([t for _, t in lists])
+        self.__dict__["dense"] = None  # sharded builds have no word vectors yet
+        self._search = search if search is not None else self._search_here
+
+    def _search_here(self, token_lists: Sequence[Sequence[str]], k: int) -> list[list[Scored]]:
+        return [
+            local_search(s, first, token_lists, k)
+            for s, first in zip(self.shards, self.first_rows, strict=True)
+        ]
+
+    def _local_row(self, row: int) -> tuple[Index, int]:
+        if not 0 <= row < self.n_docs:
+            raise IndexError(f"row {row} out of range for {self.n_docs} articles")
+        part = int(np.searchsorted(self._starts, row, side="right")) - 1
+        return self.shards[part], row - self.first_rows[part]
+
+    def document_at(self, row: int) -> Document:
+        """Stored fields of the article in global `row`."""
+        shard, local = self._local_row(row)
+        return replace(shard.document_at(local), row=row)
+
+    def score_tokens(self, tokens: Sequence[str]) -> np.ndarray:
+        """BM25 score of every article, shard after shard (each weighted with the corpus's
+        statistics, so these are a single index's scores)."""
+        return np.concatenate([s.score_tokens(tokens) for s in self.shards])
+
+    def filter_mask(self, spec: Mapping[str, Any]) -> np.ndarray:
+        """Not yet over shards: each shard types its metadata columns on its own, so one
+        filter could mean different things on two shards."""
+        raise FilterError("metadata filters are not available on a sharded index yet")
+
+    def text_of(self, row: int) -> str:
+        """The stored text of the article in global `row`."""
+        shard, local = self._local_row(row)
+        return shard.text_of(local)
+
+    def search_token_lists(
+        self,
+        token_lists: Sequence[Sequence[str]],
+        k: int = 20,
+        *,
+        allowed: np.ndarray | None = None,
+    ) -> list[list[Hit]]:
+        """Every shard's top k merged by (score desc, global row asc), per token list."""
+        if allowed is not None:
+            self.filter_mask({})
+        if k < 1:
+            raise ValueError(f"k must be at least 1, got {k}")
+        if not token_lists:
+            return []
+        per_shard = self._search(token_lists, k)
+        best = [merge_scored([lists[q] for lists in per_shard], k) for q in range(len(token_lists))]
+        rows = np.array([r for b in best for _, r in b], dtype=np.int64)
+        ids, titles = self.ids.take(rows), self.titles.take(rows)
+        out: list[list[Hit]] = []
+        at = 0
+        for b in best:
+            out.append(
+                [
+                    Hit(ids[at + i], titles[at + i], score, i + 1, row)
+                    for i, (score, row) in enumerate(b)
+                ]
+            )
+            at += len(b)
+        return out
+
+    def __repr__(self) -> str:
+        return f"ShardedView({str(self.path)!r}, articles={self.n_docs}, shards={len(self.shards)})"
