@@ -11,6 +11,8 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from typing import Any
 
+import numpy as np
+
 from .errors import RetrieverError
 
 
@@ -28,6 +30,16 @@ def import_ray(what: str) -> Any:
             "(the same work then runs in this process)"
         ) from exc
     return ray
+
+
+def _user_error(exc: BaseException) -> BaseException:
+    """The first error in `exc`'s chain that is not Ray's own (a worker's bad input, say)."""
+    seen: BaseException | None = exc
+    while seen is not None:
+        if not type(seen).__module__.startswith("ray"):
+            return seen
+        seen = getattr(seen, "cause", None) or seen.__cause__
+    return exc
 
 
 class Runner:
@@ -58,6 +70,11 @@ class Runner:
         cause = getattr(exc, "cause", None)
         return cause if isinstance(cause, Exception) else exc
 
+    def put(self, value: Any) -> Any:
+        """`value` stored once in the cluster's object store (a reference tasks take in its
+        place), or `value` itself in this process."""
+        return value if self.ray is None else self.ray.put(value)
+
     def map(self, fn: Callable[..., Any], calls: Sequence[tuple[Any, ...]]) -> list[Any]:
         """fn(*args) for each tuple of `calls`, in order."""
         if self.ray is None:
@@ -67,6 +84,59 @@ class Runner:
             return list(self.ray.get([task.remote(*args) for args in calls]))
         except self.ray.exceptions.RayTaskError as exc:
             err = self.unwrap(exc)
+            if err is exc:
+                raise
+            raise err from None
+
+    def map_batches(
+        self,
+        columns: dict[str, np.ndarray],
+        worker: type,
+        args: tuple[Any, ...],
+        batch_size: int,
+    ) -> dict[str, np.ndarray]:
+        """Rows (equal-length `columns`, one of them `seq`, ascending) through `worker(*args)`,
+        a callable taking and returning a batch (a dict of columns, `seq` passed through):
+        with Ray Data, one worker per cluster CPU, each set up once; here, one worker over
+        consecutive batches. The output's rows come back ordered by `seq` either way."""
+        n = len(columns["seq"])
+        if self.ray is None:
+            fn = worker(*args)
+            parts = [
+                fn({c: v[s : s + batch_size] for c, v in columns.items()})
+                for s in range(0, n, batch_size)
+            ]
+        else:
+            parts = self._ray_batches(columns, worker, args, batch_size)
+        parts = [p for p in parts if len(p["seq"])]
+        if not parts:
+            return fn({c: v[:0] for c, v in columns.items()}) if self.ray is None else {}
+        out = {c: np.concatenate([p[c] for p in parts]) for c in parts[0]}
+        order = np.argsort(out["seq"], kind="stable")
+        return {c: v[order] for c, v in out.items()}
+
+    def _ray_batches(
+        self, columns: dict[str, np.ndarray], worker: type, args: tuple[Any, ...], batch_size: int
+    ) -> list[dict[str, np.ndarray]]:
+        ray = self.ray
+        ctx = ray.data.DataContext.get_current()
+        ctx.enable_progress_bars = False
+        names = list(columns)
+        values = [columns[c].tolist() for c in names]
+        rows = [dict(zip(names, r, strict=True)) for r in zip(*values, strict=True)]
+        workers = max(1, int(ray.cluster_resources().get("CPU", 1)))
+        ds = ray.data.from_items(rows).map_batches(
+            worker,
+            fn_constructor_args=args,
+            batch_size=batch_size,
+            batch_format="numpy",
+            concurrency=workers,
+            num_cpus=1,
+        )
+        try:
+            return list(ds.iter_batches(batch_size=None, batch_format="numpy"))
+        except Exception as exc:  # Ray Data wraps the worker's own error in its own
+            err = _user_error(exc)
             if err is exc:
                 raise
             raise err from None

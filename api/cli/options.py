@@ -50,3 +50,14 @@ def add_index_option(p: argparse.ArgumentParser) -> None:
 def add_feature_option(p: argparse.ArgumentParser, help: str) -> None:
     """--feature MODULE:FUNCTION, repeatable: user-defined feature functions."""
     p.add_argument("--feature", action="append", default=[], metavar="MODULE:FUNCTION", help=help)
+
+
+def add_ray_option(p: argparse.ArgumentParser, what: str) -> None:
+    """--ray ADDRESS|local: do `what` on a Ray cluster (the output is the same as without)."""
+    p.add_argument(
+        "--ray",
+        default=None,
+        metavar="ADDRESS",
+        help=f"{what} on this Ray cluster, or 'local' to start one here (needs the 'cluster' "
+        "extra; the output is the same as without; default: in this process)",
+    )

@@ -11,6 +11,7 @@ import numpy as np
 from tqdm.auto import tqdm
 
 from retriever import Hit, Index
+from retriever.cluster import Runner
 
 from ..candidates import CandidatePolicy, find_candidates
 from ..features import DenseInfo, FeatureRegistry, MetadataColumns, candidate_set
@@ -142,28 +143,22 @@ def labelled_prefixes(index: Index, clues: Sequence[LabelledClue], plan: PrefixP
     return out
 
 
-def build_table(
+def prefix_rows(
     index: Index,
-    clues: Sequence[LabelledClue],
+    texts: Sequence[str],
+    owners: Sequence[tuple[int, float, int | None, dict[str, Any]]],
+    groups: Sequence[int],
     registry: FeatureRegistry,
     feature_names: Sequence[str],
     *,
-    k: int = 20,
-    plan: PrefixPlan | None = None,
-    metadata: MetadataColumns | None = None,
-    candidates: CandidatePolicy | None = None,
+    k: int,
+    metadata: MetadataColumns,
+    candidates: CandidatePolicy,
     progress: bool = False,
-) -> TrainingTable:
-    """Search every prefix of every clue, featurize its candidates and label them.
-
-    The candidate sets are made as serving makes them (`find_candidates` with `candidates`,
-    BM25's top k by default).
-    """
-    plan = plan or PrefixPlan()
-    metadata = metadata or MetadataColumns()
-    policy = candidates or CandidatePolicy()
-    pre = labelled_prefixes(index, clues, plan)
-    texts, owners, unresolved, n_clues = pre.texts, pre.owners, pre.unresolved, pre.n_clues
+) -> dict[str, np.ndarray]:
+    """The table's columns (`X` and the bookkeeping ones) for some prefixes: `texts`, their
+    `owners` (clue, fraction, gold row, metadata) and group ids. Each prefix's rows depend
+    on that prefix alone, so blocks of prefixes give the rows the whole list gives."""
     # Each prefix is analyzed once: its tokens serve the search and the features.
     tokens_all = [index.analyzer.tokens(t) for t in texts]
     words_all = [index.analyzer.words(t) for t in texts]
@@ -173,7 +168,7 @@ def build_table(
     ) as bar:
         for i in range(0, len(tokens_all), 256):  # batches: one kernel call each
             chunk = tokens_all[i : i + 256]
-            found.extend(find_candidates(index, chunk, k, policy))
+            found.extend(find_candidates(index, chunk, k, candidates))
             bar.update(len(chunk))
     names = list(feature_names)
     all_names = names + metadata.names
@@ -181,15 +176,13 @@ def build_table(
     cols: dict[str, list[np.ndarray]] = {
         n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row", "words")
     }
-    for g, (text, tokens, words, (hits, dense), (cid, frac, gold, meta)) in enumerate(
-        tqdm(
-            zip(texts, tokens_all, words_all, found, owners, strict=True),
-            total=len(texts),
-            desc="features",
-            unit=" prefixes",
-            disable=not progress,
-            mininterval=0.5,
-        )
+    for g, text, tokens, words, (hits, dense), (cid, frac, gold, meta) in tqdm(
+        zip(groups, texts, tokens_all, words_all, found, owners, strict=True),
+        total=len(texts),
+        desc="features",
+        unit=" prefixes",
+        disable=not progress,
+        mininterval=0.5,
     ):
         if not hits:
             continue
@@ -209,24 +202,82 @@ def build_table(
         cols["rank"].append(cs.ranks)
         cols["row"].append(cs.rows)
         cols["words"].append(np.full(n, len(words), np.int64))
+    out = {
+        name: np.concatenate(parts).astype(_DTYPES[name]) if parts else np.zeros(0, _DTYPES[name])
+        for name, parts in cols.items()
+    }
+    out["X"] = np.vstack(blocks) if blocks else np.zeros((0, len(all_names)))
+    return out
 
-    def cat(name: str, dtype: Any) -> np.ndarray:
-        return np.concatenate(cols[name]).astype(dtype) if cols[name] else np.zeros(0, dtype)
 
+# Each bookkeeping column's type (the in-process and the distributed builds share it).
+_DTYPES: dict[str, Any] = {
+    "y": np.int8,
+    "group": np.int64,
+    "clue_id": np.int64,
+    "fraction": np.float64,
+    "score": np.float64,
+    "rank": np.int64,
+    "row": np.int64,
+    "words": np.int64,
+}
+
+
+def build_table(
+    index: Index,
+    clues: Sequence[LabelledClue],
+    registry: FeatureRegistry,
+    feature_names: Sequence[str],
+    *,
+    k: int = 20,
+    plan: PrefixPlan | None = None,
+    metadata: MetadataColumns | None = None,
+    candidates: CandidatePolicy | None = None,
+    progress: bool = False,
+    runner: Runner | None = None,
+) -> TrainingTable:
+    """Search every prefix of every clue, featurize its candidates and label them.
+
+    The candidate sets are made as serving makes them (`find_candidates` with `candidates`,
+    BM25's top k by default). `runner`: a Ray runner (retriever/cluster.py) to build the
+    rows in blocks of prefixes on its workers (reranker/training/tableblocks.py); the table
+    is the same.
+    """
+    plan = plan or PrefixPlan()
+    metadata = metadata or MetadataColumns()
+    policy = candidates or CandidatePolicy()
+    pre = labelled_prefixes(index, clues, plan)
+    if runner is not None and runner.ray is not None:
+        from .tableblocks import distributed_rows
+
+        cols = distributed_rows(runner, index, pre, registry, feature_names, k, metadata, policy)
+    else:
+        cols = prefix_rows(
+            index,
+            pre.texts,
+            pre.owners,
+            range(len(pre.texts)),
+            registry,
+            feature_names,
+            k=k,
+            metadata=metadata,
+            candidates=policy,
+            progress=progress,
+        )
     return TrainingTable(
-        X=np.vstack(blocks) if blocks else np.zeros((0, len(all_names))),
-        y=cat("y", np.int8),
-        group=cat("group", np.int64),
-        clue_id=cat("clue_id", np.int64),
-        fraction=cat("fraction", np.float64),
-        score=cat("score", np.float64),
-        rank=cat("rank", np.int64),
-        row=cat("row", np.int64),
-        words=cat("words", np.int64),
-        feature_names=all_names,
-        unresolved=unresolved,
-        n_clues=n_clues,
-        n_prefixes=len(texts),
+        X=cols["X"],
+        y=cols["y"],
+        group=cols["group"],
+        clue_id=cols["clue_id"],
+        fraction=cols["fraction"],
+        score=cols["score"],
+        rank=cols["rank"],
+        row=cols["row"],
+        words=cols["words"],
+        feature_names=list(feature_names) + metadata.names,
+        unresolved=pre.unresolved,
+        n_clues=pre.n_clues,
+        n_prefixes=len(pre.texts),
         clues=pre.kept,
-        texts=texts,
+        texts=pre.texts,
     )
