@@ -6,9 +6,10 @@ It generates an invented corpus of that size with corpus_demo, then, each in its
 process so peak memory is its own: builds the single index, builds the sharded one with
 `--ray local` (a Ray cluster started in that process, one task per shard) and in-process,
 then times BM25 queries per clue on both (the sharded index asks every shard and merges),
-and opens each shard alone to search the same clues: the memory one shard's searcher needs,
-beside the whole index's. BM25 only by default; `--vectors` adds word vectors to both
-builds (training takes minutes at 100k). Ratios are against the single index in this run.
+and opens each shard alone to search the same clues: the memory one shard's searcher adds
+(resident memory after the searches minus before opening), beside the whole index's.
+BM25 only by default; `--vectors` adds word vectors to every build (training takes
+minutes at 100k). Ratios are against the single index in this run.
 """
 
 from __future__ import annotations
@@ -38,6 +39,14 @@ def _pct(values: list[float], q: float) -> float:
     return values[min(len(values) - 1, int(q * len(values)))]
 
 
+def _rss_mib() -> float:
+    """This process's resident memory now (Linux)."""
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1]) / 1024
+    return float("nan")
+
+
 def _mib(folder: Path) -> float:
     return sum(p.stat().st_size for p in folder.rglob("*") if p.is_file()) / 2**20
 
@@ -64,6 +73,8 @@ def build(work: Path, kind: str, shards: int, vectors: bool) -> None:
 def query(work: Path, folder: str, queries: int, k: int) -> None:
     """Child: open one index (single, sharded or one shard) and time a search per clue."""
     path = work / folder
+    gc.collect()
+    before = _rss_mib()
     index = load_index(path, sharded=True) if folder == "ray" else None
     if index is None:
         from retriever.index import Index
@@ -85,7 +96,7 @@ def query(work: Path, folder: str, queries: int, k: int) -> None:
                 "p50": _pct(ms, 0.5),
                 "p95": _pct(ms, 0.95),
                 "mean": statistics.fmean(ms),
-                "peak_rss_mib": _peak_rss_mib(),
+                "added_rss_mib": _rss_mib() - before,
                 "articles": index.n_docs,
             }
         )
@@ -110,6 +121,9 @@ def main() -> None:
     ap.add_argument("--k", type=int, default=20, help="results per search (default 20)")
     ap.add_argument("--vectors", action="store_true", help="train word vectors in every build")
     ap.add_argument("--work", type=Path, default=None, help="folder to keep (default: temporary)")
+    ap.add_argument(
+        "--reuse", action="store_true", help="time the queries on the builds kept in --work"
+    )
     ap.add_argument("--child", help=argparse.SUPPRESS)
     ap.add_argument("--folder", help=argparse.SUPPRESS)
     args = ap.parse_args()
@@ -128,8 +142,9 @@ def main() -> None:
         common = ["--work", str(work), "--shards", str(args.shards)]
         if args.vectors:
             common.append("--vectors")
-        builds = {kind: _child(["--child", kind, *common]) for kind in ("single", "ray", "here")}
-        base = builds["single"]["seconds"]
+        kinds = ("single", "ray", "here")
+        builds = {} if args.reuse else {k: _child(["--child", k, *common]) for k in kinds}
+        base = builds["single"]["seconds"] if builds else 1.0
         what = "BM25 + word vectors" if args.vectors else "BM25 only"
         print(f"\n{args.articles:,} articles, {args.shards} shards, {what}, each in its process\n")
         print("| build | seconds | x single | peak RSS MiB (driver) | on disk MiB |")
@@ -146,14 +161,14 @@ def main() -> None:
         shard_dirs = sorted(p.name for p in (work / "ray").glob("shard-*"))
         alone = [_child(["--child", "query", "--folder", f"ray/{s}", *opts]) for s in shard_dirs]
         print(f"\nBM25 query, top {args.k}, {args.queries} clues\n")
-        print("| index | articles | p50 ms | p95 ms | mean ms | x single | peak RSS MiB |")
+        print("| index | articles | p50 ms | p95 ms | mean ms | x single | RSS added MiB |")
         print("|---|---|---|---|---|---|---|")
         rows = [("single index", single), ("sharded (all shards, merged)", merged)]
         rows += [(f"one shard alone ({s})", a) for s, a in zip(shard_dirs, alone, strict=True)]
         for name, r in rows:
             print(
                 f"| {name} | {int(r['articles']):,} | {r['p50']:.2f} | {r['p95']:.2f} | "
-                f"{r['mean']:.2f} | {r['mean'] / single['mean']:.2f} | {r['peak_rss_mib']:,.0f} |"
+                f"{r['mean']:.2f} | {r['mean'] / single['mean']:.2f} | {r['added_rss_mib']:,.0f} |"
             )
 
 
