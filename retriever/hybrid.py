@@ -20,11 +20,27 @@ from typing import Protocol
 import numpy as np
 
 from .analyzer import Analyzer
-from .columns import StringColumn
-from .dense import DenseSearcher
 from .hits import Hit
+from .vectors import DenseVectors
 
 FUSIONS = ("minmax", "rrf")
+
+
+class _Column(Protocol):
+    def take(self, rows: np.ndarray) -> list[str]: ...
+
+
+class _Dense(Protocol):
+    """Dense search (`DenseSearcher`, or the sharded index's merged one)."""
+
+    @property
+    def vectors(self) -> DenseVectors: ...
+
+    def search(
+        self, queries: Sequence[np.ndarray | None], k: int, *, exact: bool = False
+    ) -> list[tuple[np.ndarray, np.ndarray]]: ...
+
+    def cosines(self, query: np.ndarray | None, rows: np.ndarray) -> np.ndarray: ...
 
 
 class HybridSource(Protocol):
@@ -35,11 +51,15 @@ class HybridSource(Protocol):
     """
 
     analyzer: Analyzer
-    ids: StringColumn
-    titles: StringColumn
 
     @property
-    def dense(self) -> DenseSearcher | None: ...
+    def ids(self) -> _Column: ...
+
+    @property
+    def titles(self) -> _Column: ...
+
+    @property
+    def dense(self) -> _Dense | None: ...
 
     def search_token_lists(
         self, token_lists: Sequence[Sequence[str]], k: int = 20

@@ -146,6 +146,44 @@ def count_items(source: str | Path) -> int:
     return sum(1 for _ in _raw_items(source))
 
 
+def item_offsets(source: str | Path) -> tuple[np.ndarray, np.ndarray] | None:
+    """Byte offset and line number of every raw item of an uncompressed JSON-lines file,
+    each with one more entry for the end; None for other formats (and for a file holding
+    one JSON array), whose shards are read by skipping items from the start."""
+    path = Path(source)
+    if path.suffix.lower() == ".gz" or detect_format(path) != "jsonl":
+        return None
+    offsets: list[int] = []
+    lines: list[int] = []
+    pos, n = 0, 0
+    with open(path, "rb") as fh:
+        for n, raw in enumerate(fh, 1):
+            if raw.strip():
+                if not offsets and raw.lstrip().startswith(b"["):
+                    return None
+                offsets.append(pos)
+                lines.append(n)
+            pos += len(raw)
+    offsets.append(pos)
+    lines.append(n + 1)
+    return np.asarray(offsets, dtype=np.int64), np.asarray(lines, dtype=np.int64)
+
+
+def _window_items(path: Path, window: tuple[int, int, int]) -> Generator[RawItem, None, None]:
+    """The raw items of bytes window[0]..window[1] of a JSON-lines file whose first line
+    there is line window[2] (as `_raw_items` gives them)."""
+    start, stop, first_line = window
+    with open(path, "rb") as fh:
+        fh.seek(start)
+        pos = start
+        for n, raw in enumerate(fh, first_line):
+            if pos >= stop:
+                return
+            pos += len(raw)
+            if raw.strip():
+                yield n, raw
+
+
 def _raw_items(
     source: str | Path | Iterable[Mapping[str, Any] | Article],
 ) -> Generator[RawItem, None, None]:
@@ -278,21 +316,26 @@ def ingest(
     report: ReadReport,
     bar: Any,
     items: tuple[int, int] | None = None,
+    window: tuple[int, int, int] | None = None,
 ) -> Ingest:
     """Read, validate, store (into `store_fh`) and count every article of `source`.
 
     `items`: only the raw items (lines or rows, bad ones included, blank lines not) from
-    position start to stop, counted from 0: one shard of a corpus.
+    position start to stop, counted from 0: one shard of a corpus. `window`: where those
+    items sit in an uncompressed JSON-lines file (see `item_offsets`), so only that part of
+    the file is read.
     """
     file = str(source) if isinstance(source, str | Path) else RECORDS
     state = Ingest(file, store_fh, skip_bad, report)
     sent: deque[list[RawItem]] = deque()
     # closing: a shard stops reading before the end, and the file must not wait for the
     # garbage collector to be closed.
-    with contextlib.closing(_raw_items(source)) as all_items:
+    opened = _window_items(Path(str(source)), window) if window else _raw_items(source)
+    with contextlib.closing(opened) as all_items:
         raw: Iterator[RawItem] = all_items
         if items is not None:
-            raw = itertools.islice(all_items, items[0], items[1])
+            skip = 0 if window else items[0]
+            raw = itertools.islice(all_items, skip, skip + items[1] - items[0])
         tasks = _tasks(file, raw, bar, sent)
         for out in run_chunks(ingest_chunk, tasks, analyzer, workers):
             state.add(out, sent.popleft())

@@ -12,13 +12,17 @@ from __future__ import annotations
 import heapq
 import json
 from collections.abc import Callable, Sequence
+from functools import cached_property
 from pathlib import Path
 from typing import Any, Protocol
 
-from . import store
+import numpy as np
+
+from . import hybrid, store
 from .analyzer import Analyzer
 from .errors import IndexFormatError
 from .hits import Hit
+from .shardeddense import ShardedColumn, ShardedDense
 
 SHARDS_FORMAT_VERSION = 1
 
@@ -71,7 +75,7 @@ def merge_scored(lists: Sequence[Sequence[tuple[float, int]]], k: int) -> list[t
 
 
 class ShardedIndex:
-    """The shards of one corpus searched as one index (search only, for now)."""
+    """The shards of one corpus searched as one index: BM25, dense and hybrid search."""
 
     def __init__(self, folder: Path, open_shard: Callable[[Path], Shard]) -> None:
         self.path = folder
@@ -149,6 +153,44 @@ class ShardedIndex:
     def search_many(self, clues: Sequence[str], k: int = 20) -> list[list[Hit]]:
         """`search` for each clue, in order."""
         return self.search_token_lists(self.analyzer.tokens_many(clues), k)
+
+    # -- dense and hybrid search (retriever/shardeddense.py) ----------------
+    def _dense_shards(self) -> list[Any]:
+        return list(self.shards)  # Index objects: dense search needs more than `Shard`
+
+    @cached_property
+    def ids(self) -> ShardedColumn:
+        """Article ids by global row."""
+        return ShardedColumn([s.ids for s in self._dense_shards()], self.first_rows)
+
+    @cached_property
+    def titles(self) -> ShardedColumn:
+        """Article titles by global row."""
+        return ShardedColumn([s.titles for s in self._dense_shards()], self.first_rows)
+
+    @cached_property
+    def dense(self) -> ShardedDense | None:
+        """Nearest-article search over every shard's vectors, merged; None without them."""
+        return ShardedDense.of(self._dense_shards(), self.first_rows)
+
+    def term_ids(self, tokens: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """Known query terms as (term ids, counts); the shards share one vocabulary."""
+        ids, qtf = self._dense_shards()[0].term_ids(tokens)
+        return ids, qtf
+
+    def score_tokens(self, tokens: Sequence[str]) -> np.ndarray:
+        """BM25 score of every article by global row (each shard's, side by side)."""
+        return np.concatenate([s.score_tokens(tokens) for s in self._dense_shards()])
+
+    def search_hybrid(self, clue: str, k: int = 20, **options: Any) -> hybrid.HybridResult:
+        """BM25 and word-vector candidates fused into one list, as one index fuses them."""
+        return hybrid.search_hybrid_many(self, [clue], k, **options)[0]
+
+    def search_hybrid_many(
+        self, clues: Sequence[str], k: int = 20, **options: Any
+    ) -> list[hybrid.HybridResult]:
+        """`search_hybrid` for each clue, in order."""
+        return hybrid.search_hybrid_many(self, clues, k, **options)
 
     def __repr__(self) -> str:
         return (

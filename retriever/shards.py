@@ -12,7 +12,10 @@ lists the shards (retriever/sharded.py reads it and merges searches).
 Ray is optional and imported only here, only when asked for: without it the same two
 functions run one after the other in this process. On a cluster of several machines the
 output folder must be on storage every node sees (the tasks write the shards there).
-Word vectors are not built for sharded indexes yet.
+Word vectors (pass 3) are trained once in the driver over every shard's stored articles,
+then each shard task writes its articles' vectors (retriever/shardvectors.py). For an
+uncompressed JSON-lines corpus the driver finds every item's byte offset up front, so each
+task reads only its own byte range; other formats are read from the start and skipped.
 """
 
 from __future__ import annotations
@@ -22,7 +25,7 @@ import itertools
 import json
 import os
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -30,21 +33,19 @@ from typing import Any
 
 import numpy as np
 
-from . import bm25, columns, sharded, store
+from . import bm25, columns, sharded, shardvectors, store
+from . import vectors as vecs
 from .analyzer import Analyzer, AnalyzerConfig
 from .build import KnownLinks, index_version, write_folder
+from .cluster import Runner
 from .corpus import CorpusError, ReadReport, file_checksum
 from .counting import no_gc
-from .errors import IndexFormatError, RetrieverError, position
-from .ingest import Keys, count_items, ingest
+from .errors import IndexFormatError, position
+from .ingest import Keys, count_items, ingest, item_offsets
 from .links import NameResolver, count_inlinks
 from .postings import CorpusStats, FieldStats, sorted_terms
 
 STATS_FOLDER = "corpus_stats"
-
-
-class ClusterError(RetrieverError):
-    """Raised when the Ray cluster a sharded build asks for is missing or unreachable."""
 
 
 @dataclass
@@ -63,6 +64,17 @@ class ShardCounts:
     problems: list[str]
 
 
+def _windows(
+    offsets: tuple[np.ndarray, np.ndarray] | None, spans: Sequence[tuple[int, int]]
+) -> list[tuple[int, int, int] | None]:
+    """Each span's (first byte, end byte, first line) in the file, split up front so each
+    task reads only its own part; None each where the format has no byte offsets."""
+    if offsets is None:
+        return [None] * len(spans)
+    at, lines = offsets
+    return [(int(at[a]), int(at[b]), int(lines[a])) for a, b in spans]
+
+
 class _NoBar:
     def update(self, n: int) -> None:
         """Progress is not shown inside tasks."""
@@ -78,14 +90,27 @@ def split_items(n_items: int, n_shards: int) -> list[tuple[int, int]]:
 
 
 def count_shard(
-    corpus: str, span: tuple[int, int], analyzer: dict[str, Any], skip_bad: bool
+    corpus: str,
+    span: tuple[int, int],
+    analyzer: dict[str, Any],
+    skip_bad: bool,
+    window: tuple[int, int, int] | None = None,
 ) -> ShardCounts:
-    """Pass 1 on items span[0]..span[1] of `corpus`: term statistics and name keys."""
+    """Pass 1 on items span[0]..span[1] of `corpus`: term statistics and name keys.
+    `window`: where those items sit in the file (`spans_windows`), so only they are read."""
     an = Analyzer(AnalyzerConfig.from_dict(analyzer))
     report = ReadReport()
     with no_gc(), open(os.devnull, "wb") as sink:
         state = ingest(
-            corpus, an, sink, workers=1, skip_bad=skip_bad, report=report, bar=_NoBar(), items=span
+            corpus,
+            an,
+            sink,
+            workers=1,
+            skip_bad=skip_bad,
+            report=report,
+            bar=_NoBar(),
+            items=span,
+            window=window,
         )
     n_terms = len(state.counter.terms)
     found = {}
@@ -239,6 +264,7 @@ def write_shard(
     known: KnownLinks,
     shard: dict[str, Any],
     folder: str,
+    window: tuple[int, int, int] | None = None,
 ) -> int:
     """Pass 2: write items span[0]..span[1] as an index folder weighted with the corpus's
     statistics (checked against their checksum); returns its article count."""
@@ -260,6 +286,7 @@ def write_shard(
                 report=report,
                 bar=_NoBar(),
                 items=span,
+                window=window,
             )
         if _ids_digest(state.keys.ids) != shard["ids_sha256"]:
             raise CorpusError(
@@ -284,53 +311,6 @@ def write_shard(
     return len(state.keys)
 
 
-class _Runner:
-    """Runs a function over argument tuples: as Ray tasks, or here one after the other."""
-
-    def __init__(self, ray_address: str | None) -> None:
-        self.ray: Any = None
-        self._started = False
-        if ray_address is None:
-            return
-        try:
-            import ray
-        except ImportError as exc:
-            raise ClusterError(
-                "Ray is not installed: pip install 'hunchwise[cluster]', or build without "
-                "--ray (the same shards are then built in this process)"
-            ) from exc
-        if not ray.is_initialized():
-            try:
-                if ray_address == "local":
-                    ray.init(include_dashboard=False, log_to_driver=False)
-                else:
-                    ray.init(address=ray_address, log_to_driver=False)
-            except (ConnectionError, RuntimeError, ValueError) as exc:
-                raise ClusterError(
-                    f"cannot reach the Ray cluster at {ray_address!r}: {exc}"
-                ) from exc
-            self._started = True
-        self.ray = ray
-
-    def map(self, fn: Callable[..., Any], calls: Sequence[tuple[Any, ...]]) -> list[Any]:
-        if self.ray is None:
-            return [fn(*args) for args in calls]
-        task = self.ray.remote(num_cpus=1, max_retries=0)(fn)
-        try:
-            return list(self.ray.get([task.remote(*args) for args in calls]))
-        except self.ray.exceptions.RayTaskError as exc:
-            # The task's own error (a bad line, say) as a single build raises it, without
-            # the remote traceback Ray puts in its message.
-            cause = getattr(exc, "cause", None)
-            if isinstance(cause, Exception):
-                raise cause from None
-            raise
-
-    def close(self) -> None:
-        if self._started:
-            self.ray.shutdown()
-
-
 def build_sharded(
     corpus: str | Path,
     out_dir: str | Path,
@@ -341,19 +321,25 @@ def build_sharded(
     analyzer: AnalyzerConfig | None = None,
     params: bm25.BM25Params | None = None,
     skip_bad: bool = False,
+    vectors: Any = True,
+    progress: bool = False,
 ) -> Path:
     """Build `corpus` (a file) into `out_dir` as shards whose searches equal one index's.
 
     shards: how many near-equal contiguous ranges of items; or `spans`, the (start, stop)
     item ranges themselves (contiguous, from 0 to the end). ray_address: None (this
     process), 'local' (start Ray here unless it runs already) or a cluster's address.
+    vectors: as `build_index`'s: word vectors trained once over the whole corpus (in this
+    process), article vectors written by each shard (retriever/shardvectors.py).
     Returns the folder, which `load_index(out_dir, sharded=True)` opens.
     """
+    vec_settings = vecs.resolve_settings(vectors)
     started = time.perf_counter()
     path = Path(corpus).resolve()
     if not path.is_file():
         raise CorpusError("no such corpus file", file=str(corpus))
-    n_items = count_items(path)
+    offsets = item_offsets(path)
+    n_items = count_items(path) if offsets is None else offsets[0].size - 1
     if spans is None:
         spans = split_items(n_items, shards if shards is not None else 1)
     else:
@@ -369,10 +355,14 @@ def build_sharded(
     an = analyzer if analyzer is not None else AnalyzerConfig()
     p = params if params is not None else bm25.BM25Params()
     checksum = file_checksum(path)
-    runner = _Runner(ray_address)
+    runner = Runner(ray_address)
     try:
         with store.atomic_folder(Path(out_dir)) as tmp:
-            calls = [(str(path), tuple(s), an.to_dict(), skip_bad) for s in spans]
+            windows = _windows(offsets, spans)
+            calls = [
+                (str(path), tuple(s), an.to_dict(), skip_bad, w)
+                for s, w in zip(spans, windows, strict=True)
+            ]
             parts = [pt for pt in runner.map(count_shard, calls) if len(pt.keys)]
             if not parts:
                 raise CorpusError("the corpus has no valid articles", file=str(corpus))
@@ -387,6 +377,7 @@ def build_sharded(
                 "checksum": checksum,
             }
             entries, writes, first = [], [], 0
+            window_of = {tuple(s): w for s, w in zip(spans, windows, strict=True)}
             for i, (part, known) in enumerate(zip(parts, links, strict=True)):
                 name = f"shard-{i:03d}"
                 shard = shard_entry(i, part, first, digest)
@@ -399,11 +390,23 @@ def build_sharded(
                         known,
                         shard,
                         str(tmp / name),
+                        window_of[(part.start, part.stop)],
                     )
                 )
                 entries.append({"folder": name, "first_row": first, "articles": len(part.keys)})
                 first += len(part.keys)
             runner.map(write_shard, writes)
+            words = None
+            if vec_settings is not None:
+                folders = [(tmp / f"shard-{i:03d}", len(pt.keys)) for i, pt in enumerate(parts)]
+                words = shardvectors.train_over_shards(
+                    tmp, folders, Analyzer(an), vec_settings, stats, progress
+                )
+                words_dir = str(tmp / shardvectors.WORDS_FOLDER)
+                runner.map(
+                    shardvectors.write_shard_vectors,
+                    [(str(folder), words_dir, words) for folder, _ in folders],
+                )
             sharded.write_manifest(
                 tmp,
                 {
@@ -415,10 +418,12 @@ def build_sharded(
                     "articles": first,
                     "shards": entries,
                     "stats": {"folder": STATS_FOLDER, "sha256": digest},
+                    "vectors": words,
                     "build": {
                         "corpus": str(path),
                         "skipped_lines": sum(pt.skipped for pt in parts),
                         "ray": ray_address or "",
+                        "read": "byte ranges" if offsets is not None else "items from the start",
                         "seconds": round(time.perf_counter() - started, 3),
                     },
                 },

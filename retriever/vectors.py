@@ -18,7 +18,7 @@ float16). gensim's own model file is not kept.
 from __future__ import annotations
 
 import time
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
@@ -104,7 +104,7 @@ def resolve_settings(value: Any) -> VectorSettings | None:
     )
 
 
-def _article_lines(folder: Path, n_docs: int, analyzer: Analyzer) -> Iterator[str]:
+def article_lines(folder: Path, n_docs: int, analyzer: Analyzer) -> Iterator[str]:
     """Each stored article's analyzed title and text as space-separated lines."""
     reader = store.StoreReader(folder, n_docs)
     batch: list[str] = []
@@ -122,12 +122,19 @@ def train(
     folder: Path, n_docs: int, analyzer: Analyzer, settings: VectorSettings, progress: bool
 ) -> tuple[list[str], np.ndarray]:
     """Train word vectors on the articles stored in `folder`: (words, float32 vectors)."""
+    lines = article_lines(folder, n_docs, analyzer)
+    return train_lines(lines, folder / ".vector-training.txt", settings, progress)
+
+
+def train_lines(
+    lines: Iterable[str], line_file: Path, settings: VectorSettings, progress: bool
+) -> tuple[list[str], np.ndarray]:
+    """Train word vectors on analyzed lines (streamed to `line_file`, removed after)."""
     from gensim.models import Word2Vec  # imported here: gensim takes a second to import
     from gensim.models.callbacks import CallbackAny2Vec
 
-    line_file = folder / ".vector-training.txt"
     with open(line_file, "w", encoding="utf-8") as fh:
-        for line in _article_lines(folder, n_docs, analyzer):
+        for line in lines:
             fh.write(line + "\n")
     bar = tqdm(total=settings.epochs, desc="word vectors", unit=" epochs", disable=not progress)
 
@@ -280,11 +287,15 @@ def _idf_weights(folder: Path, manifest: dict[str, Any], words: list[str]) -> np
     counts = manifest["counts"]
     n_docs, n_terms = int(counts["articles"]), int(counts["terms"])
     indptr = store.open_array(folder, "body_indptr", "int64", n_terms + 1)
-    df_term = np.diff(indptr).astype(np.float64)
-    rows = term_rows(folder, n_terms, words)
-    df = np.zeros(len(words))
+    return idf_weights(np.diff(indptr), term_rows(folder, n_terms, words), len(words), n_docs)
+
+
+def idf_weights(df_term: np.ndarray, rows: np.ndarray, n_words: int, n_docs: int) -> np.ndarray:
+    """Each word's weight from its index term's document frequency `df_term` (rows: index
+    term id -> word row or -1); see `_idf_weights`. float32."""
+    df = np.zeros(n_words)
     has = rows >= 0
-    df[rows[has]] = df_term[has]
+    df[rows[has]] = np.asarray(df_term, dtype=np.float64)[has]
     return np.log1p((n_docs - df + 0.5) / (df + 0.5)).astype(np.float32)
 
 

@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Any
 
 from .console import check_k, print_json, show_progress, warn
 from .model import _fractions
-from .options import add_feature_option, add_index_option, add_log_option
+from .options import add_feature_option, add_index_option, add_log_option, add_ray_option
 from .records import output_format, plain, write_rows
 
 if TYPE_CHECKING:
@@ -71,6 +71,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="instead of --prefixes, take a prefix every N words",
     )
     add_feature_option(p, "register a user-defined feature function (repeatable)")
+    add_ray_option(p, "build the table in blocks of clue prefixes")
     p.add_argument(
         "--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping"
     )
@@ -109,6 +110,7 @@ def cmd_export(args: argparse.Namespace) -> int:
     from reranker.training import PrefixPlan, build_table, read_logs
     from reranker.training.logs import LogReport
     from retriever import load_index
+    from retriever.cluster import Runner
 
     check_k(args.k)
     fmt = output_format(args.out, ("jsonl", "csv", "parquet"))
@@ -133,17 +135,19 @@ def cmd_export(args: argparse.Namespace) -> int:
     plan = PrefixPlan(tuple(fractions or PrefixPlan().fractions), every)
     report = LogReport()
     clues = read_logs(args.log, skip_bad=args.skip_bad, report=report)
-    table = build_table(
-        index,
-        clues,
-        registry,
-        names,
-        k=k,
-        plan=plan,
-        metadata=metadata,
-        candidates=policy,
-        progress=show_progress(args.json),
-    )
+    with Runner(args.ray, "export") as runner:
+        table = build_table(
+            index,
+            clues,
+            registry,
+            names,
+            k=k,
+            plan=plan,
+            metadata=metadata,
+            candidates=policy,
+            progress=show_progress(args.json),
+            runner=runner,
+        )
     n = write_rows(args.out, table_rows(index, table), fmt)
     if table.unresolved:
         warn(f"{len(table.unresolved)} gold answers matched no article; their clues are left out")

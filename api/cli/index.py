@@ -88,8 +88,8 @@ def register(sub: argparse._SubParsersAction) -> None:
         type=int,
         metavar="N",
         default=0,
-        help="build N shards of contiguous articles whose searches equal one index's "
-        "(no word vectors yet; search only)",
+        help="build N shards of contiguous articles whose searches (BM25, dense, hybrid) "
+        "equal one index's; word vectors are trained once over the whole corpus",
     )
     p.add_argument(
         "--ray",
@@ -235,6 +235,10 @@ def _build_sharded(args: argparse.Namespace, started: float) -> int:
             k1=args.k1, b=args.b, epsilon=args.epsilon, idf=args.idf, title_weight=args.title_weight
         ),
         skip_bad=args.skip_bad,
+        vectors=False
+        if args.no_vectors
+        else {"dim": args.vector_dim, "threads": args.vector_threads},
+        progress=show_progress(args.json),
     )
     m = read_manifest(out)
     summary = {

@@ -10,7 +10,14 @@ if TYPE_CHECKING:
     from reranker import Payoff
 
 from .console import check_k, format_table, print_json, show_progress, warn
-from .options import add_feature_option, add_index_option, add_log_option, at_least_zero, unit_share
+from .options import (
+    add_feature_option,
+    add_index_option,
+    add_log_option,
+    add_ray_option,
+    at_least_zero,
+    unit_share,
+)
 
 
 def _fractions(text: str) -> tuple[float, ...]:
@@ -36,6 +43,7 @@ def _common(p: argparse.ArgumentParser) -> None:
         "evaluate: only the model's)",
     )
     add_feature_option(p, "register a user-defined feature function (repeatable)")
+    add_ray_option(p, "build the feature table in blocks of clue prefixes")
     p.add_argument(
         "--reward", type=float, default=None, help="payoff of a right answer (default 1)"
     )
@@ -115,6 +123,14 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="on a complete clue, abstain when the 'none of these' share is at least SHARE, 0-1 "
         "(default: never)",
     )
+    p.add_argument(
+        "--fit",
+        choices=("auto", "memory", "blocks"),
+        default="auto",
+        help="how the logistic model is fitted: 'memory' (scikit-learn on the whole table), "
+        "'blocks' (map-reduce Newton steps over blocks of rows, as Ray tasks with --ray; the "
+        "same model) or 'auto' (blocks above 2 GiB of features; default)",
+    )
     p.set_defaults(func=cmd_train)
 
     p = sub.add_parser("evaluate", help="score a model on held-out logs and write a report folder")
@@ -167,26 +183,30 @@ def cmd_train(args: argparse.Namespace) -> int:
     """Train and save a model; print its headline numbers."""
     from reranker.training import PrefixPlan, train
     from retriever import load_index
+    from retriever.cluster import Runner
 
     check_k(args.k)
     index = load_index(args.index)
     features = [f.strip() for f in args.features.split(",") if f.strip()] if args.features else None
-    res = train(
-        index,
-        args.log,
-        args.out,
-        k=20 if args.k is None else args.k,
-        plan=PrefixPlan(args.prefixes or PrefixPlan().fractions, args.every_words),
-        features=features,
-        user_features=args.feature,
-        metadata_features=args.meta_feature,
-        calibration=args.calibration,
-        payoff=_payoff(args),
-        none_abstain=args.abstain_if_none,
-        skip_bad=args.skip_bad,
-        progress=show_progress(args.json),
-        candidates=args.candidates,
-    )
+    with Runner(args.ray, "train") as runner:
+        res = train(
+            index,
+            args.log,
+            args.out,
+            k=20 if args.k is None else args.k,
+            plan=PrefixPlan(args.prefixes or PrefixPlan().fractions, args.every_words),
+            features=features,
+            user_features=args.feature,
+            metadata_features=args.meta_feature,
+            calibration=args.calibration,
+            payoff=_payoff(args),
+            none_abstain=args.abstain_if_none,
+            skip_bad=args.skip_bad,
+            progress=show_progress(args.json),
+            candidates=args.candidates,
+            runner=runner,
+            fit=args.fit,
+        )
     a = res.artifact
     summary = {
         "model": str(args.out),
@@ -241,21 +261,24 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     from reranker import load_model
     from reranker.training import evaluate
     from retriever import load_index
+    from retriever.cluster import Runner
 
     check_k(args.k)
     index = load_index(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
-    ev = evaluate(
-        index,
-        model,
-        args.log,
-        args.report,
-        k=args.k,
-        payoff=_payoff(args),
-        run_ablation=not args.no_ablation,
-        skip_bad=args.skip_bad,
-        progress=show_progress(args.json),
-    )
+    with Runner(args.ray, "evaluate") as runner:
+        ev = evaluate(
+            index,
+            model,
+            args.log,
+            args.report,
+            k=args.k,
+            payoff=_payoff(args),
+            run_ablation=not args.no_ablation,
+            skip_bad=args.skip_bad,
+            progress=show_progress(args.json),
+            runner=runner,
+        )
     for message in ev.warnings:
         warn(message)
     if args.json:

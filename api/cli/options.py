@@ -77,3 +77,14 @@ def add_filter_option(p: argparse.ArgumentParser) -> None:
         help='only articles whose metadata match, e.g. \'{"kind": {"in": ["town", "river"]}}\' '
         '(the syntax of the service\'s "filter"; chosen before the top-k cut)',
     )
+
+
+def add_ray_option(p: argparse.ArgumentParser, what: str) -> None:
+    """--ray ADDRESS|local: do `what` on a Ray cluster (the output is the same as without)."""
+    p.add_argument(
+        "--ray",
+        default=None,
+        metavar="ADDRESS",
+        help=f"{what} on this Ray cluster, or 'local' to start one here (needs the 'cluster' "
+        "extra; the output is the same as without; default: in this process)",
+    )

@@ -10,7 +10,13 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .console import check_k, show_progress
-from .options import add_feature_option, add_filter_option, add_index_option, unit_share
+from .options import (
+    add_feature_option,
+    add_filter_option,
+    add_index_option,
+    add_ray_option,
+    unit_share,
+)
 from .records import ClueIn, json_line, output_format, read_clues, write_rows
 
 if TYPE_CHECKING:
@@ -72,6 +78,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="add each candidate's passage of text around the clue's words",
     )
     add_feature_option(p, "user feature function the model was trained with (repeatable)")
+    add_ray_option(p, "with --input: rank blocks of clues")
     p.set_defaults(func=cmd_rank)
 
 
@@ -132,6 +139,57 @@ def results(
             bar.update(len(chunk))
 
 
+class RankWorker:
+    """Ranks blocks of clues (a Ray Data worker): opens the index and model once, and gives
+    each clue's result as the JSON line the in-process run writes."""
+
+    def __init__(self, args: argparse.Namespace) -> None:
+        from reranker import load_model
+        from retriever import load_index
+
+        self.args = args
+        self.index = load_index(args.index)
+        self.model = load_model(args.model, index=self.index, user_features=args.feature)
+
+    def __call__(self, batch: dict[str, Any]) -> dict[str, Any]:
+        import numpy as np
+
+        clues = [
+            ClueIn(str(i), str(c), json.loads(str(m)), int(n))
+            for i, c, m, n in zip(
+                batch["id"].tolist(),
+                batch["clue"].tolist(),
+                batch["meta"].tolist(),
+                batch["line"].tolist(),
+                strict=True,
+            )
+        ]
+        lines = [json_line(row) for row in results(self.index, self.model, clues, self.args)]
+        return {"seq": batch["seq"], "json": np.asarray(lines, dtype=object)}
+
+
+def _distributed(args: argparse.Namespace, clues: list[ClueIn]) -> list[str]:
+    """Every clue's JSON line, ranked in blocks by the workers of a Ray cluster, in order."""
+    import numpy as np
+
+    from retriever.cluster import Runner
+
+    columns = {
+        "seq": np.arange(len(clues), dtype=np.int64),
+        "id": np.asarray([c.id for c in clues], dtype=object),
+        "clue": np.asarray([c.clue for c in clues], dtype=object),
+        "meta": np.asarray([json.dumps(c.metadata) for c in clues], dtype=object),
+        "line": np.asarray([c.line for c in clues], dtype=np.int64),
+    }
+    worker_args = argparse.Namespace(
+        **{k: getattr(args, k) for k in ("index", "model", "feature", "k", "complete", "revealed")},
+        explain=args.explain,
+    )
+    with Runner(args.ray, "rank") as runner:
+        out = runner.map_batches(columns, RankWorker, (worker_args,), BATCH)
+    return [str(line) for line in out.get("json", [])]
+
+
 def cmd_rank(args: argparse.Namespace) -> int:
     """Rank the clues and write one JSON result per clue."""
     from reranker import load_model
@@ -140,6 +198,15 @@ def cmd_rank(args: argparse.Namespace) -> int:
     check_k(args.k)
     clues = _clues(args)
     fmt = "jsonl" if args.output is None else output_format(args.output, ("jsonl", "parquet"))
+    if args.ray is not None:
+        if args.input is None:
+            raise ValueError("--ray ranks a file of clues: give --input FILE")
+        lines = _distributed(args, clues)
+        if args.output is None:
+            sys.stdout.write("".join(lines))
+        else:
+            write_rows(args.output, (json.loads(line) for line in lines), fmt)
+        return 0
     index = load_index(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
     rows = results(index, model, clues, args, show_progress() and args.output is not None)

@@ -14,8 +14,11 @@ from sklearn.exceptions import NotFittedError
 from sklearn.metrics import log_loss
 from tqdm.auto import tqdm
 
+from retriever.cluster import Runner
+
 from ..errors import TrainingError
 from ..model import LinearModel
+from .blockfit import block_fitter, use_blocks
 from .fitting import cross_calibrate, fit_calibrator, grouped_folds, make_pipeline_for, oof_proba
 
 DEFAULT_CS = (0.01, 0.1, 1.0, 10.0, 100.0)
@@ -37,12 +40,21 @@ class Reranker:
         n_folds: int = 5,
         max_iter: int = 5000,
         verbose: bool = False,
+        fit: str = "auto",
+        block_rows: int = 65_536,
+        runner: Runner | None = None,
     ) -> None:
         self.Cs = Cs
         self.calibration = calibration
         self.n_folds = n_folds
         self.max_iter = max_iter
         self.verbose = verbose  # a progress bar on stderr while fitting
+        # 'memory': scikit-learn on the gathered table; 'blocks': the map-reduce Newton fit
+        # of reranker/training/blockfit.py (the same model), over blocks of `block_rows`
+        # rows, as tasks of `runner` when it has a cluster; 'auto': blocks for big tables.
+        self.fit_mode = fit
+        self.block_rows = block_rows
+        self.runner = runner
 
     def _check_settings(self) -> None:
         if self.calibration not in CALIBRATIONS:
@@ -68,6 +80,10 @@ class Reranker:
                 "check that gold answers resolve and appear among the candidates"
             )
         splits = grouped_folds(y, groups, self.n_folds)
+        fitter = (
+            block_fitter(self.block_rows, self.runner) if use_blocks(self.fit_mode, X) else None
+        )
+        self.fitted_in_blocks_ = fitter is not None
         cv_log_loss: dict[str, float] = {}
         best: tuple[float, float, np.ndarray] | None = None
         with tqdm(
@@ -79,7 +95,7 @@ class Reranker:
         ) as bar:
             for C in self.Cs:
                 bar.set_postfix_str(f"C={C:g}")
-                p = oof_proba(X, y, splits, C, on_fold=bar.update)
+                p = oof_proba(X, y, splits, C, on_fold=bar.update, fit=fitter)
                 loss = float(log_loss(y, p, labels=[0, 1]))
                 cv_log_loss[repr(C)] = loss
                 if best is None or loss < best[0]:
@@ -88,7 +104,10 @@ class Reranker:
                 raise TrainingError("no regularization strengths (Cs) to try")
             _, C, raw_oof = best
             bar.set_postfix_str(f"final fit, C={C:g}")
-            pipeline = make_pipeline_for(C, self.max_iter).fit(X, y)
+            if fitter is None:
+                pipeline = make_pipeline_for(C, self.max_iter).fit(X, y)
+            else:
+                pipeline = fitter(X, y, C)
             bar.update()
         scaler, lr = pipeline[0], pipeline[-1]
         sign = 1.0 if lr.classes_[1] == 1 else -1.0

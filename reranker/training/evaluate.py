@@ -12,6 +12,7 @@ from sklearn.metrics import brier_score_loss, log_loss, roc_auc_score
 from tqdm.auto import tqdm
 
 from retriever import Index
+from retriever.cluster import Runner
 
 from ..decision import Payoff, simulate_commits
 from ..features.builtin import SCORE_ONLY
@@ -156,8 +157,11 @@ def evaluate(
     n_folds: int = 5,
     skip_bad: bool = False,
     progress: bool = False,
+    runner: Runner | None = None,
 ) -> Evaluation:
     """Score a trained model on held-out logs and write the report folder.
+
+    runner: a Ray runner (retriever/cluster.py) that builds the evaluation table in blocks.
 
     The model is scored on candidate sets of its own k, the only ones its probabilities hold
     for; a different k is refused (ValueError) before anything is read or written.
@@ -202,6 +206,7 @@ def evaluate(
         metadata=model.metadata,
         candidates=model.candidates,
         progress=progress,
+        runner=runner,
     )
     if table.y.size == 0 or table.y.sum() == 0:
         raise ValueError(

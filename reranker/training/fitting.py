@@ -59,11 +59,16 @@ def oof_proba(
     splits: list[tuple[np.ndarray, np.ndarray]],
     C: float,
     on_fold: Callable[[], object] | None = None,
+    fit: Callable[[np.ndarray, np.ndarray, float], Pipeline] | None = None,
 ) -> np.ndarray:
-    """Out-of-fold probabilities of label 1 for one C; `on_fold` is called after each fold."""
+    """Out-of-fold probabilities of label 1 for one C; `on_fold` is called after each fold.
+    `fit(X, y, C)`: how each fold's pipeline is fitted (default: `make_pipeline_for`)."""
     out = np.zeros(len(y))
     for train, test in splits:
-        pipe = make_pipeline_for(C).fit(X[train], y[train])
+        if fit is None:
+            pipe = make_pipeline_for(C).fit(X[train], y[train])
+        else:
+            pipe = fit(X[train], y[train], C)
         out[test] = positive_proba(pipe, X[test])
         if on_fold is not None:
             on_fold()

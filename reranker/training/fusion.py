@@ -18,7 +18,7 @@ from retriever import Index
 
 from ..candidates import CandidatePolicy, fused_rows, search_pools
 from .logs import LabelledClue
-from .table import PrefixPlan, labelled_prefixes
+from .prefixrows import PrefixPlan, labelled_prefixes
 
 WEIGHTS = (0.3, 0.5, 0.7, 0.85, 1.0)  # BM25's share; 1.0 keeps BM25's order over the pools
 

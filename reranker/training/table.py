@@ -2,62 +2,25 @@
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from tqdm.auto import tqdm
 
-from retriever import Hit, Index
+from retriever import Index
+from retriever.cluster import Runner
 
-from ..candidates import CandidatePolicy, find_candidates
-from ..features import DenseInfo, FeatureRegistry, MetadataColumns, candidate_set
+from ..candidates import CandidatePolicy
+from ..features import FeatureRegistry, MetadataColumns
 from .logs import LabelledClue
+from .prefixrows import PrefixPlan, labelled_prefixes, prefix_rows
+from .tableblocks import distributed_rows
 
 if TYPE_CHECKING:
     import pandas as pd
 
-
-@dataclass(frozen=True)
-class PrefixPlan:
-    """Which prefixes of each clue become examples: shares of its words, or every N words."""
-
-    fractions: tuple[float, ...] = (0.2, 0.4, 0.6, 0.8, 1.0)
-    every_words: int | None = None
-
-    def __post_init__(self) -> None:
-        if self.every_words is not None and self.every_words < 1:
-            raise ValueError(f"every_words must be at least 1, got {self.every_words}")
-        if any(not 0 < f <= 1 for f in self.fractions):
-            raise ValueError(f"prefix fractions must be in (0, 1], got {self.fractions}")
-
-    def cuts(self, n_words: int) -> list[int]:
-        """Distinct word counts to keep, ending with the whole clue."""
-        if n_words == 0:
-            return []
-        if self.every_words:
-            cuts = list(range(self.every_words, n_words, self.every_words))
-        else:
-            # The small slack keeps float noise (0.28 * 25 = 7.000000000000001) from adding a word.
-            cuts = [max(1, math.ceil(f * n_words - 1e-9)) for f in self.fractions]
-        return sorted(set(cuts) | {n_words})
-
-    def label(self, kept: int, n_words: int) -> float:
-        """The share of the clue a cut stands for, for grouping in reports.
-
-        Fraction plans give the plan's own fraction (the smallest one that keeps `kept`
-        words), so every clue's "40%" prefix groups together whatever its length; the
-        every-N-words plan rounds the true share up to a tenth. The whole clue is 1.0.
-        """
-        if kept >= n_words:
-            return 1.0
-        if not self.every_words:
-            for f in sorted(self.fractions):
-                if max(1, math.ceil(f * n_words - 1e-9)) == kept:
-                    return float(f)
-        return math.ceil(kept / n_words * 10 - 1e-9) / 10
+__all__ = ["PrefixPlan", "TrainingTable", "build_table"]
 
 
 @dataclass
@@ -107,41 +70,6 @@ class TrainingTable:
         return float(hit.size / groups.size)
 
 
-@dataclass
-class Prefixes:
-    """Every kept prefix of every labelled clue, in order, with what it belongs to."""
-
-    texts: list[str]
-    owners: list[tuple[int, float, int | None, dict[str, Any]]]  # clue, fraction, gold, meta
-    unresolved: list[dict[str, Any]]
-    n_clues: int
-    kept: list[LabelledClue] = field(default_factory=list)  # clue n of owners is kept[n]
-
-
-def labelled_prefixes(index: Index, clues: Sequence[LabelledClue], plan: PrefixPlan) -> Prefixes:
-    """The prefixes `plan` keeps of each clue, its gold row resolved (unresolved ones listed)."""
-    out = Prefixes([], [], [], 0)
-    for c in clues:
-        gold: int | None = None
-        if c.answer is not None:
-            gold = index.resolver.row(c.answer)
-            if gold is None:
-                out.unresolved.append(
-                    {"file": c.file, "line": c.line, "answer": c.answer, "clue": c.clue[:80]}
-                )
-                continue
-        words = c.clue.split()
-        cuts = plan.cuts(len(words))
-        if not cuts:
-            continue
-        for m in cuts:
-            out.texts.append(" ".join(words[:m]))
-            out.owners.append((out.n_clues, plan.label(m, len(words)), gold, c.metadata))
-        out.kept.append(c)
-        out.n_clues += 1
-    return out
-
-
 def build_table(
     index: Index,
     clues: Sequence[LabelledClue],
@@ -153,80 +81,48 @@ def build_table(
     metadata: MetadataColumns | None = None,
     candidates: CandidatePolicy | None = None,
     progress: bool = False,
+    runner: Runner | None = None,
 ) -> TrainingTable:
     """Search every prefix of every clue, featurize its candidates and label them.
 
     The candidate sets are made as serving makes them (`find_candidates` with `candidates`,
-    BM25's top k by default).
+    BM25's top k by default). `runner`: a Ray runner (retriever/cluster.py) to build the
+    rows in blocks of prefixes on its workers (reranker/training/tableblocks.py); the table
+    is the same.
     """
     plan = plan or PrefixPlan()
     metadata = metadata or MetadataColumns()
     policy = candidates or CandidatePolicy()
     pre = labelled_prefixes(index, clues, plan)
-    texts, owners, unresolved, n_clues = pre.texts, pre.owners, pre.unresolved, pre.n_clues
-    # Each prefix is analyzed once: its tokens serve the search and the features.
-    tokens_all = [index.analyzer.tokens(t) for t in texts]
-    words_all = [index.analyzer.words(t) for t in texts]
-    found: list[tuple[list[Hit], DenseInfo | None]] = []
-    with tqdm(
-        total=len(tokens_all), desc="candidates", unit=" prefixes", disable=not progress
-    ) as bar:
-        for i in range(0, len(tokens_all), 256):  # batches: one kernel call each
-            chunk = tokens_all[i : i + 256]
-            found.extend(find_candidates(index, chunk, k, policy))
-            bar.update(len(chunk))
-    names = list(feature_names)
-    all_names = names + metadata.names
-    blocks: list[np.ndarray] = []
-    cols: dict[str, list[np.ndarray]] = {
-        n: [] for n in ("y", "group", "clue_id", "fraction", "score", "rank", "row", "words")
-    }
-    for g, (text, tokens, words, (hits, dense), (cid, frac, gold, meta)) in enumerate(
-        tqdm(
-            zip(texts, tokens_all, words_all, found, owners, strict=True),
-            total=len(texts),
-            desc="features",
-            unit=" prefixes",
-            disable=not progress,
-            mininterval=0.5,
+    if runner is not None and runner.ray is not None:
+        cols = distributed_rows(runner, index, pre, registry, feature_names, k, metadata, policy)
+    else:
+        cols = prefix_rows(
+            index,
+            pre.texts,
+            pre.owners,
+            range(len(pre.texts)),
+            registry,
+            feature_names,
+            k=k,
+            metadata=metadata,
+            candidates=policy,
+            progress=progress,
         )
-    ):
-        if not hits:
-            continue
-        cs = candidate_set(index, text, hits, meta, tokens, words, dense)
-        x = registry.matrix(cs, names)
-        if metadata.names:
-            x = np.hstack([x, np.tile(metadata.row(meta), (len(cs), 1))])
-        blocks.append(x)
-        n = len(cs)
-        cols["y"].append(
-            (cs.rows == gold).astype(np.int8) if gold is not None else np.zeros(n, np.int8)
-        )
-        cols["group"].append(np.full(n, g, np.int64))
-        cols["clue_id"].append(np.full(n, cid, np.int64))
-        cols["fraction"].append(np.full(n, frac))
-        cols["score"].append(cs.scores)
-        cols["rank"].append(cs.ranks)
-        cols["row"].append(cs.rows)
-        cols["words"].append(np.full(n, len(words), np.int64))
-
-    def cat(name: str, dtype: Any) -> np.ndarray:
-        return np.concatenate(cols[name]).astype(dtype) if cols[name] else np.zeros(0, dtype)
-
     return TrainingTable(
-        X=np.vstack(blocks) if blocks else np.zeros((0, len(all_names))),
-        y=cat("y", np.int8),
-        group=cat("group", np.int64),
-        clue_id=cat("clue_id", np.int64),
-        fraction=cat("fraction", np.float64),
-        score=cat("score", np.float64),
-        rank=cat("rank", np.int64),
-        row=cat("row", np.int64),
-        words=cat("words", np.int64),
-        feature_names=all_names,
-        unresolved=unresolved,
-        n_clues=n_clues,
-        n_prefixes=len(texts),
+        X=cols["X"],
+        y=cols["y"],
+        group=cols["group"],
+        clue_id=cols["clue_id"],
+        fraction=cols["fraction"],
+        score=cols["score"],
+        rank=cols["rank"],
+        row=cols["row"],
+        words=cols["words"],
+        feature_names=list(feature_names) + metadata.names,
+        unresolved=pre.unresolved,
+        n_clues=pre.n_clues,
+        n_prefixes=len(pre.texts),
         clues=pre.kept,
-        texts=texts,
+        texts=pre.texts,
     )

@@ -10,6 +10,7 @@ from typing import Any
 import numpy as np
 
 from retriever import Index
+from retriever.cluster import Runner
 
 from ..candidates import CandidatePolicy
 from ..decision import Payoff, simulate_commits, tune_threshold
@@ -93,11 +94,16 @@ def train(
     progress: bool = False,
     registry: FeatureRegistry | None = None,
     candidates: str = "auto",
+    runner: Runner | None = None,
+    fit: str = "auto",
 ) -> TrainResult:
     """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON.
 
     candidates: "auto" makes hybrid candidate sets (BM25 + word vectors, the fusion weight
     chosen on these logs) when the index has word vectors, else BM25's; "bm25" always BM25's.
+    runner: a Ray runner (retriever/cluster.py) that builds the training table in blocks.
+    fit: 'memory' (scikit-learn), 'blocks' (the map-reduce fit, as `runner`'s tasks) or
+    'auto' (blocks for tables over blockfit.MEMORY_FIT_BYTES).
     """
     if candidates not in ("auto", "bm25"):
         raise ValueError(f"candidates must be 'auto' or 'bm25', got {candidates!r}")
@@ -129,8 +135,9 @@ def train(
         metadata=meta,
         candidates=policy,
         progress=progress,
+        runner=runner,
     )
-    estimator = Reranker(calibration=calibration, verbose=progress).fit(
+    estimator = Reranker(calibration=calibration, verbose=progress, fit=fit, runner=runner).fit(
         table.X, table.y, table.clue_id, table.feature_names
     )
     # One distribution per clue: P(among the candidates) from clue-level evidence, shared out

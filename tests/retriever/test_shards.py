@@ -64,7 +64,9 @@ class Pair:
 
 def _build_pair(tmp: Path, corpus: Path, spans: list[tuple[int, int]], params: BM25Params) -> Pair:
     single = build_index(corpus, tmp / "single", params=params, vectors=False)
-    out = build_sharded(corpus, tmp / "sharded", spans=spans, params=params, ray_address="local")
+    out = build_sharded(
+        corpus, tmp / "sharded", spans=spans, params=params, ray_address="local", vectors=False
+    )
     sharded = load_index(out, sharded=True)
     assert isinstance(sharded, ShardedIndex)
     return Pair(corpus, single, sharded)

@@ -1,0 +1,106 @@
+"""The training table's rows built in blocks of prefixes by workers on a Ray cluster.
+
+The driver reads the logs and lists every prefix (`labelled_prefixes`: cheap); Ray Data
+hands blocks of prefixes to workers, each of which opens the index once and builds their
+rows with the same function the in-process build uses (`prefixrows.prefix_rows`). A prefix's
+rows depend on that prefix alone, and the blocks come back ordered by prefix, so the table
+equals the in-process one.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from retriever import Index, load_index
+from retriever.cluster import Runner
+
+from ..candidates import CandidatePolicy
+from ..features import FeatureRegistry, MetadataColumns
+from .prefixrows import _DTYPES, Prefixes, prefix_rows
+
+BLOCK = 256  # prefixes per block
+
+
+class TableWorker:
+    """Builds the rows of blocks of prefixes over an index it opens once."""
+
+    def __init__(
+        self,
+        index_path: str,
+        title_weight: float,
+        registry: FeatureRegistry,
+        names: list[str],
+        k: int,
+        metadata: MetadataColumns,
+        policy: CandidatePolicy,
+    ) -> None:
+        self.index = load_index(index_path, title_weight=title_weight)
+        self.registry, self.names, self.k = registry, names, k
+        self.metadata, self.policy = metadata, policy
+
+    def __call__(self, batch: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+        gold = batch["gold"].tolist()
+        owners = [
+            (int(c), float(f), None if g < 0 else int(g), json.loads(str(m)))
+            for c, f, g, m in zip(
+                batch["clue"].tolist(),
+                batch["fraction"].tolist(),
+                gold,
+                batch["meta"].tolist(),
+                strict=True,
+            )
+        ]
+        out = prefix_rows(
+            self.index,
+            [str(t) for t in batch["text"].tolist()],
+            owners,
+            [int(g) for g in batch["seq"].tolist()],
+            self.registry,
+            self.names,
+            k=self.k,
+            metadata=self.metadata,
+            candidates=self.policy,
+        )
+        out["seq"] = out["group"].copy()
+        return out
+
+
+def distributed_rows(
+    runner: Runner,
+    index: Index,
+    pre: Prefixes,
+    registry: FeatureRegistry,
+    feature_names: Sequence[str],
+    k: int,
+    metadata: MetadataColumns,
+    policy: CandidatePolicy,
+) -> dict[str, np.ndarray]:
+    """`prefix_rows` of every prefix in `pre`, built by the runner's workers, in order."""
+    n = len(pre.texts)
+    columns: dict[str, Any] = {
+        "seq": np.arange(n, dtype=np.int64),
+        "text": np.asarray(pre.texts, dtype=object),
+        "clue": np.asarray([o[0] for o in pre.owners], dtype=np.int64),
+        "fraction": np.asarray([o[1] for o in pre.owners], dtype=np.float64),
+        "gold": np.asarray([-1 if o[2] is None else o[2] for o in pre.owners], dtype=np.int64),
+        "meta": np.asarray([json.dumps(o[3]) for o in pre.owners], dtype=object),
+    }
+    args = (
+        str(index.path),
+        index.title_weight,
+        registry,
+        list(feature_names),
+        k,
+        metadata,
+        policy,
+    )
+    out = runner.map_batches(columns, TableWorker, args, BLOCK)
+    if not out:  # no prefix at all
+        width = len(feature_names) + len(metadata.names)
+        return {"X": np.zeros((0, width)), **{c: np.zeros(0, dt) for c, dt in _DTYPES.items()}}
+    out.pop("seq")
+    return out
