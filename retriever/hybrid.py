@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Protocol
+from typing import Any, Protocol, cast
 
 import numpy as np
 
@@ -213,3 +213,18 @@ def search_hybrid_many(
 def search_hybrid(index: HybridSource, clue: str, k: int = 20, **options: object) -> HybridResult:
     """`search_hybrid_many` for one clue."""
     return search_hybrid_many(index, [clue], k, **options)[0]  # type: ignore[arg-type]
+
+
+class HybridSearch:
+    """`search_hybrid` and `search_hybrid_many` for an index class that is a HybridSource
+    (the one index and the sharded one take them from here)."""
+
+    def search_hybrid(self, clue: str, k: int = 20, **options: Any) -> HybridResult:
+        """BM25 and word-vector candidates fused into one list (see retriever/hybrid.py)."""
+        return search_hybrid_many(cast(HybridSource, self), [clue], k, **options)[0]
+
+    def search_hybrid_many(
+        self, clues: Sequence[str], k: int = 20, **options: Any
+    ) -> list[HybridResult]:
+        """`search_hybrid` for each clue, in order."""
+        return search_hybrid_many(cast(HybridSource, self), clues, k, **options)

@@ -75,7 +75,7 @@ class _FieldPostings:
         self.bounds = bounds.open_bounds(folder, prefix, n_terms, n_postings, dtype)
 
 
-class Index:
+class Index(hybrid.HybridSearch):
     """A read-only BM25 index loaded from a folder; safe to search from many threads."""
 
     def __init__(self, folder: str | Path, *, title_weight: float | None = None) -> None:
@@ -334,16 +334,6 @@ class Index:
         with ThreadPoolExecutor(len(shards), thread_name_prefix="hunchwise-search") as pool:
             parts = pool.map(lambda shard: self.search_token_lists(shard, k), shards)
             return [hits for part in parts for hits in part]
-
-    def search_hybrid(self, clue: str, k: int = 20, **options: Any) -> hybrid.HybridResult:
-        """BM25 and word-vector candidates fused into one list (see retriever/hybrid.py)."""
-        return hybrid.search_hybrid_many(self, [clue], k, **options)[0]
-
-    def search_hybrid_many(
-        self, clues: Sequence[str], k: int = 20, **options: Any
-    ) -> list[hybrid.HybridResult]:
-        """`search_hybrid` for each clue, in order."""
-        return hybrid.search_hybrid_many(self, clues, k, **options)
 
     def __len__(self) -> int:
         return self.n_docs

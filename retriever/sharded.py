@@ -74,7 +74,7 @@ def merge_scored(lists: Sequence[Sequence[tuple[float, int]]], k: int) -> list[t
     return heapq.nsmallest(k, pool, key=lambda p: (-p[0], p[1]))
 
 
-class ShardedIndex:
+class ShardedIndex(hybrid.HybridSearch):
     """The shards of one corpus searched as one index: BM25, dense and hybrid search."""
 
     def __init__(self, folder: Path, open_shard: Callable[[Path], Shard]) -> None:
@@ -181,16 +181,6 @@ class ShardedIndex:
     def score_tokens(self, tokens: Sequence[str]) -> np.ndarray:
         """BM25 score of every article by global row (each shard's, side by side)."""
         return np.concatenate([s.score_tokens(tokens) for s in self._dense_shards()])
-
-    def search_hybrid(self, clue: str, k: int = 20, **options: Any) -> hybrid.HybridResult:
-        """BM25 and word-vector candidates fused into one list, as one index fuses them."""
-        return hybrid.search_hybrid_many(self, [clue], k, **options)[0]
-
-    def search_hybrid_many(
-        self, clues: Sequence[str], k: int = 20, **options: Any
-    ) -> list[hybrid.HybridResult]:
-        """`search_hybrid` for each clue, in order."""
-        return hybrid.search_hybrid_many(self, clues, k, **options)
 
     def __repr__(self) -> str:
         return (

@@ -19,7 +19,7 @@ import functools
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import replace
 from pathlib import Path
-from typing import Any, cast, overload
+from typing import Any, cast
 
 import numpy as np
 
@@ -61,18 +61,6 @@ class ConcatStrings(StringColumn):
     def _at(self, row: int) -> str:
         part = int(np.searchsorted(self._starts, row, side="right")) - 1
         return self._parts[part][row - int(self._starts[part])]
-
-    @overload
-    def __getitem__(self, row: int) -> str: ...
-    @overload
-    def __getitem__(self, row: slice) -> list[str]: ...
-    def __getitem__(self, row: int | slice) -> str | list[str]:
-        if isinstance(row, slice):
-            return [self._at(r) for r in range(*row.indices(self._len))]
-        r = int(row) + (self._len if int(row) < 0 else 0)
-        if not 0 <= r < self._len:
-            raise IndexError(f"row {row} out of range for {self._len} strings")
-        return self._at(r)
 
     def __iter__(self) -> Iterator[str]:
         for part in self._parts:
