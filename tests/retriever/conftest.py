@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import Any
 
 import pytest
@@ -49,3 +50,12 @@ def small_records() -> list[dict[str, Any]]:
             "aliases": ["reed baskets"],
         },
     ]
+
+
+@pytest.fixture(scope="module")
+def ray_cluster() -> Iterator[None]:
+    """A two-CPU Ray cluster on this machine for a module's builds, shut down after."""
+    ray = pytest.importorskip("ray", reason="Ray is not installed (pip install '.[cluster]')")
+    ray.init(num_cpus=2, include_dashboard=False, log_to_driver=False)
+    yield
+    ray.shutdown()

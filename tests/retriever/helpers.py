@@ -12,6 +12,11 @@ from retriever import Index, build_index
 # No stopwords, no stemming: tokens are exactly the lower-case words, as rank_bm25 is fed.
 PLAIN: dict[str, Any] = {"stopwords": "none", "stemmer": None}
 
+# The shipped demo corpus, and three shards of very different sizes over it.
+DEMO = Path(__file__).resolve().parents[2] / "corpus_demo" / "data"
+N_DEMO = sum(1 for line in (DEMO / "articles.jsonl").read_text("utf-8").splitlines() if line)
+UNEVEN = [(0, 400), (400, 2300), (2300, N_DEMO)]
+
 
 def write_jsonl(path: Path, records: Iterable[dict[str, Any]]) -> Path:
     """Write records as JSON Lines and return the path."""

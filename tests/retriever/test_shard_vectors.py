@@ -9,7 +9,6 @@ thread, the only setting that gives the very same vectors on every run.
 from __future__ import annotations
 
 import json
-from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -22,21 +21,11 @@ from retriever.ingest import ingest, item_offsets
 from retriever.sharded import ShardedIndex
 from retriever.shards import _windows, build_sharded, count_shard
 
-DEMO = Path(__file__).resolve().parents[2] / "corpus_demo" / "data"
-N_DEMO = sum(1 for line in (DEMO / "articles.jsonl").read_text("utf-8").splitlines() if line)
-UNEVEN = [(0, 400), (400, 2300), (2300, N_DEMO)]
+from .helpers import DEMO, N_DEMO, UNEVEN
+
 VECTORS = {"dim": 32, "threads": 1, "epochs": 2}  # small and deterministic
 
 pytestmark = pytest.mark.slow
-
-
-@pytest.fixture(scope="module")
-def ray_cluster() -> Iterator[None]:
-    """A two-CPU Ray cluster on this machine for the module's builds, shut down after."""
-    ray = pytest.importorskip("ray", reason="Ray is not installed (pip install '.[cluster]')")
-    ray.init(num_cpus=2, include_dashboard=False, log_to_driver=False)
-    yield
-    ray.shutdown()
 
 
 @pytest.fixture(scope="module")

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import itertools
 import json
-from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -35,22 +34,9 @@ from retriever.shards import (
     write_stats,
 )
 
-from .helpers import write_jsonl
-
-DEMO = Path(__file__).resolve().parents[2] / "corpus_demo" / "data"
-N_DEMO = sum(1 for line in (DEMO / "articles.jsonl").read_text("utf-8").splitlines() if line)
-UNEVEN = [(0, 400), (400, 2300), (2300, N_DEMO)]  # three shards of very different sizes
+from .helpers import DEMO, UNEVEN, write_jsonl
 
 pytestmark = pytest.mark.slow
-
-
-@pytest.fixture(scope="module")
-def ray_cluster() -> Iterator[None]:
-    """A two-CPU Ray cluster on this machine for the module's builds, shut down after."""
-    ray = pytest.importorskip("ray", reason="Ray is not installed (pip install '.[cluster]')")
-    ray.init(num_cpus=2, include_dashboard=False, log_to_driver=False)
-    yield
-    ray.shutdown()
 
 
 @dataclass
