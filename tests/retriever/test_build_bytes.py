@@ -30,12 +30,56 @@ DIGESTS = Path(__file__).resolve().parent / "data" / "build_digests.json"
 
 # Word pool of the random corpus: mixed case, stopwords, digits, underscores, accents, a
 # ligature and a full-width form (normalization), a Greek word, one-letter words.
-_POOL = (
-    "river marsh Reed reeds basket baskets woven heron herons estuary ferry ferries "
-    "the a an of and THE And into over under running runs ran runner generously "
-    "café naïve Ångström ﬁsh ＡＢＣ λόγος x7 v2_0 snake_case 1999 2024 I o "
-    "connection connected connecting relational relate Relations caress ponies"
-).split()
+_POOL = [
+    "river",
+    "marsh",
+    "Reed",
+    "reeds",
+    "basket",
+    "baskets",
+    "woven",
+    "heron",
+    "herons",
+    "estuary",
+    "ferry",
+    "ferries",
+    "the",
+    "a",
+    "an",
+    "of",
+    "and",
+    "THE",
+    "And",
+    "into",
+    "over",
+    "under",
+    "running",
+    "runs",
+    "ran",
+    "runner",
+    "generously",
+    "café",
+    "naïve",
+    "Ångström",
+    "ﬁsh",
+    "ＡＢＣ",
+    "λόγος",
+    "x7",
+    "v2_0",
+    "snake_case",
+    "1999",
+    "2024",
+    "I",
+    "o",
+    "connection",
+    "connected",
+    "connecting",
+    "relational",
+    "relate",
+    "Relations",
+    "caress",
+    "ponies",
+]
 _PUNCT = [" ", " ", " ", ", ", ". ", "; ", " - ", "'s ", "\n", "\t", " (", ") "]
 
 # (name, corpus, build options): the settings whose folders are pinned.
