@@ -23,7 +23,7 @@ setup(
             name,
             [source],
             include_dirs=["include"],
-            depends=[header],
+            depends=[header, "retriever/_prune.h"],
             extra_compile_args=flags,
             optional=True,
         )

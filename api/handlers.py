@@ -14,7 +14,13 @@ from starlette.responses import JSONResponse
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from reranker import ModelFormatError, ModelMismatchError, RerankerError
-from retriever import CorpusError, IndexFormatError, RetrieverError, UnknownDocumentError
+from retriever import (
+    CorpusError,
+    FilterError,
+    IndexFormatError,
+    RetrieverError,
+    UnknownDocumentError,
+)
 
 from .jsonshape import json_shape, spell_non_finite
 
@@ -41,6 +47,10 @@ def library_error(request: Request, exc: Exception) -> SafeJSONResponse:
         if exc.field:
             loc.append(exc.field)
         error = {"type": "value_error", "loc": loc, "msg": exc.reason}
+        return SafeJSONResponse({"detail": [error]}, status_code=422)
+    if isinstance(exc, FilterError):
+        loc = ["body", "filter", *([exc.field] if exc.field else [])]
+        error = {"type": "value_error", "loc": loc, "msg": str(exc)}
         return SafeJSONResponse({"detail": [error]}, status_code=422)
     if isinstance(exc, ModelFormatError | ModelMismatchError):
         return SafeJSONResponse({"detail": str(exc)}, status_code=409)

@@ -77,6 +77,7 @@ def rank_result(
             pointwise=c.pointwise,
             features=finite(c.features) if include_features else None,
             explanation=None if explain is None else _explained(explain, c.features),
+            snippet=c.snippet,
         )
         for c in r.candidates
     ]

@@ -84,6 +84,8 @@ def _rank_and_log(
         revealed=body.revealed,
         metadata=metadata,
         include_features=body.include_features or loaded.model is not None,
+        where=body.filter,
+        snippets=body.snippet,
     )
     ranked = time.perf_counter()
     served = [(runtime.ids.new(), r) for r in rankings]
@@ -111,6 +113,7 @@ def _reply_fields(
         "revealed": body.revealed,
         "ranked_by": _ranked_by(loaded),
         "note": NO_MODEL_NOTE if loaded.model is None else None,
+        "filter": body.filter,
         "index_version": loaded.index.version,
         "model_version": loaded.model_version,
         "timing": s.TimingOut(rank_ms=(ranked - started) * 1e3, total_ms=(done - started) * 1e3),

@@ -14,6 +14,7 @@ from pydantic import (
 )
 
 from .jsonshape import json_shape
+from .schemas_filter import FilterOptions
 
 REQUEST_ID_MAX = 64
 MAX_METADATA_DEPTH = 32
@@ -71,7 +72,7 @@ class PayoffIn(_Strict):
     penalty: FiniteFloat = Field(default=1.0, ge=0, le=1e6, description="cost of a wrong answer")
 
 
-class _RankOptions(_Strict):
+class _RankOptions(FilterOptions, _Strict):
     k: int | None = Field(
         default=None,
         ge=1,
@@ -165,6 +166,7 @@ class CandidateOut(BaseModel):
     explanation: ExplanationOut | None = Field(
         default=None, description="only when explain is true and a model is loaded"
     )
+    snippet: str | None = Field(default=None, description="its text around the clue's words")
 
 
 class DecisionOut(BaseModel):
@@ -218,6 +220,7 @@ class RankedHow(BaseModel):
     revealed: float | None = Field(default=None, description="the share revealed, as sent")
     ranked_by: Literal["probability", "bm25"]
     note: str | None = Field(default=None, description="set when no model is loaded")
+    filter: dict[str, Any] | None = Field(default=None, description="the metadata filter used")
     index_version: str
     model_version: str | None
     timing: TimingOut

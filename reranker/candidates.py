@@ -75,9 +75,15 @@ class Pools:
     query: np.ndarray | None  # the clue's vector (None: no word of it has one)
 
 
-def search_pools(index: Index, token_lists: Sequence[Sequence[str]], pool: int) -> list[Pools]:
-    """BM25's and the vectors' top `pool` of each clue (the vectors' empty without them)."""
-    bm25 = index.search_token_lists(token_lists, pool)
+def search_pools(
+    index: Index,
+    token_lists: Sequence[Sequence[str]],
+    pool: int,
+    allowed: np.ndarray | None = None,
+) -> list[Pools]:
+    """BM25's and the vectors' top `pool` of each clue (the vectors' empty without them);
+    with `allowed` (a metadata filter's row mask), both searched among those rows only."""
+    bm25 = index.search_token_lists(token_lists, pool, allowed=allowed)
     dense = index.dense
     empty = (np.empty(0, dtype=np.int64), np.empty(0))
     if dense is None:
@@ -85,7 +91,7 @@ def search_pools(index: Index, token_lists: Sequence[Sequence[str]], pool: int) 
         dense_lists = [empty] * len(token_lists)
     else:
         queries = [dense.vectors.query_vector(*index.term_ids(t)) for t in token_lists]
-        dense_lists = dense.search(queries, pool)
+        dense_lists = dense.search(queries, pool, allowed=allowed)
     out = []
     for hits, query, (d_rows, d_scores) in zip(bm25, queries, dense_lists, strict=True):
         b_rows = np.fromiter((h.row for h in hits), np.int64, len(hits))
@@ -135,12 +141,20 @@ def _hybrid_set(
 
 
 def find_candidates(
-    index: Index, token_lists: Sequence[Sequence[str]], k: int, policy: CandidatePolicy
+    index: Index,
+    token_lists: Sequence[Sequence[str]],
+    k: int,
+    policy: CandidatePolicy,
+    allowed: np.ndarray | None = None,
 ) -> list[tuple[list[Hit], DenseInfo | None]]:
-    """Each clue's candidate set (BM25 order, best first) and, in hybrid mode, its dense side."""
+    """Each clue's candidate set (BM25 order, best first) and, in hybrid mode, its dense side.
+
+    `allowed` (bool, one per article): candidates come only from the rows it keeps, chosen
+    inside the searches before their top-k cuts, so a set may hold fewer than k.
+    """
     if policy.mode == "bm25" or index.dense is None:
-        return [(hits, None) for hits in index.search_token_lists(token_lists, k)]
-    pools = search_pools(index, token_lists, max(policy.pool, k))
+        return [(hits, None) for hits in index.search_token_lists(token_lists, k, allowed=allowed)]
+    pools = search_pools(index, token_lists, max(policy.pool, k), allowed)
     return [
         _hybrid_set(index, tokens, p, k, policy)
         for tokens, p in zip(token_lists, pools, strict=True)

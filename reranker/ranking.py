@@ -3,13 +3,16 @@
 from __future__ import annotations
 
 import functools
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from retriever import Hit, Index
+from retriever.index import batch_threads
+from retriever.snippets import snippet
 
 from .candidates import CandidatePolicy, find_candidates
 from .decision import Decision, Payoff, choose_threshold, decide
@@ -29,6 +32,7 @@ class ScoredCandidate:
     probability: float | None  # its share of the clue's distribution (with a model)
     features: dict[str, float]
     pointwise: float | None = None  # the candidate model's own P(answer), before sharing out
+    snippet: str | None = None  # a passage of its text around the clue's words, when asked
 
 
 @dataclass(frozen=True)
@@ -46,6 +50,8 @@ class Ranking:
     # P(the answer is among the model's k candidates); the candidates' probabilities sum to
     # it, and 1 - in_candidates is the "none of these" share. None without a model.
     in_candidates: float | None = None
+    # The metadata filter the candidates were chosen under (None: the whole index).
+    where: dict[str, Any] | None = None
 
     @property
     def none_of_these(self) -> float | None:
@@ -134,6 +140,8 @@ def _rank_hits(
     include_features: bool,
     metadata: dict[str, Any] | None,
     registry: FeatureRegistry | None,
+    where: dict[str, Any] | None = None,
+    snippets: bool = False,
 ) -> Ranking:
     cs = candidate_set(index, clue, hits, metadata, tokens, words, dense)
     probs: list[float] | None = None
@@ -166,6 +174,7 @@ def _rank_hits(
             None if probs is None else probs[i],
             dict(zip(names, values[j], strict=True)) if values is not None else {},
             None if pointwise is None else pointwise[i],
+            snippet(index.text_of(hits[i].row), index.analyzer, tokens) if snippets else None,
         )
         for j, i in enumerate(order)
     ]
@@ -194,6 +203,7 @@ def _rank_hits(
         k=keep,
         model_k=set_k,
         in_candidates=among,
+        where=where,
     )
 
 
@@ -209,6 +219,8 @@ def rank_clue(
     include_features: bool = False,
     metadata: dict[str, Any] | None = None,
     registry: FeatureRegistry | None = None,
+    where: Mapping[str, Any] | None = None,
+    snippets: bool = False,
 ) -> Ranking:
     """Rank one clue's candidates by calibrated probability (by BM25 when there is no model).
 
@@ -217,6 +229,9 @@ def rank_clue(
     may not exceed it (ValueError). Without a model, k BM25 candidates (default 20).
     revealed: the share of the whole clue these words are, in (0, 1]; it picks the model's
     threshold for that share (the whole-clue one when not given).
+    where: a metadata filter (retriever/metafilter.py): candidates come only from the
+    articles it keeps, and features and probabilities are computed over those alone.
+    snippets: give each candidate a passage of its text around the clue's words.
     """
     [ranking] = rank_clues(
         index,
@@ -229,6 +244,8 @@ def rank_clue(
         include_features=include_features,
         metadata=[metadata],
         registry=registry,
+        where=where,
+        snippets=snippets,
     )
     return ranking
 
@@ -245,18 +262,44 @@ def rank_clues(
     include_features: bool = False,
     metadata: Sequence[dict[str, Any] | None] | None = None,
     registry: FeatureRegistry | None = None,
+    where: Mapping[str, Any] | None = None,
+    snippets: bool = False,
+    threads: int | None = None,
 ) -> list[Ranking]:
     """`rank_clue` for many clues (each clue analyzed once, as in Index.search_many);
-    `metadata`, when given, holds one clue's metadata (or None) per clue."""
+    `metadata`, when given, holds one clue's metadata (or None) per clue; `where` filters
+    the candidates of every clue.
+
+    threads: how many threads share a batch (None: up to the cores, for batches of 64
+    clues or more); the search kernel releases the GIL, so they overlap there. The
+    rankings are the same whatever the count.
+    """
     keep, depth = _ks(model, k)
     revealed = check_revealed(revealed, complete)
     if metadata is not None and len(metadata) != len(clues):
         raise ValueError(f"metadata holds {len(metadata)} items for {len(clues)} clues")
     metas = list(metadata) if metadata is not None else [None] * len(clues)
+    n_threads = batch_threads(len(clues), threads)
+    if n_threads > 1:
+        step = -(-len(clues) // n_threads)
+        parts = [(clues[i : i + step], metas[i : i + step]) for i in range(0, len(clues), step)]
+
+        def part(cm: tuple[Sequence[str], list[dict[str, Any] | None]]) -> list[Ranking]:
+            return rank_clues(
+                index, model, cm[0], k=k, payoff=payoff, complete=complete,
+                revealed=revealed, include_features=include_features, metadata=cm[1],
+                registry=registry, where=where, snippets=snippets, threads=1,
+            )  # fmt: skip
+
+        with ThreadPoolExecutor(len(parts), thread_name_prefix="hunchwise-rank") as pool:
+            return [r for done in pool.map(part, parts) for r in done]
     # Analyzed once, for the search and the features (words: the clue-length features).
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]
-    found = find_candidates(index, [t for t, _ in analyzed], depth, _policy(model))
+    # The filter's row mask goes into the searches, so it acts before their top-k cuts.
+    allowed = None if where is None else index.filter_mask(where)
+    spec = None if where is None else dict(where)
+    found = find_candidates(index, [t for t, _ in analyzed], depth, _policy(model), allowed)
     return [
         _rank_hits(
             index,
@@ -274,6 +317,8 @@ def rank_clues(
             include_features=include_features,
             metadata=meta,
             registry=registry,
+            where=spec,
+            snippets=snippets,
         )
         for c, (t, w), (hits, dense), meta in zip(clues, analyzed, found, metas, strict=True)
     ]

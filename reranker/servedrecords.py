@@ -22,7 +22,7 @@ from .ranking import Ranking
 
 SERVED = "served.jsonl"
 FEEDBACK = "feedback.jsonl"
-# The keys of a served line ("metadata" too when the request had some), of each of its
+# The keys of a served line ("metadata" and "filter" too when the request had them), of each of its
 # candidates ("features" too when the service logs them), and of a feedback line.
 SERVED_KEYS = (
     "kind", "request_id", "time", "clue", "k", "model_k", "complete", "index_version",
@@ -54,6 +54,7 @@ class ServedLine:
     clue: str
     candidates: tuple[ServedCandidate, ...]
     metadata: dict[str, Any] = field(default_factory=dict)
+    where: dict[str, Any] | None = None  # the metadata filter (absent from older logs)
     time: str | None = None
     k: int | None = None
     model_k: int | None = None
@@ -145,6 +146,8 @@ def served_record(
     }
     if metadata:
         record["metadata"] = metadata
+    if r.where is not None:
+        record["filter"] = r.where
     return record
 
 
@@ -178,6 +181,8 @@ def check_record(rec: Any, where: dict[str, Any]) -> str:
         _check_str(rec, "clue", where)
         if not isinstance(rec.get("candidates", []), list):
             raise LabelledLogError("must be a list", field="candidates", **where)
+        if not isinstance(rec.get("filter", {}), dict | None):
+            raise LabelledLogError("must be an object or null", field="filter", **where)
         return "served"
     if kind == "feedback":
         _check_str(rec, "request_id", where)
@@ -234,6 +239,7 @@ def served_from(rec: dict[str, Any], where: dict[str, Any]) -> ServedLine:
         clue=rec["clue"],
         candidates=tuple(_candidate(c, n, where) for n, c in enumerate(rec.get("candidates", []))),
         metadata=meta if isinstance(meta, dict) else {},
+        where=rec.get("filter"),
         decision=decision if isinstance(decision, dict) else None,
         **copied,
     )

@@ -6,7 +6,7 @@ from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .build import build_index, check_titles, update_index
 from .corpus import Article, ReadReport, read_articles, split_title
-from .errors import CorpusError, IndexFormatError, RetrieverError, UnknownDocumentError
+from .errors import CorpusError, FilterError, IndexFormatError, RetrieverError, UnknownDocumentError
 from .index import Document, Hit, Index, load_index
 
 __all__ = [
@@ -16,6 +16,7 @@ __all__ = [
     "BM25Params",
     "CorpusError",
     "Document",
+    "FilterError",
     "Hit",
     "Index",
     "IndexFormatError",

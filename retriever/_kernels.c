@@ -25,8 +25,11 @@
 
 #include "hunchwise.h" /* hw_buffer, hw_overlap: shared with reranker/features/_fused.c */
 
-/* Calls adding more postings than this release the GIL (about 2 ms of work). */
+/* Calls adding more postings than this (about 2 ms of work), or batches of this many
+ * queries (a pruned query reads few postings, but a batch still takes milliseconds),
+ * release the GIL. */
 #define GIL_RELEASE_POSTINGS 2000000
+#define GIL_RELEASE_QUERIES 16
 
 typedef struct { /* one field's term-major postings */
     const int64_t *indptr; /* term t's postings are [indptr[t], indptr[t + 1]) */
@@ -211,44 +214,56 @@ ANY_ABOVE(double)
 SCORE_QUERY(float)
 SCORE_QUERY(double)
 
+#include "_prune.h" /* prune_float, prune_double: exact top-k that skips postings */
+
 PyDoc_STRVAR(search_doc,
-"search(buf, touched, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts)\n"
+"search(buf, touched, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts,\n"
+"       prune=0, out_work=None)\n"
 "\n"
 "Score a batch of queries and write each one's k best rows and scores, best first, ties\n"
 "by row; only articles with a non-zero score are returned.\n"
 "\n"
 "buf: zeroed scores, one per article (float32 or float64, the weights' type); zero again\n"
 "    on return. touched: int32 scratch, one slot per article.\n"
-"fields: tuple of (indptr int64, docs int32, weight, scale float), the\n"
-"    term-major postings of each scored field and its weight in the sum.\n"
+"fields: tuple of (indptr int64, docs int32, weight, scale float[, term_max, block_max]),\n"
+"    the term-major postings of each scored field and its weight in the sum; term_max\n"
+"    (one per term) and block_max (one per 64 postings) are the weights' maxima, which\n"
+"    prune=1 needs in every field (weights must then be non-negative).\n"
 "qptr (int64, n_queries + 1): query q owns terms qptr[q]:qptr[q+1] of tids (int64 term\n"
 "    ids, distinct within a query, in the order they are added) and qtf (float64, how\n"
 "    often each occurs in the query).\n"
 "out_rows (int64) and out_scores (float64): n_queries * k slots, query q from q * k;\n"
-"    out_counts (int64): how many of query q's slots were filled. Returns None.");
+"    out_counts (int64): how many of query q's slots were filled. out_work (int64, one per\n"
+"    query): postings read, for tests and benchmarks. prune=1: skip postings that cannot\n"
+"    change the top k where that pays (same result). Returns None.");
 
 typedef struct {
-    Py_buffer indptr_view, docs_view, weight_view;
+    Py_buffer indptr_view, docs_view, weight_view, tmax_view, bmax_view;
 } FieldViews;
 
 static PyObject *search(PyObject *self, PyObject *args) {
     PyObject *o_buf, *o_touched, *o_fields, *o_qptr, *o_tids, *o_qtf, *o_rows, *o_scores;
-    PyObject *o_counts;
+    PyObject *o_counts, *o_work = Py_None;
     Py_ssize_t k;
+    int prune = 0;
     (void)self;
-    if (!PyArg_ParseTuple(args, "OOnO!OOOOOO", &o_buf, &o_touched, &k, &PyTuple_Type, &o_fields,
-                          &o_qptr, &o_tids, &o_qtf, &o_rows, &o_scores, &o_counts))
+    if (!PyArg_ParseTuple(args, "OOnO!OOOOOO|pO", &o_buf, &o_touched, &k, &PyTuple_Type,
+                          &o_fields, &o_qptr, &o_tids, &o_qtf, &o_rows, &o_scores, &o_counts,
+                          &prune, &o_work))
         return NULL;
     if (k < 1) return PyErr_Format(PyExc_ValueError, "k must be at least 1, got %zd", k);
     const Py_ssize_t n_fields = PyTuple_GET_SIZE(o_fields);
     Field *fields = calloc(n_fields ? n_fields : 1, sizeof(Field));
     FieldViews *views = calloc(n_fields ? n_fields : 1, sizeof(FieldViews));
     Py_buffer buf = {0}, qptr = {0}, tids = {0}, qtf = {0}, rows = {0}, scores = {0};
-    Py_buffer counts = {0}, scratch = {0};
+    Py_buffer counts = {0}, scratch = {0}, workv = {0};
+    const void **bmaxes = calloc(n_fields ? n_fields : 1, sizeof(void *));
+    const void **tmaxes = calloc(n_fields ? n_fields : 1, sizeof(void *));
+    PruneScratch psc = {0};
     Py_ssize_t got_fields = 0;
     PyObject *result = NULL;
     Heap heap = {0};
-    if (!fields || !views) {
+    if (!fields || !views || !bmaxes || !tmaxes) {
         PyErr_NoMemory();
         goto done;
     }
@@ -262,8 +277,9 @@ static PyObject *search(PyObject *self, PyObject *args) {
     for (; got_fields < n_fields; got_fields++) {
         PyObject *spec = PyTuple_GET_ITEM(o_fields, got_fields);
         FieldViews *v = &views[got_fields];
-        if (!PyTuple_Check(spec) || PyTuple_GET_SIZE(spec) != 4) {
-            PyErr_SetString(PyExc_TypeError, "fields must be (indptr, docs, weight, scale)");
+        if (!PyTuple_Check(spec) || (PyTuple_GET_SIZE(spec) != 4 && PyTuple_GET_SIZE(spec) != 6)) {
+            PyErr_SetString(PyExc_TypeError,
+                            "fields must be (indptr, docs, weight, scale[, term_max, block_max])");
             goto done;
         }
         double scale = PyFloat_AsDouble(PyTuple_GET_ITEM(spec, 3));
@@ -284,7 +300,24 @@ static PyObject *search(PyObject *self, PyObject *args) {
             goto done;
         }
         f->n_post = n_post;
+        if (PyTuple_GET_SIZE(spec) == 6) {
+            if (hw_buffer(PyTuple_GET_ITEM(spec, 4), &v->tmax_view, wfmt, 0, "term_max") < 0 ||
+                hw_buffer(PyTuple_GET_ITEM(spec, 5), &v->bmax_view, wfmt, 0, "block_max") < 0)
+                goto done;
+            if (v->tmax_view.len / v->tmax_view.itemsize != f->n_terms ||
+                v->bmax_view.len / v->bmax_view.itemsize !=
+                    (n_post + PRUNE_BLOCK - 1) / PRUNE_BLOCK) {
+                PyErr_SetString(PyExc_ValueError,
+                                "a field's term_max or block_max does not match its postings");
+                goto done;
+            }
+            tmaxes[got_fields] = v->tmax_view.buf;
+            bmaxes[got_fields] = v->bmax_view.buf;
+        } else {
+            prune = 0; /* every field needs its bounds */
+        }
     }
+    if (o_work != Py_None && hw_buffer(o_work, &workv, "int64", 1, "out_work") < 0) goto done;
     if (hw_buffer(o_qptr, &qptr, "int64", 0, "qptr") < 0) goto done;
     if (hw_buffer(o_tids, &tids, "int64", 0, "tids") < 0) goto done;
     if (hw_buffer(o_qtf, &qtf, "float64", 0, "qtf") < 0) goto done;
@@ -300,7 +333,7 @@ static PyObject *search(PyObject *self, PyObject *args) {
             goto done;
         }
         if (n_queries < 0 || rows.len / 8 < n_queries * k || scores.len / 8 < n_queries * k ||
-            counts.len / 8 < n_queries) {
+            counts.len / 8 < n_queries || (workv.obj && workv.len / 8 < n_queries)) {
             PyErr_SetString(PyExc_ValueError, "output arrays are too small for the queries");
             goto done;
         }
@@ -347,9 +380,37 @@ static PyObject *search(PyObject *self, PyObject *args) {
          * corpora). For a single clue of a few hundred microseconds, handing the GIL over
          * can cost more than the call: in a server whose other thread is busy, taking it
          * back waits for the interpreter's switch interval (5 ms by default). */
-        PyThreadState *saved = work > GIL_RELEASE_POSTINGS ? PyEval_SaveThread() : NULL;
-        for (Py_ssize_t q = 0; q < n_queries && !damaged; q++) {
+        PyThreadState *saved = work > GIL_RELEASE_POSTINGS || n_queries >= GIL_RELEASE_QUERIES
+                                    ? PyEval_SaveThread()
+                                    : NULL;
+        int64_t *out_w = workv.obj ? workv.buf : NULL;
+        int oom = 0;
+        for (Py_ssize_t q = 0; q < n_queries && !damaged && !oom; q++) {
             heap.size = 0;
+            int64_t used = 0;
+            Py_ssize_t got = -2;
+            if (prune) {
+                got = buf.itemsize == 4
+                    ? prune_float(buf.buf, n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf,
+                                  qp[q], qp[q + 1], touched, &heap, &psc, out_r + q * k,
+                                  out_s + q * k, &used)
+                    : prune_double(buf.buf, n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf,
+                                   qp[q], qp[q + 1], touched, &heap, &psc, out_r + q * k,
+                                   out_s + q * k, &used);
+                oom = got == -3;
+            }
+            if (got >= 0) {
+                out_n[q] = got;
+                if (out_w) out_w[q] = used;
+                continue;
+            }
+            heap.size = 0;
+            if (out_w) {
+                out_w[q] = 0;
+                for (Py_ssize_t f = 0; f < n_fields; f++)
+                    for (int64_t t = qp[q]; t < qp[q + 1]; t++)
+                        out_w[q] += fields[f].indptr[tid[t] + 1] - fields[f].indptr[tid[t]];
+            }
             out_n[q] = buf.itemsize == 4
                 ? query_float(buf.buf, n_docs, fields, n_fields, tid, qf, qp[q], qp[q + 1],
                               touched, &heap, out_r + q * k, out_s + q * k)
@@ -358,6 +419,10 @@ static PyObject *search(PyObject *self, PyObject *args) {
             damaged = out_n[q] < 0;
         }
         if (saved) PyEval_RestoreThread(saved);
+        if (oom) {
+            PyErr_NoMemory();
+            goto done;
+        }
         if (damaged) {
             PyErr_SetString(PyExc_ValueError,
                             "postings name a row outside the index: it is damaged; rebuild it");
@@ -369,16 +434,20 @@ static PyObject *search(PyObject *self, PyObject *args) {
 done:
     free(heap.score);
     free(heap.row);
+    prune_scratch_free(&psc);
+    free(bmaxes);
+    free(tmaxes);
     if (views) {
         for (Py_ssize_t f = 0; f < n_fields; f++) {
-            Py_buffer *vs[] = {&views[f].indptr_view, &views[f].docs_view, &views[f].weight_view};
-            for (int i = 0; i < 3; i++)
+            Py_buffer *vs[] = {&views[f].indptr_view, &views[f].docs_view, &views[f].weight_view,
+                               &views[f].tmax_view, &views[f].bmax_view};
+            for (int i = 0; i < 5; i++)
                 if (vs[i]->obj) PyBuffer_Release(vs[i]);
         }
     }
     free(views);
     free(fields);
-    Py_buffer *all[] = {&buf, &scratch, &qptr, &tids, &qtf, &rows, &scores, &counts};
+    Py_buffer *all[] = {&buf, &scratch, &qptr, &tids, &qtf, &rows, &scores, &counts, &workv};
     for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
         if (all[i]->obj) PyBuffer_Release(all[i]);
     return result;

@@ -16,7 +16,7 @@ import numpy as np
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
-from . import bm25, columns, store
+from . import bm25, bounds, columns, metacolumns, store
 from . import vectors as vecs
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
@@ -57,6 +57,9 @@ def _write_keys(tmp: Path, keys: Keys, known: KnownLinks | None = None) -> tuple
     columns.write_strings(tmp, "bases", (s[0] for s in split))
     columns.write_strings(tmp, "qualifiers", (s[1] for s in split))
     columns.write_strings(tmp, "aliases", (columns.JsonListColumn.encode(a) for a in keys.aliases))
+    # The store is in `tmp` already (every caller writes it first): its metadata, as columns.
+    reader = store.StoreReader(tmp, len(keys))
+    metacolumns.write_meta_columns(tmp, (a.metadata for a in reader.articles()))
     return len(unresolved), ambiguous, sum(1 for s in split if s[1])
 
 
@@ -99,7 +102,10 @@ def write_folder(
         del tf_body, tf_title
         dtype = weight_dtype(body.idf, title.idf)
         for prefix, fld in (("body", body), ("title", title)):
-            fld.save(tmp, prefix, fld.weights(params, dtype))
+            weights = fld.weights(params, dtype)
+            fld.save(tmp, prefix, weights)
+            bounds.save(tmp, prefix, fld.tf.indptr, weights)
+            del weights
         store.save_array(tmp, "title_len", title.doc_len.astype(np.int32))
         store.save_array(tmp, "doc_len", body.doc_len.astype(np.int32))
         body_postings, title_postings = int(body.tf.nnz), int(title.tf.nnz)

@@ -52,19 +52,26 @@ def dot(vectors: np.ndarray, query: np.ndarray) -> np.ndarray:
 
 
 def exact_top_k(
-    docvec: np.ndarray, queries: np.ndarray, k: int
+    docvec: np.ndarray, queries: np.ndarray, k: int, rows: np.ndarray | None = None
 ) -> list[tuple[np.ndarray, np.ndarray]]:
     """Each query's k highest dot products with the rows of `docvec`: (rows int64, scores
-    float64), best first, ties by row. Rows whose vector is all zero are left out."""
+    float64), best first, ties by row. Rows whose vector is all zero are left out.
+
+    `rows` (ascending int64): search only these rows (a metadata filter's), block by block
+    as over the whole matrix, so memory stays bounded however many rows pass.
+    """
     want = k
     k = k + _MARGIN
-    n_docs = docvec.shape[0]
+    n_docs = docvec.shape[0] if rows is None else rows.size
     nq = queries.shape[0]
     q = np.ascontiguousarray(queries, dtype=np.float32).T  # dim x nq
     best_rows = [np.empty(0, dtype=np.int64) for _ in range(nq)]
     best_scores = [np.empty(0, dtype=np.float32) for _ in range(nq)]
     for s in range(0, n_docs, _BLOCK):
-        block = np.asarray(docvec[s : s + _BLOCK], dtype=np.float32)
+        picked = None if rows is None else rows[s : s + _BLOCK]
+        block = np.asarray(
+            docvec[s : s + _BLOCK] if picked is None else docvec[picked], dtype=np.float32
+        )
         live = np.any(block != 0, axis=1)
         with _blas_threads(nq):
             sims = block @ q  # rows x nq
@@ -75,15 +82,17 @@ def exact_top_k(
             cand = part[:, j] if part is not None else np.arange(sims.shape[0])
             sc = sims[cand, j]
             keep = np.isfinite(sc)
-            rows = np.concatenate([best_rows[j], cand[keep].astype(np.int64) + s])
+            found = cand[keep].astype(np.int64)
+            found = found + s if picked is None else picked[found]
+            got = np.concatenate([best_rows[j], found])
             scores = np.concatenate([best_scores[j], sc[keep]])
-            order = np.lexsort((rows, -scores))[:k]
-            best_rows[j], best_scores[j] = rows[order], scores[order]
+            order = np.lexsort((got, -scores))[:k]
+            best_rows[j], best_scores[j] = got[order], scores[order]
     out = []
-    for j, rows in enumerate(best_rows):
-        scores = dot(docvec[rows], queries[j])
-        order = np.lexsort((rows, -scores))[:want]
-        out.append((rows[order], scores[order]))
+    for j, got in enumerate(best_rows):
+        scores = dot(docvec[got], queries[j])
+        order = np.lexsort((got, -scores))[:want]
+        out.append((got[order], scores[order]))
     return out
 
 
@@ -110,9 +119,20 @@ class DenseSearcher:
             return self._ann
 
     def search(
-        self, queries: Sequence[np.ndarray | None], k: int, *, exact: bool = False
+        self,
+        queries: Sequence[np.ndarray | None],
+        k: int,
+        *,
+        exact: bool = False,
+        allowed: np.ndarray | None = None,
     ) -> list[tuple[np.ndarray, np.ndarray]]:
-        """(rows, cosines) of each query's k nearest articles, best first; empty for None."""
+        """(rows, cosines) of each query's k nearest articles, best first; empty for None.
+
+        `allowed` (bool, one per article): only the rows it keeps. A filtered search is
+        always exact over those rows, not the graph's: the graph's candidates are the
+        nearest in the whole corpus, and a selective filter could leave none of them, so
+        the result equals an exhaustive search over the allowed articles.
+        """
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         empty = (np.empty(0, dtype=np.int64), np.empty(0))
@@ -121,7 +141,10 @@ class DenseSearcher:
         if not live:
             return out
         mat = np.stack([queries[i] for i in live]).astype(np.float32)  # type: ignore[misc]
-        if exact or not self.approximate:
+        if allowed is not None:
+            rows = np.flatnonzero(allowed).astype(np.int64)
+            results = exact_top_k(self.vectors.docvec, mat, k, rows)
+        elif exact or not self.approximate:
             results = exact_top_k(self.vectors.docvec, mat, k)
         else:
             results = self._rescore(self._ann_index().search(mat, k), mat, k)

@@ -52,6 +52,14 @@ def _corpus_error(message: str, file: str, line: int, field: str) -> CorpusError
     return CorpusError(message, file=file, line=line, field=field)
 
 
+class FilterError(RetrieverError):
+    """Raised when a metadata filter is malformed; names the field it is about."""
+
+    def __init__(self, message: str, *, field: str = "") -> None:
+        self.field, self.reason = field, message
+        super().__init__(f"filter field '{field}': {message}" if field else f"filter: {message}")
+
+
 class IndexFormatError(RetrieverError):
     """Raised when a folder is not a readable hunchwise index (missing, foreign, corrupt)."""
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import threading
 from collections import Counter
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import cached_property
@@ -13,7 +13,7 @@ from typing import Any, Literal, overload
 
 import numpy as np
 
-from . import columns, hybrid, scoring, store
+from . import bounds, columns, hybrid, metafilter, scoring, store
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .counting import cores
@@ -21,6 +21,7 @@ from .dense import DenseSearcher
 from .errors import IndexFormatError, UnknownDocumentError
 from .hits import Hit
 from .links import NameResolver
+from .metacolumns import MetaColumns
 from .sharded import ShardedIndex
 from .vectors import DenseVectors
 
@@ -42,6 +43,20 @@ class Document:
     row: int
 
 
+BATCH_THREADS_FROM = 64  # clues in a batch before it is shared between threads
+
+
+def batch_threads(n_clues: int, threads: int | None) -> int:
+    """Threads for a batch of `n_clues`: `threads` when given (at least 1), else one per core
+    this process may use for batches of BATCH_THREADS_FROM clues or more (a smaller batch
+    is over before the threads pay for themselves); never more than the clues."""
+    if threads is not None and threads < 1:
+        raise ValueError(f"threads must be at least 1, got {threads}")
+    if threads is None:
+        threads = cores() if n_clues >= BATCH_THREADS_FROM else 1
+    return max(1, min(threads, n_clues))
+
+
 class _FieldPostings:
     """Term-major postings of one field: CSR arrays over the shared vocabulary."""
 
@@ -56,6 +71,8 @@ class _FieldPostings:
             raise IndexFormatError(
                 f"{folder}: {prefix}_indptr does not match the postings; rebuild the index"
             )
+        # None for a folder written before the bounds existed: scored exhaustively.
+        self.bounds = bounds.open_bounds(folder, prefix, n_terms, n_postings, dtype)
 
 
 class Index:
@@ -107,6 +124,9 @@ class Index:
         self.popularity = store.open_array(self.path, "popularity", "float64", self.n_docs)
         self._store = store.StoreReader(self.path, self.n_docs)
         self._local = threading.local()
+        # Whether searches may skip postings that cannot change the top k (None: where it
+        # pays, see scoring.prunable; False: score every posting). Same hits either way.
+        self.prune: bool | None = None
 
     # -- identity -------------------------------------------------------
     @property
@@ -124,6 +144,21 @@ class Index:
         """Nearest-article search over the word vectors, or None for an index without them."""
         vectors = DenseVectors.open(self.path, self.manifest)
         return DenseSearcher(vectors) if vectors is not None else None
+
+    @cached_property
+    def meta_columns(self) -> MetaColumns:
+        """The articles' metadata columns (opened on first use; IndexFormatError for an
+        index built before them)."""
+        return MetaColumns(self.path, self.n_docs)
+
+    def filter_mask(self, spec: Mapping[str, Any]) -> np.ndarray:
+        """Boolean mask of the rows a metadata filter keeps (see retriever/metafilter.py);
+        FilterError names the field of a bad condition."""
+        return metafilter.compile_filter(spec, self.meta_columns)
+
+    def text_of(self, row: int) -> str:
+        """The stored text of the article in `row`."""
+        return str(self._store.record(row)["text"])
 
     def row_of(self, doc_id: str) -> int:
         """Row of an article id; raises UnknownDocumentError."""
@@ -227,23 +262,34 @@ class Index:
         scores = self.score_tokens(tokens)
         return {int(r): float(scores[r]) for r in np.asarray(rows).tolist()}
 
-    def search_tokens(self, tokens: Sequence[str], k: int = 20) -> list[Hit]:
+    def search_tokens(
+        self, tokens: Sequence[str], k: int = 20, *, allowed: np.ndarray | None = None
+    ) -> list[Hit]:
         """Top-k articles for already-analyzed tokens, best first (ties by row).
 
-        Candidates are the articles holding at least one known query term.
+        Candidates are the articles holding at least one known query term (and, with
+        `allowed`, a boolean mask over the rows, only the rows it keeps).
         """
-        return self.search_token_lists([tokens], k)[0]
+        return self.search_token_lists([tokens], k, allowed=allowed)[0]
 
     def search_token_lists(
-        self, token_lists: Sequence[Sequence[str]], k: int = 20
+        self,
+        token_lists: Sequence[Sequence[str]],
+        k: int = 20,
+        *,
+        allowed: np.ndarray | None = None,
     ) -> list[list[Hit]]:
         """`search_tokens` for each list of already-analyzed tokens, in this thread."""
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         if not token_lists:
             return []
+        if allowed is not None and allowed.shape != (self.n_docs,):
+            raise ValueError(f"allowed must hold one entry per article ({self.n_docs})")
         plan = self._plan(token_lists)
-        results = scoring.top_k_many(self._buffer(), plan, k, touched=self._scratch())
+        results = scoring.top_k_many(
+            self._buffer(), plan, k, touched=self._scratch(), prune=self.prune, allowed=allowed
+        )
         rows = np.concatenate([r for r, _ in results])
         ids, titles = self.ids.take(rows), self.titles.take(rows)
         out: list[list[Hit]] = []
@@ -274,10 +320,10 @@ class Index:
     def search_many(
         self, clues: Sequence[str], k: int = 20, *, threads: int | None = None
     ) -> list[list[Hit]]:
-        """`search` for each clue, in order, on `threads` threads (default: up to 2 cores
-        for batches of 64 clues or more; the kernel releases the GIL for batches this big)."""
-        if threads is None:
-            threads = min(cores(), 2) if len(clues) >= 64 else 1
+        """`search` for each clue, in order, on `threads` threads (default: see
+        `batch_threads`; the kernel releases the GIL for batches this big). The hits are the
+        same whatever the count."""
+        threads = batch_threads(len(clues), threads)
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all

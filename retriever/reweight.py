@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from . import store
+from . import bounds, store
 from .bm25 import BM25Params
 from .build import index_version
 from .index import Index, _FieldPostings
@@ -28,6 +28,7 @@ class _Reweighted(_FieldPostings):
 
     def __init__(self, base: _FieldPostings, weight: np.ndarray) -> None:
         self.indptr, self.docs, self.weight = base.indptr, base.docs, weight
+        self.bounds = bounds.compute(self.indptr, weight)  # the stored ones are for old weights
 
 
 class Reweighter:

@@ -106,33 +106,78 @@ def top_k_many(
     *,
     touched: np.ndarray | None = None,
     use_kernel: bool = True,
+    prune: bool | None = None,
+    work: np.ndarray | None = None,
+    allowed: np.ndarray | None = None,
 ) -> list[tuple[np.ndarray, np.ndarray]]:
     """Rows (int64) and scores (float64) of each query's k best articles with a non-zero
-    score, best first, ties by row.
+    score, best first, ties by row; with `allowed` (bool, one per article), only among the
+    rows it keeps, before the cut to k (fewer than k come back when fewer match).
 
     `buf` (the weights' type, one slot per article) must be all zeros on entry and is all
     zeros again on return. `touched` (int32, one slot per article) is the kernel's scratch;
-    pass one to reuse it across calls.
+    pass one to reuse it across calls. `prune`: let the kernel skip postings that cannot
+    change the result (None: where `prunable` says it pays; True: wherever the index has
+    the bounds; False: never); the result is the same either way. `work` (int64,
+    one per query), filled by the kernel only: the postings each query read.
     """
     if k < 1:
         raise ValueError(f"k must be at least 1, got {k}")
     n = p.n_queries
-    if use_kernel and _kernels is not None:
+    # The compiled kernel takes no row mask: a filtered query runs the numpy twin, which
+    # gives the same scores bit for bit and drops the masked rows before its top-k cut.
+    if use_kernel and _kernels is not None and allowed is None:
         rows = np.empty(n * k, dtype=np.int64)
         scores = np.empty(n * k, dtype=np.float64)
         counts = np.empty(n, dtype=np.int64)
-        fields = tuple((fld.indptr, fld.docs, fld.weight, float(sc)) for fld, sc in p.fields)
+        use_bounds = prune is not False and prunable(p, buf.size if prune is None else None)
+        fields = tuple(
+            (fld.indptr, fld.docs, fld.weight, float(sc))
+            + ((fld.bounds.term_max, fld.bounds.block_max) if use_bounds else ())  # type: ignore[attr-defined]
+            for fld, sc in p.fields
+        )
         if touched is None:
             touched = np.empty(buf.size, dtype=np.int32)
-        _kernels.search(buf, touched, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts)
+        _kernels.search(
+            buf, touched, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts, use_bounds, work
+        )
         return [
             (rows[q * k : q * k + c], scores[q * k : q * k + c])
             for q, c in enumerate(counts.tolist())
         ]
-    return [_numpy_top_k(buf, p, q, k) for q in range(n)]
+    return [_numpy_top_k(buf, p, q, k, allowed) for q in range(n)]
 
 
-def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, np.ndarray]:
+# Pruning is used where asked for (prune=True), not by default: on the benchmark's clue
+# queries (tests/benchmarks/bench_retrieval.py, 100k synthetic articles, ~16 terms, k=10)
+# the terms' bounds leave most postings to be read (the top article's score needs most of
+# the clue's terms, and no list dominates), so the exact pruned path measured slower than
+# scoring everything. It pays on queries where a few rare terms decide the top k and long
+# lists of common terms can be skipped (tests/retriever/test_pruning.py shows the skipped
+# postings). None of this changes a result: both paths give the same hits bit for bit.
+PRUNE_MIN_ARTICLES: int | None = None  # auto-pruning from this corpus size; None: never
+
+
+def prunable(p: Plan, n_docs: int | None) -> bool:
+    """Whether the kernel may prune this plan's queries: a corpus of `n_docs` articles big
+    enough (None: any size), and every field with stored weight maxima over float32 weights
+    (never negative, see postings.weight_dtype; float64 ones may be, which the bounds
+    cannot handle).
+
+    The kernel then also decides per query (retriever/_prune.h): a query with one list,
+    few postings next to k, or whose bounds prune too little is scored exhaustively.
+    """
+    if n_docs is not None and (PRUNE_MIN_ARTICLES is None or n_docs < PRUNE_MIN_ARTICLES):
+        return False
+    return all(
+        getattr(fld, "bounds", None) is not None and fld.weight.dtype == np.float32
+        for fld, _ in p.fields
+    )
+
+
+def _numpy_top_k(
+    buf: np.ndarray, p: Plan, q: int, k: int, allowed: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray]:
     """The numpy path of top_k_many for query q: touched articles, their scores, a partial sort."""
     lo, hi = int(p.qptr[q]), int(p.qptr[q + 1])
     ranges = [
@@ -158,6 +203,9 @@ def _numpy_top_k(buf: np.ndarray, p: Plan, q: int, k: int) -> tuple[np.ndarray, 
             scores = buf[touched].astype(np.float64)
             keep = scores != 0
             cand, scores = touched[keep], scores[keep]
+        if allowed is not None:
+            keep = allowed[cand]
+            cand, scores = cand[keep], scores[keep]
         if cand.size > k:
             kth = np.partition(scores, cand.size - k)[cand.size - k]
             top = scores >= kth

@@ -13,6 +13,7 @@ if TYPE_CHECKING:
 
 from . import index_tune
 from .console import check_k, format_table, human_bytes, print_json, show_progress
+from .options import add_filter_option
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -133,6 +134,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("clue", help="clue text (quote it)")
     p.add_argument("-k", type=int, default=10, help="how many candidates (default 10)")
     p.add_argument("--json", action="store_true", help="print hits as JSON")
+    add_filter_option(p)
     p.set_defaults(func=cmd_search)
 
 
@@ -319,12 +321,19 @@ def _update(args: argparse.Namespace, **change: Any) -> int:
 def cmd_search(args: argparse.Namespace) -> int:
     """Print BM25 candidates for one clue."""
     from retriever import load_index
+    from retriever.sharded import ShardedIndex
 
     check_k(args.k)
     if not args.clue.strip():
         raise ValueError("the clue is empty; give the words to search for (quote them)")
     idx = load_index(args.index, sharded=True)
-    hits = idx.search(args.clue, k=args.k)
+    if args.filter is None:
+        hits = idx.search(args.clue, k=args.k)
+    elif isinstance(idx, ShardedIndex):
+        raise ValueError("--filter works on an index built without --shards")
+    else:
+        mask = idx.filter_mask(args.filter)
+        hits = idx.search_tokens(idx.analyzer.tokens(args.clue), args.k, allowed=mask)
     if args.json:
         print_json(
             [{"rank": h.rank, "id": h.doc_id, "title": h.title, "score": h.score} for h in hits]

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import argparse
+import json
 from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 
 def bounded_number(low: float, high: float, describe: str) -> Callable[[str], float]:
@@ -50,3 +52,28 @@ def add_index_option(p: argparse.ArgumentParser) -> None:
 def add_feature_option(p: argparse.ArgumentParser, help: str) -> None:
     """--feature MODULE:FUNCTION, repeatable: user-defined feature functions."""
     p.add_argument("--feature", action="append", default=[], metavar="MODULE:FUNCTION", help=help)
+
+
+def metadata_filter(text: str) -> dict[str, Any]:
+    """An argparse type: a metadata filter, the JSON object POST /v1/rank takes as "filter"."""
+    try:
+        value = json.loads(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(f"not valid JSON ({exc}): {text!r}") from exc
+    if not isinstance(value, dict):
+        raise argparse.ArgumentTypeError(
+            f'expected a JSON object of field conditions, e.g. \'{{"kind": "town"}}\', got {text!r}'
+        )
+    return value
+
+
+def add_filter_option(p: argparse.ArgumentParser) -> None:
+    """--filter JSON: keep only candidates whose article metadata match (README: filters)."""
+    p.add_argument(
+        "--filter",
+        type=metadata_filter,
+        default=None,
+        metavar="JSON",
+        help='only articles whose metadata match, e.g. \'{"kind": {"in": ["town", "river"]}}\' '
+        '(the syntax of the service\'s "filter"; chosen before the top-k cut)',
+    )

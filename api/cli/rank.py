@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .console import check_k, show_progress
-from .options import add_feature_option, add_index_option, unit_share
+from .options import add_feature_option, add_filter_option, add_index_option, unit_share
 from .records import ClueIn, json_line, output_format, read_clues, write_rows
 
 if TYPE_CHECKING:
@@ -65,6 +65,12 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="add each candidate's explanation: every feature's value, scaled value and "
         "contribution to the logit",
     )
+    add_filter_option(p)
+    p.add_argument(
+        "--snippet",
+        action="store_true",
+        help="add each candidate's passage of text around the clue's words",
+    )
     add_feature_option(p, "user feature function the model was trained with (repeatable)")
     p.set_defaults(func=cmd_rank)
 
@@ -104,6 +110,8 @@ def results(
                 revealed=args.revealed,
                 metadata=[c.metadata for c in chunk],
                 include_features=True,  # the model's columns, which explanations read
+                where=args.filter,
+                snippets=args.snippet,
             )
             for c, r in zip(chunk, rankings, strict=True):
                 reply = rank_result(c.id, r, False, model if args.explain else None)
@@ -117,6 +125,7 @@ def results(
                     "model_k": r.model_k,
                     "complete": args.complete,
                     "revealed": args.revealed,
+                    "filter": args.filter,
                     "model_version": r.model_version,
                     "index_version": r.index_version,
                 }

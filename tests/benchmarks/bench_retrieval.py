@@ -351,6 +351,56 @@ def build_table(all_results: dict[int, dict[str, dict[str, Any]]]) -> str:
     return "\n".join(lines)
 
 
+def work_prune_modes(folder: Path, clues: list[str], k: int = 10) -> dict[str, Any]:
+    """hunchwise's pruned and exhaustive paths on one loaded index, in the same process:
+    single-clue p50/p95 (ms) and batch q/s at 1 and 2 threads for each, the share of
+    postings the pruned path read, and a check that both give the same hits."""
+    import numpy as np
+
+    from retriever import load_index, scoring
+
+    idx = load_index(folder)
+    for c in clues[:20]:
+        idx.search(c, k)  # warm the memory maps
+    out: dict[str, Any] = {}
+    hits: dict[str, Any] = {}
+    for name, mode in (("exhaustive", False), ("pruned", True)):
+        idx.prune = mode
+        p50, p95 = _latencies(lambda c: idx.search(c, k), clues)
+        row = {"p50_ms": p50, "p95_ms": p95}
+        for threads in (1, 2):
+            t = time.perf_counter()
+            found = idx.search_many(clues, k, threads=threads)
+            row[f"batch{threads}_qps"] = len(clues) / (time.perf_counter() - t)
+        hits[name] = [[(h.row, h.score) for h in hs] for hs in found]
+        out[name] = row
+    plan = idx._plan([idx.analyzer.tokens(c) for c in clues])
+    work = {m: np.zeros(len(clues), dtype=np.int64) for m in (True, False)}
+    for m, w in work.items():
+        scoring.top_k_many(idx._buffer(), plan, k, prune=m, work=w)
+    out["postings_read_share"] = float(work[True].sum() / max(1, int(work[False].sum())))
+    out["same_hits"] = hits["pruned"] == hits["exhaustive"]
+    return out
+
+
+def prune_table(n: int, res: dict[str, Any]) -> str:
+    """Markdown rows for work_prune_modes at one size."""
+    lines = [
+        f"pruned vs exhaustive at {n:,} articles (same run; same hits: {res['same_hits']}, "
+        f"postings read: {res['postings_read_share']:.0%})",
+        "",
+        "| path | p50 ms | p95 ms | batch q/s, 1 thread | batch q/s, 2 threads |",
+        "| --- | --- | --- | --- | --- |",
+    ]
+    for name in ("exhaustive", "pruned"):
+        r = res[name]
+        lines.append(
+            f"| {name} | {r['p50_ms']:.3f} | {r['p95_ms']:.3f} | {r['batch1_qps']:,.0f} | "
+            f"{r['batch2_qps']:,.0f} |"
+        )
+    return "\n".join(lines)
+
+
 def _spawn(args: list[str]) -> dict[str, Any]:
     res = subprocess.run(
         [sys.executable, "-m", "tests.benchmarks.bench_retrieval", *args],
@@ -395,6 +445,10 @@ def run_size(n: int, tmp: Path, words: list[str]) -> dict[str, dict[str, Any]]:
             res = _spawn(["--work", "build", system, str(corpus), str(folder), *BUILD_FLAGS])
             res.update(_spawn(["--work", "query", system, str(corpus), str(folder), str(queries)]))
         results[system] = res
+        if system == "hunchwise":
+            pr = _spawn(["--work", "prune", system, str(corpus), str(folder), str(queries)])
+            res["prune_modes"] = pr
+            print(prune_table(n, pr), flush=True)
         shown = {k: round(v, 4) if isinstance(v, float) else v for k, v in res.items()}
         print(
             f"  {n:>8} {system:<12} {json.dumps(shown)}",
@@ -481,6 +535,8 @@ def main(argv: list[str] | None = None) -> int:
         if kind == "build":
             BUILD_FLAGS[:] = rest
             res = work_build(system, Path(corpus), Path(folder))
+        elif kind == "prune":
+            res = work_prune_modes(Path(folder), json.loads(Path(rest[0]).read_text()))
         else:
             res = work_query(
                 system, Path(corpus), Path(folder), json.loads(Path(rest[0]).read_text())

@@ -101,6 +101,17 @@ def test_rank_clues_equals_rank_clue_per_clue(
     assert batch == single
 
 
+def test_rank_clues_on_threads_equals_one_thread(
+    world: World, model: ServedModel, clues: list[str]
+) -> None:
+    # Each thread ranks its share of the batch; the order and every number stay the same.
+    one = rank_clues(world.index, model, clues[:30], k=5, include_features=True, threads=1)
+    two = rank_clues(world.index, model, clues[:30], k=5, include_features=True, threads=2)
+    assert two == one
+    with pytest.raises(ValueError, match="threads"):
+        rank_clues(world.index, model, clues[:3], threads=0)
+
+
 def test_clue_with_no_known_words(world: World, model: ServedModel) -> None:
     r = rank_clue(world.index, model, "zzzz qqqq")
     assert r.candidates == [] and r.n_tokens == 2
