@@ -1,11 +1,12 @@
-"""Build the two compiled modules (metadata lives in pyproject.toml).
+"""Build the compiled modules (metadata lives in pyproject.toml).
 
-retriever._kernels: BM25 search and term overlap. reranker._fused: the built-in candidate
-features. Both are optional: without a C compiler the install still succeeds and the code
-uses the numpy scoring path and the feature definitions themselves, which give the same
-results more slowly. `hunchwise index info` says which query path is in use.
-Both include include/hunchwise.h (buffer checks, the term overlap); MANIFEST.in puts it in
-the source distribution.
+retriever._kernels: BM25 search and term overlap. retriever._analysis: texts to term ids
+while indexing. reranker._fused: the built-in candidate features. All are optional: without
+a C compiler the install still succeeds and the code uses the numpy scoring path, the Python
+indexing loop and the feature definitions themselves, which give the same results more
+slowly. `hunchwise index info` says which query path is in use.
+_kernels and _fused include include/hunchwise.h (buffer checks, the term overlap);
+MANIFEST.in puts it in the source distribution.
 """
 
 import sys
@@ -28,6 +29,7 @@ setup(
         )
         for name, source in (
             ("retriever._kernels", "retriever/_kernels.c"),
+            ("retriever._analysis", "retriever/_analysis.c"),
             ("reranker.features._fused", "reranker/features/_fused.c"),
         )
     ]

@@ -203,6 +203,12 @@ class Analyzer:
         return f"Analyzer({self.config!r})"
 
 
+def default_pattern(analyzer: Analyzer) -> bool:
+    """Whether `analyzer` finds words with the default token pattern (ASCII text then needs
+    no regular expression: the compiled indexing loop handles it)."""
+    return analyzer._find is _default_words
+
+
 class TermTable(dict[str, int]):
     """Maps a normalized word to the id of its term (-1 for stopwords), filled on first sight.
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import gc
+import importlib
 import multiprocessing
 import os
 from collections import deque
@@ -13,7 +14,13 @@ from typing import Any, TypeVar
 import numpy as np
 import scipy.sparse as sp
 
-from .analyzer import Analyzer, AnalyzerConfig, TermTable
+from .analyzer import Analyzer, AnalyzerConfig, TermTable, default_pattern
+
+_analysis: Any
+try:
+    _analysis = importlib.import_module("retriever._analysis")  # built by setup.py
+except ImportError:  # pragma: no cover - no C compiler at install time
+    _analysis = None
 
 CHUNK = 4_000  # articles per task: big enough to amortize pickling, small enough to stream
 
@@ -37,10 +44,24 @@ Csr = tuple[np.ndarray, np.ndarray, np.ndarray]  # indptr, term ids (local), cou
 ChunkResult = tuple[int, list[str], Csr, Csr]
 
 
+def has_kernel() -> bool:
+    """Whether the compiled texts-to-term-ids loop (retriever/_analysis.c) is built."""
+    return _analysis is not None
+
+
 def _ids_of(
-    analyzer: Analyzer, table: TermTable, texts: Sequence[str]
+    analyzer: Analyzer, table: TermTable, texts: Sequence[str], use_kernel: bool = True
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Term ids of each text (stopwords dropped), concatenated, and the count per text."""
+    """Term ids of each text (stopwords dropped), concatenated, and the count per text.
+
+    With the default token pattern the compiled loop does the work (same ids, same order of
+    new terms: tests/retriever/test_counting_kernel.py); this loop is its definition.
+    """
+    if use_kernel and _analysis is not None and default_pattern(analyzer):
+        flat_b, lens_b = _analysis.term_ids_many(
+            list(texts), table, analyzer.config.casefold, analyzer.words
+        )
+        return np.frombuffer(flat_b, dtype=np.int64), np.frombuffer(lens_b, dtype=np.int64)
     flat: list[int] = []
     lens = np.empty(len(texts), dtype=np.int64)
     for i, text in enumerate(texts):
@@ -70,10 +91,12 @@ def no_gc() -> Iterator[None]:
             gc.enable()
 
 
-def count_texts(analyzer: Analyzer, table: TermTable, texts: Sequence[str]) -> Csr:
+def count_texts(
+    analyzer: Analyzer, table: TermTable, texts: Sequence[str], use_kernel: bool = True
+) -> Csr:
     """Doc-major term counts of `texts` as CSR parts; term ids are `table`'s."""
     with no_gc():
-        ids, lens = _ids_of(analyzer, table, texts)
+        ids, lens = _ids_of(analyzer, table, texts, use_kernel)
     indptr = np.zeros(len(texts) + 1, dtype=np.int64)
     if ids.size == 0:
         return indptr, np.zeros(0, np.int32), np.zeros(0, np.int32)

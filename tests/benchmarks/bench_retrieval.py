@@ -1,4 +1,4 @@
-"""Benchmark: hunchwise retrieval against rank_bm25 and bm25s (numpy and numba) on one corpus.
+"""Benchmark: hunchwise retrieval against rank_bm25, bm25s (numpy, numba) and tantivy on one corpus.
 
 Run:  python -m tests.benchmarks.bench_retrieval --sizes 10000,100000 [--out results.md]
 
@@ -6,6 +6,11 @@ Every system builds, saves, loads and queries in its own subprocess so that each
 clean. The corpus is FOLDOC text (Debian's dict-foldoc) cut into runs and lightly perturbed
 (see tests/retriever/foldoc.py); the queries are 20-40 word clue-like windows of articles.
 Not a test: it prints numbers and ratios measured in the same run, and asserts nothing.
+
+hunchwise's BM25 build runs without word vectors; their training is timed on its own
+(`vectors_s`, skipped with --no-vectors). The build is compared with tantivy twice: with the
+default analyzer (which stems) and with `hunchwise-nostem`, the analysis tantivy's analyzer
+here does (lower case, the same English stop words, no stemming).
 """
 
 from __future__ import annotations
@@ -25,7 +30,7 @@ from typing import Any
 
 from tests.retriever.foldoc import clue_from, foldoc_words, synthetic_articles
 
-SYSTEMS = ["hunchwise", "bm25s-numpy", "bm25s-numba", "rank_bm25"]
+SYSTEMS = ["hunchwise", "hunchwise-nostem", "tantivy", "bm25s-numpy", "bm25s-numba", "rank_bm25"]
 N_QUERIES = 300
 
 
@@ -66,7 +71,11 @@ def _bm25s_tokens(texts: list[str], stemmer: Any) -> Any:
 def _import(system: str) -> float:
     """Import the system's modules up front, so build and load times exclude imports."""
     t = time.perf_counter()
-    if system == "hunchwise":
+    if system.startswith("hunchwise"):
+        import retriever
+    elif system == "tantivy":
+        import tantivy  # noqa: F401
+
         import retriever
     elif system.startswith("bm25s"):
         import bm25s  # noqa: F401
@@ -82,12 +91,10 @@ def _import(system: str) -> float:
 def work_build(system: str, corpus: Path, folder: Path) -> dict[str, Any]:
     """Build (reading the corpus file) and save; returns seconds and size."""
     _import(system)
+    if system == "tantivy" or system.startswith("hunchwise"):
+        return work_build_peer(system, corpus, folder)
     t = time.perf_counter()
-    if system == "hunchwise":
-        from retriever import build_index
-
-        build_index(corpus, folder)
-    elif system.startswith("bm25s"):
+    if system.startswith("bm25s"):
         import bm25s
         import Stemmer
 
@@ -110,8 +117,10 @@ def work_build(system: str, corpus: Path, folder: Path) -> dict[str, Any]:
 def work_query(system: str, corpus: Path, folder: Path, clues: list[str]) -> dict[str, Any]:
     """Load from disk, first query, single-query latencies, batch throughput."""
     out: dict[str, Any] = {"import_s": _import(system)}
+    if system == "tantivy":
+        return {**out, **work_query_tantivy(folder, clues)}
     t = time.perf_counter()
-    if system == "hunchwise":
+    if system.startswith("hunchwise"):
         from retriever import load_index
 
         idx = load_index(folder)
@@ -184,6 +193,162 @@ def work_query(system: str, corpus: Path, folder: Path, clues: list[str]) -> dic
     out["query_rss_mib"] = _peak_rss_mib()
     out["queries"] = len(clues)
     return out
+
+
+# --- build-time peers: hunchwise's BM25 build (both analyzer settings) and tantivy ---------
+
+BUILD_FLAGS: list[str] = []  # "novectors": do not time word-vector training
+NOSTEM: dict[str, Any] = {"stemmer": None}  # the analysis tantivy's analyzer below does
+
+
+def _hunchwise_options(system: str) -> dict[str, Any]:
+    return NOSTEM if system == "hunchwise-nostem" else {}
+
+
+def _tantivy_analyzer() -> Any:
+    """Lower case, scikit-learn's English stop words (hunchwise's list), no stemming."""
+    import tantivy
+
+    from retriever.analyzer import ENGLISH_STOP_WORDS
+
+    return (
+        tantivy.TextAnalyzerBuilder(tantivy.Tokenizer.simple())
+        .filter(tantivy.Filter.lowercase())
+        .filter(tantivy.Filter.custom_stopword(sorted(ENGLISH_STOP_WORDS)))
+        .build()
+    )
+
+
+def _tantivy_index(folder: Path) -> Any:
+    import tantivy
+
+    schema = (
+        tantivy.SchemaBuilder()
+        .add_unsigned_field("row", stored=True)
+        .add_text_field("title", tokenizer_name="hw", index_option="freq")
+        .add_text_field("body", tokenizer_name="hw", index_option="freq")
+        .build()
+    )
+    folder.mkdir(parents=True, exist_ok=True)
+    index = tantivy.Index(schema, path=str(folder))
+    index.register_tokenizer("hw", _tantivy_analyzer())
+    return index
+
+
+def work_build_peer(system: str, corpus: Path, folder: Path) -> dict[str, Any]:
+    """hunchwise's BM25 build (word vectors timed apart) or tantivy's, from the corpus file.
+
+    build_s includes reading and parsing the file for both; tantivy's parse_s says how much
+    of it Python's json took (its index_s is the rest: tokenizing, indexing, committing).
+    """
+    out: dict[str, Any] = {}
+    t = time.perf_counter()
+    if system == "tantivy":
+        import tantivy
+
+        with open(corpus, encoding="utf-8") as fh:
+            recs = [json.loads(line) for line in fh]
+        out["parse_s"] = time.perf_counter() - t
+        index = _tantivy_index(folder)
+        writer = index.writer(heap_size=256_000_000)
+        for row, rec in enumerate(recs):
+            writer.add_document(tantivy.Document(row=row, title=rec["title"], body=rec["text"]))
+        writer.commit()
+        writer.wait_merging_threads()
+        out["build_s"] = time.perf_counter() - t
+        out["index_s"] = out["build_s"] - out["parse_s"]
+    else:
+        from retriever import Analyzer, build_index
+        from retriever import vectors as vecs
+
+        options = _hunchwise_options(system)
+        build_index(corpus, folder, vectors=False, **options)
+        out["build_s"] = time.perf_counter() - t
+        if system == "hunchwise" and "novectors" not in BUILD_FLAGS:
+            size = _dir_bytes(folder)
+            t = time.perf_counter()
+            vecs.add_to_folder(folder, Analyzer(**options), vecs.VectorSettings())
+            out["vectors_s"] = time.perf_counter() - t
+            out["vectors_mib"] = (_dir_bytes(folder) - size) / 2**20
+    out["size_mib"] = _dir_bytes(folder) / 2**20
+    out["build_rss_mib"] = _peak_rss_mib()
+    return out
+
+
+def work_query_tantivy(folder: Path, clues: list[str]) -> dict[str, Any]:
+    """tantivy's load, latencies, 1- and 2-thread batches (the Python bindings have no batch
+    search; a thread pool calls its searcher, which is thread-safe), and the top-10 overlap
+    with hunchwise-nostem's index of the same corpus. Queries are hunchwise-nostem's tokens,
+    each an OR of term queries on both fields."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    import tantivy
+
+    from retriever import Analyzer, load_index
+
+    an = Analyzer(**NOSTEM)
+    out: dict[str, Any] = {}
+    t = time.perf_counter()
+    index = tantivy.Index.open(str(folder))
+    index.register_tokenizer("hw", _tantivy_analyzer())
+    searcher = index.searcher()
+    schema = index.schema
+    out["load_s"] = time.perf_counter() - t
+
+    def query(clue: str) -> Any:
+        terms = [
+            (tantivy.Occur.Should, tantivy.Query.term_query(schema, f, tok, index_option="freq"))
+            for tok in dict.fromkeys(an.tokens(clue))
+            for f in ("body", "title")
+        ]
+        return tantivy.Query.boolean_query(terms)
+
+    def one(clue: str) -> Any:
+        return searcher.search(query(clue), 10, count=False).hits
+
+    t = time.perf_counter()
+    one(clues[0])
+    out["first_query_s"] = time.perf_counter() - t
+    out["p50_ms"], out["p95_ms"] = _latencies(one, clues)
+    for threads, key in ((1, "batch_qps"), (2, "batch2_qps")):
+        with ThreadPoolExecutor(threads) as pool:
+            list(pool.map(one, clues[:16]))
+            t = time.perf_counter()
+            list(pool.map(one, clues))
+            out[key] = len(clues) / (time.perf_counter() - t)
+    out["query_rss_mib"] = _peak_rss_mib()
+    out["queries"] = len(clues)
+    peer = folder.with_name(folder.name.replace("tantivy", "hunchwise-nostem"))
+    if peer.exists():
+        hw = load_index(peer)
+        shared = []
+        for clue in clues:
+            mine = {searcher.doc(a)["row"][0] for _, a in one(clue)}
+            theirs = {h.row for h in hw.search(clue, 10)}
+            shared.append(len(mine & theirs) / max(1, len(theirs)))
+        out["top10_overlap"] = statistics.mean(shared)
+    return out
+
+
+def build_table(all_results: dict[int, dict[str, dict[str, Any]]]) -> str:
+    """hunchwise's BM25 build against tantivy's on the same text, with both analyzer settings."""
+    lines = [
+        "| articles | tantivy build_s | hunchwise-nostem build_s | ratio (<= 1 is as fast) "
+        "| hunchwise (stems) build_s | ratio | word vectors_s (apart) | top-10 overlap |",
+        "|---|---|---|---|---|---|---|---|",
+    ]
+    for n, res in all_results.items():
+        tv, plain, full = (res.get(s, {}) for s in ("tantivy", "hunchwise-nostem", "hunchwise"))
+        if "build_s" not in tv:
+            continue
+        lines.append(
+            f"| {n} | {tv['build_s']:.2f} | {_fmt(plain.get('build_s'))} | "
+            f"{_fmt(plain['build_s'] / tv['build_s'] if 'build_s' in plain else None)} | "
+            f"{_fmt(full.get('build_s'))} | "
+            f"{_fmt(full['build_s'] / tv['build_s'] if 'build_s' in full else None)} | "
+            f"{_fmt(full.get('vectors_s'))} | {_fmt(tv.get('top10_overlap'))} |"
+        )
+    return "\n".join(lines)
 
 
 def work_prune_modes(folder: Path, clues: list[str], k: int = 10) -> dict[str, Any]:
@@ -277,7 +442,7 @@ def run_size(n: int, tmp: Path, words: list[str]) -> dict[str, dict[str, Any]]:
                 ["--work", "query", system, str(corpus), str(folder), str(tmp / f"few-{n}.json")]
             )
         else:
-            res = _spawn(["--work", "build", system, str(corpus), str(folder)])
+            res = _spawn(["--work", "build", system, str(corpus), str(folder), *BUILD_FLAGS])
             res.update(_spawn(["--work", "query", system, str(corpus), str(folder), str(queries)]))
         results[system] = res
         if system == "hunchwise":
@@ -332,8 +497,10 @@ def table(all_results: dict[int, dict[str, dict[str, Any]]]) -> str:
         "|---|---|---|---|---|---|---|",
     ]
     for n, res in all_results.items():
-        hw = res["hunchwise"]
+        hw = res.get("hunchwise", {})
         peers = [res[s] for s in ("bm25s-numpy", "bm25s-numba") if "p50_ms" in res.get(s, {})]
+        if not peers or "p50_ms" not in hw:  # a run with --systems leaving them out
+            continue
         fastest = min(peers, key=lambda r: r["p50_ms"])
         name = next(s for s in ("bm25s-numpy", "bm25s-numba") if res.get(s) is fastest)
         best_batch = max(p["batch_qps"] for p in peers)
@@ -354,11 +521,19 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--sizes", default="10000,100000")
     p.add_argument("--out", type=Path, help="also write the markdown table here")
+    p.add_argument("--no-vectors", action="store_true", help="do not time word-vector training")
+    p.add_argument(
+        "--systems",
+        default=",".join(SYSTEMS),
+        help="comma-separated subset of " + ",".join(SYSTEMS),
+    )
     p.add_argument("--work", nargs="+", help=argparse.SUPPRESS)
     args = p.parse_args(argv)
+    SYSTEMS[:] = [s for s in SYSTEMS if s in args.systems.split(",")]
     if args.work:
         kind, system, corpus, folder, *rest = args.work
         if kind == "build":
+            BUILD_FLAGS[:] = rest
             res = work_build(system, Path(corpus), Path(folder))
         elif kind == "prune":
             res = work_prune_modes(Path(folder), json.loads(Path(rest[0]).read_text()))
@@ -368,12 +543,14 @@ def main(argv: list[str] | None = None) -> int:
             )
         print(json.dumps(res))
         return 0
+    if args.no_vectors:
+        BUILD_FLAGS.append("novectors")
     words = foldoc_words()
     results: dict[int, dict[str, dict[str, Any]]] = {}
     with tempfile.TemporaryDirectory(prefix="hw-bench-") as tmp:
         for n in (int(s) for s in args.sizes.split(",")):
             results[n] = run_size(n, Path(tmp), words)
-    md = table(results)
+    md = table(results) + "\n\n" + build_table(results)
     print(md)
     if args.out:
         args.out.write_text(md + "\n")
