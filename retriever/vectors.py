@@ -18,7 +18,7 @@ float16). gensim's own model file is not kept.
 from __future__ import annotations
 
 import time
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
@@ -119,15 +119,23 @@ def _article_lines(folder: Path, n_docs: int, analyzer: Analyzer) -> Iterator[st
 
 
 def train(
-    folder: Path, n_docs: int, analyzer: Analyzer, settings: VectorSettings, progress: bool
+    folder: Path,
+    n_docs: int,
+    analyzer: Analyzer,
+    settings: VectorSettings,
+    progress: bool,
+    extra: Iterable[str] = (),
 ) -> tuple[list[str], np.ndarray]:
-    """Train word vectors on the articles stored in `folder`: (words, float32 vectors)."""
+    """Train word vectors on the articles stored in `folder`, and on the `extra` lines of
+    analyzed tokens (space-separated) after them: (words, float32 vectors)."""
     from gensim.models import Word2Vec  # imported here: gensim takes a second to import
     from gensim.models.callbacks import CallbackAny2Vec
 
     line_file = folder / ".vector-training.txt"
     with open(line_file, "w", encoding="utf-8") as fh:
         for line in _article_lines(folder, n_docs, analyzer):
+            fh.write(line + "\n")
+        for line in extra:
             fh.write(line + "\n")
     bar = tqdm(total=settings.epochs, desc="word vectors", unit=" epochs", disable=not progress)
 
@@ -160,7 +168,7 @@ def train(
     return words, np.ascontiguousarray(model.wv.vectors, dtype=np.float32)
 
 
-def _body_counts(folder: Path, manifest: dict[str, Any]) -> sp.csr_matrix:
+def body_counts(folder: Path, manifest: dict[str, Any]) -> sp.csr_matrix:
     """Article-major body term counts (articles x index terms) from a folder's postings."""
     counts = manifest["counts"]
     n_docs, n_terms, nnz = (
@@ -218,7 +226,7 @@ def write_article_vectors(
     out = np.lib.format.open_memmap(
         path, mode="w+", dtype=settings.dtype, shape=(n_docs, settings.dim)
     )
-    article_vectors(_body_counts(folder, manifest), rows, wordvec, weight, out)
+    article_vectors(body_counts(folder, manifest), rows, wordvec, weight, out)
     out.flush()
     empty = int(np.count_nonzero(~np.any(out != 0, axis=1)))
     del out
@@ -254,7 +262,7 @@ def add_to_folder(
     n_docs = int(manifest["counts"]["articles"])
     if from_folder is None:
         words, wordvec = train(folder, n_docs, analyzer, settings, progress)
-        weight = _idf_weights(folder, manifest, words)
+        weight = idf_weights(folder, manifest, words)
         trained = True
     else:
         old = DenseVectors.open(from_folder, store.read_manifest(from_folder))
@@ -274,7 +282,7 @@ def add_to_folder(
     store.write_json(folder / store.MANIFEST, manifest)
 
 
-def _idf_weights(folder: Path, manifest: dict[str, Any], words: list[str]) -> np.ndarray:
+def idf_weights(folder: Path, manifest: dict[str, Any], words: list[str]) -> np.ndarray:
     """Each word's weight: its always-positive IDF log(1 + (N - df + 0.5) / (df + 0.5)) over
     the article texts (Lucene's form, so no word counts against an article). float32."""
     counts = manifest["counts"]

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
@@ -142,6 +142,34 @@ def labelled_prefixes(index: Index, clues: Sequence[LabelledClue], plan: PrefixP
     return out
 
 
+def _find_all(
+    index: Index,
+    tokens_all: list[list[str]],
+    k: int,
+    policy: CandidatePolicy,
+    policy_for: Callable[[LabelledClue], CandidatePolicy] | None,
+    pre: Prefixes,
+    progress: bool,
+) -> list[tuple[list[Hit], DenseInfo | None]]:
+    """Every prefix's candidates, searched in batches of prefixes sharing a policy."""
+    policies = [
+        policy if policy_for is None else policy_for(pre.kept[cid]) for cid, *_ in pre.owners
+    ]
+    found: list[tuple[list[Hit], DenseInfo | None] | None] = [None] * len(tokens_all)
+    with tqdm(
+        total=len(tokens_all), desc="candidates", unit=" prefixes", disable=not progress
+    ) as bar:
+        for pol in dict.fromkeys(policies):
+            at = [i for i, p in enumerate(policies) if p == pol]
+            for s in range(0, len(at), 256):  # batches: one kernel call each
+                chunk = at[s : s + 256]
+                got = find_candidates(index, [tokens_all[i] for i in chunk], k, pol)
+                for i, res in zip(chunk, got, strict=True):
+                    found[i] = res
+                bar.update(len(chunk))
+    return [f for f in found if f is not None]
+
+
 def build_table(
     index: Index,
     clues: Sequence[LabelledClue],
@@ -153,11 +181,13 @@ def build_table(
     metadata: MetadataColumns | None = None,
     candidates: CandidatePolicy | None = None,
     progress: bool = False,
+    policy_for: Callable[[LabelledClue], CandidatePolicy] | None = None,
 ) -> TrainingTable:
     """Search every prefix of every clue, featurize its candidates and label them.
 
     The candidate sets are made as serving makes them (`find_candidates` with `candidates`,
-    BM25's top k by default).
+    BM25's top k by default); `policy_for` gives a clue's own policy instead (the cross-fitted
+    vectors of reranker/training/refine.py).
     """
     plan = plan or PrefixPlan()
     metadata = metadata or MetadataColumns()
@@ -167,14 +197,7 @@ def build_table(
     # Each prefix is analyzed once: its tokens serve the search and the features.
     tokens_all = [index.analyzer.tokens(t) for t in texts]
     words_all = [index.analyzer.words(t) for t in texts]
-    found: list[tuple[list[Hit], DenseInfo | None]] = []
-    with tqdm(
-        total=len(tokens_all), desc="candidates", unit=" prefixes", disable=not progress
-    ) as bar:
-        for i in range(0, len(tokens_all), 256):  # batches: one kernel call each
-            chunk = tokens_all[i : i + 256]
-            found.extend(find_candidates(index, chunk, k, policy))
-            bar.update(len(chunk))
+    found = _find_all(index, tokens_all, k, policy, policy_for, pre, progress)
     names = list(feature_names)
     all_names = names + metadata.names
     blocks: list[np.ndarray] = []

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -23,6 +23,7 @@ from .fusion import tune_fusion
 from .logs import LogReport, read_logs
 from .measures import candidate_metrics, clue_log_loss, clue_metrics
 from .presence import fit_presence
+from .refine import Refined, refine_all
 from .schedule import replay_rows, tune_schedule
 from .table import PrefixPlan, TrainingTable, build_table
 
@@ -93,11 +94,14 @@ def train(
     progress: bool = False,
     registry: FeatureRegistry | None = None,
     candidates: str = "auto",
+    refine_vectors: bool = True,
 ) -> TrainResult:
     """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON.
 
     candidates: "auto" makes hybrid candidate sets (BM25 + word vectors, the fusion weight
     chosen on these logs) when the index has word vectors, else BM25's; "bm25" always BM25's.
+    refine_vectors: with hybrid candidates, train the vectors again with the labelled clues
+    (reranker/training/refine.py; the rows cross-fitted, the served vectors refined on all).
     """
     if candidates not in ("auto", "bm25"):
         raise ValueError(f"candidates must be 'auto' or 'bm25', got {candidates!r}")
@@ -114,8 +118,20 @@ def train(
     )
     fusion_rows: list[dict[str, Any]] = []
     policy = CandidatePolicy()
+    refined: Refined | None = None
+    policy_for = None
     if candidates == "auto" and index.dense is not None:
-        policy, fusion_rows = tune_fusion(index, clues, plan, k, progress=progress)
+        labelled = [c for c in clues if c.answer is not None]
+        if refine_vectors and labelled:
+            refined = refine_all(index, labelled, progress=progress)
+            policy_for = refined.policy_for(CandidatePolicy("hybrid"))
+        policy, fusion_rows = tune_fusion(
+            index, clues, plan, k, progress=progress, policy_for=policy_for
+        )
+        if refined is not None:
+            # The table's rows: the chosen weight, each clue with its other fold's vectors.
+            policy_for = refined.policy_for(policy)
+            policy = replace(policy, vectors=refined.served)
     if policy.mode == "bm25" and not features:
         # Without vectors the dense features are constant: leave them out of the model.
         names = [n for n in names if reg[n].group != DENSE]
@@ -129,6 +145,7 @@ def train(
         metadata=meta,
         candidates=policy,
         progress=progress,
+        policy_for=policy_for,
     )
     estimator = Reranker(calibration=calibration, verbose=progress).fit(
         table.X, table.y, table.clue_id, table.feature_names
@@ -174,6 +191,7 @@ def train(
             "torn_lines": report.torn_lines,
             "served_without_feedback": report.served_without_feedback,
             "fusion_tuning": fusion_rows,
+            "refined_vectors": None if refined is None else refined.summary(),
         },
         presence=presence.to_dict(),
         candidates=policy.to_dict(),

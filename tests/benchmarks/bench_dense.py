@@ -80,9 +80,7 @@ def build(work: Path, with_vectors: bool, train_sample: int, ann_m: int) -> None
         build_index(_sample_corpus(work, train_sample), sample, vectors={"ann_min_articles": 10**9})
         trained = time.perf_counter() - t
         index = build_index(corpus, out, vectors=False)
-        vecs.add_to_folder(
-            out, index.analyzer, vecs.VectorSettings(**settings), from_folder=sample
-        )
+        vecs.add_to_folder(out, index.analyzer, vecs.VectorSettings(**settings), from_folder=sample)
         extra = {"sample_build_seconds": trained}
     else:
         build_index(corpus, out, vectors=settings if with_vectors else False)
