@@ -38,9 +38,7 @@ def _refined(folder: Path, lines: list[str]) -> tuple[list[str], np.ndarray, np.
     return words, wordvec, vecs.idf_weights(folder, idx.manifest, words)
 
 
-def test_a_generation_is_stored_named_by_content_and_searched(
-    tmp_path: Path, built: Path
-) -> None:
+def test_a_generation_is_stored_named_by_content_and_searched(tmp_path: Path, built: Path) -> None:
     folder = tmp_path / "idx"
     shutil.copytree(built, folder)
     words, wordvec, weight = _refined(folder, ["zzqextra zzqextra token"] * 5)
