@@ -21,9 +21,11 @@ from typing import Any
 import numpy as np
 
 from reranker import rank_clues
+from reranker.candidates import CandidatePolicy, dense_of, fused_rows, search_pools
 from reranker.training import train
 from retriever import Index, build_index
 
+from .evaluate import DEPTH, _metrics
 from .jargon_clues import Clue, build_set, truncate
 
 SHARES = (1.0, 0.5)
@@ -47,6 +49,23 @@ def score(index: Index, model: Any, test: Sequence[Clue]) -> dict[str, dict[str,
     return out
 
 
+def retrieval(index: Index, policy: CandidatePolicy, test: Sequence[Clue]) -> dict[str, Any]:
+    """Before the reranker: the policy's vectors alone and its fused list (top 100 each)."""
+    dense = dense_of(index, policy)
+    if dense is None:
+        raise RuntimeError("the evaluation index has no vectors")
+    answers = [c.answer for c in test]
+    rows: dict[str, Any] = {}
+    for share in SHARES:
+        tokens = index.analyzer.tokens_many([truncate(c.text, share) for c in test])
+        pools = search_pools(index, tokens, DEPTH, policy)
+        alone = [index.ids.take(p.dense_rows) for p in pools]
+        fused = [index.ids.take(fused_rows(p, DEPTH, policy)) for p in pools]
+        rows.setdefault("vectors alone", {})[f"{share:.0%}"] = _metrics(alone, answers)
+        rows.setdefault(f"hybrid, w {policy.weight}", {})[f"{share:.0%}"] = _metrics(fused, answers)
+    return rows
+
+
 def run(out: Path, systems: Sequence[str] = ("bm25", "hybrid", "refined")) -> dict[str, Any]:
     """Train each system's model on the training clues and score it on the test clues."""
     records, train_clues, test, counts = build_set()
@@ -61,16 +80,21 @@ def run(out: Path, systems: Sequence[str] = ("bm25", "hybrid", "refined")) -> di
         "refined": {},
     }
     table: dict[str, Any] = {}
+    before: dict[str, Any] = {}
     for name in systems:
         res = train(index, [log], out / f"model-{name}.json", **options[name])
         c = res.artifact["candidates"]
+        if name != "bm25":
+            kind = "refined" if c["vectors"] else "corpus"
+            for row, by_share in retrieval(index, res.model.candidates, test).items():
+                before[f"{row} ({kind} vectors)"] = by_share
         label = {
             "bm25": "BM25 + reranker",
             "hybrid": f"hybrid (w {c['weight']}, corpus vectors) + reranker",
             "refined": f"hybrid (w {c['weight']}, refined vectors) + reranker",
         }[name]
         table[label] = score(index, res.model, test)
-    return {"table": table, "counts": counts}
+    return {"table": table, "retrieval": before, "counts": counts}
 
 
 def main(argv: Sequence[str] | None = None) -> None:
@@ -81,6 +105,15 @@ def main(argv: Sequence[str] | None = None) -> None:
         out = args.out or Path(tmp)
         out.mkdir(parents=True, exist_ok=True)
         result = run(out)
+        print("| system | words | top-1 | R@20 | R@100 | MRR |")
+        print("| --- | --- | --- | --- | --- | --- |")
+        for name, by_share in result["retrieval"].items():
+            for share, m in by_share.items():
+                print(
+                    f"| {name} | {share} | {m['top1']:.3f} | {m['r20']:.3f} | {m['r100']:.3f} "
+                    f"| {m['mrr']:.3f} |"
+                )
+        print()
         print("| candidates | words | top-1 | recall@20 | MRR |")
         print("| --- | --- | --- | --- | --- |")
         for name, by_share in result["table"].items():
