@@ -48,14 +48,23 @@ def test_vectors_add_answers_to_the_candidate_pool(tmp_path: Path) -> None:
 
 
 @pytest.mark.slow
-def test_hybrid_candidates_with_the_reranker_beat_bm25_with_it(tmp_path: Path) -> None:
+def test_refined_vectors_find_more_answers_and_keep_the_reranked_recall(tmp_path: Path) -> None:
     require_jargon()
-    # Open data (Debian's dict-foldoc articles, dict-jargon clues): the same reranker trained
-    # on the 196 training clues with BM25's candidates (`--candidates bm25`) and with the
-    # defaults (hybrid candidates, vectors refined on those clues), scored on the 190 test
-    # clues with only what training stored.
-    result = run(tmp_path, systems=("bm25", "refined"))
-    print(result["table"])
-    bm25 = result["table"].pop("BM25 + reranker")
-    [hybrid] = result["table"].values()
-    assert hybrid["100%"]["r20"] > bm25["100%"]["r20"]
+    # Open data (Debian's dict-foldoc articles, dict-jargon clues): the reranker trained on
+    # the 196 training clues with BM25's candidates (`--candidates bm25`), with hybrid ones
+    # on the index's own vectors (`--no-refine-vectors`) and with the defaults (vectors
+    # refined on those clues), each scored on the 190 test clues with only what it stored.
+    result = run(tmp_path)
+    print(result)
+    before, table = result["retrieval"], result["table"]
+    for share in ("100%", "50%"):
+        corpus = before["vectors alone (corpus vectors)"][share]
+        refined = before["vectors alone (refined vectors)"][share]
+        # Measured 0.353 -> 0.500 (100%) and 0.368 -> 0.468 (50%); margin for seeds/threads.
+        assert refined["r100"] >= corpus["r100"] + 0.05, share
+        assert refined["top1"] > corpus["top1"], share
+    bm25 = table.pop("BM25 + reranker")["100%"]
+    hybrid = next(v for n, v in table.items() if "refined" in n)["100%"]
+    # Measured 0.621 against 0.616: one clue, within noise (see README), so this checks
+    # that the hybrid keeps BM25's recall within two clues rather than that it wins.
+    assert hybrid["r20"] >= bm25["r20"] - 0.011
