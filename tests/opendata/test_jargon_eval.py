@@ -48,6 +48,7 @@ def test_vectors_add_answers_to_the_candidate_pool(tmp_path: Path) -> None:
 
 
 @pytest.mark.slow
+@pytest.mark.timeout(3600)  # three models, three trainings of the vectors: ~15 min on 2 cores
 def test_refined_vectors_find_more_answers_and_keep_the_reranked_recall(tmp_path: Path) -> None:
     require_jargon()
     # Open data (Debian's dict-foldoc articles, dict-jargon clues): the reranker trained on
