@@ -10,13 +10,16 @@ so every BM25 feature keeps its meaning, and the dense evidence rides along in `
 from __future__ import annotations
 
 import math
+import threading
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
 from typing import Any
+from weakref import WeakKeyDictionary
 
 import numpy as np
 
-from retriever import Hit, Index
+from retriever import Hit, Index, vecgen
+from retriever.dense import DenseSearcher
 from retriever.hybrid import FUSIONS, fuse
 
 from .errors import ModelFormatError
@@ -33,6 +36,9 @@ class CandidatePolicy:
     weight: float = 0.5  # BM25's share of the fused score (1.0: BM25's order over the pools)
     pool: int = 100  # articles taken from each of BM25 and the vectors before fusing
     fusion: str = "minmax"  # or "rrf" (reciprocal rank fusion)
+    # The vector generation of the index the dense side uses (retriever/vecgen.py): vectors
+    # refined on the labelled clues at training; "" for the index's own vectors.
+    vectors: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON data."""
@@ -61,7 +67,32 @@ class CandidatePolicy:
             raise ModelFormatError(f"{where}.pool must be a positive integer, got {pool!r}")
         if fusion not in FUSIONS:
             raise ModelFormatError(f"{where}.fusion must be one of {FUSIONS}, got {fusion!r}")
-        return cls(mode, float(weight), pool, fusion)
+        vectors = data.get("vectors", "")
+        if not isinstance(vectors, str) or (vectors and not vecgen.valid_name(vectors)):
+            raise ModelFormatError(
+                f"{where}.vectors must be a vector generation name (16 hex digits) or empty, "
+                f"got {vectors!r}"
+            )
+        return cls(mode, float(weight), pool, fusion, vectors)
+
+
+# Each index's opened vector generations, by name (an index is replaced, never changed).
+_GENERATIONS: WeakKeyDictionary[Index, dict[str, DenseSearcher]] = WeakKeyDictionary()
+_GEN_LOCK = threading.Lock()
+
+
+def dense_of(index: Index, policy: CandidatePolicy) -> DenseSearcher | None:
+    """The dense searcher a policy uses: the index's own vectors, or its refined generation
+    (IndexFormatError naming the folder when the index lacks it)."""
+    if not policy.vectors or index.dense is None:
+        return index.dense
+    with _GEN_LOCK:
+        opened = _GENERATIONS.setdefault(index, {})
+        if policy.vectors not in opened:
+            opened[policy.vectors] = DenseSearcher(
+                vecgen.open_generation(index.path, policy.vectors)
+            )
+        return opened[policy.vectors]
 
 
 @dataclass(frozen=True)
@@ -80,11 +111,13 @@ def search_pools(
     token_lists: Sequence[Sequence[str]],
     pool: int,
     allowed: np.ndarray | None = None,
+    policy: CandidatePolicy | None = None,
 ) -> list[Pools]:
-    """BM25's and the vectors' top `pool` of each clue (the vectors' empty without them);
-    with `allowed` (a metadata filter's row mask), both searched among those rows only."""
+    """BM25's and the vectors' top `pool` of each clue (the vectors' empty without them),
+    with the vectors `policy` names (default: the index's own); with `allowed` (a metadata
+    filter's row mask), both searched among those rows only."""
     bm25 = index.search_token_lists(token_lists, pool, allowed=allowed)
-    dense = index.dense
+    dense = dense_of(index, policy or CandidatePolicy())
     empty = (np.empty(0, dtype=np.int64), np.empty(0))
     if dense is None:
         queries: list[np.ndarray | None] = [None] * len(token_lists)
@@ -114,7 +147,12 @@ def fused_rows(p: Pools, k: int, policy: CandidatePolicy) -> np.ndarray:
 
 
 def _hybrid_set(
-    index: Index, tokens: Sequence[str], p: Pools, k: int, policy: CandidatePolicy
+    index: Index,
+    tokens: Sequence[str],
+    p: Pools,
+    k: int,
+    policy: CandidatePolicy,
+    dense: DenseSearcher | None,
 ) -> tuple[list[Hit], DenseInfo]:
     rows = fused_rows(p, k, policy)
     # Every member's real BM25 score, also for those only the vectors found.
@@ -123,7 +161,6 @@ def _hybrid_set(
     if missing:
         known.update(index.score_rows(tokens, np.asarray(missing, dtype=np.int64)))
     bm25 = np.array([known[r] for r in rows.tolist()], dtype=np.float64)
-    dense = index.dense
     cos = dense.cosines(p.query, rows) if dense is not None else np.zeros(rows.size)
     d_rank = {r: i + 1 for i, r in enumerate(p.dense_rows.tolist())}
     b_member = set(p.bm25_rows.tolist())
@@ -154,8 +191,9 @@ def find_candidates(
     """
     if policy.mode == "bm25" or index.dense is None:
         return [(hits, None) for hits in index.search_token_lists(token_lists, k, allowed=allowed)]
-    pools = search_pools(index, token_lists, max(policy.pool, k), allowed)
+    dense = dense_of(index, policy)
+    pools = search_pools(index, token_lists, max(policy.pool, k), allowed, policy)
     return [
-        _hybrid_set(index, tokens, p, k, policy)
+        _hybrid_set(index, tokens, p, k, policy, dense)
         for tokens, p in zip(token_lists, pools, strict=True)
     ]

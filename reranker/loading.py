@@ -16,8 +16,9 @@ from typing import Any
 import numpy as np
 
 from retriever import Index
+from retriever.errors import IndexFormatError
 
-from .candidates import CandidatePolicy
+from .candidates import CandidatePolicy, dense_of
 from .errors import ModelFormatError, ModelMismatchError
 from .features import (
     FEATURE_SET_VERSION,
@@ -171,6 +172,11 @@ def load_model(
             f"{path}: the model was trained on hybrid candidates (BM25 + word vectors), but "
             f"the index {index.path} has no word vectors; rebuild it without --no-vectors"
         )
+    if index is not None and served.candidates.mode == "hybrid" and served.candidates.vectors:
+        try:  # open the refined vectors now, so a missing generation fails the load
+            dense_of(index, served.candidates)
+        except IndexFormatError as exc:
+            raise ModelMismatchError(f"{path}: {exc}") from exc
     if index is not None:
         # One pass over the qualifiers before serving; titles are analyzed per row when first
         # seen among the candidates, so a large index costs nothing more here.

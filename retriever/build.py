@@ -16,7 +16,7 @@ import numpy as np
 import scipy.sparse as sp
 from tqdm.auto import tqdm
 
-from . import bm25, bounds, columns, metacolumns, store
+from . import bm25, bounds, columns, metacolumns, store, vecgen
 from . import vectors as vecs
 from .analyzer import Analyzer, AnalyzerConfig
 from .corpus import Article, CorpusError, ReadReport, file_checksum, read_articles, split_title
@@ -373,4 +373,6 @@ def update_index(
             # (no training; a kept article's vector comes out as before).
             settings = vecs.VectorSettings.from_dict(vec_entry["settings"])
             vecs.add_to_folder(tmp, an, settings, from_folder=Path(index_dir))
+            # Refined vector generations too, so models trained with them keep serving.
+            vecgen.carry_over(Path(index_dir), tmp)
     return load_index(index_dir)

@@ -17,6 +17,7 @@ float16). gensim's own model file is not kept.
 
 from __future__ import annotations
 
+import itertools
 import time
 from collections.abc import Iterable, Iterator
 from dataclasses import asdict, dataclass
@@ -58,9 +59,9 @@ class VectorSettings:
     ann_min_articles: int = 10_000
     ann_m: int = 16  # HNSW graph degree
     ann_ef_construction: int = 100
-    # 128: recall@20 0.988 against exact at 100k articles in 0.36 ms (p50), about one BM25
-    # query; 256 gave 0.997 in 0.58 ms, 64 gave 0.961.
-    ann_ef_search: int = 128
+    # 256: recall@10 0.985 against exact at 1M articles in 0.39 ms (p50), a fifth of a BM25
+    # query there (128 gave 0.976; at 100k, 128 gave recall@20 0.988 and 256 0.997 in 0.58 ms).
+    ann_ef_search: int = 256
     # Training threads; 0: up to 4 of this machine's cores. Only 1 gives the very same
     # vectors on every build (gensim's threads update shared weights in no fixed order).
     threads: int = 0
@@ -119,10 +120,16 @@ def article_lines(folder: Path, n_docs: int, analyzer: Analyzer) -> Iterator[str
 
 
 def train(
-    folder: Path, n_docs: int, analyzer: Analyzer, settings: VectorSettings, progress: bool
+    folder: Path,
+    n_docs: int,
+    analyzer: Analyzer,
+    settings: VectorSettings,
+    progress: bool,
+    extra: Iterable[str] = (),
 ) -> tuple[list[str], np.ndarray]:
-    """Train word vectors on the articles stored in `folder`: (words, float32 vectors)."""
-    lines = article_lines(folder, n_docs, analyzer)
+    """Train word vectors on the articles stored in `folder`, and on the `extra` lines of
+    analyzed tokens (space-separated) after them: (words, float32 vectors)."""
+    lines = itertools.chain(article_lines(folder, n_docs, analyzer), extra)
     return train_lines(lines, folder / ".vector-training.txt", settings, progress)
 
 
@@ -167,7 +174,7 @@ def train_lines(
     return words, np.ascontiguousarray(model.wv.vectors, dtype=np.float32)
 
 
-def _body_counts(folder: Path, manifest: dict[str, Any]) -> sp.csr_matrix:
+def body_counts(folder: Path, manifest: dict[str, Any]) -> sp.csr_matrix:
     """Article-major body term counts (articles x index terms) from a folder's postings."""
     counts = manifest["counts"]
     n_docs, n_terms, nnz = (
@@ -225,7 +232,7 @@ def write_article_vectors(
     out = np.lib.format.open_memmap(
         path, mode="w+", dtype=settings.dtype, shape=(n_docs, settings.dim)
     )
-    article_vectors(_body_counts(folder, manifest), rows, wordvec, weight, out)
+    article_vectors(body_counts(folder, manifest), rows, wordvec, weight, out)
     out.flush()
     empty = int(np.count_nonzero(~np.any(out != 0, axis=1)))
     del out
@@ -261,7 +268,7 @@ def add_to_folder(
     n_docs = int(manifest["counts"]["articles"])
     if from_folder is None:
         words, wordvec = train(folder, n_docs, analyzer, settings, progress)
-        weight = _idf_weights(folder, manifest, words)
+        weight = folder_idf_weights(folder, manifest, words)
         trained = True
     else:
         old = DenseVectors.open(from_folder, store.read_manifest(from_folder))
@@ -281,7 +288,7 @@ def add_to_folder(
     store.write_json(folder / store.MANIFEST, manifest)
 
 
-def _idf_weights(folder: Path, manifest: dict[str, Any], words: list[str]) -> np.ndarray:
+def folder_idf_weights(folder: Path, manifest: dict[str, Any], words: list[str]) -> np.ndarray:
     """Each word's weight: its always-positive IDF log(1 + (N - df + 0.5) / (df + 0.5)) over
     the article texts (Lucene's form, so no word counts against an article). float32."""
     counts = manifest["counts"]
@@ -292,7 +299,7 @@ def _idf_weights(folder: Path, manifest: dict[str, Any], words: list[str]) -> np
 
 def idf_weights(df_term: np.ndarray, rows: np.ndarray, n_words: int, n_docs: int) -> np.ndarray:
     """Each word's weight from its index term's document frequency `df_term` (rows: index
-    term id -> word row or -1); see `_idf_weights`. float32."""
+    term id -> word row or -1); see `folder_idf_weights`. float32."""
     df = np.zeros(n_words)
     has = rows >= 0
     df[rows[has]] = np.asarray(df_term, dtype=np.float64)[has]

@@ -103,6 +103,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         "chosen on the logs) when the index has word vectors; bm25: BM25's top k only",
     )
     p.add_argument(
+        "--no-refine-vectors",
+        dest="refine_vectors",
+        action="store_false",
+        help="with hybrid candidates, use the index's own word vectors instead of training them "
+        "again with the labelled clues and their answers (stored in the index folder)",
+    )
+    p.add_argument(
         "--meta-feature",
         action="append",
         default=[],
@@ -176,7 +183,8 @@ def _rules_text(rules: dict[str, Any]) -> str:
 def _candidates_text(c: dict[str, object]) -> str:
     if c["mode"] == "bm25":
         return "BM25 top k"
-    return f"hybrid: BM25 + word vectors, weight {c['weight']}, pools of {c['pool']}"
+    vectors = f"refined vectors {c['vectors']}" if c.get("vectors") else "word vectors"
+    return f"hybrid: BM25 + {vectors}, weight {c['weight']}, pools of {c['pool']}"
 
 
 def cmd_train(args: argparse.Namespace) -> int:
@@ -206,6 +214,7 @@ def cmd_train(args: argparse.Namespace) -> int:
             candidates=args.candidates,
             runner=runner,
             fit=args.fit,
+            refine_vectors=args.refine_vectors,
         )
     a = res.artifact
     summary = {

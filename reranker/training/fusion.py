@@ -8,7 +8,7 @@ choice costs one search per prefix, not one per weight.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -16,7 +16,7 @@ from tqdm.auto import tqdm
 
 from retriever import Index
 
-from ..candidates import CandidatePolicy, fused_rows, search_pools
+from ..candidates import CandidatePolicy, Pools, fused_rows, search_pools
 from .logs import LabelledClue
 from .prefixrows import PrefixPlan, labelled_prefixes
 
@@ -32,23 +32,39 @@ def tune_fusion(
     pool: int = 100,
     weights: Sequence[float] = WEIGHTS,
     progress: bool = False,
+    policy_for: Callable[[LabelledClue], CandidatePolicy] | None = None,
 ) -> tuple[CandidatePolicy, list[dict[str, Any]]]:
-    """The hybrid policy with the best recall@k on the labelled prefixes, and the table."""
+    """The hybrid policy with the best recall@k on the labelled prefixes, and the table.
+
+    `policy_for` names the vectors each clue's prefixes are searched with (the cross-fitted
+    refined vectors); the chosen policy keeps the index's own vectors, the caller sets them.
+    """
     pre = labelled_prefixes(index, clues, plan)
     keep = [i for i, (_, _, gold, _) in enumerate(pre.owners) if gold is not None]
     tokens = [index.analyzer.tokens(pre.texts[i]) for i in keep]
     golds = np.array([pre.owners[i][2] for i in keep], dtype=np.int64)
     full = np.array([pre.owners[i][1] == 1.0 for i in keep], dtype=bool)
-    pools = []
+    own = CandidatePolicy("hybrid", 1.0, pool)
+    policies = [own if policy_for is None else policy_for(pre.kept[pre.owners[i][0]]) for i in keep]
+    pools: list[Pools | None] = [None] * len(tokens)
     with tqdm(total=len(tokens), desc="fusion", unit=" prefixes", disable=not progress) as bar:
-        for s in range(0, len(tokens), 256):
-            pools.extend(search_pools(index, tokens[s : s + 256], max(pool, k)))
-            bar.update(min(256, len(tokens) - s))
+        for pol in dict.fromkeys(policies):
+            at = [j for j, p in enumerate(policies) if p == pol]
+            for s in range(0, len(at), 256):
+                chunk = at[s : s + 256]
+                got = search_pools(index, [tokens[j] for j in chunk], max(pool, k), policy=pol)
+                for j, res in zip(chunk, got, strict=True):
+                    pools[j] = res
+                bar.update(len(chunk))
     rows = []
     for w in weights:
         policy = CandidatePolicy("hybrid", float(w), pool)
         found = np.array(
-            [g in fused_rows(p, k, policy) for g, p in zip(golds.tolist(), pools, strict=True)],
+            [
+                g in fused_rows(p, k, policy)
+                for g, p in zip(golds.tolist(), pools, strict=True)
+                if p is not None
+            ],
             dtype=bool,
         )
         rows.append(

@@ -94,6 +94,29 @@ def labelled_prefixes(index: Index, clues: Sequence[LabelledClue], plan: PrefixP
     return out
 
 
+def _find_all(
+    index: Index,
+    tokens_all: list[list[str]],
+    k: int,
+    policies: Sequence[CandidatePolicy],
+    progress: bool,
+) -> list[tuple[list[Hit], DenseInfo | None]]:
+    """Every prefix's candidates, searched in batches of prefixes sharing a policy."""
+    found: list[tuple[list[Hit], DenseInfo | None] | None] = [None] * len(tokens_all)
+    with tqdm(
+        total=len(tokens_all), desc="candidates", unit=" prefixes", disable=not progress
+    ) as bar:
+        for pol in dict.fromkeys(policies):
+            at = [i for i, p in enumerate(policies) if p == pol]
+            for s in range(0, len(at), 256):  # batches: one kernel call each
+                chunk = at[s : s + 256]
+                got = find_candidates(index, [tokens_all[i] for i in chunk], k, pol)
+                for i, res in zip(chunk, got, strict=True):
+                    found[i] = res
+                bar.update(len(chunk))
+    return [f for f in found if f is not None]
+
+
 def prefix_rows(
     index: Index,
     texts: Sequence[str],
@@ -105,22 +128,18 @@ def prefix_rows(
     k: int,
     metadata: MetadataColumns,
     candidates: CandidatePolicy,
+    policies: Sequence[CandidatePolicy] | None = None,
     progress: bool = False,
 ) -> dict[str, np.ndarray]:
     """The table's columns (`X` and the bookkeeping ones) for some prefixes: `texts`, their
     `owners` (clue, fraction, gold row, metadata) and group ids. Each prefix's rows depend
-    on that prefix alone, so blocks of prefixes give the rows the whole list gives."""
+    on that prefix alone, so blocks of prefixes give the rows the whole list gives.
+    `policies`: each prefix's own candidate policy instead of `candidates` (the cross-fitted
+    vectors of reranker/training/refine.py)."""
     # Each prefix is analyzed once: its tokens serve the search and the features.
     tokens_all = [index.analyzer.tokens(t) for t in texts]
     words_all = [index.analyzer.words(t) for t in texts]
-    found: list[tuple[list[Hit], DenseInfo | None]] = []
-    with tqdm(
-        total=len(tokens_all), desc="candidates", unit=" prefixes", disable=not progress
-    ) as bar:
-        for i in range(0, len(tokens_all), 256):  # batches: one kernel call each
-            chunk = tokens_all[i : i + 256]
-            found.extend(find_candidates(index, chunk, k, candidates))
-            bar.update(len(chunk))
+    found = _find_all(index, tokens_all, k, policies or [candidates] * len(texts), progress)
     names = list(feature_names)
     all_names = names + metadata.names
     blocks: list[np.ndarray] = []

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
@@ -82,20 +82,25 @@ def build_table(
     candidates: CandidatePolicy | None = None,
     progress: bool = False,
     runner: Runner | None = None,
+    policy_for: Callable[[LabelledClue], CandidatePolicy] | None = None,
 ) -> TrainingTable:
     """Search every prefix of every clue, featurize its candidates and label them.
 
     The candidate sets are made as serving makes them (`find_candidates` with `candidates`,
     BM25's top k by default). `runner`: a Ray runner (retriever/cluster.py) to build the
     rows in blocks of prefixes on its workers (reranker/training/tableblocks.py); the table
-    is the same.
+    is the same. `policy_for` gives a clue's own policy instead of `candidates` (the
+    cross-fitted vectors of reranker/training/refine.py).
     """
     plan = plan or PrefixPlan()
     metadata = metadata or MetadataColumns()
     policy = candidates or CandidatePolicy()
     pre = labelled_prefixes(index, clues, plan)
+    policies = None if policy_for is None else [policy_for(pre.kept[cid]) for cid, *_ in pre.owners]
     if runner is not None and runner.ray is not None:
-        cols = distributed_rows(runner, index, pre, registry, feature_names, k, metadata, policy)
+        cols = distributed_rows(
+            runner, index, pre, registry, feature_names, k, metadata, policy, policies
+        )
     else:
         cols = prefix_rows(
             index,
@@ -107,6 +112,7 @@ def build_table(
             k=k,
             metadata=metadata,
             candidates=policy,
+            policies=policies,
             progress=progress,
         )
     return TrainingTable(

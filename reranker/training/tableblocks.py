@@ -64,6 +64,9 @@ class TableWorker:
             k=self.k,
             metadata=self.metadata,
             candidates=self.policy,
+            policies=[
+                CandidatePolicy.from_dict(json.loads(str(p))) for p in batch["policy"].tolist()
+            ],
         )
         out["seq"] = out["group"].copy()
         return out
@@ -78,8 +81,10 @@ def distributed_rows(
     k: int,
     metadata: MetadataColumns,
     policy: CandidatePolicy,
+    policies: Sequence[CandidatePolicy] | None = None,
 ) -> dict[str, np.ndarray]:
-    """`prefix_rows` of every prefix in `pre`, built by the runner's workers, in order."""
+    """`prefix_rows` of every prefix in `pre`, built by the runner's workers, in order;
+    `policies`: each prefix's own candidate policy instead of `policy`."""
     n = len(pre.texts)
     columns: dict[str, Any] = {
         "seq": np.arange(n, dtype=np.int64),
@@ -88,6 +93,10 @@ def distributed_rows(
         "fraction": np.asarray([o[1] for o in pre.owners], dtype=np.float64),
         "gold": np.asarray([-1 if o[2] is None else o[2] for o in pre.owners], dtype=np.int64),
         "meta": np.asarray([json.dumps(o[3]) for o in pre.owners], dtype=object),
+        "policy": np.asarray(
+            [json.dumps((policies[i] if policies else policy).to_dict()) for i in range(n)],
+            dtype=object,
+        ),
     }
     args = (
         str(index.path),

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -24,6 +24,7 @@ from .fusion import tune_fusion
 from .logs import LogReport, read_logs
 from .measures import candidate_metrics, clue_log_loss, clue_metrics
 from .presence import fit_presence
+from .refine import Refined, refine_all
 from .schedule import replay_rows, tune_schedule
 from .table import PrefixPlan, TrainingTable, build_table
 
@@ -96,6 +97,7 @@ def train(
     candidates: str = "auto",
     runner: Runner | None = None,
     fit: str = "auto",
+    refine_vectors: bool = True,
 ) -> TrainResult:
     """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON.
 
@@ -104,6 +106,8 @@ def train(
     runner: a Ray runner (retriever/cluster.py) that builds the training table in blocks.
     fit: 'memory' (scikit-learn), 'blocks' (the map-reduce fit, as `runner`'s tasks) or
     'auto' (blocks for tables over blockfit.MEMORY_FIT_BYTES).
+    refine_vectors: with hybrid candidates, train the vectors again with the labelled clues
+    (reranker/training/refine.py; the rows cross-fitted, the served vectors refined on all).
     """
     if candidates not in ("auto", "bm25"):
         raise ValueError(f"candidates must be 'auto' or 'bm25', got {candidates!r}")
@@ -120,8 +124,20 @@ def train(
     )
     fusion_rows: list[dict[str, Any]] = []
     policy = CandidatePolicy()
+    refined: Refined | None = None
+    policy_for = None
     if candidates == "auto" and index.dense is not None:
-        policy, fusion_rows = tune_fusion(index, clues, plan, k, progress=progress)
+        labelled = [c for c in clues if c.answer is not None]
+        if refine_vectors and labelled:
+            refined = refine_all(index, labelled, progress=progress)
+            policy_for = refined.policy_for(CandidatePolicy("hybrid"))
+        policy, fusion_rows = tune_fusion(
+            index, clues, plan, k, progress=progress, policy_for=policy_for
+        )
+        if refined is not None:
+            # The table's rows: the chosen weight, each clue with its other fold's vectors.
+            policy_for = refined.policy_for(policy)
+            policy = replace(policy, vectors=refined.served)
     if policy.mode == "bm25" and not features:
         # Without vectors the dense features are constant: leave them out of the model.
         names = [n for n in names if reg[n].group != DENSE]
@@ -136,6 +152,7 @@ def train(
         candidates=policy,
         progress=progress,
         runner=runner,
+        policy_for=policy_for,
     )
     estimator = Reranker(calibration=calibration, verbose=progress, fit=fit, runner=runner).fit(
         table.X, table.y, table.clue_id, table.feature_names
@@ -181,6 +198,7 @@ def train(
             "torn_lines": report.torn_lines,
             "served_without_feedback": report.served_without_feedback,
             "fusion_tuning": fusion_rows,
+            "refined_vectors": None if refined is None else refined.summary(),
         },
         presence=presence.to_dict(),
         candidates=policy.to_dict(),

@@ -336,3 +336,25 @@ def test_warnings_go_to_stderr_when_the_model_loses_to_a_baseline(
     assert any(
         "loses to the baseline 'retrieval score alone' on top-1 accuracy" in s for s in lines
     )
+
+
+@pytest.mark.slow
+def test_train_refines_the_vectors_unless_told_not_to(world: World, tmp_path: Path) -> None:
+    plain = tmp_path / "plain.json"
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log, "--out", plain,
+        "--no-refine-vectors",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    art = json.loads(plain.read_text())
+    assert art["candidates"]["mode"] == "hybrid" and art["candidates"]["vectors"] == ""
+    assert art["training"]["refined_vectors"] is None
+    assert "refined vectors" not in out.stdout
+    refined = tmp_path / "refined.json"
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log, "--out", refined
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    name = json.loads(refined.read_text())["candidates"]["vectors"]
+    assert f"refined vectors {name}" in out.stdout
+    assert (world.index.path / f"vectors-{name}" / "docvec.npy").exists()

@@ -13,12 +13,12 @@ from reranker import ModelFormatError, ModelMismatchError, load_model, rank_clue
 from reranker.candidates import CandidatePolicy, find_candidates, search_pools
 from reranker.training import build_table, read_logs
 from reranker.training.train import TrainResult
-from retriever import build_index
+from retriever import build_index, vecgen
 from tests.reranker.conftest import World
 
 
 def test_the_trained_model_records_how_its_candidates_were_made(
-    world_trained: TrainResult,
+    world_trained: TrainResult, world: World
 ) -> None:
     a = world_trained.artifact
     tuning = a["training"]["fusion_tuning"]
@@ -28,8 +28,12 @@ def test_the_trained_model_records_how_its_candidates_were_made(
     best = max(r["recall_at_k"] for r in tuning)
     assert chosen["recall_at_k"] == best
     assert chosen["weight"] == max(r["weight"] for r in tuning if r["recall_at_k"] == best)
+    refined = a["training"]["refined_vectors"]
     assert a["candidates"] == {"mode": "hybrid", "weight": chosen["weight"], "pool": 100,
-                               "fusion": "minmax"}  # fmt: skip
+                               "fusion": "minmax", "vectors": refined["served"]}  # fmt: skip
+    # vectors refined on all clues for serving, one set per fold for the training rows
+    assert len({refined["served"], *refined["folds"]}) == 3
+    assert set(vecgen.names(world.index.path)) >= {refined["served"], *refined["folds"]}
     assert world_trained.model.candidates == CandidatePolicy.from_dict(a["candidates"])
     assert {"cosine", "in_both_pools"} <= set(a["feature_names"])
 
@@ -97,7 +101,15 @@ def test_pools_are_searched_once_and_bm25_mode_ignores_vectors(world: World) -> 
 
 @pytest.mark.parametrize(
     ("field", "value"),
-    [("mode", "magic"), ("weight", 1.5), ("weight", "half"), ("pool", 0), ("fusion", "sum")],
+    [
+        ("mode", "magic"),
+        ("weight", 1.5),
+        ("weight", "half"),
+        ("pool", 0),
+        ("fusion", "sum"),
+        ("vectors", "../elsewhere"),
+        ("vectors", 7),
+    ],
 )
 def test_a_damaged_candidates_section_names_its_field(field: str, value: Any) -> None:
     data = dict(CandidatePolicy("hybrid", 0.5, 100).to_dict(), **{field: value})
@@ -122,3 +134,56 @@ def test_bm25_candidates_on_request_train_as_before(world: World, tmp_path: Path
     assert res.artifact["candidates"]["mode"] == "bm25"
     assert res.artifact["training"]["fusion_tuning"] == []
     assert not {"cosine", "in_both_pools"} & set(res.artifact["feature_names"])
+
+
+def test_a_model_whose_refined_vectors_the_index_lacks_is_refused(
+    world_trained: TrainResult, world_model_path: Path, world: World, tmp_path: Path
+) -> None:
+    # The same articles built again: same index, but without the generation training wrote.
+    rebuilt = build_index(world.articles, tmp_path / "rebuilt", vectors=world.index.manifest[
+        "vectors"]["settings"])  # fmt: skip
+    name = world_trained.model.candidates.vectors
+    with pytest.raises(ModelMismatchError, match=f"no vector generation {name}"):
+        load_model(world_model_path, index=rebuilt)
+    # Older model files (no "vectors" field) use the index's own vectors, as before.
+    text = json.loads(world_model_path.read_text())
+    del text["candidates"]["vectors"]
+    assert CandidatePolicy.from_dict(text["candidates"]).vectors == ""
+
+
+def test_training_rows_use_vectors_refined_without_their_own_labels(
+    world_trained: TrainResult, world: World
+) -> None:
+    from reranker.training.refine import fold_of
+
+    refined = world_trained.artifact["training"]["refined_vectors"]
+    clues = [c for c in read_logs([world.train_log]) if c.answer][:40]
+    folds = {fold_of(world.index, c) for c in clues}
+    assert folds == {0, 1} and all(refined["clues_per_fold"])
+    # Folds split by answer: no answer article in both.
+    answers = [{world.index.resolve(c.answer) for c in clues if fold_of(world.index, c) == f}
+               for f in (0, 1)]  # fmt: skip
+    assert not answers[0] & answers[1]
+    model = world_trained.model
+    names = list(model.code_features)
+    # The training table's rows of a fold-0 clue are those made with fold 1's vectors, which
+    # never saw that clue; with the served vectors (refined on all) they differ.
+    from reranker.training.refine import Refined
+
+    crossfit = Refined(refined["served"], tuple(refined["folds"]),
+                       {id(c): fold_of(world.index, c) for c in clues})  # fmt: skip
+    both = build_table(world.index, clues, model.registry, names, k=model.k,
+                       candidates=model.candidates,
+                       policy_for=crossfit.policy_for(model.candidates))  # fmt: skip
+    cos = names.index("cosine")
+    for f in (0, 1):
+        mine = [c for c in clues if fold_of(world.index, c) == f]
+        other = CandidatePolicy.from_dict({**model.candidates.to_dict(),
+                                           "vectors": refined["folds"][1 - f]})  # fmt: skip
+        alone = build_table(world.index, mine, model.registry, names, k=model.k,
+                            candidates=other)  # fmt: skip
+        served = build_table(world.index, mine, model.registry, names, k=model.k,
+                             candidates=model.candidates)  # fmt: skip
+        rows = np.isin(both.clue_id, [i for i, c in enumerate(both.clues) if c in mine])
+        np.testing.assert_array_equal(both.X[rows], alone.X)
+        assert not np.array_equal(served.X[:, cos], alone.X[:, cos])
