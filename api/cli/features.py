@@ -8,8 +8,14 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from .console import check_k, print_json, show_progress, warn
-from .model import _fractions
-from .options import add_feature_option, add_index_option, add_log_option, add_ray_option
+from .options import (
+    add_feature_option,
+    add_index_option,
+    add_log_option,
+    add_prefix_options,
+    add_ray_option,
+    add_reporting_options,
+)
 from .records import output_format, plain, write_rows
 
 if TYPE_CHECKING:
@@ -55,27 +61,13 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "-k", type=int, default=None, help="candidates per prefix (default 20, or the model's)"
     )
-    p.add_argument(
-        "--prefixes",
-        type=_fractions,
-        default=None,
-        metavar="F,F,...",
-        help="shares of each clue's words that become rows (default 0.2,0.4,0.6,0.8,1, "
-        "or the model's)",
-    )
-    p.add_argument(
-        "--every-words",
-        type=int,
-        default=None,
-        metavar="N",
-        help="instead of --prefixes, take a prefix every N words",
+    add_prefix_options(
+        p,
+        "shares of each clue's words that become rows (default 0.2,0.4,0.6,0.8,1, or the model's)",
     )
     add_feature_option(p, "register a user-defined feature function (repeatable)")
     add_ray_option(p, "build the table in blocks of clue prefixes")
-    p.add_argument(
-        "--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping"
-    )
-    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    add_reporting_options(p, "the summary")
     p.set_defaults(func=cmd_export)
 
 

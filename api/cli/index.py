@@ -13,7 +13,7 @@ if TYPE_CHECKING:
 
 from . import index_tune
 from .console import check_k, format_table, human_bytes, print_json, show_progress
-from .options import add_filter_option
+from .options import add_filter_option, add_reporting_options
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -30,18 +30,13 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--out", type=Path, required=True, help="index folder to write (replaced only on success)"
     )
-    p.add_argument(
-        "--k1", type=float, default=1.5, help="BM25 term-frequency saturation (default 1.5)"
+    numbers = (
+        ("--k1", 1.5, "BM25 term-frequency saturation"),
+        ("--b", 0.75, "BM25 length normalization, 0..1"),
+        ("--epsilon", 0.25, "okapi IDF only: the floor for a negative IDF, a share of the mean"),
     )
-    p.add_argument(
-        "--b", type=float, default=0.75, help="BM25 length normalization, 0..1 (default 0.75)"
-    )
-    p.add_argument(
-        "--epsilon",
-        type=float,
-        default=0.25,
-        help="floor for negative IDF, as a share of the mean IDF (okapi only; default 0.25)",
-    )
+    for flag, default, text in numbers:
+        p.add_argument(flag, type=float, default=default, help=f"{text} (default {default:g})")
     p.add_argument(
         "--idf",
         choices=["okapi", "lucene"],
@@ -113,8 +108,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p = isub.add_parser("add", help="add or replace (same id) articles in an index")
     p.add_argument("index", type=Path, help="index folder to update")
     p.add_argument("corpus", type=Path, help="file of articles to add or replace")
-    p.add_argument("--skip-bad", action="store_true", help="skip bad lines instead of stopping")
-    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    add_reporting_options(p, "the summary", "lines")
     p.set_defaults(func=cmd_add)
 
     p = isub.add_parser("remove", help="remove articles from an index by id")

@@ -13,7 +13,7 @@ if TYPE_CHECKING:
     from retriever import BM25Params
 
 from .console import check_k, format_table, print_json, show_progress
-from .options import add_log_option
+from .options import add_log_option, add_reporting_options
 
 K1_DEFAULT = "0.4:2.0:0.2"
 B_DEFAULT = "0.3:1.0:0.1"
@@ -62,27 +62,20 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--index", type=Path, required=True, help="index folder to tune")
     add_log_option(p)
     p.add_argument("-k", type=int, default=20, help="recall is measured in the top k (default 20)")
-    p.add_argument(
-        "--k1",
-        type=number_list,
-        default=number_list(K1_DEFAULT),
-        metavar="VALUES",
-        help=f"k1 values: a list like 0.8,1.2 or a range START:STOP:STEP (default {K1_DEFAULT})",
-    )
-    p.add_argument(
-        "--b",
-        type=number_list,
-        default=number_list(B_DEFAULT),
-        metavar="VALUES",
-        help=f"b values, 0..1, as for --k1 (default {B_DEFAULT})",
-    )
-    p.add_argument(
-        "--idf",
-        type=idf_list,
-        default=idf_list(IDF_DEFAULT),
-        metavar="VARIANTS",
-        help=f"IDF variants to try (default {IDF_DEFAULT})",
-    )
+    grids = (
+        ("--k1", number_list, K1_DEFAULT, "VALUES",
+         "k1 values: a list like 0.8,1.2 or a range START:STOP:STEP"),
+        ("--b", number_list, B_DEFAULT, "VALUES", "b values, 0..1, as for --k1"),
+        ("--idf", idf_list, IDF_DEFAULT, "VARIANTS", "IDF variants to try"),
+    )  # fmt: skip
+    for flag, parse, default, metavar, text in grids:
+        p.add_argument(
+            flag,
+            type=parse,
+            default=parse(default),
+            metavar=metavar,
+            help=f"{text} (default {default})",
+        )
     p.add_argument(
         "--seed", type=int, default=0, help="seed of the split of answers into halves (default 0)"
     )
@@ -94,10 +87,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         "built from)",
     )
     p.add_argument("--write", type=Path, default=None, help="save the whole table as JSON here")
-    p.add_argument(
-        "--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping"
-    )
-    p.add_argument("--json", action="store_true", help="print the result as JSON")
+    add_reporting_options(p, "the result")
 
 
 def rebuild_command(

@@ -14,22 +14,13 @@ from .options import (
     add_feature_option,
     add_index_option,
     add_log_option,
+    add_model_option,
+    add_prefix_options,
     add_ray_option,
+    add_reporting_options,
     at_least_zero,
     unit_share,
 )
-
-
-def _fractions(text: str) -> tuple[float, ...]:
-    try:
-        values = tuple(float(v) for v in text.split(",") if v.strip())
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"expected comma-separated numbers like 0.2,0.5,1, got {text!r}"
-        ) from None
-    if not values or any(not 0 < v <= 1 for v in values):
-        raise argparse.ArgumentTypeError("prefix fractions must be between 0 (exclusive) and 1")
-    return values
 
 
 def _common(p: argparse.ArgumentParser) -> None:
@@ -63,10 +54,7 @@ def _common(p: argparse.ArgumentParser) -> None:
         metavar="COST",
         help="taken off a right answer's reward per word read, never below 0 (default 0)",
     )
-    p.add_argument(
-        "--skip-bad", action="store_true", help="skip bad log lines (counted) instead of stopping"
-    )
-    p.add_argument("--json", action="store_true", help="print results as JSON")
+    add_reporting_options(p, "results")
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -74,19 +62,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("train", help="fit the reranker on labelled logs and write a JSON model")
     _common(p)
     p.add_argument("--out", type=Path, required=True, help="model file to write (JSON)")
-    p.add_argument(
-        "--prefixes",
-        type=_fractions,
-        default=None,
-        metavar="F,F,...",
-        help="shares of each clue's words that become examples (default 0.2,0.4,0.6,0.8,1)",
-    )
-    p.add_argument(
-        "--every-words",
-        type=int,
-        default=None,
-        metavar="N",
-        help="instead of --prefixes, take a prefix every N words",
+    add_prefix_options(
+        p, "shares of each clue's words that become examples (default 0.2,0.4,0.6,0.8,1)"
     )
     p.add_argument(
         "--features",
@@ -142,9 +119,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
     p = sub.add_parser("evaluate", help="score a model on held-out logs and write a report folder")
     _common(p)
-    p.add_argument(
-        "--model", type=Path, required=True, help="model file written by 'hunchwise train'"
-    )
+    add_model_option(p)
     p.add_argument(
         "--report",
         type=Path,

@@ -30,6 +30,47 @@ unit_share = bounded_number(0.0, 1.0, "a number between 0 and 1")
 at_least_zero = bounded_number(0.0, 1.7976931348623157e308, "a number of at least 0")
 
 
+def prefix_shares(text: str) -> tuple[float, ...]:
+    """An argparse type: comma-separated shares of a clue's words, each in (0, 1]."""
+    try:
+        values = tuple(float(v) for v in text.split(",") if v.strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected comma-separated numbers like 0.2,0.5,1, got {text!r}"
+        ) from None
+    if not values or any(not 0 < v <= 1 for v in values):
+        raise argparse.ArgumentTypeError("prefix fractions must be between 0 (exclusive) and 1")
+    return values
+
+
+def add_prefix_options(p: argparse.ArgumentParser, help: str) -> None:
+    """--prefixes F,F,... (the shares of each clue's words that become rows, `help`) or
+    --every-words N."""
+    p.add_argument("--prefixes", type=prefix_shares, default=None, metavar="F,F,...", help=help)
+    p.add_argument(
+        "--every-words",
+        type=int,
+        default=None,
+        metavar="N",
+        help="instead of --prefixes, take a prefix every N words",
+    )
+
+
+def add_model_option(p: argparse.ArgumentParser) -> None:
+    """--model FILE, required: the model a command ranks or scores with."""
+    p.add_argument(
+        "--model", type=Path, required=True, help="model file written by 'hunchwise train'"
+    )
+
+
+def add_reporting_options(p: argparse.ArgumentParser, what: str, bad: str = "log lines") -> None:
+    """--skip-bad (bad input lines counted and skipped) and --json (`what` printed as JSON)."""
+    p.add_argument(
+        "--skip-bad", action="store_true", help=f"skip bad {bad} (counted) instead of stopping"
+    )
+    p.add_argument("--json", action="store_true", help=f"print {what} as JSON")
+
+
 def add_log_option(p: argparse.ArgumentParser) -> None:
     """--log FILE, repeatable and required: the labelled or served logs a command reads."""
     p.add_argument(

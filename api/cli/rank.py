@@ -14,6 +14,7 @@ from .options import (
     add_feature_option,
     add_filter_option,
     add_index_option,
+    add_model_option,
     add_ray_option,
     unit_share,
 )
@@ -35,9 +36,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         "clue", nargs="?", default=None, help="clue text (quote it); or give --input instead"
     )
     add_index_option(p)
-    p.add_argument(
-        "--model", type=Path, required=True, help="model file written by 'hunchwise train'"
-    )
+    add_model_option(p)
     p.add_argument(
         "--input",
         type=Path,
