@@ -113,7 +113,7 @@ def _reply_fields(
         "note": NO_MODEL_NOTE if loaded.model is None else None,
         "index_version": loaded.index.version,
         "model_version": loaded.model_version,
-        "timing": s.TimingOut(rank_ms=(ranked - started) * 1e3, total_ms=(done - started) * 1e3),
+        "timing": {"rank_ms": (ranked - started) * 1e3, "total_ms": (done - started) * 1e3},
     }
 
 
@@ -126,8 +126,8 @@ def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Res
         body, [body.clue], [body.metadata], runtime, settings
     )
     res = rank_result(rid, r, body.include_features, _explainer(body, loaded))
-    reply = s.RankResponse(**dict(res), **_reply_fields(body, loaded, k, started, ranked))
-    return json_reply(reply)
+    # The reply goes out as built (a RankResponse's fields): see api/replies.py.
+    return json_reply({**res, **_reply_fields(body, loaded, k, started, ranked)})
 
 
 @router.post("/v1/rank/batch", response_model=s.BatchRankResponse, tags=["rank"])
@@ -148,8 +148,7 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
     )
     explainer = _explainer(body, loaded)
     results = [rank_result(rid, r, body.include_features, explainer) for rid, r in served]
-    reply = s.BatchRankResponse(results=results, **_reply_fields(body, loaded, k, started, ranked))
-    return json_reply(reply)
+    return json_reply({**_reply_fields(body, loaded, k, started, ranked), "results": results})
 
 
 @router.post(
