@@ -1,8 +1,11 @@
 """The public endpoints: rank, batch rank, feedback, entries, info, health and metrics.
 
 Handlers that search or score are plain `def`: FastAPI runs them in its thread pool, so a
-CPU-bound request never blocks the event loop. Each handler reads `serving.current` once,
-so it works on one consistent index/model pair even if a reload swaps it meanwhile.
+CPU-bound request never blocks the event loop for long. The exception is POST /v1/rank: one
+clue (its length capped) is about a millisecond of work, less than the trip to a pool thread
+and back added, so it runs on the event loop unless every log write waits for fsync. Each
+handler reads `serving.current` once, so it works on one consistent index/model pair even if
+a reload swaps it meanwhile.
 """
 
 from __future__ import annotations
@@ -12,6 +15,7 @@ import time
 from typing import Any, Literal
 
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
+from starlette.concurrency import run_in_threadpool
 
 from reranker import Payoff, Ranking, ServedModel, model_k, rank_clues
 from reranker.servedrecords import feedback_record, served_record
@@ -118,8 +122,17 @@ def _reply_fields(
 
 
 @router.post("/v1/rank", response_model=s.RankResponse, tags=["rank"])
-def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Response:
+async def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Response:
     """Candidates for one clue, sorted by calibrated probability, and what to do now."""
+    # On the event loop, not the thread pool: one clue (bounded by max_clue_chars) is about a
+    # millisecond of work, and the trip to a pool thread and back cost a large share of
+    # that. Batches, as long as the client makes them, stay in the pool.
+    if settings.log_fsync:  # a wait for the disk: not on the event loop
+        return await run_in_threadpool(_rank_one, body, runtime, settings)
+    return _rank_one(body, runtime, settings)
+
+
+def _rank_one(body: s.RankRequest, runtime: Runtime, settings: ServiceSettings) -> Response:
     started = time.perf_counter()
     check_clue(body.clue, settings, ("body", "clue"))
     loaded, k, [(rid, r)], ranked = _rank_and_log(
