@@ -51,3 +51,15 @@ def test_log_lines_refuse_nan_anywhere_and_keep_nulls_and_any_text() -> None:
             encode_lines([{"ok": 1}, {"candidates": [{"probability": bad}]}])
     odd = encode_line({"clue": "lone \ud800 half"})  # not UTF-8-encodable: ASCII escapes
     assert odd.isascii() and json.loads(odd)["clue"] == "lone \ud800 half"
+
+
+def test_rank_with_fsync_logging_runs_in_the_pool_and_logs(
+    make_client: Any, tmp_path: Any, test_questions: list[dict[str, Any]]
+) -> None:
+    # With log_fsync every write waits for the disk, so /v1/rank takes the thread-pool path.
+    with make_client(log_fsync=True) as c:
+        r = c.post("/v1/rank", json={"clue": test_questions[0]["clue"], "k": 2})
+        assert r.status_code == 200
+        _same_as_model(s.RankResponse, r.json())
+    lines = (tmp_path / "log" / "served.jsonl").read_text(encoding="utf-8").splitlines()
+    assert [json.loads(x)["request_id"] for x in lines] == [r.json()["request_id"]]
