@@ -78,8 +78,10 @@ class Runtime:
             self.served_log.close()
 
 
-def get_runtime(request: Request) -> Runtime:
-    """Dependency: this process's runtime; 503 while the server is still starting."""
+async def get_runtime(request: Request) -> Runtime:
+    """Dependency: this process's runtime; 503 while the server is still starting.
+
+    `async` so that FastAPI calls it on the event loop, not through the thread pool."""
     runtime: Runtime | None = getattr(request.app.state, "runtime", None)
     if runtime is None:
         raise HTTPException(503, "the server is starting: index and model are not loaded yet")
@@ -114,7 +116,7 @@ def log_records(runtime: Runtime, records: list[dict[str, Any]], *, feedback: bo
     return True
 
 
-def require_feedback_token(
+async def require_feedback_token(
     runtime: RuntimeDep,
     credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(bearer)],
 ) -> None:

@@ -1,10 +1,19 @@
-"""Rankings turned into JSON replies and served-log records."""
+"""Rankings turned into JSON replies.
+
+The rank replies are built as plain dicts, in the field order of their response models
+(`schemas.RankResponse`, `schemas.BatchRankResponse`, which document them in the OpenAPI
+schema), and encoded once with orjson: the values are the server's own, so validating them
+again through the models would only cost time (tests/api/test_reply_shape.py checks that
+every reply still validates against its model and has exactly its fields).
+"""
 
 from __future__ import annotations
 
+import json
 import math
-from typing import Literal, cast
+from typing import Any
 
+import orjson
 from fastapi import Response
 from pydantic import BaseModel
 
@@ -12,15 +21,29 @@ from reranker import Explanation, Ranking, ServedModel, explain_row
 
 from . import schemas as s
 
-Action = Literal["answer", "wait", "abstain"]
-Basis = Literal["payoff", "share", "whole_clue", "single", "default"]
+
+def json_bytes(content: Any) -> bytes:
+    """Compact JSON: orjson (NaN and infinities as null, as pydantic writes them); what it
+    refuses (a string with a lone surrogate) falls back to the standard encoder's ASCII escapes."""
+    try:
+        return orjson.dumps(content, option=orjson.OPT_SERIALIZE_NUMPY)
+    except TypeError:
+        text = json.dumps(content, ensure_ascii=True, allow_nan=True, separators=(",", ":"))
+        return (
+            text.replace("-Infinity", "null")
+            .replace("Infinity", "null")
+            .replace("NaN", "null")
+            .encode("ascii")
+        )
 
 
-def json_reply(model: BaseModel) -> Response:
-    """A model's JSON as the response body, bypassing FastAPI's re-validation."""
-    # The reply is built from our own validated values; serializing it straight to bytes
-    # (pydantic-core) skips FastAPI's second validation pass, a large share of a rank call.
-    return Response(model.__pydantic_serializer__.to_json(model), media_type="application/json")
+def json_reply(content: dict[str, Any] | BaseModel) -> Response:
+    """A reply body as JSON bytes, bypassing FastAPI's re-validation of the response model."""
+    if isinstance(content, BaseModel):
+        return Response(
+            content.__pydantic_serializer__.to_json(content), media_type="application/json"
+        )
+    return Response(json_bytes(content), media_type="application/json")
 
 
 def finite(features: dict[str, float]) -> dict[str, float | None]:
@@ -57,44 +80,44 @@ def explanation_out(e: Explanation) -> s.ExplanationOut:
     )
 
 
-def _explained(model: ServedModel, features: dict[str, float]) -> s.ExplanationOut:
-    return explanation_out(explain_row(model, features))
+def _explained(model: ServedModel, features: dict[str, float]) -> dict[str, Any]:
+    return explanation_out(explain_row(model, features)).model_dump()
 
 
 def rank_result(
     request_id: str, r: Ranking, include_features: bool, explain: ServedModel | None = None
-) -> s.RankResult:
-    """The reply part for one ranked clue; `explain`: the model whose logits to take apart
-    (the ranking must carry the candidates' features)."""
+) -> dict[str, Any]:
+    """The reply part for one ranked clue (`schemas.RankResult`'s fields, in its order);
+    `explain`: the model whose logits to take apart (the ranking must carry the features)."""
     cands = [
-        s.CandidateOut(
-            id=c.doc_id,
-            title=c.title,
-            qualifier=c.qualifier,
-            score=c.score,
-            rank=c.rank,
-            probability=c.probability,
-            pointwise=c.pointwise,
-            features=finite(c.features) if include_features else None,
-            explanation=None if explain is None else _explained(explain, c.features),
-            snippet=c.snippet,
-        )
+        {
+            "id": c.doc_id,
+            "title": c.title,
+            "qualifier": c.qualifier,
+            "score": float(c.score),
+            "rank": int(c.rank),
+            "probability": c.probability,
+            "pointwise": c.pointwise,
+            "features": finite(c.features) if include_features else None,
+            "explanation": None if explain is None else _explained(explain, c.features),
+            "snippet": c.snippet,
+        }
         for c in r.candidates
     ]
     d = r.decision
-    decision = s.DecisionOut(
-        action=cast(Action, d.action),
-        id=d.doc_id,
-        probability=d.probability,
-        threshold=d.threshold,
-        threshold_basis=cast(Basis, d.basis),
-        reason=d.reason,
-    )
-    return s.RankResult(
-        request_id=request_id,
-        clue=r.clue,
-        candidates=cands,
-        decision=decision,
-        in_candidates=r.in_candidates,
-        none_of_these=r.none_of_these,
-    )
+    decision = {
+        "action": d.action,
+        "id": d.doc_id,
+        "probability": d.probability,
+        "threshold": d.threshold,
+        "threshold_basis": d.basis,
+        "reason": d.reason,
+    }
+    return {
+        "request_id": request_id,
+        "clue": r.clue,
+        "candidates": cands,
+        "decision": decision,
+        "in_candidates": r.in_candidates,
+        "none_of_these": r.none_of_these,
+    }

@@ -1,8 +1,11 @@
 """The public endpoints: rank, batch rank, feedback, entries, info, health and metrics.
 
 Handlers that search or score are plain `def`: FastAPI runs them in its thread pool, so a
-CPU-bound request never blocks the event loop. Each handler reads `serving.current` once,
-so it works on one consistent index/model pair even if a reload swaps it meanwhile.
+CPU-bound request never blocks the event loop for long. The exception is POST /v1/rank: one
+clue (its length capped) is about a millisecond of work, less than the trip to a pool thread
+and back added, so it runs on the event loop unless every log write waits for fsync. Each
+handler reads `serving.current` once, so it works on one consistent index/model pair even if
+a reload swaps it meanwhile.
 """
 
 from __future__ import annotations
@@ -12,6 +15,7 @@ import time
 from typing import Any, Literal
 
 from fastapi import APIRouter, Depends, HTTPException, Request, Response
+from starlette.concurrency import run_in_threadpool
 
 from reranker import Payoff, Ranking, ServedModel, model_k, rank_clues
 from reranker.servedrecords import feedback_record, served_record
@@ -116,21 +120,31 @@ def _reply_fields(
         "filter": body.filter,
         "index_version": loaded.index.version,
         "model_version": loaded.model_version,
-        "timing": s.TimingOut(rank_ms=(ranked - started) * 1e3, total_ms=(done - started) * 1e3),
+        "timing": {"rank_ms": (ranked - started) * 1e3, "total_ms": (done - started) * 1e3},
     }
 
 
 @router.post("/v1/rank", response_model=s.RankResponse, tags=["rank"])
-def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Response:
+async def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Response:
     """Candidates for one clue, sorted by calibrated probability, and what to do now."""
+    # On the event loop, not the thread pool: one clue (bounded by max_clue_chars) is about a
+    # millisecond of work, and the trip to a pool thread and back cost a large share of
+    # that. Batches, as long as the client makes them, stay in the pool.
+    # A wait for the disk, or snippets (a few milliseconds per candidate): not on the loop.
+    if settings.log_fsync or body.snippet:
+        return await run_in_threadpool(_rank_one, body, runtime, settings)
+    return _rank_one(body, runtime, settings)
+
+
+def _rank_one(body: s.RankRequest, runtime: Runtime, settings: ServiceSettings) -> Response:
     started = time.perf_counter()
     check_clue(body.clue, settings, ("body", "clue"))
     loaded, k, [(rid, r)], ranked = _rank_and_log(
         body, [body.clue], [body.metadata], runtime, settings
     )
     res = rank_result(rid, r, body.include_features, _explainer(body, loaded))
-    reply = s.RankResponse(**dict(res), **_reply_fields(body, loaded, k, started, ranked))
-    return json_reply(reply)
+    # The reply goes out as built (a RankResponse's fields): see api/replies.py.
+    return json_reply({**res, **_reply_fields(body, loaded, k, started, ranked)})
 
 
 @router.post("/v1/rank/batch", response_model=s.BatchRankResponse, tags=["rank"])
@@ -151,8 +165,7 @@ def rank_batch(body: s.BatchRankRequest, runtime: RuntimeDep, settings: Settings
     )
     explainer = _explainer(body, loaded)
     results = [rank_result(rid, r, body.include_features, explainer) for rid, r in served]
-    reply = s.BatchRankResponse(results=results, **_reply_fields(body, loaded, k, started, ranked))
-    return json_reply(reply)
+    return json_reply({**_reply_fields(body, loaded, k, started, ranked), "results": results})
 
 
 @router.post(

@@ -25,12 +25,15 @@ import contextlib
 import fcntl
 import json
 import logging
+import math
 import os
 import threading
 from collections.abc import Iterable, Mapping
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
+
+import orjson
 
 from reranker.servedrecords import FEEDBACK, SERVED, log_files, rotated_name
 
@@ -43,13 +46,42 @@ def utc_now() -> str:
     return datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
+def _finite(value: Any) -> bool:
+    """False when a NaN or an infinity is anywhere in a JSON-like value (no recursion)."""
+    stack = [value]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, float):
+            if not math.isfinite(item):
+                return False
+        elif isinstance(item, Mapping):
+            stack.extend(item.values())
+        elif isinstance(item, list | tuple):
+            stack.extend(item)
+    return True
+
+
+def encode_line(record: Mapping[str, Any]) -> bytes:
+    """One JSON line (UTF-8), NaN and infinities refused (ValueError).
+
+    orjson first: the standard encoder spent about 0.3 ms on a served line's hundred-odd
+    floats, a large share of a rank request. orjson writes a non-finite number as null, so
+    only a line that holds a null is walked to tell the two apart. A string orjson refuses
+    (a lone surrogate) falls back to the standard encoder's ASCII escapes, so any clue encodes.
+    """
+    try:
+        line = orjson.dumps(record, option=orjson.OPT_APPEND_NEWLINE | orjson.OPT_SERIALIZE_NUMPY)
+    except TypeError:
+        text = json.dumps(record, ensure_ascii=True, allow_nan=False, separators=(",", ":"))
+        return text.encode("ascii") + b"\n"
+    if b"null" in line and not _finite(record):
+        raise ValueError("Out of range float values are not JSON compliant (NaN or infinity)")
+    return line
+
+
 def encode_lines(records: Iterable[Mapping[str, Any]]) -> bytes:
-    """JSON lines; ASCII-escaped so any clue (even lone surrogates) encodes, NaN refused."""
-    return b"".join(
-        json.dumps(r, ensure_ascii=True, allow_nan=False, separators=(",", ":")).encode("ascii")
-        + b"\n"
-        for r in records
-    )
+    """JSON lines, one per record (see `encode_line`)."""
+    return b"".join(encode_line(r) for r in records)
 
 
 class _AppendFile:

@@ -143,7 +143,10 @@ def settings_from_env() -> ServiceSettings:
         raise ValueError("bad service settings: " + "; ".join(problems)) from None
 
 
-def get_settings(request: Request) -> ServiceSettings:
-    """Dependency: the settings of the app serving this request (override it in tests)."""
+async def get_settings(request: Request) -> ServiceSettings:
+    """Dependency: the settings of the app serving this request (override it in tests).
+
+    `async` only so that FastAPI calls it on the event loop: a plain `def` dependency is sent
+    to the thread pool and back, which cost more than the lookup itself on every request."""
     settings: ServiceSettings = request.app.state.settings
     return settings

@@ -101,7 +101,7 @@ def results(
     """One result per clue, in order: the service's reply for one clue, its id as `id`."""
     from tqdm.auto import tqdm
 
-    from api.replies import rank_result
+    from api.replies import json_bytes, rank_result
     from reranker import rank_clues
 
     with tqdm(total=len(clues), unit=" clues", disable=not progress) as bar:
@@ -122,7 +122,7 @@ def results(
             for c, r in zip(chunk, rankings, strict=True):
                 reply = rank_result(c.id, r, False, model if args.explain else None)
                 # The service's JSON bytes, read back: the same shape and numbers.
-                body = json.loads(reply.__pydantic_serializer__.to_json(reply))
+                body = json.loads(json_bytes(reply))
                 del body["request_id"]
                 yield {
                     "id": c.id,

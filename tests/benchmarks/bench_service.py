@@ -3,11 +3,16 @@
 Not a test: it prints a table. For 1 and 2 workers it measures
   * closed-loop throughput: C connections sending back to back (Debian's `wrk` when
     installed, else an asyncio httpx client), requests/s and latency percentiles;
-  * open-loop latency at a fixed rate (default 300 req/s, the target): requests are sent on a
+  * open-loop latency at a fixed rate (default 1,000 req/s): requests are sent on a
     schedule and latency counts from the scheduled time, so a stall is not hidden
     (coordinated omission);
-  * the server's resident memory (parent plus workers, psutil).
-Peer measured in the same run: the library call `rank_clue` in one thread, without HTTP.
+  * the server's resident memory (parent plus workers, psutil);
+  * the server's CPU time per request (parent plus workers, psutil) and the load generator's
+    own CPU time per request (this process, and wrk when it is used).
+Peer measured in the same run: the library call `rank_clue` in one thread, without HTTP, as
+clues/s and as CPU time per clue; "CPU vs lib" is the server's CPU per request over it.
+`--server-root` runs the server from another checkout (e.g. the previous commit) to compare
+two versions in one run.
 
     python -m tests.benchmarks.bench_service [--articles 100000] [--work runs/bench-service]
 """
@@ -19,6 +24,7 @@ import asyncio
 import gc
 import json
 import os
+import resource
 import shutil
 import signal
 import subprocess
@@ -107,8 +113,8 @@ def prepare(work: Path, articles: int) -> tuple[Path, Path, list[str]]:
     return index, model, [json.loads(x)["clue"] for x in lines if x.strip()]
 
 
-def library_peer(index: Path, model: Path, clues: list[str], seconds: float) -> float:
-    """Clues ranked per second by rank_clue itself, one thread, no HTTP."""
+def library_peer(index: Path, model: Path, clues: list[str], seconds: float) -> tuple[float, float]:
+    """rank_clue itself, one thread, no HTTP: (clues per second, CPU seconds per clue)."""
     from reranker import load_model, rank_clue
     from retriever import load_index
 
@@ -116,15 +122,15 @@ def library_peer(index: Path, model: Path, clues: list[str], seconds: float) -> 
     m = load_model(model, index=idx)
     for c in clues[:20]:
         rank_clue(idx, m, c, k=20, include_features=True)
-    n, start = 0, time.perf_counter()
+    n, start, cpu = 0, time.perf_counter(), time.thread_time()
     while time.perf_counter() - start < seconds:
         rank_clue(idx, m, clues[n % len(clues)], k=20, include_features=True)
         n += 1
-    return n / (time.perf_counter() - start)
+    return n / (time.perf_counter() - start), (time.thread_time() - cpu) / n
 
 
 def start_server(
-    index: Path, model: Path, workers: int, logs: Path
+    index: Path, model: Path, workers: int, logs: Path, root: Path = ROOT
 ) -> tuple[subprocess.Popen[bytes], str]:
     """`hunchwise serve` with `workers` workers; returns once every worker has answered."""
     port = free_port()
@@ -133,7 +139,7 @@ def start_server(
         serve_command(
             ["--index", str(index), "--model", str(model), "--log-dir", str(logs)], port, workers
         ),
-        cwd=ROOT,
+        cwd=root,  # `python -m api.cli` imports the checkout it runs in
         env=env,
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
@@ -188,6 +194,13 @@ def cpu_seconds(proc: subprocess.Popen[bytes]) -> float:
         t = p.cpu_times()
         total += t.user + t.system
     return total
+
+
+def own_cpu_seconds() -> float:
+    """CPU time of the load generator: this process and the children it waited for (wrk)."""
+    me = resource.getrusage(resource.RUSAGE_SELF)
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
 
 
 def bodies(clues: list[str]) -> list[str]:
@@ -313,14 +326,17 @@ def _row(
     result: dict[str, float],
     proc: subprocess.Popen[bytes],
     cpu_before: float,
+    own_before: float,
 ) -> dict[str, Any]:
-    """One table row: a load run's figures plus the server's memory and CPU per request."""
+    """One table row: a load run's figures plus the server's memory and CPU per request,
+    and the load generator's own CPU per request."""
     return {
         "workers": workers,
         "mode": mode,
         **result,
         "mem": memory_mib(proc),
         "cpu": (cpu_seconds(proc) - cpu_before) / result["n"],
+        "gen_cpu": (own_cpu_seconds() - own_before) / result["n"],
     }
 
 
@@ -350,39 +366,48 @@ def main() -> int:
     p.add_argument("--workers", default="1,2", help="worker counts to measure (default 1,2)")
     p.add_argument("--connections", type=int, default=8, help="closed-loop connections (default 8)")
     p.add_argument("--seconds", type=float, default=15, help="length of each load run")
-    p.add_argument("--rate", type=float, default=300, help="open-loop rate, req/s (default 300)")
+    p.add_argument("--rate", type=float, default=1000, help="open-loop rate, req/s (default 1000)")
+    p.add_argument(
+        "--server-root",
+        type=Path,
+        default=ROOT,
+        help="checkout whose `hunchwise serve` is measured (default: this one)",
+    )
     p.add_argument("--tool", choices=["auto", "wrk", "httpx"], default="auto")
     args = p.parse_args()
     work = args.work.resolve()
     work.mkdir(parents=True, exist_ok=True)
     index, model, clues = prepare(work, args.articles)
     tool = "wrk" if args.tool == "wrk" or (args.tool == "auto" and shutil.which("wrk")) else "httpx"
-    peer = library_peer(index, model, clues, 5)
+    peer, peer_cpu = library_peer(index, model, clues, 5)
     print(
         f"\npeer: rank_clue in one thread, no HTTP: {peer:.0f} clues/s ({1e3 / peer:.2f} ms "
-        f"each); load average before the run: {os.getloadavg()[0]:.2f}\n",
+        f"each, {peer_cpu * 1e3:.2f} ms CPU); load average before the run: "
+        f"{os.getloadavg()[0]:.2f}\n",
         flush=True,
     )
     payloads = bodies(clues)
     rows: list[dict[str, Any]] = []
     for workers in [int(w) for w in args.workers.split(",")]:
         logs = Path(tempfile.mkdtemp(prefix="bench-logs-", dir=work))
-        proc, url = start_server(index, model, workers, logs)
+        proc, url = start_server(index, model, workers, logs, args.server_root.resolve())
         try:
             with httpx.Client(base_url=url, timeout=30) as c:  # warm up every worker's caches
                 for b in payloads[:100]:
                     c.post("/v1/rank", content=b, headers={"Content-Type": "application/json"})
-            cpu = cpu_seconds(proc)
+            cpu, own = cpu_seconds(proc), own_cpu_seconds()
             if tool == "wrk":
                 closed = wrk_load(url, clues, args.connections, args.seconds, work)
             else:
                 closed = asyncio.run(_closed(url, payloads, args.connections, args.seconds))
             rows.append(
-                _row(workers, f"closed, {args.connections} conns ({tool})", closed, proc, cpu)
+                _row(workers, f"closed, {args.connections} conns ({tool})", closed, proc, cpu, own)
             )
-            cpu = cpu_seconds(proc)
+            cpu, own = cpu_seconds(proc), own_cpu_seconds()
             opened = asyncio.run(_open(url, payloads, args.rate, args.seconds))
-            rows.append(_row(workers, f"open, {args.rate:.0f} req/s (asyncio)", opened, proc, cpu))
+            rows.append(
+                _row(workers, f"open, {args.rate:.0f} req/s (asyncio)", opened, proc, cpu, own)
+            )
         finally:
             stop_server(proc)
             shutil.rmtree(logs, ignore_errors=True)
@@ -393,7 +418,8 @@ def main() -> int:
     head = (
         f"{'workers':>7}  {'load':<28} {'req/s':>7} {'p50 ms':>7} {'p95 ms':>7} "
         f"{'p99 ms':>7} {'max ms':>7} {'errors':>6} {'RSS MiB':>8} {'PSS MiB':>8} "
-        f"{'worker RSS':>10} {'CPU ms/req':>10} {'vs peer':>7}"
+        f"{'worker RSS':>10} {'CPU ms/req':>10} {'CPU vs lib':>10} {'gen CPU ms':>10} "
+        f"{'vs peer':>7}"
     )
     print(head)
     print("-" * len(head))
@@ -403,11 +429,12 @@ def main() -> int:
             f"{r['workers']:>7}  {r['mode']:<28} {r['rps']:>7.0f} {r['p50']:>7.1f} "
             f"{r['p95']:>7.1f} {r['p99']:>7.1f} {r['max']:>7.1f} {r['errors']:>6.0f} "
             f"{rss:>8.0f} {pss:>8.0f} {worker or float('nan'):>10.0f} {r['cpu'] * 1e3:>10.2f} "
-            f"{r['rps'] / peer:>7.2f}"
+            f"{r['cpu'] / peer_cpu:>10.2f} {r['gen_cpu'] * 1e3:>10.2f} {r['rps'] / peer:>7.2f}"
         )
     print(
         "CPU ms/req: server CPU time (all its processes) per request, robust to other load; "
-        "vs peer: req/s over the peer's clues/s."
+        "CPU vs lib: that over rank_clue's CPU per clue; gen CPU ms: the load generator's own "
+        "CPU per request (it shares the cores); vs peer: req/s over the peer's clues/s."
     )
     return 0
 
