@@ -18,8 +18,9 @@ from retriever import BM25Params, build_index, load_index
 from retriever.analyzer import Analyzer
 from retriever.index import Index
 from retriever.ingest import ingest, item_offsets
+from retriever.shardcount import _windows, count_shard
 from retriever.sharded import ShardedIndex
-from retriever.shards import _windows, build_sharded, count_shard
+from retriever.shards import build_sharded
 
 from .helpers import DEMO, N_DEMO, UNEVEN
 

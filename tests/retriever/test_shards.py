@@ -20,19 +20,9 @@ import scipy.sparse as sp
 from retriever import BM25Params, CorpusError, IndexFormatError, build_index, load_index
 from retriever.index import Index
 from retriever.postings import FieldCounts
+from retriever.shardcount import count_shard, join_keys, reduce_stats, resolve_links, split_items
 from retriever.sharded import ShardedIndex
-from retriever.shards import (
-    build_sharded,
-    count_shard,
-    join_keys,
-    read_stats,
-    reduce_stats,
-    resolve_links,
-    shard_entry,
-    split_items,
-    write_shard,
-    write_stats,
-)
+from retriever.shards import build_sharded, read_stats, shard_entry, write_shard, write_stats
 
 from .helpers import DEMO, UNEVEN, write_jsonl
 
