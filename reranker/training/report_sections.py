@@ -8,7 +8,7 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from .report_html import image, kv_table, paragraph, table
+from .report_html import image, kv_table, paragraph, sig, table
 
 CANDIDATE_KEYS = ("accuracy", "roc_auc", "log_loss", "brier", "ece", "n", "positive_rate")
 CANDIDATE_MODELS = ("model", "bm25_only", "all_wrong")
@@ -29,6 +29,7 @@ CLUE_SHOWN = {
     "top_candidate_reliability",
 }
 ABLATION_FIGURES = ("log_loss", "clue_log_loss", "brier", "roc_auc", "top1", "ece")
+ABLATION_LABELS = ("log-loss", "clue-level log-loss", "Brier", "ROC AUC", "top-1", "ECE")
 BEATS = (("top1", "top-1", True), ("clue_log_loss", "clue log-loss", False))
 CLUE_TEXT = 140  # characters of a clue shown in the worst-missed table
 
@@ -102,7 +103,7 @@ def reliability_html(bins: Sequence[Mapping[str, Any]]) -> str:
                 b["count"],
                 b.get("mean_prob"),
                 b.get("frac_positive"),
-                f"{b['ci_low']:.3f}-{b['ci_high']:.3f}" if b.get("ci_low") is not None else None,
+                f"{sig(b['ci_low'])}-{sig(b['ci_high'])}" if b.get("ci_low") is not None else None,
             )
             for b in shown
         ],
@@ -194,7 +195,7 @@ def ablation_html(
                 ", ".join(beats) if r.get("kind") in ("baseline", "alone") else "",
             )
         )
-    header = ("row", "kind", "feature groups", "features", *ABLATION_FIGURES, "beats full on")
+    header = ("row", "kind", "feature groups", "features", *ABLATION_LABELS, "beats full on")
     parts = [paragraph(note, "note")] if note else []
     parts.append(table(header, body))
     if groups:
