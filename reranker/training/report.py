@@ -42,7 +42,16 @@ PREFIX_LABELS = {
     "mean_payoff": "mean payoff",
 }
 # metrics keys with a section of their own (the rest are shown generically at the end)
-OWN_SECTIONS = ("about", "warnings", "baselines", "clue", "candidate", "worst_missed", "speed")
+OWN_SECTIONS = (
+    "about",
+    "warnings",
+    "baselines",
+    "clue",
+    "candidate",
+    "worst_missed",
+    "speed",
+    "reliability",  # its bins are the tables under the two reliability diagrams
+)
 
 
 def heading(key: str) -> str:
@@ -115,7 +124,7 @@ def write_report(
         section(
             "candidate-level",
             "Candidate level",
-            S.candidate_html(metrics.get("candidate") or {}, paths),
+            S.candidate_html(metrics.get("candidate") or {}, paths, reliability_candidate),
         ),
         section(
             "by-prefix",
@@ -143,7 +152,9 @@ def write_report(
             "unresolved",
             f"Unresolved gold answers ({len(unresolved)})",
             f"<p>{len(unresolved)} gold answers matched no article.</p>"
-            + rows_html(unresolved, ("line", "file", "answer")),
+            + rows_html(unresolved, ("line", "file", "answer"))
+            if unresolved
+            else "<p>Every gold answer matched an article.</p>",
         ),
     ]
     sections.append(speed_section(metrics, out))

@@ -19,7 +19,7 @@ CSS = """body{font-family:sans-serif;max-width:1100px;margin:2em auto;padding:0 
 h2{border-bottom:1px solid #ccc;padding-bottom:.2em;margin-top:1.6em}
 .scroll{max-width:100%;overflow-x:auto}
 table{border-collapse:collapse;margin:.6em 0}td,th{border:1px solid #ccc;padding:3px 8px}
-th{background:#f0f0f0;text-align:left}td{overflow-wrap:anywhere}
+th{background:#f0f0f0;text-align:left}td{overflow-wrap:break-word}
 td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 figure{margin:1em 0}img{max-width:100%;height:auto}
 figcaption{color:#444;font-size:.92em;max-width:75ch;margin-top:.3em}
