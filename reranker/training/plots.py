@@ -88,8 +88,9 @@ def reliability_diagram(table: Sequence[dict[str, Any]], path: Any, title: str) 
     top.set_xlim(0, 1)
     top.set_ylim(0, 1)
     top.set_ylabel("share of candidates that are right")
-    top.set_title(title)
-    top.legend(loc="upper left", fontsize=8)
+    fig.suptitle(title)
+    # Above the axes, so it never covers a bar (bars reach 1.0 where a model is under-confident).
+    top.legend(loc="lower center", bbox_to_anchor=(0.5, 1.08), ncol=2, fontsize=8, frameon=False)
     bottom.bar(lo, count, width=hi - lo, align="edge", color="#9e9e9e", edgecolor="white")
     if count.max() > 0 and count.max() > 50 * max(1, int(count[count > 0].min())):
         bottom.set_yscale("log")
@@ -188,6 +189,8 @@ def ablation_chart(rows: Sequence[dict[str, Any]], path: Any) -> Path:
                 fontsize=7,
             )
         ax.set_xlabel(xlabel)
+        # Room right of the longest bar for its label.
+        ax.set_xlim(0, 1.18 * max(float(np.nanmax(np.append(values, 0.0))), 1e-9))
     axes[0].set_yticks(ypos, names, fontsize=8)
     axes[0].invert_yaxis()
     fig.tight_layout()

@@ -33,8 +33,31 @@ PREFIX_KEYS = (
     "accuracy_when_committed",
     "mean_payoff",
 )
+PREFIX_LABELS = {
+    "fraction": "share revealed",
+    "n_clues": "clues",
+    "top1_accuracy": "top-1 accuracy",
+    "commit_rate": "answered",
+    "accuracy_when_committed": "right when answered",
+    "mean_payoff": "mean payoff",
+}
 # metrics keys with a section of their own (the rest are shown generically at the end)
-OWN_SECTIONS = ("about", "warnings", "baselines", "clue", "candidate", "worst_missed", "speed")
+OWN_SECTIONS = (
+    "about",
+    "warnings",
+    "baselines",
+    "clue",
+    "candidate",
+    "worst_missed",
+    "speed",
+    "reliability",  # its bins are the tables under the two reliability diagrams
+)
+
+
+def heading(key: str) -> str:
+    """A metrics key as a heading in the page's style: sentence case, words not underscores."""
+    words = key.replace("_", " ").strip() or key
+    return words[:1].upper() + words[1:]
 
 
 def _json(data: Any) -> str:
@@ -101,30 +124,37 @@ def write_report(
         section(
             "candidate-level",
             "Candidate level",
-            S.candidate_html(metrics.get("candidate") or {}, paths),
+            S.candidate_html(metrics.get("candidate") or {}, paths, reliability_candidate),
         ),
         section(
             "by-prefix",
             "By share of the clue revealed",
-            rows_html(prefix_rows, PREFIX_KEYS) + image(paths, "prefix", "prefix curves"),
+            rows_html(prefix_rows, PREFIX_KEYS, PREFIX_LABELS)
+            + image(paths, "prefix", "rates and payoff against the share revealed"),
         ),
         section(
             "ablation",
             "Feature ablation",
             S.ablation_html(ablation_rows, groups, fitting.get("ablation"))
-            + image(paths, "ablation", "ablation"),
+            + image(paths, "ablation", "log-loss and top-1 accuracy per ablation row"),
         ),
         section(
             "worst-missed",
             "Worst-missed clues",
             S.worst_missed_html(metrics.get("worst_missed") or []),
         ),
-        section("inlinks", "In-link distributions", image(paths, "inlinks", "in-links")),
+        section(
+            "inlinks",
+            "In-link distributions",
+            image(paths, "inlinks", "in-link histograms of right and wrong candidates"),
+        ),
         section(
             "unresolved",
             f"Unresolved gold answers ({len(unresolved)})",
             f"<p>{len(unresolved)} gold answers matched no article.</p>"
-            + rows_html(unresolved, ("line", "file", "answer")),
+            + rows_html(unresolved, ("line", "file", "answer"))
+            if unresolved
+            else "<p>Every gold answer matched an article.</p>",
         ),
     ]
     sections.append(speed_section(metrics, out))
@@ -132,7 +162,7 @@ def write_report(
         if key not in OWN_SECTIONS:
             body = kv_table(value) if isinstance(value, Mapping) else kv_table({key: value})
             sid = "extra-" + re.sub(r"[^A-Za-z0-9_-]+", "-", str(key))
-            sections.append(section(sid, str(key), body))
+            sections.append(section(sid, heading(str(key)), body))
     doc = (
         f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8">'
         f"<title>{html.escape(title)}</title><style>{CSS}</style></head>"

@@ -8,7 +8,7 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from .report_html import image, kv_table, paragraph, table
+from .report_html import image, kv_table, paragraph, sig, table
 
 CANDIDATE_KEYS = ("accuracy", "roc_auc", "log_loss", "brier", "ece", "n", "positive_rate")
 CANDIDATE_MODELS = ("model", "bm25_only", "all_wrong")
@@ -29,6 +29,7 @@ CLUE_SHOWN = {
     "top_candidate_reliability",
 }
 ABLATION_FIGURES = ("log_loss", "clue_log_loss", "brier", "roc_auc", "top1", "ece")
+ABLATION_LABELS = ("log-loss", "clue-level log-loss", "Brier", "ROC AUC", "top-1", "ECE")
 BEATS = (("top1", "top-1", True), ("clue_log_loss", "clue log-loss", False))
 CLUE_TEXT = 140  # characters of a clue shown in the worst-missed table
 
@@ -102,7 +103,7 @@ def reliability_html(bins: Sequence[Mapping[str, Any]]) -> str:
                 b["count"],
                 b.get("mean_prob"),
                 b.get("frac_positive"),
-                f"{b['ci_low']:.3f}-{b['ci_high']:.3f}" if b.get("ci_low") is not None else None,
+                f"{sig(b['ci_low'])}-{sig(b['ci_high'])}" if b.get("ci_low") is not None else None,
             )
             for b in shown
         ],
@@ -143,7 +144,9 @@ def clue_html(clue: Mapping[str, Any], paths: Mapping[str, Path]) -> str:
     return "".join(parts)
 
 
-def candidate_html(cand: Mapping[str, Any], paths: Mapping[str, Path]) -> str:
+def candidate_html(
+    cand: Mapping[str, Any], paths: Mapping[str, Path], bins: Sequence[Mapping[str, Any]] = ()
+) -> str:
     """Candidate level: model vs BM25-only vs every-candidate-wrong, with the imbalance note."""
     models = [m for m in CANDIDATE_MODELS if isinstance(cand.get(m), Mapping)]
     models += [m for m, v in cand.items() if m not in models and isinstance(v, Mapping)]
@@ -160,6 +163,8 @@ def candidate_html(cand: Mapping[str, Any], paths: Mapping[str, Path]) -> str:
     parts = [paragraph(note, "note")]
     parts.append(table(("metric", *models), [(k, *(cand[m].get(k) for m in models)) for k in keys]))
     parts.append(image(paths, "reliability_candidate", "reliability of every candidate"))
+    if bins:
+        parts += [paragraph(WILSON), reliability_html(bins)]
     extra = {k: v for k, v in cand.items() if k not in models}
     if extra:
         parts.append("<h3>Other candidate-level values</h3>" + kv_table(extra))
@@ -194,8 +199,8 @@ def ablation_html(
                 ", ".join(beats) if r.get("kind") in ("baseline", "alone") else "",
             )
         )
-    header = ("row", "kind", "feature groups", "features", *ABLATION_FIGURES, "beats full on")
-    parts = [paragraph(note, "note")] if note else []
+    header = ("row", "kind", "feature groups", "features", *ABLATION_LABELS, "beats full on")
+    parts = [paragraph(note[:1].upper() + note[1:], "note")] if note else []
     parts.append(table(header, body))
     if groups:
         parts.append("<h3>Feature groups</h3>")
@@ -215,7 +220,7 @@ def worst_missed_html(rows: Sequence[Mapping[str, Any]]) -> str:
     def cand(top: Sequence[Mapping[str, Any]], i: int) -> str | None:
         if i >= len(top):
             return None
-        return f"{top[i].get('title')} ({float(top[i].get('probability') or 0):.2f})"
+        return f"{top[i].get('title')} ({sig(float(top[i].get('probability') or 0))})"
 
     body = []
     for r in rows:
@@ -229,11 +234,11 @@ def worst_missed_html(rows: Sequence[Mapping[str, Any]]) -> str:
                 clue if len(clue) <= CLUE_TEXT else clue[: CLUE_TEXT - 3] + "...",
                 r.get("answer_title"),
                 where,
-                None if p is None else round(float(p), 3),
+                None if p is None else float(p),
                 cand(top, 0),
                 cand(top, 1),
                 cand(top, 2),
-                round(float(r.get("none_of_these") or 0.0), 3),
+                float(r.get("none_of_these") or 0.0),
             )
         )
     header = ("clue", "right answer", "its rank", "its probability", "1st", "2nd", "3rd", "none")

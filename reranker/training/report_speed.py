@@ -7,12 +7,12 @@
 
 from __future__ import annotations
 
-import base64
-import html
 from pathlib import Path
 from typing import Any
 
 from . import plots
+from .report_captions import CAPTIONS
+from .report_html import figure, paragraph, percent, section, sig, table
 
 RULE_NAMES = {
     "schedule": "threshold per share revealed",
@@ -50,10 +50,10 @@ def _thresholds(rule: dict[str, Any]) -> str:
 
 def _cells(rule: dict[str, Any]) -> list[str]:
     return [
-        f"{rule['mean_payoff']:.3f}",
-        f"{rule['commit_rate']:.1%}",
-        f"{rule['accuracy_when_committed']:.1%}",
-        f"{rule['mean_fraction_at_commit']:.0%}",
+        sig(rule["mean_payoff"]),
+        percent(rule["commit_rate"]),
+        percent(rule["accuracy_when_committed"]),
+        percent(rule["mean_fraction_at_commit"]),
     ]
 
 
@@ -64,23 +64,21 @@ def speed_section(metrics: dict[str, Any], out_dir: Any) -> str:
         return ""
     rules = speed["rules"]
     png = plots.payoff_curve(speed["curve"], rules, Path(out_dir) / "payoff.png")
-    rows = []
-    for key, name in RULE_NAMES.items():
-        if key in rules:
-            cells = [name, *_cells(rules[key]), _thresholds(rules[key])]
-            rows.append("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in cells) + "</tr>")
-    head = "".join(f"<th>{html.escape(h)}</th>" for h in ("rule", *COLUMNS, "thresholds"))
-    image = base64.b64encode(png.read_bytes()).decode("ascii")
+    rows = [
+        (name, *_cells(rules[key]), _thresholds(rules[key]))
+        for key, name in RULE_NAMES.items()
+        if key in rules
+    ]
     intro = (
         f"Payoff: {payoff_words(speed['payoff'])}. Each rule replays every clue prefix by "
         "prefix; a clue never answered scores 0. Mean payoff is per clue."
     )
-    return (
-        '<section id="answering-early"><h2>Answering early</h2>'
-        f"<p>{html.escape(intro)}</p><table><tr>{head}</tr>{''.join(rows)}</table>"
-        f'<img src="data:image/png;base64,{image}" alt="mean payoff against the threshold">'
-        "</section>"
+    body = (
+        paragraph(intro)
+        + table(("rule", *COLUMNS, "thresholds"), rows)
+        + figure(png, "mean payoff against the threshold", CAPTIONS["payoff"])
     )
+    return section("answering-early", "Answering early", body)
 
 
 def speed_text(speed: dict[str, Any]) -> str:
@@ -89,9 +87,10 @@ def speed_text(speed: dict[str, Any]) -> str:
     for key, name in RULE_NAMES.items():
         rule = speed["rules"].get(key)
         if rule:
+            answered, right = rule["commit_rate"], rule["accuracy_when_committed"]
             lines.append(
-                f"  {name + ':':<54} mean payoff {rule['mean_payoff']:.3f}, answered "
-                f"{rule['commit_rate']:.1%}, right {rule['accuracy_when_committed']:.1%}, "
-                f"share seen {rule['mean_fraction_at_commit']:.0%}; thresholds {_thresholds(rule)}"
+                f"  {name + ':':<54} mean payoff {sig(rule['mean_payoff'])}, answered "
+                f"{percent(answered)}, right {percent(right)}, share seen "
+                f"{percent(rule['mean_fraction_at_commit'])}; thresholds {_thresholds(rule)}"
             )
     return "\n".join(lines)

@@ -24,6 +24,9 @@ from reranker.training.measures import (
     reliability_table,
 )
 from reranker.training.report import summary_text, to_jsonable, write_report
+from reranker.training.report_html import fmt, sig
+
+from .test_report_browser import over_precise
 
 EVIL = "<script>alert('x')</script>"
 
@@ -190,7 +193,81 @@ def test_summary_text(tmp_path: Path) -> None:
     metrics = args["metrics"]
     text = summary_text(metrics, args["ablation_rows"])
     assert "clue level" in text and "candidate level" in text and "feature ablation" in text
-    assert f"{metrics['clue']['top1_reranked']:.4f}" in text
-    assert f"{metrics['candidate']['all_wrong']['accuracy']:.4f}" in text
+    assert f"{metrics['clue']['top1_reranked']:.3g}" in text
+    assert f"{metrics['candidate']['all_wrong']['accuracy']:.3g}" in text
     assert "recall@20" in text and "bm25_only" in text and "drop-one" in text
     assert "clue level" in summary_text({"clue": {}}, [])
+
+
+class _Cells(HTMLParser):
+    """The text of every table cell, and of every figure's caption (stdlib html.parser)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.cells: list[str] = []
+        self.captions: list[str] = []
+        self.images_in_figures = self.images = 0
+        self._into: list[str] | None = None
+        self._figure = False
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        if tag in ("td", "figcaption"):
+            self._into = self.cells if tag == "td" else self.captions
+            self._into.append("")
+        self._figure = self._figure or tag == "figure"
+        if tag == "img":
+            self.images += 1
+            self.images_in_figures += self._figure
+
+    def handle_endtag(self, tag: str) -> None:
+        if tag in ("td", "figcaption"):
+            self._into = None
+        if tag == "figure":
+            self._figure = False
+
+    def handle_data(self, data: str) -> None:
+        if self._into is not None:
+            self._into[-1] += data
+
+
+def test_numbers_for_people_have_three_significant_digits(tmp_path: Path) -> None:
+    paths, metrics = _write(tmp_path)
+    page = _Cells()
+    page.feed(paths["report"].read_text(encoding="utf-8"))
+    assert len(page.cells) > 50
+    assert over_precise(page.cells) == []
+    # metrics.json keeps every digit: the value shown is the stored one, rounded.
+    stored = json.loads(paths["metrics"].read_text(encoding="utf-8"))
+    mrr = stored["clue"]["mrr_reranked"]
+    assert mrr == metrics["clue"]["mrr_reranked"] and len(repr(mrr)) > 8
+    assert sig(mrr) in page.cells and repr(mrr) not in page.cells
+
+
+@pytest.mark.parametrize(
+    ("value", "shown"),
+    [
+        (0.95, "0.950"),
+        (0.95349, "0.953"),
+        (12345.6, "12300"),
+        (0.00123456, "0.00123"),
+        (6.16e-16, "6.16e-16"),
+        (-1.23456, "-1.23"),
+        (99.96, "100"),
+        (0.0, "0"),
+        (900, "900"),  # counts stay whole
+        (float("nan"), "n/a"),
+        ({"a": [0.123456, 2]}, '{"a": [0.123, 2]}'),
+    ],
+)
+def test_fmt_rounds_to_three_significant_digits(value: Any, shown: str) -> None:
+    assert fmt(value) == shown
+
+
+def test_every_chart_has_a_caption_saying_how_to_read_it(tmp_path: Path) -> None:
+    paths, _ = _write(tmp_path)
+    page = _Cells()
+    page.feed(paths["report"].read_text(encoding="utf-8"))
+    assert page.images == page.images_in_figures == len(page.captions) == 5
+    for caption in page.captions:
+        assert len(caption.split()) >= 25, caption
+        assert "better" in caption or "calibrated" in caption or "tells them apart" in caption
