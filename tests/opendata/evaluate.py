@@ -86,18 +86,36 @@ def evaluate(out_dir: Path, vectors: dict[str, Any] | None = None) -> dict[str, 
     }
 
 
-def format_table(result: dict[str, Any]) -> str:
-    """The result as a Markdown table, sizes underneath."""
+def retrieval_rows(table: dict[str, dict[str, dict[str, float]]]) -> list[str]:
+    """A Markdown table of top-1, R@20, R@100 and MRR per system and share of words."""
     lines = [
         "| system | words | top-1 | R@20 | R@100 | MRR |",
         "| --- | --- | --- | --- | --- | --- |",
     ]
-    for name, by_share in result["table"].items():
+    for name, by_share in table.items():
         for share, m in by_share.items():
             lines.append(
                 f"| {name} | {share} | {m['top1']:.3f} | {m['r20']:.3f} | {m['r100']:.3f} "
                 f"| {m['mrr']:.3f} |"
             )
+    return lines
+
+
+def run_in_folder(argv: Sequence[str] | None, doc: str | None, run: Any) -> Any:
+    """Parse `--out` (a folder to keep the files in; default a temporary one) and return
+    `run(folder)`."""
+    ap = argparse.ArgumentParser(description=doc)
+    ap.add_argument("--out", type=Path, default=None, help="folder for the files (default temp)")
+    args = ap.parse_args(argv)
+    with tempfile.TemporaryDirectory() as tmp:
+        out = args.out or Path(tmp)
+        out.mkdir(parents=True, exist_ok=True)
+        return run(out)
+
+
+def format_table(result: dict[str, Any]) -> str:
+    """The result as a Markdown table, sizes underneath."""
+    lines = retrieval_rows(result["table"])
     c = result["counts"]
     lines.append(
         f"\n{c['articles']} FOLDOC articles; {c['jargon_entries']} Jargon entries, "

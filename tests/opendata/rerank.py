@@ -11,9 +11,7 @@ recall@20 (the answer among the model's candidates) and MRR over them.
 
 from __future__ import annotations
 
-import argparse
 import json
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -25,7 +23,7 @@ from reranker.candidates import CandidatePolicy, dense_of, fused_rows, search_po
 from reranker.training import train
 from retriever import Index, build_index
 
-from .evaluate import DEPTH, _metrics
+from .evaluate import DEPTH, _metrics, retrieval_rows, run_in_folder
 from .jargon_clues import Clue, build_set, truncate
 
 SHARES = (1.0, 0.5)
@@ -98,27 +96,14 @@ def run(out: Path, systems: Sequence[str] = ("bm25", "hybrid", "refined")) -> di
 
 
 def main(argv: Sequence[str] | None = None) -> None:
-    ap = argparse.ArgumentParser(description=__doc__)
-    ap.add_argument("--out", type=Path, default=None, help="folder for the files (default temp)")
-    args = ap.parse_args(argv)
-    with tempfile.TemporaryDirectory() as tmp:
-        out = args.out or Path(tmp)
-        out.mkdir(parents=True, exist_ok=True)
-        result = run(out)
-        print("| system | words | top-1 | R@20 | R@100 | MRR |")
-        print("| --- | --- | --- | --- | --- | --- |")
-        for name, by_share in result["retrieval"].items():
-            for share, m in by_share.items():
-                print(
-                    f"| {name} | {share} | {m['top1']:.3f} | {m['r20']:.3f} | {m['r100']:.3f} "
-                    f"| {m['mrr']:.3f} |"
-                )
-        print()
-        print("| candidates | words | top-1 | recall@20 | MRR |")
-        print("| --- | --- | --- | --- | --- |")
-        for name, by_share in result["table"].items():
-            for share, m in by_share.items():
-                print(f"| {name} | {share} | {m['top1']:.3f} | {m['r20']:.3f} | {m['mrr']:.3f} |")
+    result = run_in_folder(argv, __doc__, run)
+    print("\n".join(retrieval_rows(result["retrieval"])))
+    print()
+    print("| candidates | words | top-1 | recall@20 | MRR |")
+    print("| --- | --- | --- | --- | --- |")
+    for name, by_share in result["table"].items():
+        for share, m in by_share.items():
+            print(f"| {name} | {share} | {m['top1']:.3f} | {m['r20']:.3f} | {m['mrr']:.3f} |")
 
 
 if __name__ == "__main__":

@@ -8,19 +8,17 @@ the command it prints, and scores both indexes on the test clues (never seen by 
 
 from __future__ import annotations
 
-import argparse
 import json
 import shlex
 import subprocess
 import sys
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 from retriever import load_index
 
-from .evaluate import DEPTH, _metrics
+from .evaluate import DEPTH, _metrics, retrieval_rows, run_in_folder
 from .jargon_clues import build_set, truncate
 
 
@@ -61,22 +59,9 @@ def run(out: Path) -> dict[str, Any]:
 
 
 def main(argv: Sequence[str] | None = None) -> None:
-    ap = argparse.ArgumentParser(description=__doc__)
-    ap.add_argument("--out", type=Path, default=None, help="folder for the files (default temp)")
-    args = ap.parse_args(argv)
-    with tempfile.TemporaryDirectory() as tmp:
-        out = args.out or Path(tmp)
-        out.mkdir(parents=True, exist_ok=True)
-        result = run(out)
-        print(result["printed"])
-        print("| system | words | top-1 | R@20 | R@100 | MRR |")
-        print("| --- | --- | --- | --- | --- | --- |")
-        for name, by_share in result["table"].items():
-            for share, m in by_share.items():
-                print(
-                    f"| {name} | {share} | {m['top1']:.3f} | {m['r20']:.3f} | {m['r100']:.3f} "
-                    f"| {m['mrr']:.3f} |"
-                )
+    result = run_in_folder(argv, __doc__, run)
+    print(result["printed"])
+    print("\n".join(retrieval_rows(result["table"])))
 
 
 if __name__ == "__main__":
