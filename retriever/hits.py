@@ -2,7 +2,15 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import TypeAlias
+
+import numpy as np
+
+# What a batch search takes: analyzed clues, and an optional row mask (a metadata filter's).
+TokenLists: TypeAlias = Sequence[Sequence[str]]
+RowMask: TypeAlias = np.ndarray | None
 
 
 @dataclass(frozen=True)

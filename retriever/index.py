@@ -19,7 +19,7 @@ from .bm25 import BM25Params
 from .counting import cores
 from .dense import DenseSearcher
 from .errors import IndexFormatError, UnknownDocumentError
-from .hits import Hit
+from .hits import Hit, RowMask, TokenLists
 from .links import NameResolver
 from .metacolumns import MetaColumns
 from .sharded import ShardedIndex
@@ -273,11 +273,7 @@ class Index(hybrid.HybridSearch):
         return self.search_token_lists([tokens], k, allowed=allowed)[0]
 
     def search_token_lists(
-        self,
-        token_lists: Sequence[Sequence[str]],
-        k: int = 20,
-        *,
-        allowed: np.ndarray | None = None,
+        self, token_lists: TokenLists, k: int = 20, *, allowed: RowMask = None
     ) -> list[list[Hit]]:
         """`search_tokens` for each list of already-analyzed tokens, in this thread."""
         if k < 1:

@@ -25,7 +25,7 @@ import numpy as np
 
 from .columns import JsonListColumn, StringColumn
 from .errors import FilterError, IndexFormatError
-from .hits import Hit
+from .hits import Hit, RowMask, TokenLists
 from .index import Document, Index, _FieldPostings
 from .sharded import ShardedIndex, merge_scored
 
@@ -185,11 +185,7 @@ class ShardedView(Index):
         return shard.text_of(local)
 
     def search_token_lists(
-        self,
-        token_lists: Sequence[Sequence[str]],
-        k: int = 20,
-        *,
-        allowed: np.ndarray | None = None,
+        self, token_lists: TokenLists, k: int = 20, *, allowed: RowMask = None
     ) -> list[list[Hit]]:
         """Every shard's top k merged by (score desc, global row asc), per token list."""
         if allowed is not None:
