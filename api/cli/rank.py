@@ -180,10 +180,9 @@ def _distributed(args: argparse.Namespace, clues: list[ClueIn]) -> list[str]:
         "meta": np.asarray([json.dumps(c.metadata) for c in clues], dtype=object),
         "line": np.asarray([c.line for c in clues], dtype=np.int64),
     }
-    worker_args = argparse.Namespace(
-        **{k: getattr(args, k) for k in ("index", "model", "feature", "k", "complete", "revealed")},
-        explain=args.explain,
-    )
+    # What a worker reads of the options (a Namespace of plain values crosses to the workers).
+    passed = ("index", "model", "feature", "k", "complete", "revealed", "explain", "filter")
+    worker_args = argparse.Namespace(**{k: getattr(args, k) for k in (*passed, "snippet")})
     with Runner(args.ray, "rank") as runner:
         out = runner.map_batches(columns, RankWorker, (worker_args,), BATCH)
     return [str(line) for line in out.get("json", [])]

@@ -57,6 +57,16 @@ def test_rank_file_on_ray_equals_in_process(
     out = run(*common, "--ray", cluster)  # to stdout
     assert out.returncode == 0, out.stderr
     assert out.stdout.encode("utf-8") == want
+    # A metadata filter and snippets reach the workers too.
+    (tmp_path / "f").mkdir()
+    few = _clues(demo, tmp_path / "f", 30)
+    spec = json.dumps({"kind": {"in": ["town", "river", "island"]}})
+    narrowed = ("rank", "--index", index_dir, "--model", model_path, "--input", few,
+                "--filter", spec, "--snippet")  # fmt: skip
+    here = run(*narrowed)
+    there = run(*narrowed, "--ray", cluster)
+    assert here.returncode == 0 and there.returncode == 0, here.stderr + there.stderr
+    assert there.stdout == here.stdout and '"snippet": "' in here.stdout
 
 
 def test_rank_on_ray_needs_a_file(cluster: str, index_dir: Path, model_path: Path) -> None:
