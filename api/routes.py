@@ -130,8 +130,10 @@ async def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) 
     # On the event loop, not the thread pool: one clue (bounded by max_clue_chars) is about a
     # millisecond of work, and the trip to a pool thread and back cost a large share of
     # that. Batches, as long as the client makes them, stay in the pool.
-    # A wait for the disk, or snippets (a few milliseconds per candidate): not on the loop.
-    if settings.log_fsync or body.snippet:
+    # A wait for the disk, snippets (a few milliseconds per candidate), or searches that wait
+    # on other processes (shards served on Ray): not on the loop.
+    index = runtime.serving.current.index
+    if settings.log_fsync or body.snippet or not index.searches_in_process:
         return await run_in_threadpool(_rank_one, body, runtime, settings)
     return _rank_one(body, runtime, settings)
 

@@ -78,6 +78,10 @@ class _FieldPostings:
 class Index(hybrid.HybridSearch):
     """A read-only BM25 index loaded from a folder; safe to search from many threads."""
 
+    # Whether a search is done in this process (False: it waits on other processes, so a
+    # server must not call it on its event loop).
+    searches_in_process = True
+
     def __init__(self, folder: str | Path, *, title_weight: float | None = None) -> None:
         self.path = Path(folder)
         self.manifest = store.read_manifest(self.path)

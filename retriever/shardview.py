@@ -151,6 +151,7 @@ class ShardedView(Index):
         self._fwd_terms = np.concatenate([t for _, t in lists])
         self.__dict__["dense"] = None  # sharded builds have no word vectors yet
         self._search = search if search is not None else self._search_here
+        self.searches_in_process = search is None
 
     def _search_here(self, token_lists: Sequence[Sequence[str]], k: int) -> list[list[Scored]]:
         return [
