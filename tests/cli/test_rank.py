@@ -155,3 +155,22 @@ def test_rank_bad_input_names_file_line_and_field(
     assert res.returncode == 2
     assert expected in res.stderr and res.stderr.count("\n") == 1, res.stderr
     assert not out.exists()
+
+
+@pytest.mark.slow
+def test_rank_to_parquet_holds_the_jsonl_rows(
+    index_dir: Path, model_path: Path, demo: dict[str, Path], tmp_path: Path
+) -> None:
+    pq = pytest.importorskip("pyarrow.parquet")
+    common = ["--index", index_dir, "--model", model_path, "--input", demo["test"]]
+    res = run("rank", *common, "--output", tmp_path / "out.parquet")
+    assert res.returncode == 0, res.stderr
+    res = run("rank", *common, "--output", tmp_path / "out.jsonl")
+    assert res.returncode == 0, res.stderr
+    table = pq.read_table(tmp_path / "out.parquet").to_pylist()
+    lines = [json.loads(x) for x in (tmp_path / "out.jsonl").read_text().splitlines()]
+    assert len(table) == len(lines) == len(demo["test"].read_text().splitlines())
+    for row, line in zip(table, lines, strict=True):
+        assert row["id"] == line["id"] and row["decision"] == line["decision"]
+        got = [(c["id"], c["probability"]) for c in row["candidates"]]
+        assert got == [(c["id"], c["probability"]) for c in line["candidates"]]
