@@ -39,9 +39,11 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Run the demo and say what to try next."""
-    from .console import show_progress, warn
-    from .demo_steps import prepare, run_demo, serve_and_ask
+    from .console import fail, show_progress, warn
+    from .demo_steps import check_port, prepare, run_demo, serve_and_ask
 
+    if not args.no_serve and args.port:
+        check_port("127.0.0.1", args.port)  # before minutes of work, not after
     run = run_demo(
         args.out, articles=args.articles, ablation=not args.no_ablation, progress=show_progress()
     )
@@ -65,4 +67,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
         prepare(run.out, articles=None) if args.articles is None else run.out / "data",
         port=args.port,
     )
-    return 0
+    return (
+        0
+        if run.server_exit in (None, 0)
+        else fail(f"the service stopped with exit status {run.server_exit}", run.server_exit)
+    )

@@ -34,6 +34,7 @@ class DemoRun:
     metrics: dict[str, Any]
     sample_request: dict[str, Any] = field(default_factory=dict)
     sample_response: dict[str, Any] = field(default_factory=dict)
+    server_exit: int | None = None  # the service's exit status, once it has stopped
 
 
 # An invented payoff that values speed: a right answer is worth 1 at the first word and half
@@ -137,10 +138,25 @@ def free_port(host: str = "127.0.0.1") -> int:
         return int(s.getsockname()[1])
 
 
+def check_port(host: str, port: int) -> None:
+    """OSError naming the port when something already listens on it (the demo would send its
+    sample clue to that other service and take its answer for its own)."""
+    with socket.socket() as s:
+        try:
+            s.bind((host, port))
+        except OSError as exc:
+            raise OSError(
+                f"port {port} on {host} is already in use ({exc.strerror}): stop what listens "
+                "there (an earlier demo?) or pick another with --port (0: any free port)"
+            ) from None
+
+
 def serve_and_ask(
     run: DemoRun, data: Path, *, host: str = "127.0.0.1", port: int = 0, wait: bool = True
 ) -> DemoRun:
     """Start `hunchwise serve` on loopback, send one sample clue, print both, then keep serving."""
+    if port:
+        check_port(host, port)
     port = port or free_port(host)
     cmd = [
         sys.executable,
@@ -172,6 +188,8 @@ def serve_and_ask(
                 if proc.poll() is not None or time.monotonic() > deadline:
                     raise RuntimeError(f"the server did not start (command: {' '.join(cmd)})")
                 time.sleep(0.2)
+            if proc.poll() is not None:  # another service answered: ours has stopped
+                raise OSError(f"the service did not start on {base} (exit status {proc.poll()})")
             clue, share = sample_clue(data)
             body: dict[str, Any] = {"clue": clue, "k": SHOWN, "revealed": share}
             reply = client.post("/v1/rank", json=body)
@@ -194,7 +212,7 @@ def serve_and_ask(
             # inherited; we promise Ctrl-C stops the demo, so take it back.
             signal.signal(signal.SIGINT, signal.default_int_handler)
             _say("\nPress Ctrl-C to stop the service.")
-            proc.wait()
+            run.server_exit = proc.wait()
     except KeyboardInterrupt:
         pass
     finally:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import os
 import signal
+import socket
 import subprocess
 import sys
 import time
@@ -40,6 +41,25 @@ def test_demo_out_naming_a_file_is_a_plain_error(tmp_path: Path) -> None:
     assert proc.returncode != 0 and proc.stderr.count("\n") == 1
     assert f"{taken} is a file, not a folder" in proc.stderr and "Errno" not in proc.stderr
     assert taken.read_text() == "keep me\n"
+
+
+def test_demo_on_a_port_in_use_stops_before_any_work(tmp_path: Path) -> None:
+    # Something else listens on the port: the demo must not send its sample clue there and
+    # take that service's answer for its own.
+    with socket.socket() as other:
+        other.bind(("127.0.0.1", 0))
+        other.listen()
+        port = other.getsockname()[1]
+        proc = subprocess.run(
+            [*_hunchwise(), "demo", "--out", str(tmp_path / "demo"), "--port", str(port)],
+            capture_output=True,
+            text=True,
+            env=ENV,
+            timeout=120,
+        )
+    assert proc.returncode != 0
+    assert f"port {port} on 127.0.0.1 is already in use" in proc.stderr
+    assert not (tmp_path / "demo").exists()
 
 
 def test_demo_without_serving_builds_trains_evaluates_and_reports(tmp_path: Path) -> None:
