@@ -3,7 +3,7 @@ dense search is beside the BM25 query, exact and approximate, with the approxima
 search's recall against the exact one.
 
 Not a test (no assertions on time). Run:
-    python tests/benchmarks/bench_dense.py --articles 100000
+    python -m tests.benchmarks.bench_dense --articles 100000
 It generates an invented corpus of that size with corpus_demo, then, each in its own
 process so peak memory is its own: builds the index without vectors, builds it again with
 the default vectors plus an HNSW graph (built whatever the corpus size, so both dense
@@ -17,7 +17,7 @@ At 1M articles training the vectors on every article takes hours on 2 cores, so
 and then gives all articles their vectors from the sample's words and weights, as
 `hunchwise index add` does for new articles; the build figures then include the sample's
 build. `--ef-search 64,128,256` measures the graph at several efSearch values:
-    python tests/benchmarks/bench_dense.py --articles 1000000 --train-sample 100000 --k 10
+    python -m tests.benchmarks.bench_dense --articles 1000000 --train-sample 100000 --k 10
 """
 
 from __future__ import annotations
@@ -37,6 +37,7 @@ import numpy as np
 
 from corpus_demo import generate_corpus
 from retriever import build_index, load_index
+from tests.benchmarks.options import bench_parser
 
 
 def _peak_rss_mib() -> float:
@@ -164,19 +165,17 @@ def measure(work: Path, queries: int, k: int, ef_values: list[int]) -> None:
 
 def _child(args: list[str]) -> str:
     done = subprocess.run(
-        [sys.executable, __file__, *args], check=True, capture_output=True, text=True
+        [sys.executable, "-m", "tests.benchmarks.bench_dense", *args],
+        check=True,
+        capture_output=True,
+        text=True,
     )
     return done.stdout
 
 
 def main() -> None:
     """Parse options, build both indexes in a temporary folder, print markdown tables."""
-    ap = argparse.ArgumentParser(
-        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
-    )
-    ap.add_argument("--articles", type=int, default=100_000, help="corpus size (default 100000)")
-    ap.add_argument("--queries", type=int, default=300, help="clues to time (default 300)")
-    ap.add_argument("--k", type=int, default=20, help="results per search (default 20)")
+    ap = bench_parser(__doc__)
     ap.add_argument(
         "--work", type=Path, default=None, help="folder to keep the data in (default: temporary)"
     )

@@ -1,7 +1,7 @@
 """Benchmark: clue -> probabilities latency, and featurizing cost as a share of the BM25 query.
 
 Not a test (no assertions on time). Run:
-    python tests/benchmarks/bench_reranker.py --articles 100000
+    python -m tests.benchmarks.bench_reranker --articles 100000
 It generates an invented corpus of that size with corpus_demo, builds the index, trains a
 model on a sample of its clues, then times, per clue, the steps of rank_clue one by one:
 (a) analyzing the clue (its tokens and words, once) and the BM25 query, (b) building the
@@ -33,6 +33,7 @@ from reranker import load_model, rank_clue
 from reranker.features import candidate_set
 from reranker.training import train
 from retriever import build_index, load_index
+from tests.benchmarks.options import bench_parser
 
 
 def _pct(values: list[float], q: float) -> float:
@@ -42,13 +43,8 @@ def _pct(values: list[float], q: float) -> float:
 
 def main() -> None:
     """Parse options, build everything in a temporary folder, print a markdown table."""
-    ap = argparse.ArgumentParser(
-        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
-    )
-    ap.add_argument("--articles", type=int, default=100_000, help="corpus size (default 100000)")
+    ap = bench_parser(__doc__, queries=500, per="candidates per clue")
     ap.add_argument("--questions", type=int, default=2000, help="clues to generate (default 2000)")
-    ap.add_argument("--queries", type=int, default=500, help="clues to time (default 500)")
-    ap.add_argument("--k", type=int, default=20, help="candidates per clue (default 20)")
     ap.add_argument(
         "--work", type=Path, default=None, help="folder to keep the data in (default: temporary)"
     )
@@ -75,7 +71,9 @@ def main() -> None:
         # (the building and training above leave this process's memory in another state).
         options = ["--queries", str(args.queries), "--k", str(args.k)]
         options += ["--articles", str(args.articles), "--measure", str(work)]
-        subprocess.run([sys.executable, __file__, *options], check=True)
+        subprocess.run(
+            [sys.executable, "-m", "tests.benchmarks.bench_reranker", *options], check=True
+        )
 
 
 def measure(work: Path, queries: int, k: int, articles: int) -> None:

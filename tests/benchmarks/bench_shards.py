@@ -1,7 +1,7 @@
 """Benchmark: a sharded build on a local Ray cluster against the single-machine index.
 
 Not a test (no assertions on time). Run:
-    python tests/benchmarks/bench_shards.py --articles 100000 --shards 4
+    python -m tests.benchmarks.bench_shards --articles 100000 --shards 4
 It generates an invented corpus of that size with corpus_demo, then, each in its own
 process so peak memory is its own: builds the single index, builds the sharded one with
 `--ray local` (a Ray cluster started in that process, one task per shard) and in-process,
@@ -28,6 +28,7 @@ from pathlib import Path
 from corpus_demo import generate_corpus
 from retriever import build_index, load_index
 from retriever.shards import build_sharded
+from tests.benchmarks.options import bench_parser
 
 
 def _peak_rss_mib() -> float:
@@ -105,20 +106,18 @@ def query(work: Path, folder: str, queries: int, k: int) -> None:
 
 def _child(args: list[str]) -> dict[str, float]:
     done = subprocess.run(
-        [sys.executable, __file__, *args], check=True, capture_output=True, text=True
+        [sys.executable, "-m", "tests.benchmarks.bench_shards", *args],
+        check=True,
+        capture_output=True,
+        text=True,
     )
     return dict(json.loads(done.stdout.splitlines()[-1]))
 
 
 def main() -> None:
     """Parse options, build in a temporary folder, print markdown tables."""
-    ap = argparse.ArgumentParser(
-        description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter
-    )
-    ap.add_argument("--articles", type=int, default=100_000, help="corpus size (default 100000)")
+    ap = bench_parser(__doc__)
     ap.add_argument("--shards", type=int, default=4, help="shards (default 4)")
-    ap.add_argument("--queries", type=int, default=300, help="clues to time (default 300)")
-    ap.add_argument("--k", type=int, default=20, help="results per search (default 20)")
     ap.add_argument("--vectors", action="store_true", help="train word vectors in every build")
     ap.add_argument("--work", type=Path, default=None, help="folder to keep (default: temporary)")
     ap.add_argument(
