@@ -8,6 +8,7 @@ path has an in-process twin giving the same output.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -48,6 +49,9 @@ class Runner:
     def __init__(self, ray_address: str | None, what: str = "build") -> None:
         self.ray: Any = None
         self._started = False
+        # Each Ray Data job's execution record as the driver's Dataset.stats() gives it
+        # (operators, tasks, rows), in the order the jobs ran; empty in this process.
+        self.data_runs: list[str] = []
         if ray_address is None:
             return
         ray = import_ray(what)
@@ -119,7 +123,13 @@ class Runner:
         self, columns: dict[str, np.ndarray], worker: type, args: tuple[Any, ...], batch_size: int
     ) -> list[dict[str, np.ndarray]]:
         ray = self.ray
-        ctx = ray.data.DataContext.get_current()
+        with warnings.catch_warnings():
+            # Ray Data's first DataContext sets its own deprecated options to their defaults
+            # on construction and warns about each (Ray 2.60); nothing here sets them.
+            warnings.filterwarnings(
+                "ignore", category=DeprecationWarning, module=r"ray\.data\.context"
+            )
+            ctx = ray.data.DataContext.get_current()
         ctx.enable_progress_bars = False
         names = list(columns)
         values = [columns[c].tolist() for c in names]
@@ -134,12 +144,14 @@ class Runner:
             num_cpus=1,
         )
         try:
-            return list(ds.iter_batches(batch_size=None, batch_format="numpy"))
+            parts = list(ds.iter_batches(batch_size=None, batch_format="numpy"))
         except Exception as exc:  # Ray Data wraps the worker's own error in its own
             err = _user_error(exc)
             if err is exc:
                 raise
             raise err from None
+        self.data_runs.append(ds.stats())
+        return parts
 
     def close(self) -> None:
         """Shut Ray down if this runner started it."""

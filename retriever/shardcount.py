@@ -1,5 +1,10 @@
-"""Pass 1 of a sharded build: count contiguous ranges of the corpus, one task per shard, and
-reduce the counts to the corpus's statistics, names and links (retriever/shards.py runs it)."""
+"""Pass 1 of a sharded build: count contiguous ranges of the corpus, one per shard, and reduce
+the counts to the corpus's statistics, names and links (retriever/shards.py runs it).
+
+With a Ray cluster the ranges are a Ray Data dataset (one row per range: its items and its
+byte window) whose batches `CountRanges` workers count (`Runner.map_batches`); the driver
+reduces what comes back. Without one, `count_shard` runs over the ranges in this process.
+"""
 
 from __future__ import annotations
 
@@ -13,6 +18,7 @@ import numpy as np
 
 from .analyzer import Analyzer, AnalyzerConfig
 from .build import KnownLinks
+from .cluster import Runner
 from .corpus import CorpusError, ReadReport
 from .counting import no_gc
 from .errors import position
@@ -106,6 +112,62 @@ def count_shard(
         report.skipped,
         report.problems,
     )
+
+
+class CountRanges:
+    """A Ray Data worker: counts each range of a batch (`start`, `stop`, and its byte window
+    `first_byte`, `end_byte`, `first_line`, all -1 where the format has none)."""
+
+    def __init__(self, corpus: str, analyzer: dict[str, Any], skip_bad: bool) -> None:
+        self.corpus, self.analyzer, self.skip_bad = corpus, analyzer, skip_bad
+
+    def __call__(self, batch: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+        counts = np.empty(len(batch["seq"]), dtype=object)
+        for i, (a, b, first, end, line) in enumerate(
+            zip(
+                batch["start"].tolist(),
+                batch["stop"].tolist(),
+                batch["first_byte"].tolist(),
+                batch["end_byte"].tolist(),
+                batch["first_line"].tolist(),
+                strict=True,
+            )
+        ):
+            window = None if first < 0 else (first, end, line)
+            counts[i] = count_shard(self.corpus, (a, b), self.analyzer, self.skip_bad, window)
+        return {"seq": batch["seq"], "counts": counts}
+
+
+def count_ranges(
+    runner: Runner,
+    corpus: str,
+    spans: Sequence[tuple[int, int]],
+    windows: Sequence[tuple[int, int, int] | None],
+    analyzer: dict[str, Any],
+    skip_bad: bool,
+) -> tuple[list[ShardCounts], dict[str, Any]]:
+    """Every span's counts, in order, and how they were counted (for the build's record): as
+    a Ray Data job when `runner` has a cluster (one range per batch, so the ranges are counted
+    side by side; the record lists the job's operators from the driver's dataset statistics),
+    else one after the other here."""
+    if runner.ray is None:
+        calls = [
+            (corpus, tuple(s), analyzer, skip_bad, w) for s, w in zip(spans, windows, strict=True)
+        ]
+        return list(runner.map(count_shard, calls)), {"engine": "in-process"}
+    flat = [w if w is not None else (-1, -1, -1) for w in windows]
+    columns = {
+        "seq": np.arange(len(spans), dtype=np.int64),
+        "start": np.asarray([s[0] for s in spans], dtype=np.int64),
+        "stop": np.asarray([s[1] for s in spans], dtype=np.int64),
+        "first_byte": np.asarray([w[0] for w in flat], dtype=np.int64),
+        "end_byte": np.asarray([w[1] for w in flat], dtype=np.int64),
+        "first_line": np.asarray([w[2] for w in flat], dtype=np.int64),
+    }
+    out = runner.map_batches(columns, CountRanges, (corpus, analyzer, skip_bad), 1)
+    stats = runner.data_runs[-1] if runner.data_runs else ""
+    operators = [line for line in stats.splitlines() if line.startswith("Operator ")]
+    return list(out["counts"]), {"engine": "ray data", "operators": operators}
 
 
 def reduce_stats(parts: Sequence[ShardCounts]) -> CorpusStats:

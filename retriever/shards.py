@@ -1,16 +1,18 @@
 """Build one index as several shards, on a Ray cluster or in this process, equal to one build.
 
-Pass 1 counts contiguous ranges of the corpus's items (lines or rows), one task per shard:
-each field's document frequencies, token totals and article count, plus the names links
-resolve to (ids, titles, aliases) and the links. The driver reduces them to the corpus's
-sorted vocabulary, document frequencies, lengths and in-links, the figures a single build
-computes, and writes the statistics with a SHA-256 checksum. Pass 2 writes every shard as an
-ordinary index folder with the builder's own code (`build.write_folder`), given those
-statistics, so each posting weight equals the single build's bit for bit; a top manifest
-lists the shards (retriever/sharded.py reads it and merges searches).
+Pass 1 counts contiguous ranges of the corpus's items (lines or rows), one per shard, as a
+Ray Data job on a cluster (the ranges a dataset, counted by map_batches workers) and in order
+here without one (retriever/shardcount.py): each field's document frequencies, token totals
+and article count, plus the names links resolve to (ids, titles, aliases) and the links. The
+driver reduces them to the corpus's sorted vocabulary, document frequencies, lengths and
+in-links, the figures a single build computes, and writes the statistics with a SHA-256
+checksum. Pass 2 writes every shard as an ordinary index folder with the builder's own code
+(`build.write_folder`), given those statistics, so each posting weight equals the single
+build's bit for bit; a top manifest lists the shards (retriever/sharded.py reads it and
+merges searches).
 
-Ray is optional and imported only here, only when asked for: without it the same two
-functions run one after the other in this process. On a cluster of several machines the
+Ray is optional, imported only by retriever/cluster.py and only when asked for: without it
+the same functions run one after the other in this process. On a cluster of several machines the
 output folder must be on storage every node sees (the tasks write the shards there).
 Word vectors (pass 3) are trained once in the driver over every shard's stored articles,
 then each shard task writes its articles' vectors (retriever/shardvectors.py). For an
@@ -44,7 +46,7 @@ from .shardcount import (
     ShardCounts,
     _NoBar,
     _windows,
-    count_shard,
+    count_ranges,
     join_keys,
     reduce_stats,
     resolve_links,
@@ -222,11 +224,8 @@ def build_sharded(
     try:
         with store.atomic_folder(Path(out_dir)) as tmp:
             windows = _windows(offsets, spans)
-            calls = [
-                (str(path), tuple(s), an.to_dict(), skip_bad, w)
-                for s, w in zip(spans, windows, strict=True)
-            ]
-            parts = [pt for pt in runner.map(count_shard, calls) if len(pt.keys)]
+            counted, pass1 = count_ranges(runner, str(path), spans, windows, an.to_dict(), skip_bad)
+            parts = [pt for pt in counted if len(pt.keys)]
             if not parts:
                 raise CorpusError("the corpus has no valid articles", file=str(corpus))
             keys = join_keys(str(path), parts)
@@ -286,6 +285,7 @@ def build_sharded(
                         "corpus": str(path),
                         "skipped_lines": sum(pt.skipped for pt in parts),
                         "ray": ray_address or "",
+                        "pass1": pass1,
                         "read": "byte ranges" if offsets is not None else "items from the start",
                         "seconds": round(time.perf_counter() - started, 3),
                     },
