@@ -19,6 +19,7 @@ from .options import (
     add_ray_option,
     add_reporting_options,
     at_least_zero,
+    byte_size,
     unit_share,
 )
 
@@ -113,7 +114,17 @@ def register(sub: argparse._SubParsersAction) -> None:
         default="auto",
         help="how the logistic model is fitted: 'memory' (scikit-learn on the whole table), "
         "'blocks' (map-reduce Newton steps over blocks of rows, as Ray tasks with --ray; the "
-        "same model) or 'auto' (blocks above 2 GiB of features; default)",
+        "same model) or 'auto' (in memory when the table of features fits --fit-budget, else "
+        "in blocks; default)",
+    )
+    p.add_argument(
+        "--fit-budget",
+        type=byte_size,
+        default=None,
+        metavar="SIZE",
+        help="with --fit auto: the most memory the table of features (rows x features x 8 bytes) "
+        "may take for the in-memory fit, like 512M or 2G (default: a quarter of the memory "
+        "available when training starts)",
     )
     p.set_defaults(func=cmd_train)
 
@@ -189,6 +200,7 @@ def cmd_train(args: argparse.Namespace) -> int:
             candidates=args.candidates,
             runner=runner,
             fit=args.fit,
+            fit_budget=args.fit_budget,
             refine_vectors=args.refine_vectors,
         )
     a = res.artifact
@@ -205,6 +217,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         "thresholds_by_share": _schedule_text(a["decision"]["schedule"]),
         "mean_payoff_held_out": _rules_text(a["decision"]["rules"]),
         "candidates": _candidates_text(a["candidates"]),
+        "fit": f"{a['training']['fit']['method']}: {a['training']['fit']['reason']}",
         "recall_at_k": a["training"]["recall_at_k_full_clue"],
         "unresolved_answers": a["training"]["unresolved_count"],
         "skipped_lines": a["training"]["skipped_lines"],

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import re
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -28,6 +29,21 @@ def bounded_number(low: float, high: float, describe: str) -> Callable[[str], fl
 unit_share = bounded_number(0.0, 1.0, "a number between 0 and 1")
 # Finite: the upper bound is the largest float, so "inf" is refused.
 at_least_zero = bounded_number(0.0, 1.7976931348623157e308, "a number of at least 0")
+
+
+_SIZE = re.compile(r"\s*(\d+(?:\.\d+)?)\s*([kmgt]?)(?:i?b)?\s*", re.IGNORECASE)
+
+
+def byte_size(text: str) -> int:
+    """An argparse type: a size in bytes, with an optional binary unit (512M, 2G, 1.5GiB)."""
+    m = _SIZE.fullmatch(text)
+    if m is None:
+        raise argparse.ArgumentTypeError(f"expected a size like 512M or 2G, got {text!r}")
+    unit = m.group(2).lower()
+    value = int(float(m.group(1)) * 1024 ** ("kmgt".index(unit) + 1 if unit else 0))
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a size of at least 1 byte, got {text!r}")
+    return value
 
 
 def prefix_shares(text: str) -> tuple[float, ...]:

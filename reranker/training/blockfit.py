@@ -18,6 +18,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import psutil
 from sklearn.linear_model import LogisticRegression
 from sklearn.pipeline import Pipeline, make_pipeline
 from sklearn.preprocessing import StandardScaler
@@ -153,17 +154,64 @@ def split_rows(X: np.ndarray, y: np.ndarray, rows_per_block: int) -> list[Block]
     ]
 
 
-# Above this many bytes of features the table is fitted in blocks (rule of thumb: a few
-# copies of the table are made while fitting in memory; common practice, no source).
-MEMORY_FIT_BYTES = 2 * 1024**3
 FIT_MODES = ("auto", "memory", "blocks")
+# The in-memory fit holds the gathered table and a few working copies of it at once (the
+# scaled copy, a fold's training rows, the solver's arrays), so 'auto' lets the table itself
+# take a quarter of the memory available when training starts (rule of thumb: common
+# practice, no source).
+FIT_BUDGET_SHARE = 0.25
 
 
-def use_blocks(mode: str, X: np.ndarray) -> bool:
-    """Whether `mode` ('auto', 'memory' or 'blocks') fits this table in blocks."""
+def default_fit_budget() -> int:
+    """Bytes of features the in-memory fit may gather: a share of the memory available now."""
+    return int(psutil.virtual_memory().available * FIT_BUDGET_SHARE)
+
+
+def _mib(n: float) -> str:
+    return f"{n / 1024**2:,.1f} MiB"
+
+
+@dataclass(frozen=True)
+class FitChoice:
+    """Which fit runs ('memory': scikit-learn on the gathered table; 'blocks': the map-reduce
+    Newton fit) and why, with the figures the choice was made on."""
+
+    method: str
+    reason: str
+    table_bytes: int  # rows x features x 8 bytes
+    budget_bytes: int | None  # None: the fit was asked for, no budget consulted
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain data for the model file's training section."""
+        return {
+            "method": self.method,
+            "reason": self.reason,
+            "table_bytes": self.table_bytes,
+            "budget_bytes": self.budget_bytes,
+        }
+
+
+def choose_fit(mode: str, rows: int, features: int, budget: int | None = None) -> FitChoice:
+    """The fit for a table of `rows` x `features` float64s under `mode` ('auto', 'memory' or
+    'blocks'). 'auto' gathers the table when its estimated size is under `budget` bytes
+    (default: `default_fit_budget()`), else fits in blocks."""
     if mode not in FIT_MODES:
         raise ValueError(f"fit must be one of {FIT_MODES}, got {mode!r}")
-    return mode == "blocks" or (mode == "auto" and X.nbytes > MEMORY_FIT_BYTES)
+    size = int(rows) * int(features) * 8
+    if mode != "auto":
+        return FitChoice(mode, f"asked for (fit={mode!r})", size, None)
+    if budget is None:
+        budget = default_fit_budget()
+    elif budget < 1:
+        raise ValueError(f"the fit's memory budget must be at least 1 byte, got {budget}")
+    if size < budget:
+        why = f"the table's {_mib(size)} of features fit the memory budget of {_mib(budget)}"
+        return FitChoice("memory", why, size, budget)
+    why = (
+        f"the table's {_mib(size)} of features exceed the memory budget of {_mib(budget)}: "
+        "fitted by map-reduce over blocks of rows"
+    )
+    return FitChoice("blocks", why, size, budget)
 
 
 def block_fitter(

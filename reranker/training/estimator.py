@@ -18,7 +18,7 @@ from retriever.cluster import Runner
 
 from ..errors import TrainingError
 from ..model import LinearModel
-from .blockfit import block_fitter, use_blocks
+from .blockfit import block_fitter, choose_fit
 from .fitting import cross_calibrate, fit_calibrator, grouped_folds, make_pipeline_for, oof_proba
 
 DEFAULT_CS = (0.01, 0.1, 1.0, 10.0, 100.0)
@@ -43,6 +43,7 @@ class Reranker:
         fit: str = "auto",
         block_rows: int = 65_536,
         runner: Runner | None = None,
+        fit_budget: int | None = None,
     ) -> None:
         self.Cs = Cs
         self.calibration = calibration
@@ -51,10 +52,13 @@ class Reranker:
         self.verbose = verbose  # a progress bar on stderr while fitting
         # 'memory': scikit-learn on the gathered table; 'blocks': the map-reduce Newton fit
         # of reranker/training/blockfit.py (the same model), over blocks of `block_rows`
-        # rows, as tasks of `runner` when it has a cluster; 'auto': blocks for big tables.
+        # rows, as tasks of `runner` when it has a cluster; 'auto': gathered when the table
+        # (rows x features x 8 bytes) is under `fit_budget` bytes (None: a share of the memory
+        # available, blockfit.default_fit_budget), else in blocks.
         self.fit_mode = fit
         self.block_rows = block_rows
         self.runner = runner
+        self.fit_budget = fit_budget
 
     def _check_settings(self) -> None:
         if self.calibration not in CALIBRATIONS:
@@ -80,10 +84,10 @@ class Reranker:
                 "check that gold answers resolve and appear among the candidates"
             )
         splits = grouped_folds(y, groups, self.n_folds)
-        fitter = (
-            block_fitter(self.block_rows, self.runner) if use_blocks(self.fit_mode, X) else None
-        )
-        self.fitted_in_blocks_ = fitter is not None
+        self.fit_choice_ = choose_fit(self.fit_mode, X.shape[0], X.shape[1], self.fit_budget)
+        in_blocks = self.fit_choice_.method == "blocks"
+        fitter = block_fitter(self.block_rows, self.runner) if in_blocks else None
+        self.fitted_in_blocks_ = in_blocks
         cv_log_loss: dict[str, float] = {}
         best: tuple[float, float, np.ndarray] | None = None
         with tqdm(

@@ -97,6 +97,7 @@ def train(
     candidates: str = "auto",
     runner: Runner | None = None,
     fit: str = "auto",
+    fit_budget: int | None = None,
     refine_vectors: bool = True,
 ) -> TrainResult:
     """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON.
@@ -105,7 +106,9 @@ def train(
     chosen on these logs) when the index has word vectors, else BM25's; "bm25" always BM25's.
     runner: a Ray runner (retriever/cluster.py) that builds the training table in blocks.
     fit: 'memory' (scikit-learn), 'blocks' (the map-reduce fit, as `runner`'s tasks) or
-    'auto' (blocks for tables over blockfit.MEMORY_FIT_BYTES).
+    'auto' (in memory when the table, rows x features x 8 bytes, is under `fit_budget` bytes;
+    None: a share of the memory available, blockfit.default_fit_budget; else in blocks). The
+    model file's training section says which fit ran and why.
     refine_vectors: with hybrid candidates, train the vectors again with the labelled clues
     (reranker/training/refine.py; the rows cross-fitted, the served vectors refined on all).
     """
@@ -154,9 +157,9 @@ def train(
         runner=runner,
         policy_for=policy_for,
     )
-    estimator = Reranker(calibration=calibration, verbose=progress, fit=fit, runner=runner).fit(
-        table.X, table.y, table.clue_id, table.feature_names
-    )
+    estimator = Reranker(
+        calibration=calibration, verbose=progress, fit=fit, runner=runner, fit_budget=fit_budget
+    ).fit(table.X, table.y, table.clue_id, table.feature_names)
     # One distribution per clue: P(among the candidates) from clue-level evidence, shared out
     # in proportion to the pointwise probabilities. Decisions are tuned on that distribution.
     presence, q_oof = fit_presence(table, estimator.oof_proba_)
@@ -199,6 +202,7 @@ def train(
             "served_without_feedback": report.served_without_feedback,
             "fusion_tuning": fusion_rows,
             "refined_vectors": None if refined is None else refined.summary(),
+            "fit": estimator.fit_choice_.to_dict(),
         },
         presence=presence.to_dict(),
         candidates=policy.to_dict(),
