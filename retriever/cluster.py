@@ -131,6 +131,9 @@ class Runner:
             )
             ctx = ray.data.DataContext.get_current()
         ctx.enable_progress_bars = False
+        # A worker's own error (a bad line, say) comes back as itself, not as Ray Data's
+        # UserCodeException, which carries only its traceback text across (Ray 2.60).
+        ctx.raise_original_map_exception = True
         names = list(columns)
         values = [columns[c].tolist() for c in names]
         rows = [dict(zip(names, r, strict=True)) for r in zip(*values, strict=True)]

@@ -7,7 +7,7 @@ from collections.abc import Iterator
 import numpy as np
 import pytest
 
-from reranker.training.blockfit import fit_blocks, split_rows, use_blocks
+from reranker.training.blockfit import choose_fit, fit_blocks, split_rows
 from reranker.training.estimator import Reranker
 from reranker.training.fitting import make_pipeline_for
 from retriever.cluster import Runner
@@ -62,9 +62,13 @@ def test_unregularised_block_fit_equals_statsmodels() -> None:
 
 def test_fit_modes() -> None:
     X, _ = _data(10)
-    assert not use_blocks("auto", X) and use_blocks("blocks", X) and not use_blocks("memory", X)
+    assert [choose_fit(m, *X.shape).method for m in ("auto", "blocks", "memory")] == [
+        "memory",
+        "blocks",
+        "memory",
+    ]
     with pytest.raises(ValueError, match="fit must be one of"):
-        use_blocks("disk", X)
+        choose_fit("disk", *X.shape)
     with pytest.raises(ValueError, match="rows per block"):
         split_rows(X, np.zeros(10), 0)
 
