@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import json
 import os
 import subprocess
@@ -10,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from api.cli.options import byte_size
 from tests.reranker.conftest import REPO, World
 
 HERE = Path(__file__).resolve().parents[1] / "reranker"  # userfeatures.py, an example user module
@@ -358,3 +360,31 @@ def test_train_refines_the_vectors_unless_told_not_to(world: World, tmp_path: Pa
     name = json.loads(refined.read_text())["candidates"]["vectors"]
     assert f"refined vectors {name}" in out.stdout
     assert (world.index.path / f"vectors-{name}" / "docvec.npy").exists()
+
+
+@pytest.mark.slow
+def test_train_over_the_fit_budget_fits_in_blocks(world: World, tmp_path: Path) -> None:
+    model = tmp_path / "model.json"
+    out = hunchwise(
+        "train", "--index", world.index.path, "--log", world.train_log, "--out", model,
+        "--fit-budget", "1K", "--json",
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    fit = json.loads(model.read_text())["training"]["fit"]
+    assert fit["method"] == "blocks" and fit["budget_bytes"] == 1024
+    assert fit["table_bytes"] > 1024 and "exceed the memory budget" in fit["reason"]
+    assert json.loads(out.stdout)["fit"] == f"blocks: {fit['reason']}"
+
+
+def test_fit_budget_sizes() -> None:
+    assert [byte_size(t) for t in ("100", "2K", "1.5M", "2G", "1GiB", "3gb")] == [
+        100,
+        2048,
+        1536 * 1024,
+        2 * 1024**3,
+        1024**3,
+        3 * 1024**3,
+    ]
+    for bad in ("lots", "0", "-1M", "2X", ""):
+        with pytest.raises(argparse.ArgumentTypeError, match="expected a size"):
+            byte_size(bad)

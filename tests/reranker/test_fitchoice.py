@@ -3,19 +3,15 @@ under a memory budget, else the map-reduce Newton fit; the model file says which
 
 from __future__ import annotations
 
-import json
-from pathlib import Path
-
 import numpy as np
 import psutil
 import pytest
 from sklearn.linear_model import LogisticRegression
 from sklearn.preprocessing import StandardScaler
 
-from reranker.training import TrainResult, train
+from reranker.training import TrainResult
 from reranker.training.blockfit import FIT_BUDGET_SHARE, choose_fit
 from reranker.training.estimator import Reranker
-from tests.reranker.conftest import World
 
 
 def test_the_budget_decides_in_auto_mode() -> None:
@@ -76,15 +72,10 @@ def test_either_fit_equals_scikit_learn(world_trained: TrainResult, over_budget:
     assert np.max(np.abs(est.raw_probability(t.X) - want.predict_proba(Z)[:, 1])) <= 1e-8
 
 
-def test_the_model_file_says_which_fit_ran_and_why(
-    world: World, world_trained: TrainResult, tmp_path: Path
-) -> None:
+def test_the_model_file_says_which_fit_ran_and_why(world_trained: TrainResult) -> None:
+    # The default budget (a quarter of the memory available) holds the world's small table;
+    # tests/cli/test_model.py trains with a budget it exceeds.
     roomy = world_trained.artifact["training"]["fit"]
     assert roomy["method"] == "memory" and "fit the memory budget" in roomy["reason"]
     rows, width = world_trained.table.X.shape
     assert roomy["table_bytes"] == rows * width * 8 and roomy["budget_bytes"] > 0
-    res = train(world.index, [world.train_log], tmp_path / "model.json", fit_budget=1)
-    tight = json.loads((tmp_path / "model.json").read_text())["training"]["fit"]
-    assert tight["method"] == "blocks" and tight["budget_bytes"] == 1
-    assert "exceed the memory budget" in tight["reason"]
-    assert res.estimator.fitted_in_blocks_
