@@ -22,7 +22,9 @@ from typing import Any
 from .errors import ModelFormatError
 
 # Fields that describe the file rather than what it computes: left out of the version.
-UNVERSIONED = ("model_version", "created_at")
+# `fit` says which fit ran and why, with a memory budget that by default follows the memory
+# free at the time (the fitted numbers it led to are versioned as they are).
+UNVERSIONED = ("model_version", "created_at", "fit")
 
 
 def artifact_version(data: Mapping[str, Any]) -> str:

@@ -217,7 +217,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         "thresholds_by_share": _schedule_text(a["decision"]["schedule"]),
         "mean_payoff_held_out": _rules_text(a["decision"]["rules"]),
         "candidates": _candidates_text(a["candidates"]),
-        "fit": f"{a['training']['fit']['method']}: {a['training']['fit']['reason']}",
+        "fit": f"{a['fit']['method']}: {a['fit']['reason']}",
         "recall_at_k": a["training"]["recall_at_k_full_clue"],
         "unresolved_answers": a["training"]["unresolved_count"],
         "skipped_lines": a["training"]["skipped_lines"],

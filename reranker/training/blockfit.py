@@ -182,7 +182,8 @@ class FitChoice:
     budget_bytes: int | None  # None: the fit was asked for, no budget consulted
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain data for the model file's training section."""
+        """Plain data for the model file's `fit` (left out of the model's version: the
+        default budget follows the memory free at the time)."""
         return {
             "method": self.method,
             "reason": self.reason,

@@ -108,7 +108,7 @@ def train(
     fit: 'memory' (scikit-learn), 'blocks' (the map-reduce fit, as `runner`'s tasks) or
     'auto' (in memory when the table, rows x features x 8 bytes, is under `fit_budget` bytes;
     None: a share of the memory available, blockfit.default_fit_budget; else in blocks). The
-    model file's training section says which fit ran and why.
+    model file's `fit` says which fit ran and why.
     refine_vectors: with hybrid candidates, train the vectors again with the labelled clues
     (reranker/training/refine.py; the rows cross-fitted, the served vectors refined on all).
     """
@@ -202,10 +202,10 @@ def train(
             "served_without_feedback": report.served_without_feedback,
             "fusion_tuning": fusion_rows,
             "refined_vectors": None if refined is None else refined.summary(),
-            "fit": estimator.fit_choice_.to_dict(),
         },
         presence=presence.to_dict(),
         candidates=policy.to_dict(),
+        fit=estimator.fit_choice_.to_dict(),
         metrics=oof,
         decision={
             "threshold": tuned["threshold"],

@@ -370,7 +370,7 @@ def test_train_over_the_fit_budget_fits_in_blocks(world: World, tmp_path: Path) 
         "--fit-budget", "1K", "--json",
     )  # fmt: skip
     assert out.returncode == 0, out.stderr
-    fit = json.loads(model.read_text())["training"]["fit"]
+    fit = json.loads(model.read_text())["fit"]
     assert fit["method"] == "blocks" and fit["budget_bytes"] == 1024
     assert fit["table_bytes"] > 1024 and "exceed the memory budget" in fit["reason"]
     assert json.loads(out.stdout)["fit"] == f"blocks: {fit['reason']}"

@@ -92,7 +92,17 @@ def test_features_export_on_ray_equals_in_process(
 
 
 # When and how long, and what follows from them (a model's version hashes its file).
-VARYING = {"created_at", "evaluated_at", "trained_at", "seconds", "fit_seconds", "model_version"}
+# "fit": which fit ran and why, with the memory budget (by default a share of the memory free
+# at the time); its method is compared on its own.
+VARYING = {
+    "created_at",
+    "evaluated_at",
+    "trained_at",
+    "seconds",
+    "fit_seconds",
+    "model_version",
+    "fit",
+}
 
 
 def _differences(x: Any, y: Any, path: str = "") -> list[str]:
@@ -126,6 +136,7 @@ def test_train_and_evaluate_on_ray_equal_in_process(
                   "--report", report, "--no-ablation", *extra)  # fmt: skip
         assert res.returncode == 0, res.stderr
     assert _differences(models["here"], models["ray"]) == []
+    assert models["here"]["fit"]["method"] == models["ray"]["fit"]["method"] == "memory"
     metrics = [json.loads((tmp_path / f"report-{n}" / "metrics.json").read_text()) for n in models]
     assert _differences(*metrics) == []
     assert metrics[0]["about"]["evaluation"]["clues"] > 50

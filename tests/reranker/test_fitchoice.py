@@ -9,6 +9,7 @@ import pytest
 from sklearn.linear_model import LogisticRegression
 from sklearn.preprocessing import StandardScaler
 
+from reranker.artifact import artifact_version
 from reranker.training import TrainResult
 from reranker.training.blockfit import FIT_BUDGET_SHARE, choose_fit
 from reranker.training.estimator import Reranker
@@ -75,7 +76,16 @@ def test_either_fit_equals_scikit_learn(world_trained: TrainResult, over_budget:
 def test_the_model_file_says_which_fit_ran_and_why(world_trained: TrainResult) -> None:
     # The default budget (a quarter of the memory available) holds the world's small table;
     # tests/cli/test_model.py trains with a budget it exceeds.
-    roomy = world_trained.artifact["training"]["fit"]
+    roomy = world_trained.artifact["fit"]
     assert roomy["method"] == "memory" and "fit the memory budget" in roomy["reason"]
     rows, width = world_trained.table.X.shape
     assert roomy["table_bytes"] == rows * width * 8 and roomy["budget_bytes"] > 0
+
+
+def test_the_budget_is_not_part_of_the_model_version(world_trained: TrainResult) -> None:
+    # The default budget follows the memory free when training starts: the same data must
+    # still give the same version, while anything the model computes changes it.
+    art = world_trained.artifact
+    other = {**art, "fit": {**art["fit"], "budget_bytes": art["fit"]["budget_bytes"] + 4096}}
+    assert artifact_version(other) == artifact_version(art) == art["model_version"]
+    assert artifact_version({**art, "intercept": art["intercept"] + 1.0}) != art["model_version"]
