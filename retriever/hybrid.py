@@ -67,7 +67,7 @@ class HybridSource(Protocol):
 
     def term_ids(self, tokens: Sequence[str]) -> tuple[np.ndarray, np.ndarray]: ...
 
-    def score_tokens(self, tokens: Sequence[str]) -> np.ndarray: ...
+    def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]: ...
 
 
 @dataclass(frozen=True)
@@ -179,7 +179,13 @@ def search_hybrid_many(
         rows, fused = rows[:k], fused[:k]
         b_rank = {int(r): i + 1 for i, r in enumerate(b_rows.tolist())}
         d_rank = {int(r): i + 1 for i, r in enumerate(d_rows.tolist())}
-        bm25_all = index.score_tokens(tokens)[rows] if rows.size else np.empty(0)
+        # Every member's BM25 score: the pool's own, and for those only the vectors found,
+        # scored for just those rows.
+        known = dict(zip(b_rows.tolist(), b_scores.tolist(), strict=True))
+        missing = [r for r in rows.tolist() if r not in known]
+        if missing:
+            known.update(index.score_rows(tokens, np.asarray(missing, dtype=np.int64)))
+        bm25_all = np.array([known[r] for r in rows.tolist()], dtype=np.float64)
         cos = dense.cosines(qvec, rows) if dense is not None else np.zeros(rows.size)
         ids, titles = index.ids.take(rows), index.titles.take(rows)
         out.append(

@@ -259,12 +259,13 @@ class Index(hybrid.HybridSearch):
     def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]:
         """BM25 scores of some articles for analyzed tokens, by row.
 
-        Scores the whole corpus and picks the rows: the same numbers as `search_tokens`
-        gives, at the cost of one exhaustive query (used for the few articles a hybrid
-        set takes from the vectors' pool alone).
+        The same numbers as `score_tokens` (and `search_tokens`) give them, found by binary
+        search in each query term's postings instead of scoring the whole corpus (used for
+        the few articles a hybrid set takes from the vectors' pool alone).
         """
-        scores = self.score_tokens(tokens)
-        return {int(r): float(scores[r]) for r in np.asarray(rows).tolist()}
+        rows = np.asarray(rows, dtype=np.int64)
+        scores = scoring.score_rows(self._plan([tokens]), rows, self.body.weight.dtype)
+        return dict(zip(rows.tolist(), scores.astype(np.float64).tolist(), strict=True))
 
     def search_tokens(
         self, tokens: Sequence[str], k: int = 20, *, allowed: np.ndarray | None = None

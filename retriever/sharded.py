@@ -182,6 +182,11 @@ class ShardedIndex(hybrid.HybridSearch):
         """BM25 score of every article by global row (each shard's, side by side)."""
         return np.concatenate([s.score_tokens(tokens) for s in self._dense_shards()])
 
+    def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]:
+        """BM25 scores of some articles by global row."""
+        scores = self.score_tokens(tokens)
+        return {int(r): float(scores[r]) for r in np.asarray(rows).tolist()}
+
     def __repr__(self) -> str:
         return (
             f"ShardedIndex({str(self.path)!r}, articles={self.n_docs}, shards={len(self.shards)})"

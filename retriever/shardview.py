@@ -175,6 +175,11 @@ class ShardedView(Index):
         statistics, so these are a single index's scores)."""
         return np.concatenate([s.score_tokens(tokens) for s in self.shards])
 
+    def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]:
+        """BM25 scores of some articles by global row, from the shards' own scores."""
+        scores = self.score_tokens(tokens)
+        return {int(r): float(scores[r]) for r in np.asarray(rows).tolist()}
+
     def filter_mask(self, spec: Mapping[str, Any]) -> np.ndarray:
         """Not yet over shards: each shard types its metadata columns on its own, so one
         filter could mean different things on two shards."""

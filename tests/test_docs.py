@@ -91,3 +91,19 @@ def test_readme_commands_show_every_option_the_parser_has() -> None:
             name = name or action.dest
             row = f"| `{name}` | {action.help} |"
             assert row in section, f"README {command}: missing or stale row {row}"
+
+
+def test_the_contributor_guide_names_every_module() -> None:
+    # DEVELOPERS.md's layout table is where a newcomer looks for a file: every source module
+    # and compiled kernel of the tool's packages must be named there.
+    guide = (ROOT / "DEVELOPERS.md").read_text()
+    missing = [
+        str(f.relative_to(ROOT))
+        for pkg in ("retriever", "reranker", "api")
+        for f in sorted((ROOT / pkg).rglob("*"))
+        if f.suffix in {".py", ".c", ".h"}
+        and f.name != "__init__.py"
+        and "include" not in f.parts
+        and f"`{f.name}`" not in guide
+    ]
+    assert not missing, f"DEVELOPERS.md does not name: {', '.join(missing)}"

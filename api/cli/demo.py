@@ -5,6 +5,8 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from .options import add_ablation_option
+
 
 def register(sub: argparse._SubParsersAction) -> None:
     """Add the demo sub-command."""
@@ -33,7 +35,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         default=None,
         help="generate a fresh corpus of this many articles instead of the committed one",
     )
-    p.add_argument("--no-ablation", action="store_true", help="skip the feature ablation (faster)")
+    add_ablation_option(p)
     p.set_defaults(func=cmd_demo)
 
 

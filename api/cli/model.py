@@ -11,6 +11,7 @@ if TYPE_CHECKING:
 
 from .console import check_k, format_table, print_json, show_progress, warn
 from .options import (
+    add_ablation_option,
     add_feature_option,
     add_index_option,
     add_log_option,
@@ -137,7 +138,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         required=True,
         help="folder for metrics.json, PNG plots and report.html",
     )
-    p.add_argument("--no-ablation", action="store_true", help="skip the feature ablation (faster)")
+    add_ablation_option(p)
     p.set_defaults(func=cmd_evaluate)
 
 

@@ -72,6 +72,11 @@ def add_prefix_options(p: argparse.ArgumentParser, help: str) -> None:
     )
 
 
+def add_ablation_option(p: argparse.ArgumentParser) -> None:
+    """--no-ablation: skip refitting the model without each feature group."""
+    p.add_argument("--no-ablation", action="store_true", help="skip the feature ablation (faster)")
+
+
 def add_model_option(p: argparse.ArgumentParser) -> None:
     """--model FILE, required: the model a command ranks or scores with."""
     p.add_argument(

@@ -104,6 +104,11 @@ def wait_ready(server: Server, workers: int, timeout: float) -> None:
     )
 
 
+def serve_args(index_dir: Path, model_path: Path, logs: Path) -> list[str]:
+    """`hunchwise serve` options for an index, a model and a served-log folder."""
+    return ["--index", str(index_dir), "--model", str(model_path), "--log-dir", str(logs)]
+
+
 def serve_command(args: Sequence[str], port: int, workers: int) -> list[str]:
     """The command line of `hunchwise serve ARGS` on loopback at `port`."""
     host = ["--host", HOST, "--port", str(port), "--workers", str(workers)]

@@ -25,7 +25,7 @@ from reranker import LabelledLogError
 from reranker.servedrecords import FEEDBACK, SERVED
 from reranker.training import read_logs
 from reranker.training.logs import LogReport
-from tests.api.svc_helpers import read_jsonl, serve
+from tests.api.svc_helpers import read_jsonl, serve, serve_args
 
 
 def test_a_failed_reopen_never_closes_a_descriptor_it_does_not_own(tmp_path: Path) -> None:
@@ -157,7 +157,7 @@ def test_ranking_goes_on_when_the_log_cannot_be_written(
     index_dir: Path, model_path: Path, tmp_path: Path
 ) -> None:
     logs = tmp_path / "logs"
-    args = ["--index", str(index_dir), "--model", str(model_path), "--log-dir", str(logs)]
+    args = serve_args(index_dir, model_path, logs)
     with (
         serve(args, tmp_path, workers=2) as server,
         httpx.Client(base_url=server.url, timeout=30) as c,
@@ -197,7 +197,7 @@ def test_feedback_token_and_logged_features_are_opt_in(
     index_dir: Path, model_path: Path, tmp_path: Path
 ) -> None:
     logs = tmp_path / "logs"
-    args = ["--index", str(index_dir), "--model", str(model_path), "--log-dir", str(logs)]
+    args = serve_args(index_dir, model_path, logs)
     env = {"HUNCHWISE_FEEDBACK_TOKEN": "label-key", "HUNCHWISE_LOG_FEATURES": "true"}
     with (
         serve(args, tmp_path, env=env) as server,

@@ -16,7 +16,7 @@ import pytest
 from reranker.servedrecords import SERVED
 from reranker.training import read_logs
 from reranker.training.logs import LogReport
-from tests.api.svc_helpers import Server, read_jsonl, serve
+from tests.api.svc_helpers import Server, read_jsonl, serve, serve_args
 
 pytestmark = pytest.mark.server
 BODY = {"clue": "This island exports pearls and wool", "k": 3}
@@ -42,7 +42,7 @@ def test_the_log_folder_going_away_closes_no_connection(
     index_dir: Path, model_path: Path, tmp_path: Path
 ) -> None:
     logs = tmp_path / "logs"
-    args = ["--index", str(index_dir), "--model", str(model_path), "--log-dir", str(logs)]
+    args = serve_args(index_dir, model_path, logs)
     with serve(args, tmp_path, workers=2) as server, ExitStack() as stack:
         clients = _clients(server, 2, stack)
         pids = [_pid(c) for c in clients]
@@ -87,7 +87,7 @@ def test_a_full_disk_cuts_no_line_and_ranking_goes_on(
     index_dir: Path, model_path: Path, tmp_path: Path, test_questions: list[dict[str, Any]]
 ) -> None:
     logs = tmp_path / "logs"
-    args = ["--index", str(index_dir), "--model", str(model_path), "--log-dir", str(logs)]
+    args = serve_args(index_dir, model_path, logs)
     clues = [q["clue"] for q in test_questions]
     batch = {"clues": (clues * (256 // len(clues) + 1))[:256]}  # about 1 MB of served lines
     wrapper = [sys.executable, "-c", WRAPPER]

@@ -27,17 +27,14 @@ import gc
 import json
 import resource
 import statistics
-import subprocess
-import sys
 import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 
-from corpus_demo import generate_corpus
 from retriever import build_index, load_index
-from tests.benchmarks.options import bench_parser
+from tests.benchmarks.harness import bench_parser, child_output, demo_corpus
 
 
 def _peak_rss_mib() -> float:
@@ -164,13 +161,7 @@ def measure(work: Path, queries: int, k: int, ef_values: list[int]) -> None:
 
 
 def _child(args: list[str]) -> str:
-    done = subprocess.run(
-        [sys.executable, "-m", "tests.benchmarks.bench_dense", *args],
-        check=True,
-        capture_output=True,
-        text=True,
-    )
-    return done.stdout
+    return child_output("tests.benchmarks.bench_dense", args)
 
 
 def main() -> None:
@@ -197,10 +188,7 @@ def main() -> None:
         return
     with tempfile.TemporaryDirectory() as tmp:
         work = args.work or Path(tmp)
-        data = work / "data"
-        if not (data / "articles.jsonl").exists():
-            n_questions = max(2 * args.queries, 200)
-            generate_corpus(data, n_articles=args.articles, n_questions=n_questions, seed=11)
+        demo_corpus(work, args.articles, max(2 * args.queries, 200))
         common = ["--work", str(work), "--train-sample", str(args.train_sample)]
         common += ["--ann-m", str(args.ann_m)]
         plain = json.loads(_child(["--child", "bm25", *common]).splitlines()[-1])

@@ -19,12 +19,11 @@ import tempfile
 import time
 from pathlib import Path
 
-from corpus_demo import generate_corpus
 from retriever.analyzer import AnalyzerConfig
 from retriever.cluster import Runner
 from retriever.ingest import item_offsets
 from retriever.shardcount import _windows, count_ranges, count_shard, split_items
-from tests.benchmarks.options import bench_parser
+from tests.benchmarks.harness import bench_parser, demo_corpus
 
 
 def main() -> None:
@@ -34,8 +33,7 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=4, help="rounds of each way (default 4)")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        generate_corpus(Path(tmp), n_articles=args.articles, n_questions=50, seed=11)
-        corpus = str(Path(tmp) / "articles.jsonl")
+        corpus = str(demo_corpus(Path(tmp), args.articles, 50) / "articles.jsonl")
         offsets = item_offsets(Path(corpus))
         assert offsets is not None
         spans = split_items(offsets[0].size - 1, args.shards)

@@ -28,12 +28,11 @@ import time
 from pathlib import Path
 from typing import Any
 
-from corpus_demo import generate_corpus
 from reranker import load_model, rank_clue
 from reranker.features import candidate_set
 from reranker.training import train
 from retriever import build_index, load_index
-from tests.benchmarks.options import bench_parser
+from tests.benchmarks.harness import bench_parser, demo_corpus
 
 
 def _pct(values: list[float], q: float) -> float:
@@ -56,9 +55,7 @@ def main() -> None:
 
     with tempfile.TemporaryDirectory() as tmp:
         work = args.work or Path(tmp)
-        data = work / "data"
-        if not (data / "articles.jsonl").exists():
-            generate_corpus(data, n_articles=args.articles, n_questions=args.questions, seed=11)
+        data = demo_corpus(work, args.articles, args.questions)
         t = time.perf_counter()
         index = build_index(data / "articles.jsonl", work / "index")
         build_s = time.perf_counter() - t

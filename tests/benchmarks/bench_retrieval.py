@@ -21,13 +21,13 @@ import os
 import random
 import resource
 import statistics
-import subprocess
 import sys
 import tempfile
 import time
 from pathlib import Path
 from typing import Any
 
+from tests.benchmarks.harness import child_json
 from tests.retriever.foldoc import clue_from, foldoc_words, synthetic_articles
 
 SYSTEMS = ["hunchwise", "hunchwise-nostem", "tantivy", "bm25s-numpy", "bm25s-numba", "rank_bm25"]
@@ -402,16 +402,7 @@ def prune_table(n: int, res: dict[str, Any]) -> str:
 
 
 def _spawn(args: list[str]) -> dict[str, Any]:
-    res = subprocess.run(
-        [sys.executable, "-m", "tests.benchmarks.bench_retrieval", *args],
-        capture_output=True,
-        text=True,
-        check=False,
-    )
-    if res.returncode != 0:
-        raise RuntimeError(res.stderr[-2000:])
-    result: dict[str, Any] = json.loads(res.stdout.strip().splitlines()[-1])
-    return result
+    return child_json("tests.benchmarks.bench_retrieval", args)
 
 
 def run_size(n: int, tmp: Path, words: list[str]) -> dict[str, dict[str, Any]]:

@@ -64,9 +64,11 @@ def run(cmd: list[str]) -> None:
     subprocess.run(cmd, cwd=ROOT, check=True)
 
 
-def prepare(work: Path, articles: int) -> tuple[Path, Path, list[str]]:
-    """Corpus, index and model in `work` (reused when already there)."""
-    data, index, model = work / "data", work / "index", work / "model.json"
+def prepare(work: Path, articles: int, candidates: str) -> tuple[Path, Path, list[str]]:
+    """Corpus, index and model in `work` (reused when already there); the model proposes
+    candidates as `hunchwise train --candidates` says ("auto": hybrid, what a new user gets)."""
+    data, index = work / "data", work / "index"
+    model = work / ("model.json" if candidates == "auto" else f"model-{candidates}.json")
     py = [sys.executable, "-m"]
     if not (data / "articles.jsonl").exists():
         run(
@@ -107,6 +109,8 @@ def prepare(work: Path, articles: int) -> tuple[Path, Path, list[str]]:
                 str(data / "questions_train.jsonl"),
                 "--out",
                 str(model),
+                "--candidates",
+                candidates,
             ]
         )
     lines = (data / "questions_test.jsonl").read_text(encoding="utf-8").splitlines()
@@ -374,10 +378,16 @@ def main() -> int:
         help="checkout whose `hunchwise serve` is measured (default: this one)",
     )
     p.add_argument("--tool", choices=["auto", "wrk", "httpx"], default="auto")
+    p.add_argument(
+        "--candidates",
+        choices=["auto", "bm25"],
+        default="auto",
+        help="train's --candidates for the measured model (default auto: hybrid, as train's)",
+    )
     args = p.parse_args()
     work = args.work.resolve()
     work.mkdir(parents=True, exist_ok=True)
-    index, model, clues = prepare(work, args.articles)
+    index, model, clues = prepare(work, args.articles, args.candidates)
     tool = "wrk" if args.tool == "wrk" or (args.tool == "auto" and shutil.which("wrk")) else "httpx"
     peer, peer_cpu = library_peer(index, model, clues, 5)
     print(
@@ -412,7 +422,8 @@ def main() -> int:
             stop_server(proc)
             shutil.rmtree(logs, ignore_errors=True)
     print(
-        f"\nPOST /v1/rank, k=20, model loaded, {args.articles} articles, "
+        f"\nPOST /v1/rank, k=20, model loaded ({args.candidates} candidates), "
+        f"{args.articles} articles, "
         f"{os.cpu_count()} CPUs shared by server and load generator"
     )
     head = (

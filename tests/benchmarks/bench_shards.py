@@ -19,16 +19,13 @@ import gc
 import json
 import resource
 import statistics
-import subprocess
-import sys
 import tempfile
 import time
 from pathlib import Path
 
-from corpus_demo import generate_corpus
 from retriever import build_index, load_index
 from retriever.shards import build_sharded
-from tests.benchmarks.options import bench_parser
+from tests.benchmarks.harness import bench_parser, child_json, demo_corpus
 
 
 def _peak_rss_mib() -> float:
@@ -105,13 +102,7 @@ def query(work: Path, folder: str, queries: int, k: int) -> None:
 
 
 def _child(args: list[str]) -> dict[str, float]:
-    done = subprocess.run(
-        [sys.executable, "-m", "tests.benchmarks.bench_shards", *args],
-        check=True,
-        capture_output=True,
-        text=True,
-    )
-    return dict(json.loads(done.stdout.splitlines()[-1]))
+    return child_json("tests.benchmarks.bench_shards", args)
 
 
 def main() -> None:
@@ -134,10 +125,7 @@ def main() -> None:
         return
     with tempfile.TemporaryDirectory() as tmp:
         work = args.work or Path(tmp)
-        data = work / "data"
-        if not (data / "articles.jsonl").exists():
-            n_questions = max(2 * args.queries, 200)
-            generate_corpus(data, n_articles=args.articles, n_questions=n_questions, seed=11)
+        demo_corpus(work, args.articles, max(2 * args.queries, 200))
         common = ["--work", str(work), "--shards", str(args.shards)]
         if args.vectors:
             common.append("--vectors")

@@ -168,3 +168,26 @@ def test_overlap_kernel_rejects_bad_input(tmp_path: Path) -> None:
         scoring.overlap(ip, terms, np.array([0]), tids[::-1], w)
     with pytest.raises(ValueError, match="do not match"):
         scoring.overlap(ip, terms, np.array([0]), tids, np.ones(3))
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    docs=st.lists(st.lists(WORDS, min_size=0, max_size=25), min_size=1, max_size=40),
+    clue=st.lists(WORDS, min_size=0, max_size=10),
+    title_weight=st.sampled_from([0.0, 2.0]),
+    data=st.data(),
+)
+def test_scores_of_some_rows_equal_the_whole_corpus_scores_bit_for_bit(
+    tmp_path_factory: pytest.TempPathFactory,
+    docs: list[list[str]],
+    clue: list[str],
+    title_weight: float,
+    data: st.DataObject,
+) -> None:
+    # Rows in any order, repeated, holding none of the clue's terms; both weight types.
+    idx = plain_index(tmp_path_factory.mktemp("r"), docs, title_weight=title_weight)
+    rows = data.draw(st.lists(st.integers(0, len(docs) - 1), max_size=2 * len(docs)))
+    full = idx.score_tokens(clue)
+    some = idx.score_rows(clue, np.array(rows, dtype=np.int64))
+    assert set(some) == set(rows)
+    assert [some[r] for r in rows] == full[rows].tolist()
