@@ -1,7 +1,7 @@
 """Word-vector settings measured on the FOLDOC + Jargon TRAINING clues only.
 
 Run: python -m tests.opendata.vector_curve --out DIR [--set epochs=20 window=10 ...]
-     [--weighting idf|none|idf2]
+     [--weighting idf|none|idf2] [--pool 100] [--reuse]
 Builds the BM25 index once in DIR/index (kept between runs), trains corpus-only vectors with
 the given settings (one thread, so the same settings give the same vectors), and prints one
 JSON line: the vectors alone (top-1, R@20, R@100 on the 196 training clues, whole and half)
@@ -48,7 +48,9 @@ def _m(r: np.ndarray) -> dict[str, float]:
     }
 
 
-def measure(out: Path, settings: dict[str, Any], weighting: str, pool: int) -> dict[str, Any]:
+def measure(
+    out: Path, settings: dict[str, Any], weighting: str, pool: int, reuse: bool = False
+) -> dict[str, Any]:
     records, train, _test, _ = build_set()
     folder = out / "index"
     if not (folder / "manifest.json").exists():
@@ -56,9 +58,10 @@ def measure(out: Path, settings: dict[str, Any], weighting: str, pool: int) -> d
     idx = load_index(folder)
     s = vecs.VectorSettings.from_dict({"threads": 1, **settings})
     t = time.perf_counter()
-    vecs.add_to_folder(folder, idx.analyzer, s)
+    if not reuse:
+        vecs.add_to_folder(folder, idx.analyzer, s)
     seconds = time.perf_counter() - t
-    if weighting != "idf":
+    if weighting != "idf" and not reuse:
         idx = load_index(folder)
         assert idx.dense is not None
         words = idx.dense.vectors.words()
@@ -111,13 +114,14 @@ def main(argv: Sequence[str] | None = None) -> None:
     ap.add_argument("--set", nargs="*", default=[], help="vector settings, name=value")
     ap.add_argument("--weighting", default="idf", choices=("idf", "none", "idf2"))
     ap.add_argument("--pool", type=int, default=100)
+    ap.add_argument("--reuse", action="store_true", help="score the vectors DIR holds")
     args = ap.parse_args(argv)
     settings: dict[str, Any] = {}
     for item in args.set:
         name, value = item.split("=", 1)
         settings[name] = float(value) if "." in value or "e" in value else int(value)
     args.out.mkdir(parents=True, exist_ok=True)
-    print(json.dumps(measure(args.out, settings, args.weighting, args.pool)))
+    print(json.dumps(measure(args.out, settings, args.weighting, args.pool, args.reuse)))
 
 
 if __name__ == "__main__":
