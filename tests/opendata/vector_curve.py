@@ -61,16 +61,22 @@ def measure(
     if not reuse:
         vecs.add_to_folder(folder, idx.analyzer, s)
     seconds = time.perf_counter() - t
-    if weighting != "idf" and not reuse:
+    if weighting != "idf" or reuse:
+        # The article vectors again from the stored word vectors, with the asked weighting.
         idx = load_index(folder)
         assert idx.dense is not None
+        s = idx.dense.vectors.settings
         words = idx.dense.vectors.words()
-        w = vecs.folder_idf_weights(folder, idx.manifest, words)
-        w = np.ones_like(w) if weighting == "none" else w**2
-        vecs.store.save_array(folder, vecs.WORDVEC_WEIGHT, w.astype(np.float32))
-        vecs.write_article_vectors(
-            folder, idx.manifest, words, np.asarray(idx.dense.vectors.wordvec), w, s
+        idf = vecs.folder_idf_weights(folder, idx.manifest, words)
+        weight = {"idf": idf, "none": np.ones_like(idf), "idf2": idf**2}[weighting]
+        wordvec = np.array(idx.dense.vectors.wordvec)
+        del idx
+        vecs.store.save_array(folder, vecs.WORDVEC_WEIGHT, weight.astype(np.float32))
+        manifest = vecs.store.read_manifest(folder)
+        manifest["vectors"].update(
+            vecs.write_article_vectors(folder, manifest, words, wordvec, weight, s)
         )
+        vecs.store.write_json(folder / vecs.store.MANIFEST, manifest)
     idx = load_index(folder)
     golds = np.array([idx.resolver.row(c.answer) for c in train], dtype=np.int64)
     tuning, held = split_by_answer(golds, 0)
@@ -85,7 +91,7 @@ def measure(
         pools = search_pools(idx, tokens, pool, policy=CandidatePolicy("hybrid", 1.0, pool))
         alone = _ranks([p.dense_rows for p in pools], golds)
         bm25 = _ranks([p.bm25_rows for p in pools], golds)
-        by_w = {}
+        by_w: dict[float, dict[str, Any]] = {}
         for w in WEIGHTS:
             pol = CandidatePolicy("hybrid", w, pool)
             r = _ranks([fused_rows(p, 20, pol) for p in pools], golds)
