@@ -94,7 +94,7 @@ def run(out: Path, systems: Sequence[str] = ("bm25", "hybrid", "refined")) -> di
         }[name]
         table[label] = score(index, res.model, test)
         if name != "bm25":
-            fusion[label] = res.artifact.get("fusion_tuning")
+            fusion[label] = res.artifact["training"].get("fusion_tuning")
     epochs = index.manifest["vectors"]["settings"]["epochs"]
     return {
         "table": table,
