@@ -155,12 +155,11 @@ def train(
     settings: VectorSettings,
     progress: bool,
     extra: Iterable[str] = (),
-    min_epochs: int = 1,
 ) -> Trained:
     """Train word vectors on the articles stored in `folder`, and on the `extra` lines of
     analyzed tokens (space-separated) after them."""
     lines = itertools.chain(article_lines(folder, n_docs, analyzer), extra)
-    return train_lines(lines, folder / ".vector-training.txt", settings, progress, min_epochs)
+    return train_lines(lines, folder / ".vector-training.txt", settings, progress)
 
 
 def train_lines(
@@ -168,10 +167,9 @@ def train_lines(
     line_file: Path,
     settings: VectorSettings,
     progress: bool,
-    min_epochs: int = 1,
 ) -> Trained:
     """Train word vectors on analyzed lines (streamed to `line_file`, removed after). With
-    `settings.epochs` 0 the epochs follow the lines' token count, never below `min_epochs`."""
+    `settings.epochs` 0 the epochs follow the lines' token count (`epochs_for_tokens`)."""
     from gensim.models import Word2Vec  # imported here: gensim takes a second to import
     from gensim.models.callbacks import CallbackAny2Vec
 
@@ -181,7 +179,7 @@ def train_lines(
             fh.write(line + "\n")
             tokens += line.count(" ") + 1 if line else 0
     if settings.epochs == 0:
-        settings = replace(settings, epochs=max(min_epochs, epochs_for_tokens(tokens)))
+        settings = replace(settings, epochs=epochs_for_tokens(tokens))
     bar = tqdm(total=settings.epochs, desc="word vectors", unit=" epochs", disable=not progress)
 
     class _Epochs(CallbackAny2Vec):

@@ -48,18 +48,12 @@ def refine_vectors(index: Index, clues: Sequence[LabelledClue], *, progress: boo
     dense = index.dense
     if dense is None:
         raise ValueError(f"{index.path}: the index has no word vectors to refine")
-    # Epochs from the token count of the articles and clue lines, as the build chooses them
-    # (retriever.vectors.epochs_for_tokens), and never fewer than the index's own vectors had.
-    own = dense.vectors.settings
+    # The index's own settings, epochs included (chosen from the corpus's size at build,
+    # retriever.vectors.epochs_for_tokens): the clue lines can outweigh a small corpus, and
+    # counting them would train the demo's refined vectors twice as long for nothing measured.
     lines = clue_sentences(index, clues)
     words, wordvec, settings = vecs.train(
-        index.path,
-        index.n_docs,
-        index.analyzer,
-        replace(own, epochs=0),
-        progress,
-        lines,
-        min_epochs=own.epochs,
+        index.path, index.n_docs, index.analyzer, dense.vectors.settings, progress, lines
     )
     weight = vecs.folder_idf_weights(index.path, index.manifest, words)
     extra = {"refined_on_clues": len(lines) // REPEAT}
