@@ -46,7 +46,9 @@ def train_over_shards(
     lines = itertools.chain.from_iterable(
         vecs.article_lines(folder, n, analyzer) for folder, n in shards
     )
-    words, wordvec = vecs.train_lines(lines, out / ".vector-training.txt", settings, progress)
+    words, wordvec, settings = vecs.train_lines(
+        lines, out / ".vector-training.txt", settings, progress
+    )
     row_of = {w: i for i, w in enumerate(words)}
     rows = np.fromiter((row_of.get(t, -1) for t in stats.terms), np.int32, len(stats.terms))
     weight = vecs.idf_weights(stats.body.df, rows, len(words), stats.body.n_docs)

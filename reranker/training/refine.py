@@ -28,15 +28,6 @@ from .logs import LabelledClue
 
 REPEAT = 5  # copies of each clue sentence (measured on the FOLDOC + Jargon set; see README)
 FOLDS = 2
-# Small corpora get more passes (common practice, no source: word2vec on a few million
-# tokens needs more than its default 5 epochs); at most about the work of 5 epochs over
-# 100,000 articles, and never fewer epochs than the index's own vectors had.
-_EPOCH_BUDGET, _MAX_EPOCHS = 500_000, 20
-
-
-def refine_epochs(settings: vecs.VectorSettings, n_docs: int) -> int:
-    """Epochs for refining: more for small corpora, bounded."""
-    return max(settings.epochs, min(_MAX_EPOCHS, _EPOCH_BUDGET // max(n_docs, 1)))
 
 
 def clue_sentences(index: Index, clues: Sequence[LabelledClue]) -> list[str]:
@@ -57,11 +48,13 @@ def refine_vectors(index: Index, clues: Sequence[LabelledClue], *, progress: boo
     dense = index.dense
     if dense is None:
         raise ValueError(f"{index.path}: the index has no word vectors to refine")
-    settings = replace(
-        dense.vectors.settings, epochs=refine_epochs(dense.vectors.settings, index.n_docs)
-    )
+    # The index's own settings, epochs included (chosen from the corpus's size at build,
+    # retriever.vectors.epochs_for_tokens): the clue lines can outweigh a small corpus, and
+    # counting them would train the demo's refined vectors twice as long for nothing measured.
     lines = clue_sentences(index, clues)
-    words, wordvec = vecs.train(index.path, index.n_docs, index.analyzer, settings, progress, lines)
+    words, wordvec, settings = vecs.train(
+        index.path, index.n_docs, index.analyzer, dense.vectors.settings, progress, lines
+    )
     weight = vecs.folder_idf_weights(index.path, index.manifest, words)
     extra = {"refined_on_clues": len(lines) // REPEAT}
     return vecgen.write_generation(index.path, words, wordvec, weight, settings, extra=extra)

@@ -12,6 +12,7 @@ import pytest
 
 from api.cli import main
 from retriever import build_index, load_index
+from retriever.vectors import MAX_EPOCHS
 from tests.retriever.helpers import write_jsonl
 
 EXE = shutil.which("hunchwise")
@@ -189,3 +190,14 @@ def test_a_json_array_corpus_is_named_as_such(
     report = ReadReport()
     assert list(read_articles(corpus, skip_bad=True, report=report)) == []
     assert report.skipped == 1
+
+
+def test_build_takes_the_vector_epochs(tmp_path: Path, small_records: list[dict[str, Any]]) -> None:
+    corpus = write_jsonl(tmp_path / "c.jsonl", small_records)
+    common = ["--vector-dim", "8", "--vector-threads", "1", "--json"]
+    assert main(["index", "build", str(corpus), "--out", str(tmp_path / "a"), *common]) == 0
+    # The default follows the corpus's size: a corpus of a few words gets the most epochs.
+    assert load_index(tmp_path / "a").manifest["vectors"]["settings"]["epochs"] == MAX_EPOCHS
+    argv = ["index", "build", str(corpus), "--out", str(tmp_path / "b"), "--vector-epochs", "3"]
+    assert main([*argv, *common]) == 0
+    assert load_index(tmp_path / "b").manifest["vectors"]["settings"]["epochs"] == 3

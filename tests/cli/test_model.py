@@ -360,6 +360,9 @@ def test_train_refines_the_vectors_unless_told_not_to(world: World, tmp_path: Pa
     name = json.loads(refined.read_text())["candidates"]["vectors"]
     assert f"refined vectors {name}" in out.stdout
     assert (world.index.path / f"vectors-{name}" / "docvec.npy").exists()
+    # Refining trains with the index's own settings, the epochs the build chose included.
+    gen = json.loads((world.index.path / f"vectors-{name}" / "generation.json").read_text())
+    assert gen["vectors"]["settings"] == world.index.manifest["vectors"]["settings"]
 
 
 @pytest.mark.slow

@@ -1,6 +1,6 @@
 """Evaluate BM25, word vectors and the hybrid on the FOLDOC + Jargon File set.
 
-Run: python -m tests.opendata.evaluate [--out DIR] [--dim 200] [--epochs 5]
+Run: python -m tests.opendata.evaluate [--out DIR] [--dim 200] [--epochs 0]
 Prints top-1, recall@20, recall@100 and MRR (over the top 100) of each system on the test
 split, with whole clues and with their first half.
 """
@@ -123,10 +123,11 @@ def format_table(result: dict[str, Any]) -> str:
         f"sharing {6}+ consecutive tokens with the answer, {c['empty']} too short once masked; "
         f"{c['clues']} clues: {c['train']} train, {c['test']} test (split by answer)."
     )
-    b = result["build_seconds"]
+    b, v = result["build_seconds"], result["vectors"]
     lines.append(
         f"Build: {b['bm25 only']:.1f} s without vectors, {b['with vectors']:.1f} s with "
-        f"({result['vectors']['words']} words, {result['vectors']['settings']['dim']}-d)."
+        f"({v['words']} words, {v['settings']['dim']}-d, {v['settings']['epochs']} epochs, "
+        f"vectors {v['seconds']:.0f} s)."
     )
     return "\n".join(lines)
 
@@ -135,7 +136,7 @@ def main(argv: Sequence[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__)
     ap.add_argument("--out", type=Path, default=None, help="folder for the indexes (default temp)")
     ap.add_argument("--dim", type=int, default=200)
-    ap.add_argument("--epochs", type=int, default=5)
+    ap.add_argument("--epochs", type=int, default=0, help="0: from the corpus's size (default)")
     args = ap.parse_args(argv)
     with tempfile.TemporaryDirectory() as tmp:
         out = args.out or Path(tmp)

@@ -79,6 +79,7 @@ def run(out: Path, systems: Sequence[str] = ("bm25", "hybrid", "refined")) -> di
     }
     table: dict[str, Any] = {}
     before: dict[str, Any] = {}
+    fusion: dict[str, Any] = {}
     for name in systems:
         res = train(index, [log], out / f"model-{name}.json", **options[name])
         c = res.artifact["candidates"]
@@ -92,11 +93,23 @@ def run(out: Path, systems: Sequence[str] = ("bm25", "hybrid", "refined")) -> di
             "refined": f"hybrid (w {c['weight']}, refined vectors) + reranker",
         }[name]
         table[label] = score(index, res.model, test)
-    return {"table": table, "retrieval": before, "counts": counts}
+        if name != "bm25":
+            fusion[label] = res.artifact["training"].get("fusion_tuning")
+    epochs = index.manifest["vectors"]["settings"]["epochs"]
+    return {
+        "table": table,
+        "retrieval": before,
+        "counts": counts,
+        "fusion": fusion,
+        "epochs": epochs,
+    }
 
 
 def main(argv: Sequence[str] | None = None) -> None:
     result = run_in_folder(argv, __doc__, run)
+    print(f"index vectors: {result['epochs']} epochs")
+    for label, rows in result["fusion"].items():
+        print(label, "fusion tuning on the training clues:", json.dumps(rows))
     print("\n".join(retrieval_rows(result["retrieval"])))
     print()
     print("| candidates | words | top-1 | recall@20 | MRR |")

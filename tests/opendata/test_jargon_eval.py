@@ -1,4 +1,4 @@
-"""Real data: the hybrid beats BM25 alone on Jargon File clues answered by FOLDOC entries.
+"""Real data: Jargon File clues answered by FOLDOC entries, with BM25, vectors and the hybrid.
 
 Source of the data: the dictd files of Debian's dict-foldoc (the corpus) and dict-jargon
 (the clues) packages; see jargon_clues.py for how the set is made.
@@ -48,8 +48,10 @@ def test_vectors_add_answers_to_the_candidate_pool(tmp_path: Path) -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.timeout(3600)  # three models, three trainings of the vectors: ~15 min on 2 cores
-def test_refined_vectors_find_more_answers_and_keep_the_reranked_recall(tmp_path: Path) -> None:
+@pytest.mark.timeout(7200)  # three models, four trainings of 40-epoch vectors: ~30 min on 2 cores
+def test_the_build_vectors_find_answers_and_the_reranked_hybrid_keeps_the_recall(
+    tmp_path: Path,
+) -> None:
     require_jargon()
     # Open data (Debian's dict-foldoc articles, dict-jargon clues): the reranker trained on
     # the 196 training clues with BM25's candidates (`--candidates bm25`), with hybrid ones
@@ -58,14 +60,18 @@ def test_refined_vectors_find_more_answers_and_keep_the_reranked_recall(tmp_path
     result = run(tmp_path)
     print(result)
     before, table = result["retrieval"], result["table"]
+    # The build's epochs follow the corpus's size: 40 for FOLDOC's 495,000 words.
+    assert result["epochs"] == 40
     for share in ("100%", "50%"):
-        corpus = before["vectors alone (corpus vectors)"][share]
-        refined = before["vectors alone (refined vectors)"][share]
-        # Measured 0.353 -> 0.500 (100%) and 0.368 -> 0.468 (50%); margin for seeds/threads.
-        assert refined["r100"] >= corpus["r100"] + 0.05, share
-        assert refined["top1"] > corpus["top1"], share
+        for kind in ("corpus", "refined"):
+            alone = before[f"vectors alone ({kind} vectors)"][share]
+            # Measured with 40 epochs: recall@100 0.532 / 0.511 (corpus, 100% / 50%) and
+            # 0.526 / 0.474 (refined), top-1 0.163 to 0.226; the old 5 build epochs gave
+            # 0.353 / 0.368 and 0.095 / 0.079. Margins for threads and seeds.
+            assert alone["r100"] >= 0.42, (kind, share)
+            assert alone["top1"] >= 0.12, (kind, share)
     bm25 = table.pop("BM25 + reranker")["100%"]
     hybrid = next(v for n, v in table.items() if "refined" in n)["100%"]
-    # Measured 0.621 against 0.616: one clue, within noise (see README), so this checks
-    # that the hybrid keeps BM25's recall within two clues rather than that it wins.
-    assert hybrid["r20"] >= bm25["r20"] - 0.011
+    # Measured 0.605 against 0.616: two clues behind, within noise (see README), so this
+    # checks that the default hybrid keeps BM25's recall within four clues, not that it wins.
+    assert hybrid["r20"] >= bm25["r20"] - 0.022

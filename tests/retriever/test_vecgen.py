@@ -34,7 +34,7 @@ def built(tmp_path_factory: pytest.TempPathFactory, records: list[dict[str, Any]
 def _refined(folder: Path, lines: list[str]) -> tuple[list[str], np.ndarray, np.ndarray]:
     idx = load_index(folder)
     settings = vecs.VectorSettings(**SMALL)
-    words, wordvec = vecs.train(folder, idx.n_docs, idx.analyzer, settings, False, lines)
+    words, wordvec, _ = vecs.train(folder, idx.n_docs, idx.analyzer, settings, False, lines)
     return words, wordvec, vecs.folder_idf_weights(folder, idx.manifest, words)
 
 

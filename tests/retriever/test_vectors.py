@@ -215,3 +215,32 @@ def test_two_training_threads_give_vectors_of_the_same_words(
     assert other["docvec"].shape == one["docvec"].shape
     norms = np.linalg.norm(other["docvec"], axis=1)
     assert np.allclose(norms[norms > 0], 1.0, atol=1e-5)
+
+
+def test_epochs_follow_the_corpus_size() -> None:
+    from retriever.vectors import MAX_EPOCHS, MIN_EPOCHS, TOKEN_PASSES, epochs_for_tokens
+
+    # About TOKEN_PASSES tokens trained on in all, within the floor and the cap.
+    assert epochs_for_tokens(TOKEN_PASSES // 10) == 10
+    assert epochs_for_tokens(1) == MAX_EPOCHS and epochs_for_tokens(0) == MAX_EPOCHS
+    assert epochs_for_tokens(100 * TOKEN_PASSES) == MIN_EPOCHS
+    sizes = [10**k for k in range(2, 10)]
+    got = [epochs_for_tokens(n) for n in sizes]
+    assert got == sorted(got, reverse=True) and got[0] == MAX_EPOCHS and got[-1] == MIN_EPOCHS
+
+
+def test_the_manifest_holds_the_epochs_the_vectors_were_trained_with(
+    tmp_path: Path, records: list[dict[str, Any]]
+) -> None:
+    from retriever.vectors import epochs_for_tokens
+
+    auto = {**SMALL, "epochs": 0}
+    idx = build_index(records[:60], tmp_path / "e", vectors=auto)
+    tokens = sum(len(idx.analyzer.tokens(f"{r['title']}\n{r['text']}")) for r in records[:60])
+    stored = idx.manifest["vectors"]["settings"]["epochs"]
+    assert stored == epochs_for_tokens(tokens) and stored > 2
+    # Set by hand, the epochs are kept as given.
+    idx = build_index(records[:60], tmp_path / "f", vectors=SMALL)
+    assert idx.manifest["vectors"]["settings"]["epochs"] == 2
+    with pytest.raises(ValueError, match="epochs"):
+        build_index(records[:5], tmp_path / "x", vectors={"epochs": -1})
