@@ -65,13 +65,19 @@ class Keys:
 
     def append(self, meta: Meta) -> None:
         """Add one article's keys."""
-        line, _, doc_id, title, aliases, links, pop = meta
-        self.lines.append(line)
-        self.ids.append(doc_id)
-        self.titles.append(title)
-        self.aliases.append(aliases)
-        self.links.append(links)
-        self.popularity.append(np.nan if pop is None else pop)
+        self.extend([meta])
+
+    def extend(self, metas: list[Meta]) -> None:
+        """Add several articles' keys, in row order (one list operation per field)."""
+        if not metas:
+            return
+        lines, _, ids, titles, aliases, links, pops = zip(*metas, strict=True)
+        self.lines.extend(lines)
+        self.ids.extend(ids)
+        self.titles.extend(titles)
+        self.aliases.extend(aliases)
+        self.links.extend(links)
+        self.popularity.extend([np.nan if p is None else p for p in pops])
 
     @classmethod
     def of(cls, articles: Iterable[Article]) -> Keys:
@@ -89,6 +95,7 @@ class ChunkOut:
     pid: int
     fresh: list[str]
     metas: list[Meta]  # good articles, in line order
+    metadata: list[dict[str, Any]]  # their metadata, in the same order
     errors: list[tuple[int, str, str]]  # (line, reason, field) of bad items
     encoded: dict[int, bytes]  # store lines of good items that were not raw JSONL lines
     body: Csr
@@ -119,6 +126,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     file, items = task
     analyzer, table = worker_state()
     metas: list[Meta] = []
+    metadata: list[dict[str, Any]] = []
     errors: list[tuple[int, str, str]] = []
     encoded: dict[int, bytes] = {}
     bodies: list[str] = []
@@ -131,6 +139,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
                 errors.append((line, exc.reason, exc.field))
                 continue
             metas.append((line, pos, art.id, art.title, art.aliases, art.links, art.popularity))
+            metadata.append(art.metadata)
             if not isinstance(raw, bytes):  # raw JSONL lines are stored as they are, by the parent
                 encoded[pos] = record_line(art)
             bodies.append(art.text)
@@ -138,7 +147,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     body = count_texts(analyzer, table, bodies)
     title = count_texts(analyzer, table, titles)
     pid, fresh = new_terms()
-    return ChunkOut(pid, fresh, metas, errors, encoded, body, title)
+    return ChunkOut(pid, fresh, metas, metadata, errors, encoded, body, title)
 
 
 def count_items(source: str | Path) -> int:
@@ -242,6 +251,9 @@ class Ingest:
     def __init__(self, file: str, store_fh: IO[bytes], skip_bad: bool, report: ReadReport):
         self.file, self.store_fh, self.skip_bad, self.report = file, store_fh, skip_bad, report
         self.keys = Keys()
+        # Every kept article's metadata, in row order: the metadata columns are written from
+        # it, so the parent never parses the stored articles again.
+        self.metadata: list[dict[str, Any]] = []
         self.counter = TermCounter()
         self.offsets: list[np.ndarray] = [np.zeros(1, dtype=np.int64)]
         self._end = 0
@@ -262,6 +274,23 @@ class Ingest:
         self._seen_titles[title] = line
         return None
 
+    def _all_new(self, metas: list[Meta]) -> bool:
+        """Record the names of a chunk none of whose ids and titles was seen (the usual case,
+        checked with set operations); False, recording nothing, when one might repeat."""
+        ids = [m[2] for m in metas]
+        titles = [m[3] for m in metas]
+        if (
+            len(set(ids)) != len(ids)
+            or len(set(titles)) != len(titles)
+            or not self._seen_ids.keys().isdisjoint(ids)
+            or not self._seen_titles.keys().isdisjoint(titles)
+        ):
+            return False
+        lines = [m[0] for m in metas]
+        self._seen_ids.update(zip(ids, lines, strict=True))
+        self._seen_titles.update(zip(titles, lines, strict=True))
+        return True
+
     def add(self, out: ChunkOut, items: list[RawItem]) -> None:
         """Merge one chunk (`items` are its raw items), or raise its first problem when bad
         lines are not skipped."""
@@ -270,30 +299,28 @@ class Ingest:
             for line, reason, fld in out.errors
         ]
         keep = np.ones(len(out.metas), dtype=bool)
-        for i, meta in enumerate(out.metas):
-            dup = self._duplicate(meta)
-            if dup is not None:
-                keep[i] = False
-                problems.append((meta[0], dup))
+        if not self._all_new(out.metas):
+            for i, meta in enumerate(out.metas):
+                dup = self._duplicate(meta)
+                if dup is not None:
+                    keep[i] = False
+                    problems.append((meta[0], dup))
         problems.sort(key=lambda p: p[0])
         if problems and not self.skip_bad:
             raise problems[0][1]
         for _, exc in problems:
             self.report.note(exc)
         body, title = out.body, out.title
+        metas, metadata = out.metas, out.metadata
         if not keep.all():
             body, title = _keep_rows(body, keep), _keep_rows(title, keep)
-        lines = []
-        for meta, k in zip(out.metas, keep.tolist(), strict=True):
-            if k:
-                self.keys.append(meta)
-                pos = meta[1]
-                line = out.encoded.get(pos)
-                if line is None:
-                    line = items[pos][1]
-                    if not line.endswith(b"\n"):
-                        line += b"\n"
-                lines.append(line)
+            kept = np.flatnonzero(keep).tolist()
+            metas, metadata = [metas[i] for i in kept], [metadata[i] for i in kept]
+        self.keys.extend(metas)
+        self.metadata.extend(metadata)
+        lines = [out.encoded.get(meta[1]) or items[meta[1]][1] for meta in metas]
+        # Raw lines are stored as they are; only a file's last line may lack its newline.
+        lines = [line if line.endswith(b"\n") else line + b"\n" for line in lines]
         self.report.articles += len(lines)
         self.store_fh.write(b"".join(lines))
         lens = np.fromiter(map(len, lines), np.int64, len(lines))
