@@ -12,6 +12,7 @@ import contextlib
 import gzip
 import itertools
 import json
+import re
 from collections import deque
 from collections.abc import Generator, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
@@ -19,6 +20,7 @@ from pathlib import Path
 from typing import IO, Any
 
 import numpy as np
+import orjson
 
 from .analyzer import Analyzer
 from .corpus import (
@@ -102,6 +104,34 @@ class ChunkOut:
     title: Csr
 
 
+# 19 digits in a row: maybe an integer past 64 bits, which orjson reads as a float where
+# Python's json keeps it exact.
+_LONG_NUMBER = re.compile(rb"\d{19}")
+
+
+def _loads(raw: bytes) -> Any:
+    """One JSON Lines record as Python's json reads it, parsed by orjson (about twice as
+    fast) whenever that gives the same value. Anything orjson refuses (malformed JSON,
+    invalid UTF-8, but also NaN, Infinity, lone surrogates, which json accepts) and any line
+    that might hold an integer past 64 bits goes to json, whose result or error stands."""
+    if _LONG_NUMBER.search(raw) is None:
+        with contextlib.suppress(orjson.JSONDecodeError):
+            return orjson.loads(raw)
+    return _json_loads(raw)
+
+
+def _json_loads(raw: bytes) -> Any:
+    """Python's json on one line, with its errors as CorpusError reasons (no file or line)."""
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ValueError(f"not valid UTF-8 ({exc.reason} at byte {exc.start})") from exc
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise ValueError(f"malformed JSON: {exc.msg} (column {exc.colno})") from exc
+
+
 def _parse(raw: Any, file: str, line: int) -> Article:
     if isinstance(raw, Article):
         return raw
@@ -109,15 +139,9 @@ def _parse(raw: Any, file: str, line: int) -> Article:
         raise CorpusError(raw[1], file=file, line=line, field=raw[2])
     if isinstance(raw, bytes):
         try:
-            text = raw.decode("utf-8")
-        except UnicodeDecodeError as exc:
-            msg = f"not valid UTF-8 ({exc.reason} at byte {exc.start})"
-            raise CorpusError(msg, file=file, line=line) from exc
-        try:
-            raw = json.loads(text)
-        except json.JSONDecodeError as exc:
-            msg = f"malformed JSON: {exc.msg} (column {exc.colno})"
-            raise CorpusError(msg, file=file, line=line) from exc
+            raw = _loads(raw)
+        except ValueError as exc:
+            raise CorpusError(str(exc), file=file, line=line) from exc
     return validate_record(raw, file=file, line=line)
 
 
