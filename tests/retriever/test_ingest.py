@@ -163,3 +163,22 @@ def test_bad_lines_give_python_json_errors(line: bytes) -> None:
         _json_loads(line)
     assert str(fast.value) == str(slow.value)
     assert str(fast.value).startswith(("malformed JSON", "not valid UTF-8"))
+
+
+@pytest.mark.parametrize(
+    "line",
+    [
+        b'{"id": 123456789012345678901234, "title": "T", "text": "x"}',
+        b'{"id": "a", "title": "T", "text": "x", "popularity": -123456789012345678901234}',
+    ],
+)
+def test_build_reports_long_integers_as_the_reader_does(tmp_path: Path, line: bytes) -> None:
+    path = tmp_path / "c.jsonl"
+    path.write_bytes(line + b"\n")
+    # Reference: read_articles, which parses with Python's standard json module.
+    with pytest.raises(CorpusError) as read_err:
+        list(read_articles(path))
+    with pytest.raises(CorpusError) as build_err:
+        build_index(path, tmp_path / "idx", vectors=False)
+    assert str(build_err.value) == str(read_err.value)
+    assert "123456789012345678901234" in str(build_err.value) or "got int" in str(build_err.value)
