@@ -97,6 +97,14 @@ def count_texts(
     """Doc-major term counts of `texts` as CSR parts; term ids are `table`'s."""
     with no_gc():
         ids, lens = _ids_of(analyzer, table, texts, use_kernel)
+    if use_kernel and _analysis is not None and hasattr(_analysis, "count_rows"):
+        # The compiled count (retriever/_analysis.c); the lines below are its definition.
+        indptr_b, cols_b, counts_b = _analysis.count_rows(ids, lens)
+        return (
+            np.frombuffer(indptr_b, dtype=np.int64),
+            np.frombuffer(cols_b, dtype=np.int32),
+            np.frombuffer(counts_b, dtype=np.int32),
+        )
     indptr = np.zeros(len(texts) + 1, dtype=np.int64)
     if ids.size == 0:
         return indptr, np.zeros(0, np.int32), np.zeros(0, np.int32)
