@@ -38,9 +38,15 @@ class KnownLinks:
     ambiguous: int
 
 
-def _write_keys(tmp: Path, keys: Keys, known: KnownLinks | None = None) -> tuple[int, int, int]:
+def _write_keys(
+    tmp: Path,
+    keys: Keys,
+    known: KnownLinks | None = None,
+    metadata: Sequence[dict[str, Any]] | None = None,
+) -> tuple[int, int, int]:
     """In-links and the key columns; returns (unresolved links, ambiguous aliases,
-    qualified titles). `known`: in-links already resolved over the whole corpus."""
+    qualified titles). `known`: in-links already resolved over the whole corpus;
+    `metadata`: every article's metadata in row order (else read back from the store)."""
     if known is None:
         resolver = NameResolver(keys.ids, keys.titles, keys.aliases)
         inlinks, missing = count_inlinks(resolver, keys.links, len(keys))
@@ -57,9 +63,11 @@ def _write_keys(tmp: Path, keys: Keys, known: KnownLinks | None = None) -> tuple
     columns.write_strings(tmp, "bases", (s[0] for s in split))
     columns.write_strings(tmp, "qualifiers", (s[1] for s in split))
     columns.write_strings(tmp, "aliases", (columns.JsonListColumn.encode(a) for a in keys.aliases))
-    # The store is in `tmp` already (every caller writes it first): its metadata, as columns.
-    reader = store.StoreReader(tmp, len(keys))
-    metacolumns.write_meta_columns(tmp, (a.metadata for a in reader.articles()))
+    if metadata is None:
+        # The store is in `tmp` already (every caller writes it first): its metadata.
+        reader = store.StoreReader(tmp, len(keys))
+        metadata = [a.metadata for a in reader.articles()]
+    metacolumns.write_meta_columns(tmp, metadata)
     return len(unresolved), ambiguous, sum(1 for s in split if s[1])
 
 
@@ -77,17 +85,20 @@ def write_folder(
     stats: CorpusStats | None = None,
     known: KnownLinks | None = None,
     shard: dict[str, Any] | None = None,
+    metadata: Sequence[dict[str, Any]] | None = None,
 ) -> None:
     """Write everything but the article store into the temporary index folder `tmp`.
 
     For one shard of a bigger corpus (retriever/shards.py): `stats` (the corpus's vocabulary,
     document frequencies and lengths), `known` (its in-links) and `shard` (where the rows
     sit, for the manifest); the weights are then those the whole corpus's build gives.
+    `metadata`: the articles' metadata in row order, when the caller has it (else the
+    metadata columns are written from the store in `tmp`).
     """
     # The key columns and in-links are plain Python work; the postings are numpy and scipy
     # loops that release the GIL, so the two run side by side.
     with ThreadPoolExecutor(1, thread_name_prefix="hunchwise-keys") as pool:
-        keys_job = pool.submit(_write_keys, tmp, keys, known)
+        keys_job = pool.submit(_write_keys, tmp, keys, known, metadata)
         # `body_order[i]` is the counted row that becomes row i (updates count rows out of
         # order).
         vocab = stats.terms if stats is not None else None
@@ -237,7 +248,18 @@ def build_index(
         }
         if isinstance(corpus, str | Path):
             build["corpus"] = str(Path(corpus).resolve())  # for a printed rebuild command
-        write_folder(tmp, state.keys, state.counter, None, an, p, checksum, build, started)
+        write_folder(
+            tmp,
+            state.keys,
+            state.counter,
+            None,
+            an,
+            p,
+            checksum,
+            build,
+            started,
+            metadata=state.metadata,
+        )
         del state
         if vec_settings is not None:
             vecs.add_to_folder(tmp, an, vec_settings, progress=progress)

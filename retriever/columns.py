@@ -38,17 +38,34 @@ def write_strings(
     With `sort_index`, also writes `name_order.npy` (rows in sorted order of their values)
     so that `StringColumn.find` is a binary search.
     """
-    encoded = [v.encode("utf-8") for v in values]
-    offsets = np.zeros(len(encoded) + 1, dtype=np.int64)
-    np.cumsum([len(e) for e in encoded], out=offsets[1:])
+    strings = list(values)
+    data, lens = encode_strings(strings)
+    offsets = np.zeros(len(strings) + 1, dtype=np.int64)
+    np.cumsum(lens, out=offsets[1:])
     blob, offs = _paths(folder, name)
     with open(blob, "wb") as fh:
-        fh.write(b"".join(encoded))
+        fh.write(data)
     np.save(offs, offsets, allow_pickle=False)
     if sort_index:
-        order = sorted(range(len(encoded)), key=encoded.__getitem__)
+        # Code point order is UTF-8 byte order, so the strings sort as their bytes would.
+        order = sorted(range(len(strings)), key=strings.__getitem__)
         np.save(folder / f"{name}_order.npy", np.asarray(order, dtype=np.int64), allow_pickle=False)
-    return len(encoded)
+    return len(strings)
+
+
+def encode_strings(strings: Sequence[str]) -> tuple[bytes, np.ndarray]:
+    """The UTF-8 bytes of `strings` back to back, and each one's length in bytes (int64).
+
+    All-ASCII lists (most ids, titles and terms) are encoded in one piece: a character is
+    then one byte, so the lengths are the strings' own.
+    """
+    data = "".join(strings).encode("utf-8")
+    lens = np.fromiter(map(len, strings), np.int64, len(strings))
+    if len(data) != int(lens.sum()):  # some character took more than one byte
+        encoded = [s.encode("utf-8") for s in strings]
+        data = b"".join(encoded)
+        lens = np.fromiter(map(len, encoded), np.int64, len(encoded))
+    return data, lens
 
 
 class StringColumn(Sequence[str]):

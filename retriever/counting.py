@@ -97,6 +97,14 @@ def count_texts(
     """Doc-major term counts of `texts` as CSR parts; term ids are `table`'s."""
     with no_gc():
         ids, lens = _ids_of(analyzer, table, texts, use_kernel)
+    if use_kernel and _analysis is not None and hasattr(_analysis, "count_rows"):
+        # The compiled count (retriever/_analysis.c); the lines below are its definition.
+        indptr_b, cols_b, counts_b = _analysis.count_rows(ids, lens)
+        return (
+            np.frombuffer(indptr_b, dtype=np.int64),
+            np.frombuffer(cols_b, dtype=np.int32),
+            np.frombuffer(counts_b, dtype=np.int32),
+        )
     indptr = np.zeros(len(texts) + 1, dtype=np.int64)
     if ids.size == 0:
         return indptr, np.zeros(0, np.int32), np.zeros(0, np.int32)
@@ -185,14 +193,16 @@ class TermCounter:
         self._maps: dict[int, np.ndarray] = {}
 
     def _global_ids(self, names: Iterable[str]) -> np.ndarray:
-        out = []
-        for term in names:
-            gid = self.vocab.get(term)
-            if gid is None:
-                gid = self.vocab[term] = len(self.terms)
-                self.terms.append(term)
-            out.append(gid)
-        return np.asarray(out, dtype=np.int64)
+        """Ids of `names` in the shared vocabulary, new names appended in the order given
+        (whole-list dict operations: a counting process reports ~100k new names per chunk)."""
+        names = list(names)
+        fresh = [t for t, gid in zip(names, map(self.vocab.get, names), strict=True) if gid is None]
+        # dict.fromkeys: a name given twice gets one id, at its first place.
+        fresh = list(dict.fromkeys(fresh))
+        start = len(self.terms)
+        self.vocab.update(zip(fresh, range(start, start + len(fresh)), strict=True))
+        self.terms.extend(fresh)
+        return np.fromiter(map(self.vocab.__getitem__, names), np.int64, len(names))
 
     def add_result(self, result: ChunkResult) -> None:
         """Merge one counted chunk (its term ids are local to the process that counted it)."""

@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import IO, Any
 
 import numpy as np
+import orjson
 
 from .analyzer import Analyzer
 from .corpus import (
@@ -65,13 +66,19 @@ class Keys:
 
     def append(self, meta: Meta) -> None:
         """Add one article's keys."""
-        line, _, doc_id, title, aliases, links, pop = meta
-        self.lines.append(line)
-        self.ids.append(doc_id)
-        self.titles.append(title)
-        self.aliases.append(aliases)
-        self.links.append(links)
-        self.popularity.append(np.nan if pop is None else pop)
+        self.extend([meta])
+
+    def extend(self, metas: list[Meta]) -> None:
+        """Add several articles' keys, in row order (one list operation per field)."""
+        if not metas:
+            return
+        lines, _, ids, titles, aliases, links, pops = zip(*metas, strict=True)
+        self.lines.extend(lines)
+        self.ids.extend(ids)
+        self.titles.extend(titles)
+        self.aliases.extend(aliases)
+        self.links.extend(links)
+        self.popularity.extend([np.nan if p is None else p for p in pops])
 
     @classmethod
     def of(cls, articles: Iterable[Article]) -> Keys:
@@ -89,10 +96,67 @@ class ChunkOut:
     pid: int
     fresh: list[str]
     metas: list[Meta]  # good articles, in line order
+    metadata: list[dict[str, Any]]  # their metadata, in the same order
     errors: list[tuple[int, str, str]]  # (line, reason, field) of bad items
     encoded: dict[int, bytes]  # store lines of good items that were not raw JSONL lines
     body: Csr
     title: Csr
+
+
+# orjson reads an integer past 64 bits as a float where Python's json keeps it exact; a
+# float this large or larger might be one, and its record is read again by json.
+_BIG = float(2**63)
+
+
+def _has_big_float(value: Any) -> bool:
+    """Whether a float of 2**63 or more (or an infinity) is somewhere in `value`."""
+    if isinstance(value, float):
+        return not -_BIG < value < _BIG  # NaN cannot come from orjson
+    if isinstance(value, dict):
+        value = value.values()
+    elif not isinstance(value, list):
+        return False
+    return any(_has_big_float(v) for v in value)
+
+
+def _record_has_big_float(record: Any) -> bool:
+    """Whether a big float sits where the record's reading could show it: a top-level value
+    (popularity, or a required field's type in an error) or anywhere in an object
+    (metadata). Lists of strings at the top (links, aliases) are refused the same way
+    whatever their numbers, and the text is a string: neither is walked."""
+    if not isinstance(record, dict):
+        return False  # "each record must be a JSON object" either way
+    for v in record.values():
+        if isinstance(v, float):
+            if not -_BIG < v < _BIG:
+                return True
+        elif isinstance(v, dict) and _has_big_float(v):
+            return True
+    return False
+
+
+def _loads(raw: bytes) -> Any:
+    """One JSON Lines record as Python's json reads it, parsed by orjson (several times
+    faster) whenever that gives the same value. Anything orjson refuses (malformed JSON,
+    invalid UTF-8, but also NaN, Infinity, lone surrogates, which json accepts) and any
+    record holding a number of 2**63 or more goes to json, whose result or error stands."""
+    try:
+        value = orjson.loads(raw)
+    except orjson.JSONDecodeError:
+        return _json_loads(raw)
+    return _json_loads(raw) if _record_has_big_float(value) else value
+
+
+def _json_loads(raw: bytes) -> Any:
+    """Python's json on one line, with its errors as CorpusError reasons (no file or line)."""
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ValueError(f"not valid UTF-8 ({exc.reason} at byte {exc.start})") from exc
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise ValueError(f"malformed JSON: {exc.msg} (column {exc.colno})") from exc
 
 
 def _parse(raw: Any, file: str, line: int) -> Article:
@@ -102,15 +166,9 @@ def _parse(raw: Any, file: str, line: int) -> Article:
         raise CorpusError(raw[1], file=file, line=line, field=raw[2])
     if isinstance(raw, bytes):
         try:
-            text = raw.decode("utf-8")
-        except UnicodeDecodeError as exc:
-            msg = f"not valid UTF-8 ({exc.reason} at byte {exc.start})"
-            raise CorpusError(msg, file=file, line=line) from exc
-        try:
-            raw = json.loads(text)
-        except json.JSONDecodeError as exc:
-            msg = f"malformed JSON: {exc.msg} (column {exc.colno})"
-            raise CorpusError(msg, file=file, line=line) from exc
+            raw = _loads(raw)
+        except ValueError as exc:
+            raise CorpusError(str(exc), file=file, line=line) from exc
     return validate_record(raw, file=file, line=line)
 
 
@@ -119,6 +177,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     file, items = task
     analyzer, table = worker_state()
     metas: list[Meta] = []
+    metadata: list[dict[str, Any]] = []
     errors: list[tuple[int, str, str]] = []
     encoded: dict[int, bytes] = {}
     bodies: list[str] = []
@@ -131,6 +190,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
                 errors.append((line, exc.reason, exc.field))
                 continue
             metas.append((line, pos, art.id, art.title, art.aliases, art.links, art.popularity))
+            metadata.append(art.metadata)
             if not isinstance(raw, bytes):  # raw JSONL lines are stored as they are, by the parent
                 encoded[pos] = record_line(art)
             bodies.append(art.text)
@@ -138,7 +198,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     body = count_texts(analyzer, table, bodies)
     title = count_texts(analyzer, table, titles)
     pid, fresh = new_terms()
-    return ChunkOut(pid, fresh, metas, errors, encoded, body, title)
+    return ChunkOut(pid, fresh, metas, metadata, errors, encoded, body, title)
 
 
 def count_items(source: str | Path) -> int:
@@ -242,6 +302,9 @@ class Ingest:
     def __init__(self, file: str, store_fh: IO[bytes], skip_bad: bool, report: ReadReport):
         self.file, self.store_fh, self.skip_bad, self.report = file, store_fh, skip_bad, report
         self.keys = Keys()
+        # Every kept article's metadata, in row order: the metadata columns are written from
+        # it, so the parent never parses the stored articles again.
+        self.metadata: list[dict[str, Any]] = []
         self.counter = TermCounter()
         self.offsets: list[np.ndarray] = [np.zeros(1, dtype=np.int64)]
         self._end = 0
@@ -262,6 +325,23 @@ class Ingest:
         self._seen_titles[title] = line
         return None
 
+    def _all_new(self, metas: list[Meta]) -> bool:
+        """Record the names of a chunk none of whose ids and titles was seen (the usual case,
+        checked with set operations); False, recording nothing, when one might repeat."""
+        ids = [m[2] for m in metas]
+        titles = [m[3] for m in metas]
+        if (
+            len(set(ids)) != len(ids)
+            or len(set(titles)) != len(titles)
+            or not self._seen_ids.keys().isdisjoint(ids)
+            or not self._seen_titles.keys().isdisjoint(titles)
+        ):
+            return False
+        lines = [m[0] for m in metas]
+        self._seen_ids.update(zip(ids, lines, strict=True))
+        self._seen_titles.update(zip(titles, lines, strict=True))
+        return True
+
     def add(self, out: ChunkOut, items: list[RawItem]) -> None:
         """Merge one chunk (`items` are its raw items), or raise its first problem when bad
         lines are not skipped."""
@@ -270,30 +350,28 @@ class Ingest:
             for line, reason, fld in out.errors
         ]
         keep = np.ones(len(out.metas), dtype=bool)
-        for i, meta in enumerate(out.metas):
-            dup = self._duplicate(meta)
-            if dup is not None:
-                keep[i] = False
-                problems.append((meta[0], dup))
+        if not self._all_new(out.metas):
+            for i, meta in enumerate(out.metas):
+                dup = self._duplicate(meta)
+                if dup is not None:
+                    keep[i] = False
+                    problems.append((meta[0], dup))
         problems.sort(key=lambda p: p[0])
         if problems and not self.skip_bad:
             raise problems[0][1]
         for _, exc in problems:
             self.report.note(exc)
         body, title = out.body, out.title
+        metas, metadata = out.metas, out.metadata
         if not keep.all():
             body, title = _keep_rows(body, keep), _keep_rows(title, keep)
-        lines = []
-        for meta, k in zip(out.metas, keep.tolist(), strict=True):
-            if k:
-                self.keys.append(meta)
-                pos = meta[1]
-                line = out.encoded.get(pos)
-                if line is None:
-                    line = items[pos][1]
-                    if not line.endswith(b"\n"):
-                        line += b"\n"
-                lines.append(line)
+            kept = np.flatnonzero(keep).tolist()
+            metas, metadata = [metas[i] for i in kept], [metadata[i] for i in kept]
+        self.keys.extend(metas)
+        self.metadata.extend(metadata)
+        lines = [out.encoded.get(meta[1]) or items[meta[1]][1] for meta in metas]
+        # Raw lines are stored as they are; only a file's last line may lack its newline.
+        lines = [line if line.endswith(b"\n") else line + b"\n" for line in lines]
         self.report.articles += len(lines)
         self.store_fh.write(b"".join(lines))
         lens = np.fromiter(map(len, lines), np.int64, len(lines))

@@ -78,17 +78,25 @@ class FieldCounts:
         tf = self.tf
         out = np.empty(tf.nnz, dtype=dtype)
         posting_term = np.repeat(np.arange(self.df.size, dtype=np.int32), self.df)
+        k1, b, avgdl = params.k1, params.b, self.avgdl
+        # bm25.term_weights's arithmetic, operation for operation (so every weight is the
+        # same to the bit), with the length part computed once per article instead of once
+        # per posting and the temporaries reused.
+        if avgdl > 0:
+            doc_norm = k1 * (1.0 - b + b * self.doc_len.astype(np.float64) / avgdl)
+        else:
+            doc_norm = np.full(self.doc_len.size, k1 * (1.0 - b))
         for s in range(0, tf.nnz, _WEIGHT_SLICE):
             e = min(tf.nnz, s + _WEIGHT_SLICE)
-            docs = tf.indices[s:e]
-            out[s:e] = bm25.term_weights(
-                tf.data[s:e],
-                self.doc_len[docs],
-                self.idf[posting_term[s:e]],
-                self.avgdl,
-                params.k1,
-                params.b,
-            )
+            freq = tf.data[s:e].astype(np.float64)
+            norm = doc_norm[tf.indices[s:e]]
+            norm += freq  # tf + norm
+            freq *= k1 + 1.0  # tf * (k1 + 1)
+            w = self.idf[posting_term[s:e]]
+            w *= freq
+            with np.errstate(divide="ignore", invalid="ignore"):
+                w /= norm
+            out[s:e] = np.nan_to_num(w, copy=False, nan=0.0)
         return out
 
     def save(self, folder: Path, prefix: str, weights: np.ndarray) -> None:
@@ -115,8 +123,9 @@ def weight_dtype(*idfs: np.ndarray) -> type[np.floating[Any]]:
 def sorted_terms(terms: Iterable[str]) -> list[str]:
     """Distinct terms in the vocabulary's order (code points: the same corpus always gives
     the same index, and a sharded build's driver sorts its union the same way)."""
-    names = np.asarray(list(terms), dtype=object)
-    return [str(t) for t in names[np.argsort(names.astype(str), kind="stable")]]
+    # Python compares str by code point; sorting the list itself is faster than numpy's
+    # fixed-width copy of every name, whose width is the longest name's.
+    return sorted(str(t) for t in terms)
 
 
 def term_major(
@@ -136,13 +145,13 @@ def term_major(
         counter.chunks[name] = []  # the stacked copy replaces the chunks
         used |= np.bincount(m.indices, minlength=n_terms) > 0
         rows.append(m)
-    names = np.asarray(counter.terms, dtype=object)
     used_ids = np.flatnonzero(used)
     new_id = np.full(n_terms, -1, dtype=np.int32)
     if vocab is None:
-        ranked = used_ids[np.argsort(names[used_ids].astype(str), kind="stable")]
-        new_id[ranked] = np.arange(ranked.size, dtype=np.int32)
-        out_terms = [str(t) for t in names[ranked]]
+        # Distinct names, so the order is that of sorted_terms: code points.
+        ranked = sorted(used_ids.tolist(), key=counter.terms.__getitem__)
+        new_id[ranked] = np.arange(len(ranked), dtype=np.int32)
+        out_terms = [counter.terms[i] for i in ranked]
     else:
         position = {t: i for i, t in enumerate(vocab)}
         for i in used_ids.tolist():
@@ -158,11 +167,17 @@ def term_major(
         m = rows.pop(0)
         remapped = sp.csr_matrix((m.data, new_id[m.indices], m.indptr), shape=(m.shape[0], width))
         del m
-        if forward is None:  # the body comes first
-            remapped.sort_indices()
-            forward = (remapped.indptr.astype(np.int64), remapped.indices.astype(np.int32))
-        mats.append(remapped.tocsc())
+        # tocsc is a counting sort that walks the rows in order, so each term's articles
+        # come out ascending whatever the order within a row.
+        csc = remapped.tocsc()
         del remapped
+        if forward is None:  # the body comes first
+            # The same counting sort back gives each article's terms ascending: cheaper than
+            # sorting every row of the re-numbered matrix.
+            back = csc.T.tocsc()
+            forward = (back.indptr.astype(np.int64), back.indices.astype(np.int32))
+            del back
+        mats.append(csc)
     if forward is None:  # pragma: no cover - the body is always counted
         raise RuntimeError("no body field was counted")
     return out_terms, mats, forward

@@ -172,6 +172,7 @@ def write_shard(
             stats=stats,
             known=known,
             shard=shard,
+            metadata=state.metadata,
         )
     return len(state.keys)
 

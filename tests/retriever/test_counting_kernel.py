@@ -90,3 +90,54 @@ def test_a_text_that_is_not_a_string_is_refused() -> None:
     an = Analyzer()
     with pytest.raises(TypeError, match="text 1 is not a str"):
         _ids_of(an, an.term_table(), ["fine", 3])  # type: ignore[list-item]
+
+
+def _numpy_counts(ids: np.ndarray, lens: np.ndarray) -> tuple[np.ndarray, ...]:
+    """count_texts's definition of per-text counts: numpy's unique over (text, term) keys."""
+    indptr = np.zeros(lens.size + 1, dtype=np.int64)
+    if ids.size == 0:
+        return indptr, np.zeros(0, np.int32), np.zeros(0, np.int32)
+    rows = np.repeat(np.arange(lens.size, dtype=np.int64), lens)
+    width = int(ids.max()) + 1
+    keys, counts = np.unique(rows * width + ids, return_counts=True)
+    np.cumsum(np.bincount(keys // width, minlength=lens.size), out=indptr[1:])
+    return indptr, (keys % width).astype(np.int32), counts.astype(np.int32)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_compiled_counts_equal_numpys(seed: int) -> None:
+    _require_kernel()
+    from retriever.counting import _analysis
+
+    rng = np.random.default_rng(seed)
+    # Empty texts, short ones (insertion sort) and long ones with many distinct terms (qsort).
+    lens = rng.choice([0, 1, 5, 40, 300], size=200).astype(np.int64)
+    ids = rng.integers(0, rng.choice([3, 60, 100_000]), size=int(lens.sum())).astype(np.int64)
+    parts = _analysis.count_rows(ids, lens)
+    got = [
+        np.frombuffer(b, dtype=d) for b, d in zip(parts, ("int64", "int32", "int32"), strict=True)
+    ]
+    for g, w in zip(got, _numpy_counts(ids, lens), strict=True):
+        np.testing.assert_array_equal(g, w)
+        assert g.dtype == w.dtype
+
+
+def test_compiled_counts_refuse_bad_input() -> None:
+    _require_kernel()
+    from retriever.counting import _analysis
+
+    with pytest.raises(ValueError, match="do not add up"):
+        _analysis.count_rows(np.arange(3, dtype=np.int64), np.array([1, 1], dtype=np.int64))
+    with pytest.raises(ValueError, match="out of range"):
+        _analysis.count_rows(np.array([-2], dtype=np.int64), np.array([1], dtype=np.int64))
+
+
+def test_count_texts_same_with_and_without_the_compiled_loops() -> None:
+    _require_kernel()
+    texts = random_texts(5, 300)
+    out = []
+    for use_kernel in (True, False):
+        an = Analyzer()
+        out.append(count_texts(an, an.term_table(), texts, use_kernel))
+    for g, w in zip(*out, strict=True):
+        np.testing.assert_array_equal(g, w)

@@ -124,3 +124,61 @@ def test_short_csv_rows_are_skipped_and_reported(tmp_path: Path, workers: int) -
     assert report.skipped == 2
     assert "line 3: " in report.problems[0] and "'text', 'links'" in report.problems[0]
     assert "line 4: " in report.problems[1] and "'links'" in report.problems[1]
+
+
+# Lines where a fast JSON parser and Python's json could disagree: integers past 64 bits,
+# NaN and infinities, a lone surrogate, a repeated key, exponents, escapes, non-ASCII text.
+_JSON_EDGES = [
+    b'{"id": "a", "n": 123456789012345678901234567890}',
+    b'{"id": "a", "n": 18446744073709551616, "m": -9223372036854775809}',
+    b'{"id": "a", "n": 9223372036854775807, "m": 18446744073709551615}',
+    b'{"id": "a", "n": NaN, "m": Infinity, "k": -Infinity}',
+    b'{"id": "a", "n": 1e400}',
+    b'{"id": "a", "t": "\\ud800 alone"}',
+    b'{"id": "a", "id": "b"}',
+    b'{"id": "a", "n": 1E2, "m": -0.0, "k": 0.1, "j": 5e-324}',
+    b'{"id": "a", "t": "caf\\u00e9 \\"q\\" \\n"}',
+    '{"id": "a", "t": "\u00e9t\u00e9 \u03bb"}'.encode(),
+]
+
+
+@pytest.mark.parametrize("line", _JSON_EDGES)
+def test_lines_parse_as_python_json_parses_them(line: bytes) -> None:
+    # Reference: Python's standard json module, which the reader (read_articles) uses.
+    from retriever.ingest import _loads
+
+    expected = json.loads(line.decode("utf-8"))
+    got = _loads(line)
+    assert repr(got) == repr(expected)
+    assert [type(v) for v in got.values()] == [type(v) for v in expected.values()]
+
+
+@pytest.mark.parametrize("line", [b'{"id": "a"', b'{"id": "\xff"}', b"\xef\xbb\xbf{}", b"[1,]"])
+def test_bad_lines_give_python_json_errors(line: bytes) -> None:
+    from retriever.ingest import _json_loads, _loads
+
+    with pytest.raises(ValueError) as fast:
+        _loads(line)
+    with pytest.raises(ValueError) as slow:
+        _json_loads(line)
+    assert str(fast.value) == str(slow.value)
+    assert str(fast.value).startswith(("malformed JSON", "not valid UTF-8"))
+
+
+@pytest.mark.parametrize(
+    "line",
+    [
+        b'{"id": 123456789012345678901234, "title": "T", "text": "x"}',
+        b'{"id": "a", "title": "T", "text": "x", "popularity": -123456789012345678901234}',
+    ],
+)
+def test_build_reports_long_integers_as_the_reader_does(tmp_path: Path, line: bytes) -> None:
+    path = tmp_path / "c.jsonl"
+    path.write_bytes(line + b"\n")
+    # Reference: read_articles, which parses with Python's standard json module.
+    with pytest.raises(CorpusError) as read_err:
+        list(read_articles(path))
+    with pytest.raises(CorpusError) as build_err:
+        build_index(path, tmp_path / "idx", vectors=False)
+    assert str(build_err.value) == str(read_err.value)
+    assert "123456789012345678901234" in str(build_err.value) or "got int" in str(build_err.value)
