@@ -174,7 +174,8 @@ class ShardedView(Index):
                 raise IndexFormatError(
                     f"{exc}. The model names word vectors refined at training (generation "
                     f"{generation}); copy them into every shard from the index it was trained "
-                    f"on: hunchwise index copy-vectors TRAINED_INDEX {self.path} --generation {generation}"
+                    f"on: hunchwise index copy-vectors TRAINED_INDEX {self.path} "
+                    f"--generation {generation}"
                 ) from exc
         else:
             shards = [_Generation(s.dense) for s in self.shards]
