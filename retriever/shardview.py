@@ -34,7 +34,7 @@ from typing import Any, cast
 
 import numpy as np
 
-from . import metacolumns, metafilter
+from . import metacolumns, metafilter, vecgen
 from .columns import JsonListColumn, StringColumn
 from .dense import DenseSearcher
 from .errors import IndexFormatError
@@ -168,15 +168,16 @@ class ShardedView(Index):
     def _sharded_dense(self, generation: str) -> ShardedDense | None:
         """The shards' vectors (generation "" their own), searched through the fan-out."""
         if generation:
-            try:
-                shards = [_Generation(s.dense_generation(generation)) for s in self.shards]
-            except IndexFormatError as exc:
-                raise IndexFormatError(
-                    f"{exc}. The model names word vectors refined at training (generation "
-                    f"{generation}); copy them into every shard from the index it was trained "
-                    f"on: hunchwise index copy-vectors TRAINED_INDEX {self.path} "
-                    f"--generation {generation}"
-                ) from exc
+            for shard in self.shards:
+                if generation not in vecgen.names(shard.path):
+                    raise IndexFormatError(
+                        f"{shard.path}: has no vector generation {generation} (the word "
+                        "vectors the model was trained with, refined on its labelled clues); "
+                        "copy them into every shard from the index the model was trained on: "
+                        f"hunchwise index copy-vectors TRAINED_INDEX {self.path} "
+                        f"--generation {generation}"
+                    )
+            shards = [_Generation(s.dense_generation(generation)) for s in self.shards]
         else:
             shards = [_Generation(s.dense) for s in self.shards]
         return ShardedDense.of(
@@ -191,7 +192,8 @@ class ShardedView(Index):
         with self._generations_lock:
             if name not in self._generations:
                 dense = self._sharded_dense(name)
-                assert dense is not None  # the shards have vectors: checked above
+                if dense is None:  # not reached: every shard has vectors when self.dense does
+                    raise IndexFormatError(f"{self.path}: the shards have no word vectors")
                 self._generations[name] = dense
             return self._generations[name]
 
