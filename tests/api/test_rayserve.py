@@ -22,7 +22,6 @@ import pytest
 from reranker.training import train
 from retriever import load_index
 from retriever.shards import build_sharded
-from retriever.shardvectors import copy_generations
 from tests.api.svc_helpers import Server, read_jsonl, serve
 
 ray = pytest.importorskip("ray", reason="Ray is not installed (pip install '.[cluster]')")
@@ -135,73 +134,6 @@ def test_sharded_serving_answers_as_one_index_logs_and_takes_feedback(
         (got[0]["request_id"], first),
         (got[1]["request_id"], got[1]["candidates"][-1]["id"]),
     ]
-
-
-@pytest.fixture(scope="module")
-def hybrid_sharded_dir(
-    sharded_dir: Path, index_dir: Path, model_path: Path, tmp_path_factory: pytest.TempPathFactory
-) -> Path:
-    """The three shards given the vector generation the default (hybrid) model names: the
-    word vectors refined on the labelled clues, stored in the unsharded index at training."""
-    out = tmp_path_factory.mktemp("hybrid-sharded") / "sh"
-    shutil.copytree(sharded_dir, out)
-    name = json.loads(model_path.read_text(encoding="utf-8"))["candidates"]["vectors"]
-    assert name  # the premise: the default model uses refined vectors
-    assert copy_generations(index_dir, out, [name]) == [name]
-    return out
-
-
-HYBRID_FILTER = {"category": {"in": ["place", "person", "work"]}}
-
-
-def test_a_hybrid_model_on_sharded_serving_answers_as_one_index_with_and_without_a_filter(
-    ray_address: str,
-    hybrid_sharded_dir: Path,
-    index_dir: Path,
-    model_path: Path,
-    demo: dict[str, Path],
-    tmp_path: Path,
-) -> None:
-    texts = clues(demo)[:40]
-    bodies = [
-        {"clue": t, "k": K, "include_features": True, **({"filter": f} if f else {})}
-        for f in (None, HYBRID_FILTER)
-        for t in texts
-    ]
-    model = ["--model", str(model_path)]
-    with serve(["--index", str(index_dir), *model], tmp_path) as plain:
-        expected = post_all(plain, bodies)
-    args = ["--index", str(hybrid_sharded_dir), *model, "--ray", ray_address]
-    with serve(args, tmp_path, ready_timeout=300) as sharded:
-        got = post_all(sharded, bodies)
-    compared = 0
-    for body, want, have in zip(bodies, expected, got, strict=True):
-        assert [c["id"] for c in have["candidates"]] == [c["id"] for c in want["candidates"]], body
-        for cw, ch in zip(want["candidates"], have["candidates"], strict=True):
-            assert ch["score"] == cw["score"], (body, cw["id"])
-            assert ch["probability"] == pytest.approx(cw["probability"], abs=1e-12, rel=0)
-            # The dense evidence (cosine, dense rank, fused rank, in both) included.
-            assert ch["features"] == cw["features"], (body, cw["id"])
-            compared += 1
-        assert have["decision"] == want["decision"], body
-        assert have.get("filter") == want.get("filter")
-    assert compared > len(bodies)
-    assert any(
-        k.startswith("dense") or "cos" in k for k in expected[0]["candidates"][0]["features"]
-    )
-    # The filter acted: fewer or other candidates than without it for some clue.
-    n = len(texts)
-    assert any(
-        [c["id"] for c in got[i]["candidates"]] != [c["id"] for c in got[n + i]["candidates"]]
-        for i in range(n)
-    )
-
-
-def post_all(server: Server, bodies: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    with httpx.Client(base_url=server.url, timeout=60) as c:
-        replies = [c.post("/v1/rank", json=b) for b in bodies]
-    assert all(r.status_code == 200 for r in replies), [r.text for r in replies[:3]]
-    return [r.json() for r in replies]
 
 
 def test_shards_with_other_statistics_refuse_to_start(
