@@ -1,7 +1,12 @@
 """Sharded serving on Ray Serve: one deployment per shard, and the HTTP API in front of them.
 
 Each shard deployment (`ShardSearcher`, replicas configurable) memory-maps its shard folder
-and answers "the top k for these analysed query terms" with (score, global row) pairs. The
+and answers "the top k for these analysed query terms" with (score, global row) pairs,
+"the k nearest articles to these clue vectors" (hybrid models: the front makes each clue's
+vector once from the shared word vectors; a refined generation is named by the model) with
+(global rows, cosines), and "the BM25 scores of these rows". A metadata filter is compiled
+at the front over the whole corpus and each shard is sent its part of the mask, packed to
+bits. The
 front deployment (`Front`) is the ordinary FastAPI application of api/app.py, mounted as the
 Serve ingress: the same routes, served log, feedback and request ids as `hunchwise serve`.
 The one thing swapped is how the index folder is opened (the `open_index` seam of
@@ -23,6 +28,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, cast
 
+import numpy as np
 import ray
 from fastapi import FastAPI
 from ray import serve
@@ -30,12 +36,30 @@ from ray import serve
 from reranker import load_model
 from retriever import Index, IndexFormatError
 from retriever.sharded import read_manifest
-from retriever.shardview import Scored, ShardedView, local_search
+from retriever.shardeddense import DenseLists
+from retriever.shardfanout import Scored, local_dense, local_search
+from retriever.shardview import ShardedView
 
 from .app import create_app
 from .settings import ServiceSettings
 
 APP_NAME = "hunchwise"
+
+# A shard's part of a filter's row mask as sent: (bits packed 8 a byte, rows), or None.
+PackedMask = tuple[np.ndarray, int] | None
+
+
+def pack(mask: np.ndarray | None) -> PackedMask:
+    """A boolean mask packed to bits for the trip to a shard (1 bit an article, not 8)."""
+    return None if mask is None else (np.packbits(mask), int(mask.shape[0]))
+
+
+def unpack(packed: PackedMask) -> np.ndarray | None:
+    """The boolean mask `pack` sent."""
+    if packed is None:
+        return None
+    bits, n = packed
+    return np.unpackbits(bits, count=n).astype(bool)
 
 
 def describe(index: Index, first_row: int) -> dict[str, Any]:
@@ -64,13 +88,74 @@ class ShardSearcher:
                 f"{stats_sha256[:12]}: built with other corpus statistics; rebuild the index"
             )
 
-    def search(self, token_lists: list[list[str]], k: int) -> list[Scored]:
+    def search(self, token_lists: list[list[str]], k: int, allowed: PackedMask) -> list[Scored]:
         """Per query, this shard's top k as (score, global row), best first."""
-        return local_search(self.index, self.first_row, token_lists, k)
+        return local_search(self.index, self.first_row, token_lists, k, unpack(allowed))
+
+    def dense_search(
+        self,
+        generation: str,
+        queries: list[np.ndarray | None],
+        k: int,
+        exact: bool,
+        allowed: PackedMask,
+    ) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Per query vector, this shard's k nearest as (global rows, cosines), best first."""
+        return local_dense(
+            self.index, self.first_row, generation, queries, k, exact, unpack(allowed)
+        )
+
+    def score_rows(self, tokens: list[str], rows: np.ndarray) -> np.ndarray:
+        """BM25 scores of some of this shard's rows (local numbers)."""
+        return self.index.score_tokens(tokens)[rows] if rows.size else np.empty(0)
 
     def describe(self) -> dict[str, Any]:
         """This shard's identity (see `describe`)."""
         return describe(self.index, self.first_row)
+
+
+class RemoteShards:
+    """`retriever.shardfanout.FanOut` over the shard deployments: each call is sent to every
+    shard before waiting for any."""
+
+    def __init__(self, handles: Sequence[Any]) -> None:
+        self.handles = list(handles)  # DeploymentHandles, in shard order
+
+    def _parts(self, allowed: Sequence[np.ndarray] | None) -> list[PackedMask]:
+        return [None] * len(self.handles) if allowed is None else [pack(a) for a in allowed]
+
+    def search(
+        self, token_lists: Sequence[Sequence[str]], k: int, allowed: Sequence[np.ndarray] | None
+    ) -> list[list[Scored]]:
+        """Every shard's top k per query."""
+        lists = [list(t) for t in token_lists]
+        parts = self._parts(allowed)
+        pending = [h.search.remote(lists, k, a) for h, a in zip(self.handles, parts, strict=True)]
+        return [p.result() for p in pending]
+
+    def dense_search(
+        self,
+        generation: str,
+        queries: Sequence[np.ndarray | None],
+        k: int,
+        exact: bool,
+        allowed: Sequence[np.ndarray] | None,
+    ) -> DenseLists:
+        """Every shard's k nearest per query vector."""
+        qs, parts = list(queries), self._parts(allowed)
+        pending = [
+            h.dense_search.remote(generation, qs, k, exact, a)
+            for h, a in zip(self.handles, parts, strict=True)
+        ]
+        return [p.result() for p in pending]
+
+    def score_rows(self, tokens: Sequence[str], rows: Sequence[np.ndarray]) -> list[np.ndarray]:
+        """Every shard's BM25 scores of its rows in `rows` (shards with none are not asked)."""
+        pending = [
+            h.score_rows.remote(list(tokens), r) if r.size else None
+            for h, r in zip(self.handles, rows, strict=True)
+        ]
+        return [np.empty(0) if p is None else p.result() for p in pending]
 
 
 @serve.deployment(ray_actor_options={"num_cpus": 1})
@@ -85,16 +170,10 @@ class Front:
     def __serve_build_asgi_app__(self) -> FastAPI:
         return create_app(self.settings, open_index=self.open_index)
 
-    def fan_out(self, token_lists: Sequence[Sequence[str]], k: int) -> list[list[Scored]]:
-        """Every shard's top k, asked of all shards before waiting for any."""
-        lists = [list(t) for t in token_lists]
-        pending = [h.search.remote(lists, k) for h in self.shards]
-        return [p.result() for p in pending]
-
     def open_index(self, folder: Path) -> Index:
         """The sharded folder as one index searched by the shard deployments, refused if a
         deployment serves another shard than the folder's."""
-        view = ShardedView(folder, search=self.fan_out)
+        view = ShardedView(folder, RemoteShards(self.shards))
         pending = [h.describe.remote() for h in self.shards]
         served = [p.result() for p in pending]
         if len(served) != len(view.shards):

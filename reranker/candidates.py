@@ -10,11 +10,9 @@ so every BM25 feature keeps its meaning, and the dense evidence rides along in `
 from __future__ import annotations
 
 import math
-import threading
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
 from typing import Any
-from weakref import WeakKeyDictionary
 
 import numpy as np
 
@@ -76,23 +74,10 @@ class CandidatePolicy:
         return cls(mode, float(weight), pool, fusion, vectors)
 
 
-# Each index's opened vector generations, by name (an index is replaced, never changed).
-_GENERATIONS: WeakKeyDictionary[Index, dict[str, DenseSearcher]] = WeakKeyDictionary()
-_GEN_LOCK = threading.Lock()
-
-
 def dense_of(index: Index, policy: CandidatePolicy) -> DenseSearcher | None:
     """The dense searcher a policy uses: the index's own vectors, or its refined generation
     (IndexFormatError naming the folder when the index lacks it)."""
-    if not policy.vectors or index.dense is None:
-        return index.dense
-    with _GEN_LOCK:
-        opened = _GENERATIONS.setdefault(index, {})
-        if policy.vectors not in opened:
-            opened[policy.vectors] = DenseSearcher(
-                vecgen.open_generation(index.path, policy.vectors)
-            )
-        return opened[policy.vectors]
+    return index.dense_generation(policy.vectors)
 
 
 @dataclass(frozen=True)

@@ -13,7 +13,7 @@ from typing import Any, Literal, overload
 
 import numpy as np
 
-from . import bounds, columns, hybrid, metafilter, scoring, store
+from . import bounds, columns, hybrid, metafilter, scoring, store, vecgen
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .counting import cores
@@ -128,6 +128,8 @@ class Index(hybrid.HybridSearch):
         self.popularity = store.open_array(self.path, "popularity", "float64", self.n_docs)
         self._store = store.StoreReader(self.path, self.n_docs)
         self._local = threading.local()
+        self._generations: dict[str, DenseSearcher] = {}
+        self._generations_lock = threading.Lock()
         # Whether searches may skip postings that cannot change the top k (None: where it
         # pays, see scoring.prunable; False: score every posting). Same hits either way.
         self.prune: bool | None = None
@@ -148,6 +150,17 @@ class Index(hybrid.HybridSearch):
         """Nearest-article search over the word vectors, or None for an index without them."""
         vectors = DenseVectors.open(self.path, self.manifest)
         return DenseSearcher(vectors) if vectors is not None else None
+
+    def dense_generation(self, name: str) -> DenseSearcher | None:
+        """The dense searcher over vector generation `name` of this folder (retriever/vecgen.py),
+        opened once; "" (or an index without vectors): the index's own, `dense`.
+        IndexFormatError naming the folder when it lacks the generation."""
+        if not name or self.dense is None:
+            return self.dense
+        with self._generations_lock:
+            if name not in self._generations:
+                self._generations[name] = DenseSearcher(vecgen.open_generation(self.path, name))
+            return self._generations[name]
 
     @cached_property
     def meta_columns(self) -> MetaColumns:

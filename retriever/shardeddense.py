@@ -13,14 +13,13 @@ the dense lists are approximate, as a big single index's are, but not the same c
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Protocol
 
 import numpy as np
 
 from .dense import DenseSearcher, dot
 from .errors import IndexFormatError
-from .vectors import DenseVectors
 
 
 class _Column(Protocol):
@@ -58,17 +57,41 @@ class ShardedColumn:
         return out
 
 
-class ShardedDense:
-    """`DenseSearcher`'s search and cosines over every shard's article vectors."""
+# Per query, each shard's nearest articles as (global rows, cosines), best first; given the
+# queries, k, exact, and each shard's part of a filter's row mask (None: no filter).
+DenseLists = list[list[tuple[np.ndarray, np.ndarray]]]
+DenseFanOut = Callable[
+    [Sequence[np.ndarray | None], int, bool, Sequence[np.ndarray] | None], DenseLists
+]
 
-    def __init__(self, searchers: Sequence[DenseSearcher], first_rows: Sequence[int]) -> None:
+
+class ShardedDense(DenseSearcher):
+    """`DenseSearcher`'s search and cosines over every shard's article vectors.
+
+    The shards' searches go through `fan_out` (default: the searchers here, one after the
+    other; api/rayserve.py: the shard deployments); the clue's vector is made here, once,
+    from the shared word vectors, and the cosines of a few rows are read here too.
+    """
+
+    def __init__(
+        self,
+        searchers: Sequence[DenseSearcher],
+        first_rows: Sequence[int],
+        fan_out: DenseFanOut | None = None,
+    ) -> None:
+        # Any shard's words and weights make the clue's vector: they are the same arrays.
+        super().__init__(searchers[0].vectors)
         self.searchers = list(searchers)
         self.first = np.asarray(first_rows, dtype=np.int64)
-        # Any shard's words and weights make the clue's vector: they are the same arrays.
-        self.vectors: DenseVectors = self.searchers[0].vectors
+        self._fan_out = fan_out if fan_out is not None else self._search_here
 
     @classmethod
-    def of(cls, shards: Sequence[DenseShard], first_rows: Sequence[int]) -> ShardedDense | None:
+    def of(
+        cls,
+        shards: Sequence[DenseShard],
+        first_rows: Sequence[int],
+        fan_out: DenseFanOut | None = None,
+    ) -> ShardedDense | None:
         """The shards' dense search, None when built without vectors; refused when only
         some shards have vectors or their word vectors differ."""
         searchers = [s.dense for s in shards]
@@ -79,24 +102,54 @@ class ShardedDense:
             raise IndexFormatError(
                 "the shards do not share one set of word vectors; rebuild the sharded index"
             )
-        return cls([d for d in searchers if d is not None], first_rows)
+        return cls([d for d in searchers if d is not None], first_rows, fan_out)
+
+    def _search_here(
+        self,
+        queries: Sequence[np.ndarray | None],
+        k: int,
+        exact: bool,
+        allowed: Sequence[np.ndarray] | None,
+    ) -> DenseLists:
+        return [
+            [
+                (rows + first, scores)
+                for rows, scores in s.search(
+                    queries, k, exact=exact, allowed=None if allowed is None else allowed[i]
+                )
+            ]
+            for i, (s, first) in enumerate(zip(self.searchers, self.first.tolist(), strict=True))
+        ]
 
     @property
     def approximate(self) -> bool:
         """True when any shard searches an HNSW graph."""
         return any(s.approximate for s in self.searchers)
 
+    def split(self, allowed: np.ndarray) -> list[np.ndarray]:
+        """Each shard's part of a row mask over the whole corpus."""
+        ends = [*self.first.tolist()[1:], allowed.shape[0]]
+        return [allowed[a:b] for a, b in zip(self.first.tolist(), ends, strict=True)]
+
     def search(
-        self, queries: Sequence[np.ndarray | None], k: int, *, exact: bool = False
+        self,
+        queries: Sequence[np.ndarray | None],
+        k: int,
+        *,
+        exact: bool = False,
+        allowed: np.ndarray | None = None,
     ) -> list[tuple[np.ndarray, np.ndarray]]:
-        """(global rows, cosines) of each query's k nearest articles over all shards."""
-        per_shard = [s.search(queries, k, exact=exact) for s in self.searchers]
+        """(global rows, cosines) of each query's k nearest articles over all shards, merged
+        by (cosine desc, global row asc) as one index orders them; `allowed` (bool, one per
+        article): only the rows it keeps, each shard given its part."""
+        if k < 1:
+            raise ValueError(f"k must be at least 1, got {k}")
+        parts = None if allowed is None else self.split(allowed)
+        per_shard = self._fan_out(queries, k, exact, parts)
         out = []
         for q in range(len(queries)):
-            rows = np.concatenate(
-                [lists[q][0] + first for first, lists in zip(self.first, per_shard, strict=True)]
-            )
-            scores = np.concatenate([lists[q][1] for lists in per_shard])
+            rows = np.concatenate([lists[q][0] for lists in per_shard]).astype(np.int64)
+            scores = np.concatenate([lists[q][1] for lists in per_shard]).astype(np.float64)
             order = np.lexsort((rows, -scores))[:k]
             out.append((rows[order], scores[order]))
         return out

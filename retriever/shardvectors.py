@@ -8,19 +8,22 @@ their vectors and weights are written once into the sharded folder (`word_vector
 then gives every shard a copy and its articles' vectors, one task per shard, in the same
 files and manifest entry as an unsharded index, so each shard opens as an ordinary `Index`
 with dense search. An article's vector depends only on its own text and these shared
-arrays, so it equals the single build's bit for bit.
+arrays, so it equals the single build's bit for bit. `copy_generations` gives every shard a
+vector generation (refined vectors a model names) of the unsharded index it was trained on.
 """
 
 from __future__ import annotations
 
 import itertools
 import time
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+from tqdm.auto import tqdm
 
-from . import columns, store
+from . import columns, sharded, store, vecgen
 from . import vectors as vecs
 from .analyzer import Analyzer
 from .errors import IndexFormatError
@@ -94,3 +97,39 @@ def write_shard_vectors(shard_dir: str, words_dir: str, entry: dict[str, Any]) -
     manifest["build"]["bytes_on_disk"] = store.folder_size(folder)
     store.write_json(folder / store.MANIFEST, manifest)
     return int(vec_entry["articles_without_vector"])
+
+
+def copy_generations(
+    source: Path, folder: Path, only: Sequence[str] | None = None, progress: bool = False
+) -> list[str]:
+    """Write vector generations of the unsharded index in `source` (those named, else all)
+    into every shard of the sharded index in `folder`: a model trained on `source` names
+    its refined vectors' generation (retriever/vecgen.py), which the sharded view opens in
+    each shard. Each shard gets the same words, word vectors and weights (so the same
+    generation name) and its own articles' vectors, made from its stored term counts
+    (`vecgen.carry_over`, no training). Returns the generations written."""
+    source, folder = Path(source), Path(folder)
+    if store.is_sharded(source):
+        raise IndexFormatError(
+            f"{source} is a sharded index; copy from the unsharded index the model was trained on"
+        )
+    have = vecgen.names(source)
+    names = list(have if only is None else only)
+    for name in names:
+        if name not in have:
+            listed = ", ".join(have) or "none"
+            raise IndexFormatError(
+                f"{source}: has no vector generation {name!r} (it has: {listed}); give the "
+                "index folder the model was trained on"
+            )
+    analyzer = store.read_manifest(source).get("analyzer")
+    shards = [folder / str(e["folder"]) for e in sharded.read_manifest(folder)["shards"]]
+    for shard in shards:
+        if store.read_manifest(shard).get("analyzer") != analyzer:
+            raise IndexFormatError(
+                f"{shard}: analyses text otherwise than {source} (manifest field 'analyzer'); "
+                "its vectors would not match this index's terms"
+            )
+    for shard in tqdm(shards, desc="shards", unit=" shard", disable=not progress):
+        vecgen.carry_over(source, shard, only=names)
+    return names

@@ -2,11 +2,21 @@
 
 Ranking a clue needs more of an index than its search: the candidates' ids, titles, names,
 lengths, in-links and body terms (reranker/features). `ShardedView` gives all of that by
-global row from the shards' own memory-mapped folders, and asks a `ShardSearch` for each
-shard's top k, merged by `sharded.merge_scored`: in this process (`local_search`), or on
-other machines (api/rayserve.py sends the analysed terms to one Ray Serve deployment per
-shard). Every shard holds the corpus's whole vocabulary, so term ids agree across shards
-and a term's document frequency is the sum of the shards' own.
+global row from the shards' own memory-mapped folders, and asks a `FanOut` for each shard's
+part of the work: in this process (`LocalShards`), or on other machines (api/rayserve.py,
+one Ray Serve deployment per shard). Every shard holds the corpus's whole vocabulary, so
+term ids agree across shards and a term's document frequency is the sum of the shards' own.
+
+- BM25: each shard's top k for the analysed terms, merged by `sharded.merge_scored`.
+- Word vectors (hybrid models): the shards hold copies of one set of word vectors
+  (retriever/shardvectors.py), so the clue's vector is made here once and sent to every
+  shard, which returns its nearest articles by global row; `shardeddense.ShardedDense`
+  merges them by (cosine desc, row asc), as one index orders them. A refined generation a
+  model names (retriever/vecgen.py) is one `vectors-<name>` folder in every shard
+  (`hunchwise index copy-vectors` writes them from the index the model was trained on).
+- Metadata filters: each shard typed its fields over its own articles, so the view types
+  them again over all of them (`metacolumns.concat`) and compiles a filter to one mask,
+  which each shard receives its part of.
 
 What the view copies into memory: the per-row arrays (lengths, in-links, popularity: 16
 bytes an article) and the article-major term lists the compiled features read by global
@@ -16,33 +26,24 @@ row (4 bytes per distinct term of each article, about the size of one body posti
 from __future__ import annotations
 
 import functools
-from collections.abc import Callable, Iterator, Mapping, Sequence
+import threading
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import replace
 from pathlib import Path
 from typing import Any, cast
 
 import numpy as np
 
+from . import metacolumns, metafilter, vecgen
 from .columns import JsonListColumn, StringColumn
-from .errors import FilterError, IndexFormatError
+from .dense import DenseSearcher
+from .errors import IndexFormatError
 from .hits import Hit, RowMask, TokenLists
 from .index import Document, Index, _FieldPostings
+from .metacolumns import MetaColumns
 from .sharded import ShardedIndex, merge_scored
-
-# Per query, best first: (score, global row).
-Scored = list[tuple[float, int]]
-# token lists, k -> per shard, per query, its top k as (score, global row).
-ShardSearch = Callable[[Sequence[Sequence[str]], int], list[list[Scored]]]
-
-
-def local_search(
-    shard: Index, first_row: int, token_lists: Sequence[Sequence[str]], k: int
-) -> list[Scored]:
-    """One shard's top k per query, rows counted over the whole corpus."""
-    return [
-        [(h.score, first_row + h.row) for h in hits]
-        for hits in shard.search_token_lists(token_lists, k)
-    ]
+from .shardeddense import ShardedDense
+from .shardfanout import FanOut, LocalShards
 
 
 class ConcatStrings(StringColumn):
@@ -98,14 +99,21 @@ def _summed_postings(fields: Sequence[_FieldPostings]) -> _FieldPostings:
     return merged
 
 
+class _Generation:
+    """One shard's searcher of a generation, as `ShardedDense.of` reads a shard."""
+
+    def __init__(self, dense: DenseSearcher | None) -> None:
+        self.dense = dense
+
+
 class ShardedView(Index):
     """A sharded index as one read-only `Index`: rows from the shards' folders, searches
-    from `search` (default: the shards opened here, one after the other)."""
+    from `fan_out` (default: the shards opened here, one after the other)."""
 
     def __init__(
         self,
         folder: str | Path,
-        search: ShardSearch | None = None,
+        fan_out: FanOut | None = None,
         *,
         title_weight: float | None = None,
     ) -> None:
@@ -149,15 +157,50 @@ class ShardedView(Index):
             + [ip[1:] + off for (ip, _), off in zip(lists, offsets, strict=True)]
         )
         self._fwd_terms = np.concatenate([t for _, t in lists])
-        self.__dict__["dense"] = None  # sharded builds have no word vectors yet
-        self._search = search if search is not None else self._search_here
-        self.searches_in_process = search is None
+        self.fan_out: FanOut = (
+            fan_out if fan_out is not None else LocalShards(shards, self.first_rows)
+        )
+        self.searches_in_process = fan_out is None
+        self._generations: dict[str, DenseSearcher] = {}
+        self._generations_lock = threading.Lock()
+        self.__dict__["dense"] = self._sharded_dense("")
 
-    def _search_here(self, token_lists: Sequence[Sequence[str]], k: int) -> list[list[Scored]]:
-        return [
-            local_search(s, first, token_lists, k)
-            for s, first in zip(self.shards, self.first_rows, strict=True)
-        ]
+    def _sharded_dense(self, generation: str) -> ShardedDense | None:
+        """The shards' vectors (generation "" their own), searched through the fan-out."""
+        if generation:
+            for shard in self.shards:
+                if generation not in vecgen.names(shard.path):
+                    raise IndexFormatError(
+                        f"{shard.path}: has no vector generation {generation} (the word "
+                        "vectors the model was trained with, refined on its labelled clues); "
+                        "copy them into every shard from the index the model was trained on: "
+                        f"hunchwise index copy-vectors TRAINED_INDEX {self.path} "
+                        f"--generation {generation}"
+                    )
+            shards = [_Generation(s.dense_generation(generation)) for s in self.shards]
+        else:
+            shards = [_Generation(s.dense) for s in self.shards]
+        return ShardedDense.of(
+            shards, self.first_rows, functools.partial(self.fan_out.dense_search, generation)
+        )
+
+    def dense_generation(self, name: str) -> DenseSearcher | None:
+        """Vector generation `name` of every shard, searched as one (see `Index`); refused,
+        saying how to copy it in, when a shard lacks it."""
+        if not name or self.dense is None:
+            return self.dense
+        with self._generations_lock:
+            if name not in self._generations:
+                dense = self._sharded_dense(name)
+                if dense is None:  # not reached: every shard has vectors when self.dense does
+                    raise IndexFormatError(f"{self.path}: the shards have no word vectors")
+                self._generations[name] = dense
+            return self._generations[name]
+
+    @functools.cached_property
+    def meta_columns(self) -> MetaColumns:
+        """The shards' metadata columns typed again over the whole corpus (`metacolumns.concat`)."""
+        return metacolumns.concat([s.meta_columns for s in self.shards])
 
     def _local_row(self, row: int) -> tuple[Index, int]:
         if not 0 <= row < self.n_docs:
@@ -176,14 +219,22 @@ class ShardedView(Index):
         return np.concatenate([s.score_tokens(tokens) for s in self.shards])
 
     def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]:
-        """BM25 scores of some articles by global row, from the shards' own scores."""
-        scores = self.score_tokens(tokens)
-        return {int(r): float(scores[r]) for r in np.asarray(rows).tolist()}
+        """BM25 scores of some articles by global row, each shard scoring its own."""
+        rows = np.asarray(rows, dtype=np.int64)
+        part = np.searchsorted(self._starts, rows, side="right") - 1
+        picked = [rows[part == p] for p in range(len(self.shards))]
+        local = [r - first for r, first in zip(picked, self.first_rows, strict=True)]
+        scores = self.fan_out.score_rows(tokens, local)
+        return {
+            int(r): float(v)
+            for rs, vs in zip(picked, scores, strict=True)
+            for r, v in zip(rs.tolist(), np.asarray(vs).tolist(), strict=True)
+        }
 
     def filter_mask(self, spec: Mapping[str, Any]) -> np.ndarray:
-        """Not yet over shards: each shard types its metadata columns on its own, so one
-        filter could mean different things on two shards."""
-        raise FilterError("metadata filters are not available on a sharded index yet")
+        """Boolean mask of the rows a metadata filter keeps, over the whole corpus: the
+        filter means what it means on the unsharded index (see `metacolumns.concat`)."""
+        return metafilter.compile_filter(spec, self.meta_columns)
 
     def text_of(self, row: int) -> str:
         """The stored text of the article in global `row`."""
@@ -194,13 +245,16 @@ class ShardedView(Index):
         self, token_lists: TokenLists, k: int = 20, *, allowed: RowMask = None
     ) -> list[list[Hit]]:
         """Every shard's top k merged by (score desc, global row asc), per token list."""
-        if allowed is not None:
-            self.filter_mask({})
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
         if not token_lists:
             return []
-        per_shard = self._search(token_lists, k)
+        parts = None
+        if allowed is not None:
+            if allowed.shape != (self.n_docs,):
+                raise ValueError(f"allowed must hold one entry per article ({self.n_docs})")
+            parts = [allowed[a:b] for a, b in zip(self._starts[:-1], self._starts[1:], strict=True)]
+        per_shard = self.fan_out.search(token_lists, k, parts)
         best = [merge_scored([lists[q] for lists in per_shard], k) for q in range(len(token_lists))]
         rows = np.array([r for b in best for _, r in b], dtype=np.int64)
         ids, titles = self.ids.take(rows), self.titles.take(rows)

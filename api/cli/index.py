@@ -1,4 +1,4 @@
-"""Sub-commands `index build|info|add|remove|tune` and `search`."""
+"""Sub-commands `index build|info|add|remove|tune|copy-vectors` and `search`."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ if TYPE_CHECKING:
     from retriever import Index, ReadReport
     from retriever.sharded import ShardedIndex
 
-from . import index_tune
+from . import index_tune, index_vectors
 from .console import check_k, format_table, human_bytes, print_json, show_progress
 from .options import add_filter_option, add_reporting_options
 
@@ -129,6 +129,14 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     index_tune.add_arguments(p)
     p.set_defaults(func=index_tune.cmd_tune)
+
+    p = isub.add_parser(
+        "copy-vectors",
+        help="copy a model's refined word vectors from the index it was trained on into "
+        "every shard of a sharded index, for serving it there",
+    )
+    index_vectors.add_arguments(p)
+    p.set_defaults(func=index_vectors.cmd_copy_vectors)
 
     p = sub.add_parser("search", help="BM25 candidates for a clue")
     p.add_argument("index", type=Path, help="index folder")

@@ -55,7 +55,7 @@ def sharded_dir(demo: dict[str, Path], tmp_path_factory: pytest.TempPathFactory)
 def bm25_model(
     index_dir: Path, demo: dict[str, Path], tmp_path_factory: pytest.TempPathFactory
 ) -> Path:
-    """A model over BM25 candidates (sharded builds have no word vectors yet)."""
+    """A model over BM25 candidates."""
     out = tmp_path_factory.mktemp("bm25model") / "model.json"
     train(load_index(index_dir), [demo["train"]], out, candidates="bm25")
     return out

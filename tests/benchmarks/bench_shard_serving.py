@@ -8,8 +8,12 @@ percentile and mean latency of
 and, to see where the difference goes, the library call `rank_clues` on one clue at a time
 over the unsharded `Index` and over a `ShardedView` searching its shards in this process
 (the view's cost without Ray: merging, and reading rows through the shards).
+`--candidates hybrid` trains the default model instead (BM25 + word vectors, refined on the
+training clues) and copies its vectors into the shards (`index copy-vectors`), so each
+request also sends the clue's vector to every shard for its nearest articles.
 
     python -m tests.benchmarks.bench_shard_serving [--articles 3000] [--shards 3]
+        [--candidates bm25|hybrid]
 """
 
 from __future__ import annotations
@@ -36,22 +40,36 @@ def run(cmd: list[str]) -> None:
     subprocess.run(cmd, cwd=ROOT, check=True)
 
 
-def prepare(work: Path, articles: int, shards: int) -> tuple[Path, Path, Path, list[str]]:
-    """Corpus, unsharded and sharded indexes, a BM25-candidates model (reused when there)."""
-    data, index, sharded = work / "data", work / "index", work / "sharded"
-    model = work / "model.json"
+def prepare(
+    work: Path, articles: int, shards: int, candidates: str
+) -> tuple[Path, Path, Path, list[str]]:
+    """Corpus, unsharded and sharded indexes, a model over `candidates` (reused when there)."""
+    data, index, sharded = work / "data", work / f"index-{candidates}", work / "sharded"
+    model = work / f"model-{candidates}.json"
     cli = [sys.executable, "-m", "api.cli"]
     if not (data / "articles.jsonl").exists():
         gen = [sys.executable, "-m", "corpus_demo.generate", "--articles", str(articles)]
         run([*gen, "--questions", "2000", "--out", str(data), "--no-progress"])
     corpus = str(data / "articles.jsonl")
     if not (index / "manifest.json").exists():
-        run([*cli, "index", "build", corpus, "--out", str(index), "--no-vectors"])
+        no_vectors = ["--no-vectors"] if candidates == "bm25" else []
+        run([*cli, "index", "build", corpus, "--out", str(index), *no_vectors])
     if not (sharded / "manifest.json").exists():
         run([*cli, "index", "build", corpus, "--out", str(sharded), "--shards", str(shards)])
     if not model.exists():
-        train = [*cli, "train", "--index", str(index), "--candidates", "bm25"]
+        train = [
+            *cli,
+            "train",
+            "--index",
+            str(index),
+            "--candidates",
+            candidates.replace("hybrid", "auto"),
+        ]
         run([*train, "--log", str(data / "questions_train.jsonl"), "--out", str(model)])
+    vectors = json.loads(model.read_text(encoding="utf-8")).get("candidates", {}).get("vectors")
+    if vectors:
+        copy = [*cli, "index", "copy-vectors", str(index), str(sharded), "--generation", vectors]
+        run(copy)
     lines = (data / "questions_test.jsonl").read_text(encoding="utf-8").splitlines()
     return index, sharded, model, [json.loads(x)["clue"] for x in lines if x.strip()]
 
@@ -95,11 +113,12 @@ def main() -> None:
     ap.add_argument("--articles", type=int, default=3000)
     ap.add_argument("--shards", type=int, default=3)
     ap.add_argument("--clues", type=int, default=300, help="requests measured per server")
+    ap.add_argument("--candidates", choices=("bm25", "hybrid"), default="bm25")
     ap.add_argument("--work", type=Path, default=ROOT / "runs" / "bench-shard-serving")
     args = ap.parse_args()
     work = args.work / f"{args.articles}"
     work.mkdir(parents=True, exist_ok=True)
-    index, sharded, model, clues = prepare(work, args.articles, args.shards)
+    index, sharded, model, clues = prepare(work, args.articles, args.shards, args.candidates)
     clues = (clues * (1 + args.clues // max(len(clues), 1)))[: args.clues]
 
     from retriever import load_index
@@ -117,7 +136,7 @@ def main() -> None:
             on_ray.url, clues, 20
         )
     base = rows["HTTP, hunchwise serve"]["p50"]
-    print(f"\n{args.articles} articles, {len(clues)} clues, k = 20, one client\n")
+    print(f"\n{args.articles} articles, {args.candidates} model, {len(clues)} clues, k = 20\n")
     print(f"| {'path':45} | p50 ms | p90 ms | mean ms | p50 / plain serve |")
     print(f"| {'-' * 45} | ---: | ---: | ---: | ---: |")
     for name, r in rows.items():

@@ -55,3 +55,24 @@ def test_one_shard_cannot_be_updated_alone(
     out = build_sharded(corpus, tmp_path / "sharded", shards=2)
     with pytest.raises(IndexFormatError, match="one shard of"):
         update_index(out / "shard-000", remove=["m1"])
+
+
+def test_copy_vectors_refuses_plainly_what_it_cannot_copy(
+    tmp_path: Path, small_records: list[dict[str, Any]]
+) -> None:
+    """A generation the source lacks, a sharded source: one line naming the folder."""
+    from retriever.shards import build_sharded
+
+    corpus = write_jsonl(tmp_path / "c.jsonl", small_records)
+    single = build_index(corpus, tmp_path / "single", vectors=False)
+    out = build_sharded(corpus, tmp_path / "sharded", shards=2, vectors=False)
+    missing = run("index", "copy-vectors", str(single.path), str(out), "--generation", "0" * 16)
+    assert missing.returncode != 0 and "Traceback" not in missing.stderr
+    assert f"{single.path}: has no vector generation '{'0' * 16}'" in missing.stderr
+    assert "(it has: none)" in missing.stderr
+    sharded_source = run("index", "copy-vectors", str(out), str(out))
+    assert sharded_source.returncode != 0 and "Traceback" not in sharded_source.stderr
+    assert f"{out} is a sharded index" in sharded_source.stderr
+    nothing = run("index", "copy-vectors", str(single.path), str(out), "--json")
+    assert nothing.returncode == 0, nothing.stderr
+    assert json.loads(nothing.stdout)["generations"] == []
