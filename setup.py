@@ -23,7 +23,7 @@ setup(
             name,
             [source],
             include_dirs=["include"],
-            depends=[header, "retriever/_prune.h"],
+            depends=[header, *(f"retriever/_{h}.h" for h in ("topk", "exhaustive", "window", "daat"))],
             extra_compile_args=flags,
             optional=True,
         )

@@ -221,35 +221,33 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
                           &o_table, &o_spans, &o_arena, &o_names, &o_indptr, &o_terms,
                           &o_clue_terms))
         return NULL;
-    Py_buffer out = {0}, sv = {0}, rk = {0}, rw = {0}, tb = {0}, sp = {0}, ar = {0}, ip = {0};
-    Py_buffer tm = {0};
+    Py_buffer views[9] = {{0}};
+    Py_buffer *const out = &views[0], *const sv = &views[1], *const rk = &views[2];
+    Py_buffer *const rw = &views[3], *const tb = &views[4], *const sp = &views[5];
+    Py_buffer *const ar = &views[6], *const ip = &views[7], *const tm = &views[8];
     int64_t *names = NULL, *clue = NULL;
     double *rarities = NULL;
     PyObject *result = NULL;
-    if (hw_buffer(o_out, &out, "float64", 1, "out") < 0 ||
-        hw_buffer(o_scores, &sv, "float64", 0, "scores") < 0 ||
-        hw_buffer(o_ranks, &rk, "int64", 0, "ranks") < 0 ||
-        hw_buffer(o_rows, &rw, "int64", 0, "rows") < 0 ||
-        hw_buffer(o_table, &tb, "float64", 0, "table") < 0 ||
-        hw_buffer(o_spans, &sp, "int64", 0, "spans") < 0 ||
-        hw_buffer(o_arena, &ar, "int32", 0, "arena") < 0 ||
-        hw_buffer(o_indptr, &ip, "int64", 0, "indptr") < 0 ||
-        hw_buffer(o_terms, &tm, "int32", 0, "terms") < 0)
+    PyObject *const objs[9] = {o_out, o_scores, o_ranks, o_rows, o_table, o_spans, o_arena,
+                               o_indptr, o_terms};
+    if (hw_buffers(objs, views, 9,
+                   "+out:float64 scores:float64 ranks:int64 rows:int64 table:float64 "
+                   "spans:int64 arena:int32 indptr:int64 terms:int32") < 0)
         goto done;
-    const Py_ssize_t n = sv.len / 8, n_docs = ip.len / 8 - 1;
-    if (n < 1 || rk.len / 8 != n || rw.len / 8 != n || out.len / 8 != n * N_COLUMNS) {
+    const Py_ssize_t n = sv->len / 8, n_docs = ip->len / 8 - 1;
+    if (n < 1 || rk->len / 8 != n || rw->len / 8 != n || out->len / 8 != n * N_COLUMNS) {
         PyErr_SetString(PyExc_ValueError,
                         "candidates: need n >= 1 scores, ranks and rows, and n x COLUMNS out");
         goto done;
     }
-    if (n_docs < 0 || tb.len / 8 != n_docs * N_ROW_VALUES || sp.len / 8 != n_docs * N_SPANS) {
+    if (n_docs < 0 || tb->len / 8 != n_docs * N_ROW_VALUES || sp->len / 8 != n_docs * N_SPANS) {
         PyErr_SetString(PyExc_ValueError, "candidates: row tables do not match the term lists");
         goto done;
     }
-    const double *s = sv.buf, *table = tb.buf;
-    const int64_t *rank = rk.buf, *row = rw.buf, *spans = sp.buf, *indptr = ip.buf;
-    const int32_t *arena = ar.buf, *terms = tm.buf;
-    const int64_t n_arena = ar.len / 4, n_terms = tm.len / 4;
+    const double *s = sv->buf, *table = tb->buf;
+    const int64_t *rank = rk->buf, *row = rw->buf, *spans = sp->buf, *indptr = ip->buf;
+    const int32_t *arena = ar->buf, *terms = tm->buf;
+    const int64_t n_arena = ar->len / 4, n_terms = tm->len / 4;
     /* The candidates' rows are scattered over large tables that the query has just pushed
      * out of the CPU caches: ask for all of them at once, so the misses overlap instead of
      * queueing one after another in the loops below. */
@@ -293,7 +291,7 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
     if (m < 0) goto done;
     /* matched_fraction divides by the clue's known terms, as given (pairs are distinct) */
     const Py_ssize_t known = PyObject_Length(o_clue_terms);
-    double *f = out.buf;
+    double *f = out->buf;
     within_clue(s, rank, n, words, f);
     double best_log_inlinks = -HUGE_VAL;
     for (Py_ssize_t i = 0; i < n; i++) {
@@ -336,9 +334,7 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
 done:;
     PyMem_Free(names);
     PyMem_Free(clue);
-    Py_buffer *all[] = {&out, &sv, &rk, &rw, &tb, &sp, &ar, &ip, &tm};
-    for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
-        if (all[i]->obj) PyBuffer_Release(all[i]);
+    hw_release(views, 9);
     return result;
 }
 
