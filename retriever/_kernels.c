@@ -69,8 +69,9 @@ PyDoc_STRVAR(search_doc,
 "    often each occurs in the query).\n"
 "out_rows (int64) and out_scores (float64): n_queries * k slots, query q from q * k;\n"
 "    out_counts (int64): how many of query q's slots were filled. out_work (int64, one per\n"
-"    query): postings read, for tests and benchmarks. prune=1: skip postings that cannot\n"
-"    change the top k where that pays (same result). Returns None.");
+"    query): postings read, for tests and benchmarks. prune=1: the windowed path\n"
+"    (_daat.h), which skips postings that cannot change the top k (same result).\n"
+"    Returns None.");
 
 typedef struct {
     Py_buffer indptr_view, docs_view, weight_view, tmax_view, bmax_view;
