@@ -19,7 +19,7 @@
 #include <string.h>
 
 /* Get a C-contiguous buffer of `obj` (writable if asked) whose items are `type`: "float64",
- * "float32", "float32|float64", "int64" or "int32". On a mismatch, raise TypeError naming
+ * "float32", "float32|float64", "int64", "int32" or "bool". On a mismatch, raise TypeError naming
  * the argument (`name`), release the buffer and return -1; 0 when it fits. */
 static int hw_buffer(PyObject *obj, Py_buffer *view, const char *type, int writable,
                      const char *name) {
@@ -39,6 +39,7 @@ static int hw_buffer(PyObject *obj, Py_buffer *view, const char *type, int writa
     else if (strcmp(type, "float32|float64") == 0) ok = f32 || f64;
     else if (strcmp(type, "int64") == 0) ok = is_int && size == 8;
     else if (strcmp(type, "int32") == 0) ok = is_int && size == 4;
+    else if (strcmp(type, "bool") == 0) ok = strcmp(got, "?") == 0 && size == 1;
     if (!ok) {
         PyErr_Format(PyExc_TypeError, "%s: expected a %s array, got format '%s'", name, type, got);
         PyBuffer_Release(view);

@@ -53,7 +53,7 @@
 
 PyDoc_STRVAR(search_doc,
 "search(buf, touched, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts,\n"
-"       prune=0, out_work=None)\n"
+"       prune=0, out_work=None, allowed=None)\n"
 "\n"
 "Score a batch of queries and write each one's k best rows and scores, best first, ties\n"
 "by row; only articles with a non-zero score are returned.\n"
@@ -71,6 +71,7 @@ PyDoc_STRVAR(search_doc,
 "    out_counts (int64): how many of query q's slots were filled. out_work (int64, one per\n"
 "    query): postings read, for tests and benchmarks. prune=1: the windowed path\n"
 "    (_daat.h), which skips postings that cannot change the top k (same result).\n"
+"    allowed (bool, one per article; with prune=1 only): rank only the rows it keeps.\n"
 "    Returns None.");
 
 typedef struct {
@@ -79,20 +80,20 @@ typedef struct {
 
 static PyObject *search(PyObject *self, PyObject *args) {
     PyObject *o_buf, *o_touched, *o_fields, *o_qptr, *o_tids, *o_qtf, *o_rows, *o_scores;
-    PyObject *o_counts, *o_work = Py_None;
+    PyObject *o_counts, *o_work = Py_None, *o_allowed = Py_None;
     Py_ssize_t k;
     int prune = 0;
     (void)self;
-    if (!PyArg_ParseTuple(args, "OOnO!OOOOOO|pO", &o_buf, &o_touched, &k, &PyTuple_Type,
+    if (!PyArg_ParseTuple(args, "OOnO!OOOOOO|pOO", &o_buf, &o_touched, &k, &PyTuple_Type,
                           &o_fields, &o_qptr, &o_tids, &o_qtf, &o_rows, &o_scores, &o_counts,
-                          &prune, &o_work))
+                          &prune, &o_work, &o_allowed))
         return NULL;
     if (k < 1) return PyErr_Format(PyExc_ValueError, "k must be at least 1, got %zd", k);
     const Py_ssize_t n_fields = PyTuple_GET_SIZE(o_fields);
     Field *fields = calloc(n_fields ? n_fields : 1, sizeof(Field));
     FieldViews *views = calloc(n_fields ? n_fields : 1, sizeof(FieldViews));
     Py_buffer buf = {0}, qptr = {0}, tids = {0}, qtf = {0}, rows = {0}, scores = {0};
-    Py_buffer counts = {0}, scratch = {0}, workv = {0};
+    Py_buffer counts = {0}, scratch = {0}, workv = {0}, allowv = {0};
     const void **bmaxes = calloc(n_fields ? n_fields : 1, sizeof(void *));
     const void **tmaxes = calloc(n_fields ? n_fields : 1, sizeof(void *));
     DaatScratch psc = {0};
@@ -154,6 +155,14 @@ static PyObject *search(PyObject *self, PyObject *args) {
         }
     }
     if (o_work != Py_None && hw_buffer(o_work, &workv, "int64", 1, "out_work") < 0) goto done;
+    if (o_allowed != Py_None) { /* only the windowed path takes a row mask */
+        if (hw_buffer(o_allowed, &allowv, "bool", 0, "allowed") < 0) goto done;
+        if (!prune || allowv.len != buf.len / buf.itemsize) {
+            PyErr_SetString(PyExc_ValueError,
+                            "allowed needs prune=1, every field's bounds and one flag per article");
+            goto done;
+        }
+    }
     if (hw_buffer(o_qptr, &qptr, "int64", 0, "qptr") < 0) goto done;
     if (hw_buffer(o_tids, &tids, "int64", 0, "tids") < 0) goto done;
     if (hw_buffer(o_qtf, &qtf, "float64", 0, "qtf") < 0) goto done;
@@ -220,6 +229,7 @@ static PyObject *search(PyObject *self, PyObject *args) {
                                     ? PyEval_SaveThread()
                                     : NULL;
         int64_t *out_w = workv.obj ? workv.buf : NULL;
+        const uint8_t *mask = allowv.obj ? allowv.buf : NULL;
         int oom = 0;
         for (Py_ssize_t q = 0; q < n_queries && !damaged && !oom; q++) {
             heap.size = 0;
@@ -228,12 +238,16 @@ static PyObject *search(PyObject *self, PyObject *args) {
             if (prune) {
                 got = buf.itemsize == 4
                     ? daat_float(n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf, qp[q],
-                                 qp[q + 1], NULL, &heap, &psc, out_r + q * k, out_s + q * k,
+                                 qp[q + 1], mask, &heap, &psc, out_r + q * k, out_s + q * k,
                                  &used)
                     : daat_double(n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf, qp[q],
-                                  qp[q + 1], NULL, &heap, &psc, out_r + q * k, out_s + q * k,
+                                  qp[q + 1], mask, &heap, &psc, out_r + q * k, out_s + q * k,
                                   &used);
                 oom = got == -3;
+                if (mask && got == -2) { /* the exhaustive kernel takes no mask */
+                    damaged = 1;
+                    break;
+                }
             }
             if (got >= 0) {
                 out_n[q] = got;
@@ -283,7 +297,8 @@ done:
     }
     free(views);
     free(fields);
-    Py_buffer *all[] = {&buf, &scratch, &qptr, &tids, &qtf, &rows, &scores, &counts, &workv};
+    Py_buffer *all[] = {&buf, &scratch, &qptr, &tids, &qtf, &rows, &scores, &counts, &workv,
+                          &allowv};
     for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
         if (all[i]->obj) PyBuffer_Release(all[i]);
     return result;

@@ -124,13 +124,18 @@ def top_k_many(
     if k < 1:
         raise ValueError(f"k must be at least 1, got {k}")
     n = p.n_queries
-    # The compiled kernel takes no row mask: a filtered query runs the numpy twin, which
-    # gives the same scores bit for bit and drops the masked rows before its top-k cut.
-    if use_kernel and _kernels is not None and allowed is None:
+    # The kernel takes a row mask on its windowed path only (float32 weights with bounds,
+    # prune not False);
+    # other filtered queries run the numpy twin, which gives the same scores bit for bit and
+    # drops the masked rows before its top-k cut.
+    masked_ok = allowed is None or (prune is not False and prunable(p, None))
+    if use_kernel and _kernels is not None and masked_ok:
         rows = np.empty(n * k, dtype=np.int64)
         scores = np.empty(n * k, dtype=np.float64)
         counts = np.empty(n, dtype=np.int64)
-        use_bounds = prune is not False and prunable(p, buf.size if prune is None else None)
+        use_bounds = allowed is not None or (
+            prune is not False and prunable(p, buf.size if prune is None else None)
+        )
         fields = tuple(
             (fld.indptr, fld.docs, fld.weight, float(sc))
             + ((fld.bounds.term_max, fld.bounds.block_max) if use_bounds else ())  # type: ignore[attr-defined]
@@ -139,7 +144,19 @@ def top_k_many(
         if touched is None:
             touched = np.empty(buf.size, dtype=np.int32)
         _kernels.search(
-            buf, touched, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts, use_bounds, work
+            buf,
+            touched,
+            k,
+            fields,
+            p.qptr,
+            p.tids,
+            p.qtf,
+            rows,
+            scores,
+            counts,
+            use_bounds,
+            work,
+            None if allowed is None else np.ascontiguousarray(allowed, dtype=bool),
         )
         return [
             (rows[q * k : q * k + c], scores[q * k : q * k + c])

@@ -30,7 +30,15 @@ def random_field(rng: np.random.Generator, n_docs: int, n_terms: int, dtype: typ
     return ip, np.concatenate(docs).astype(np.int32), w, b.term_max, b.block_max
 
 
-def search(n_docs: int, fields: list[tuple], scales: list[float], queries, k: int, prune: bool):
+def search(
+    n_docs: int,
+    fields: list[tuple],
+    scales: list[float],
+    queries,
+    k: int,
+    prune: bool,
+    allowed: np.ndarray | None = None,
+):
     from retriever import _kernels  # type: ignore[attr-defined]
 
     dtype = fields[0][2].dtype
@@ -44,7 +52,19 @@ def search(n_docs: int, fields: list[tuple], scales: list[float], queries, k: in
     )
     touched = np.empty(n_docs, np.int32)
     _kernels.search(
-        buf, touched, k, specs, plan.qptr, plan.tids, plan.qtf, rows, scores, counts, prune, work
+        buf,
+        touched,
+        k,
+        specs,
+        plan.qptr,
+        plan.tids,
+        plan.qtf,
+        rows,
+        scores,
+        counts,
+        prune,
+        work,
+        allowed,
     )
     assert not buf.any(), "the kernel must leave the buffer zeroed"
     out = [
@@ -98,3 +118,29 @@ def test_windowed_skips_postings_when_a_rare_term_decides() -> None:
     exhaustive, total = search(n_docs, [field], [1.0], query, 10, False)
     assert windowed == exhaustive
     assert read < total / 2  # most windows skipped
+
+
+@needs_kernel
+@settings(max_examples=40, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_docs=st.sampled_from([50, 9000, 30_000]),
+    keep=st.sampled_from([0.0, 0.01, 0.5, 1.0]),
+    k=st.sampled_from([1, 10, 400]),
+)
+def test_windowed_with_a_row_mask_ranks_only_the_kept_rows(
+    seed: int, n_docs: int, keep: float, k: int
+) -> None:
+    # Reference: every scored row from the exhaustive kernel (k = all rows), best first,
+    # ties by row; the kept ones among them, cut to k.
+    rng = np.random.default_rng(seed)
+    fields = [random_field(rng, n_docs, 14, np.float32)]
+    allowed = rng.random(n_docs) < keep
+    queries = [[int(t) for t in rng.integers(0, 14, rng.integers(0, 20))] for _ in range(5)]
+    masked, _ = search(n_docs, fields, [1.0], queries, k, True, allowed)
+    everything, _ = search(n_docs, fields, [1.0], queries, n_docs, False)
+    expected = []
+    for rows, scores in everything:
+        kept = [(r, s) for r, s in zip(rows, scores, strict=True) if allowed[r]][:k]
+        expected.append(([r for r, _ in kept], [s for _, s in kept]))
+    assert masked == expected
