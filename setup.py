@@ -16,6 +16,8 @@ from setuptools import Extension, setup
 # No fused multiply-add: the compiled and numpy paths must round each product the same way.
 flags = [] if sys.platform == "win32" else ["-O3", "-ffp-contract=off"]
 header = "include/hunchwise.h"
+kernel_headers = [f"retriever/_{h}.h" for h in ("topk", "exhaustive", "window", "daat", "overlap")]
+kernel_headers.append("reranker/features/_clueterms.h")
 
 setup(
     ext_modules=[
@@ -23,7 +25,7 @@ setup(
             name,
             [source],
             include_dirs=["include"],
-            depends=[header, "retriever/_prune.h"],
+            depends=[header, *kernel_headers],
             extra_compile_args=flags,
             optional=True,
         )

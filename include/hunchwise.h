@@ -1,5 +1,5 @@
 /* What both compiled modules need (retriever/_kernels.c, reranker/features/_fused.c):
- * reading an array through the buffer protocol with its item type checked, and the term
+ * reading arrays through the buffer protocol with their item types checked, and the term
  * overlap of one article (binary search over its sorted term ids).
  *
  * Header-only: each module is one translation unit, and these are small static functions
@@ -15,10 +15,11 @@
 #endif
 #include <Python.h>
 #include <stdint.h>
+#include <stdio.h>
 #include <string.h>
 
 /* Get a C-contiguous buffer of `obj` (writable if asked) whose items are `type`: "float64",
- * "float32", "float32|float64", "int64" or "int32". On a mismatch, raise TypeError naming
+ * "float32", "float32|float64", "int64", "int32" or "bool". On a mismatch, raise TypeError naming
  * the argument (`name`), release the buffer and return -1; 0 when it fits. */
 static int hw_buffer(PyObject *obj, Py_buffer *view, const char *type, int writable,
                      const char *name) {
@@ -38,12 +39,45 @@ static int hw_buffer(PyObject *obj, Py_buffer *view, const char *type, int writa
     else if (strcmp(type, "float32|float64") == 0) ok = f32 || f64;
     else if (strcmp(type, "int64") == 0) ok = is_int && size == 8;
     else if (strcmp(type, "int32") == 0) ok = is_int && size == 4;
+    else if (strcmp(type, "bool") == 0) ok = strcmp(got, "?") == 0 && size == 1;
     if (!ok) {
         PyErr_Format(PyExc_TypeError, "%s: expected a %s array, got format '%s'", name, type, got);
         PyBuffer_Release(view);
         return -1;
     }
     return 0;
+}
+
+/* Get the buffers of objs[0..n) into views[0..n), as hw_buffer does, from a spec of n
+ * space-separated "name:type" words ("+name:type" for a writable one), e.g.
+ * "indptr:int64 +out:float64". On a mismatch every buffer already got is released and -1
+ * returned (views must start zeroed). */
+static int hw_buffers(PyObject *const *objs, Py_buffer *views, Py_ssize_t n, const char *spec) {
+    for (Py_ssize_t i = 0; i < n; i++) {
+        char name[32], type[32];
+        int writable = 0, used = 0;
+        while (*spec == ' ') spec++;
+        if (*spec == '+') {
+            writable = 1;
+            spec++;
+        }
+        if (sscanf(spec, "%31[^:]:%31s%n", name, type, &used) != 2) {
+            PyErr_SetString(PyExc_SystemError, "hw_buffers: a malformed spec");
+            used = -1;
+        }
+        if (used < 0 || hw_buffer(objs[i], &views[i], type, writable, name) < 0) {
+            for (Py_ssize_t j = 0; j < i; j++) PyBuffer_Release(&views[j]);
+            return -1;
+        }
+        spec += used;
+    }
+    return 0;
+}
+
+/* Release the views of views[0..n) that are held. */
+static inline void hw_release(Py_buffer *views, Py_ssize_t n) {
+    for (Py_ssize_t i = 0; i < n; i++)
+        if (views[i].obj) PyBuffer_Release(&views[i]);
 }
 
 /* How many of the clue's terms tids[0..m) (sorted, distinct) the article's term list

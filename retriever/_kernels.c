@@ -21,6 +21,7 @@
 #include <Python.h>
 #include <stdint.h>
 #include <stdlib.h>
+#include <math.h>
 #include <string.h>
 
 #include "hunchwise.h" /* hw_buffer, hw_overlap: shared with reranker/features/_fused.c */
@@ -31,194 +32,28 @@
 #define GIL_RELEASE_POSTINGS 2000000
 #define GIL_RELEASE_QUERIES 16
 
-typedef struct { /* one field's term-major postings */
-    const int64_t *indptr; /* term t's postings are [indptr[t], indptr[t + 1]) */
-    const int32_t *docs;   /* their rows */
-    const void *weight;    /* their BM25 weights, float32 or float64 as the buffer */
-    double scale;          /* the field's weight in the sum */
-    Py_ssize_t n_terms, n_post;
-} Field;
+#include "_topk.h"       /* Field, Heap: the inputs and the k best */
+#include "_exhaustive.h" /* query_float, query_double: every posting, one buffer */
 
-/* A min-heap of the k best (score, row) pairs seen so far; the root is the worst of them.
- * "Better" means a higher score, or the same score and a lower row (ties go to the lower
- * row, as the numpy path's stable order does). */
-typedef struct {
-    double *score;
-    int64_t *row;
-    Py_ssize_t size, cap;
-} Heap;
-
-static int worse(double sa, int64_t ra, double sb, int64_t rb) {
-    return sa < sb || (sa == sb && ra > rb);
-}
-
-static void sift_down(Heap *h, Py_ssize_t i) {
-    for (;;) {
-        Py_ssize_t l = 2 * i + 1, r = l + 1, m = i;
-        if (l < h->size && worse(h->score[l], h->row[l], h->score[m], h->row[m])) m = l;
-        if (r < h->size && worse(h->score[r], h->row[r], h->score[m], h->row[m])) m = r;
-        if (m == i) return;
-        double s = h->score[i]; h->score[i] = h->score[m]; h->score[m] = s;
-        int64_t w = h->row[i]; h->row[i] = h->row[m]; h->row[m] = w;
-        i = m;
-    }
-}
-
-static void sift_up(Heap *h, Py_ssize_t i) {
-    while (i > 0) {
-        Py_ssize_t p = (i - 1) / 2;
-        if (!worse(h->score[i], h->row[i], h->score[p], h->row[p])) return;
-        double s = h->score[i]; h->score[i] = h->score[p]; h->score[p] = s;
-        int64_t w = h->row[i]; h->row[i] = h->row[p]; h->row[p] = w;
-        i = p;
-    }
-}
-
-static void offer(Heap *h, double s, int64_t row) {
-    if (h->size < h->cap) {
-        h->score[h->size] = s;
-        h->row[h->size] = row;
-        sift_up(h, h->size++);
-    } else if (h->cap > 0 && worse(h->score[0], h->row[0], s, row)) {
-        h->score[0] = s;
-        h->row[0] = row;
-        sift_down(h, 0);
-    }
-}
-
-/* Empty the heap into out_rows/out_scores, best first; returns how many. */
-static Py_ssize_t drain(Heap *h, int64_t *out_rows, double *out_scores) {
-    Py_ssize_t n = h->size;
-    while (h->size > 0) {
-        Py_ssize_t last = --h->size;
-        out_rows[last] = h->row[0];
-        out_scores[last] = h->score[0];
-        h->score[0] = h->score[last];
-        h->row[0] = h->row[last];
-        sift_down(h, 0);
-    }
-    return n;
-}
-
-/* Whether any of 64 scores beats `floor`: a loop without branches, which compilers turn
- * into vector compares (kept out of line: inlined, GCC unrolls it into scalar code). */
-#if defined(__GNUC__)
-#define NOINLINE __attribute__((noinline))
-#else
-#define NOINLINE
-#endif
-#define ANY_ABOVE(T)                                                                         \
-    static NOINLINE int any_above_##T(const T *buf, T floor) {                                        \
-        int any = 0;                                                                         \
-        for (int j = 0; j < 64; j++) any |= buf[j] > floor;                                  \
-        return any;                                                                          \
-    }
-ANY_ABOVE(float)
-ANY_ABOVE(double)
-
-/* One query: its distinct terms tids[t0:t1] (each counted qtf[t] times), in every field.
- * `touched` has room for the query's postings; it is used only when they are few next to
- * the corpus. Returns how many (row, score) pairs were written, or -1 for a posting that
- * names a row outside the corpus (a damaged index; the buffer is cleared). */
-#define SCORE_QUERY(T)                                                                       \
-    static Py_ssize_t query_##T(                                                             \
-        T *buf, Py_ssize_t n_docs, const Field *fields, Py_ssize_t n_fields,                 \
-        const int64_t *tids, const double *qtf, Py_ssize_t t0, Py_ssize_t t1,                \
-        int32_t *touched, Heap *heap, int64_t *out_rows, double *out_scores) {               \
-        Py_ssize_t postings = 0, n_touched = 0;                                              \
-        for (Py_ssize_t f = 0; f < n_fields; f++)                                            \
-            for (Py_ssize_t t = t0; t < t1; t++)                                             \
-                postings += fields[f].indptr[tids[t] + 1] - fields[f].indptr[tids[t]];       \
-        const int sparse = postings * 2 < n_docs;                                            \
-        for (Py_ssize_t f = 0; f < n_fields; f++) {                                          \
-            const int32_t *docs = fields[f].docs;                                            \
-            const T *w = (const T *)fields[f].weight;                                        \
-            for (Py_ssize_t t = t0; t < t1; t++) {                                           \
-                const int64_t lo = fields[f].indptr[tids[t]], hi = fields[f].indptr[tids[t] + 1]; \
-                const T x = (T)(qtf[t] * fields[f].scale);                                   \
-                int bad = 0;                                                                 \
-                if (sparse) {                                                                \
-                    for (int64_t p = lo; p < hi; p++) {                                      \
-                        const int32_t d = docs[p];                                           \
-                        bad |= (uint32_t)d >= (uint32_t)n_docs;                              \
-                        if (bad) break;                                                      \
-                        touched[n_touched] = d; /* branch-free: whether d is new is random */ \
-                        n_touched += buf[d] == 0;                                            \
-                        buf[d] += w[p] * x;                                                  \
-                    }                                                                        \
-                } else {                                                                     \
-                    for (int64_t p = lo; p < hi; p++) {                                      \
-                        const int32_t d = docs[p];                                           \
-                        bad |= (uint32_t)d >= (uint32_t)n_docs;                              \
-                        if (bad) break;                                                      \
-                        buf[d] += w[p] * x;                                                  \
-                    }                                                                        \
-                }                                                                            \
-                if (bad) {                                                                   \
-                    memset(buf, 0, (size_t)n_docs * sizeof(T));                              \
-                    return -1;                                                               \
-                }                                                                            \
-            }                                                                                \
-        }                                                                                    \
-        /* Read each touched article once and clear it; a row listed twice (its sum went     \
-         * back to exactly zero and up again) reads zero the second time and is skipped,     \
-         * like every article whose score is zero. */                                        \
-        if (sparse) {                                                                        \
-            for (Py_ssize_t i = 0; i < n_touched; i++) {                                     \
-                const int32_t d = touched[i];                                                \
-                const double s = (double)buf[d];                                             \
-                buf[d] = 0;                                                                  \
-                if (s != 0 && (heap->size < heap->cap ||                                     \
-                               worse(heap->score[0], heap->row[0], s, d)))                   \
-                    offer(heap, s, d);                                                       \
-            }                                                                                \
-        } else {                                                                             \
-            /* Rows come in increasing order, so a score equal to the worst kept one loses   \
-             * its tie: only a strictly higher score can enter a full heap. */               \
-            Py_ssize_t d = 0;                                                                \
-            for (; d < n_docs && !(heap->size == heap->cap && heap->score[0] > 0); d++) {    \
-                const double s = (double)buf[d];                                             \
-                if (s != 0 && (heap->size < heap->cap || s > heap->score[0]))                \
-                    offer(heap, s, d);                                                       \
-            }                                                                                \
-            /* Once the worst kept score is positive, blocks of articles are tested at once  \
-             * (a loop the compiler turns into vector compares) and only a block holding a   \
-             * better score is looked at one by one. */                                      \
-            T floor = heap->size ? (T)heap->score[0] : 0;                                    \
-            for (; d < n_docs && d % 64; d++) {                                              \
-                if (buf[d] > floor) {                                                        \
-                    offer(heap, (double)buf[d], d);                                          \
-                    floor = (T)heap->score[0];                                               \
-                }                                                                            \
-            }                                                                                \
-            for (; d + 64 <= n_docs; d += 64) {                                              \
-                if (!any_above_##T(buf + d, floor)) continue;                                \
-                for (int j = 0; j < 64; j++) {                                               \
-                    if (buf[d + j] > floor) {                                                \
-                        offer(heap, (double)buf[d + j], d + j);                              \
-                        floor = (T)heap->score[0];                                           \
-                    }                                                                        \
-                }                                                                            \
-            }                                                                                \
-            for (; d < n_docs; d++) {                                                        \
-                if (buf[d] > floor) {                                                        \
-                    offer(heap, (double)buf[d], d);                                          \
-                    floor = (T)heap->score[0];                                               \
-                }                                                                            \
-            }                                                                                \
-            memset(buf, 0, (size_t)n_docs * sizeof(T));                                      \
-        }                                                                                    \
-        return drain(heap, out_rows, out_scores);                                            \
-    }
-
-SCORE_QUERY(float)
-SCORE_QUERY(double)
-
-#include "_prune.h" /* prune_float, prune_double: exact top-k that skips postings */
+#include "_window.h"
+#define DT(name) name##_float
+#define T float
+#define EPS 5.9604644775390625e-08
+#include "_daat.h" /* daat_float: exact top-k over windows of rows, skipping postings */
+#undef DT
+#undef T
+#undef EPS
+#define DT(name) name##_double
+#define T double
+#define EPS 1.1102230246251565e-16
+#include "_daat.h"
+#undef DT
+#undef T
+#undef EPS
 
 PyDoc_STRVAR(search_doc,
 "search(buf, touched, k, fields, qptr, tids, qtf, out_rows, out_scores, out_counts,\n"
-"       prune=0, out_work=None)\n"
+"       prune=0, out_work=None, allowed=None)\n"
 "\n"
 "Score a batch of queries and write each one's k best rows and scores, best first, ties\n"
 "by row; only articles with a non-zero score are returned.\n"
@@ -234,8 +69,10 @@ PyDoc_STRVAR(search_doc,
 "    often each occurs in the query).\n"
 "out_rows (int64) and out_scores (float64): n_queries * k slots, query q from q * k;\n"
 "    out_counts (int64): how many of query q's slots were filled. out_work (int64, one per\n"
-"    query): postings read, for tests and benchmarks. prune=1: skip postings that cannot\n"
-"    change the top k where that pays (same result). Returns None.");
+"    query): postings read, for tests and benchmarks. prune=1: the windowed path\n"
+"    (_daat.h), which skips postings that cannot change the top k (same result).\n"
+"    allowed (bool, one per article; with prune=1 only): rank only the rows it keeps.\n"
+"    Returns None.");
 
 typedef struct {
     Py_buffer indptr_view, docs_view, weight_view, tmax_view, bmax_view;
@@ -243,23 +80,23 @@ typedef struct {
 
 static PyObject *search(PyObject *self, PyObject *args) {
     PyObject *o_buf, *o_touched, *o_fields, *o_qptr, *o_tids, *o_qtf, *o_rows, *o_scores;
-    PyObject *o_counts, *o_work = Py_None;
+    PyObject *o_counts, *o_work = Py_None, *o_allowed = Py_None;
     Py_ssize_t k;
     int prune = 0;
     (void)self;
-    if (!PyArg_ParseTuple(args, "OOnO!OOOOOO|pO", &o_buf, &o_touched, &k, &PyTuple_Type,
+    if (!PyArg_ParseTuple(args, "OOnO!OOOOOO|pOO", &o_buf, &o_touched, &k, &PyTuple_Type,
                           &o_fields, &o_qptr, &o_tids, &o_qtf, &o_rows, &o_scores, &o_counts,
-                          &prune, &o_work))
+                          &prune, &o_work, &o_allowed))
         return NULL;
     if (k < 1) return PyErr_Format(PyExc_ValueError, "k must be at least 1, got %zd", k);
     const Py_ssize_t n_fields = PyTuple_GET_SIZE(o_fields);
     Field *fields = calloc(n_fields ? n_fields : 1, sizeof(Field));
     FieldViews *views = calloc(n_fields ? n_fields : 1, sizeof(FieldViews));
     Py_buffer buf = {0}, qptr = {0}, tids = {0}, qtf = {0}, rows = {0}, scores = {0};
-    Py_buffer counts = {0}, scratch = {0}, workv = {0};
+    Py_buffer counts = {0}, scratch = {0}, workv = {0}, allowv = {0};
     const void **bmaxes = calloc(n_fields ? n_fields : 1, sizeof(void *));
     const void **tmaxes = calloc(n_fields ? n_fields : 1, sizeof(void *));
-    PruneScratch psc = {0};
+    DaatScratch psc = {0};
     Py_ssize_t got_fields = 0;
     PyObject *result = NULL;
     Heap heap = {0};
@@ -318,6 +155,14 @@ static PyObject *search(PyObject *self, PyObject *args) {
         }
     }
     if (o_work != Py_None && hw_buffer(o_work, &workv, "int64", 1, "out_work") < 0) goto done;
+    if (o_allowed != Py_None) { /* only the windowed path takes a row mask */
+        if (hw_buffer(o_allowed, &allowv, "bool", 0, "allowed") < 0) goto done;
+        if (!prune || allowv.len != buf.len / buf.itemsize) {
+            PyErr_SetString(PyExc_ValueError,
+                            "allowed needs prune=1, every field's bounds and one flag per article");
+            goto done;
+        }
+    }
     if (hw_buffer(o_qptr, &qptr, "int64", 0, "qptr") < 0) goto done;
     if (hw_buffer(o_tids, &tids, "int64", 0, "tids") < 0) goto done;
     if (hw_buffer(o_qtf, &qtf, "float64", 0, "qtf") < 0) goto done;
@@ -384,6 +229,7 @@ static PyObject *search(PyObject *self, PyObject *args) {
                                     ? PyEval_SaveThread()
                                     : NULL;
         int64_t *out_w = workv.obj ? workv.buf : NULL;
+        const uint8_t *mask = allowv.obj ? allowv.buf : NULL;
         int oom = 0;
         for (Py_ssize_t q = 0; q < n_queries && !damaged && !oom; q++) {
             heap.size = 0;
@@ -391,13 +237,17 @@ static PyObject *search(PyObject *self, PyObject *args) {
             Py_ssize_t got = -2;
             if (prune) {
                 got = buf.itemsize == 4
-                    ? prune_float(buf.buf, n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf,
-                                  qp[q], qp[q + 1], touched, &heap, &psc, out_r + q * k,
-                                  out_s + q * k, &used)
-                    : prune_double(buf.buf, n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf,
-                                   qp[q], qp[q + 1], touched, &heap, &psc, out_r + q * k,
-                                   out_s + q * k, &used);
+                    ? daat_float(n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf, qp[q],
+                                 qp[q + 1], mask, &heap, &psc, out_r + q * k, out_s + q * k,
+                                 &used)
+                    : daat_double(n_docs, fields, bmaxes, tmaxes, n_fields, tid, qf, qp[q],
+                                  qp[q + 1], mask, &heap, &psc, out_r + q * k, out_s + q * k,
+                                  &used);
                 oom = got == -3;
+                if (mask && got == -2) { /* the exhaustive kernel takes no mask */
+                    damaged = 1;
+                    break;
+                }
             }
             if (got >= 0) {
                 out_n[q] = got;
@@ -434,7 +284,7 @@ static PyObject *search(PyObject *self, PyObject *args) {
 done:
     free(heap.score);
     free(heap.row);
-    prune_scratch_free(&psc);
+    daat_scratch_free(&psc);
     free(bmaxes);
     free(tmaxes);
     if (views) {
@@ -447,75 +297,14 @@ done:
     }
     free(views);
     free(fields);
-    Py_buffer *all[] = {&buf, &scratch, &qptr, &tids, &qtf, &rows, &scores, &counts, &workv};
+    Py_buffer *all[] = {&buf, &scratch, &qptr, &tids, &qtf, &rows, &scores, &counts, &workv,
+                          &allowv};
     for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
         if (all[i]->obj) PyBuffer_Release(all[i]);
     return result;
 }
 
-PyDoc_STRVAR(overlap_doc,
-"overlap(indptr, terms, rows, tids, weights, out_count, out_weight)\n"
-"\n"
-"For each row, how many of `tids` its term list holds and the sum of their `weights`.\n"
-"\n"
-"indptr (int64, n_rows + 1) and terms (int32): article-major term lists, each sorted and\n"
-"    distinct. rows (int64): the articles asked about. tids (int64, sorted, distinct) and\n"
-"    weights (float64): the clue's terms. out_count and out_weight (float64, one per row)\n"
-"    receive the results; weights are added in increasing term order. Returns None.");
-
-static PyObject *overlap(PyObject *self, PyObject *args) {
-    PyObject *o_indptr, *o_terms, *o_rows, *o_tids, *o_weights, *o_count, *o_weight;
-    (void)self;
-    if (!PyArg_ParseTuple(args, "OOOOOOO", &o_indptr, &o_terms, &o_rows, &o_tids, &o_weights,
-                          &o_count, &o_weight))
-        return NULL;
-    Py_buffer indptr = {0}, terms = {0}, rows = {0}, tids = {0}, weights = {0}, count = {0};
-    Py_buffer weight = {0};
-    PyObject *result = NULL;
-    if (hw_buffer(o_indptr, &indptr, "int64", 0, "indptr") < 0 ||
-        hw_buffer(o_terms, &terms, "int32", 0, "terms") < 0 ||
-        hw_buffer(o_rows, &rows, "int64", 0, "rows") < 0 ||
-        hw_buffer(o_tids, &tids, "int64", 0, "tids") < 0 ||
-        hw_buffer(o_weights, &weights, "float64", 0, "weights") < 0 ||
-        hw_buffer(o_count, &count, "float64", 1, "out_count") < 0 ||
-        hw_buffer(o_weight, &weight, "float64", 1, "out_weight") < 0)
-        goto done;
-    {
-        const int64_t *ip = indptr.buf, *rw = rows.buf, *td = tids.buf;
-        const int32_t *tm = terms.buf;
-        const double *wt = weights.buf;
-        double *oc = count.buf, *ow = weight.buf;
-        const Py_ssize_t n_docs = indptr.len / 8 - 1, n_terms = terms.len / 4;
-        const Py_ssize_t n = rows.len / 8, m = tids.len / 8;
-        if (weights.len / 8 != m || count.len / 8 != n || weight.len / 8 != n) {
-            PyErr_SetString(PyExc_ValueError, "overlap: array lengths do not match");
-            goto done;
-        }
-        for (Py_ssize_t i = 0; i < n; i++) {
-            if (rw[i] < 0 || rw[i] >= n_docs || ip[rw[i]] < 0 || ip[rw[i]] > ip[rw[i] + 1] ||
-                ip[rw[i] + 1] > n_terms) {
-                PyErr_SetString(PyExc_ValueError, "overlap: a row lies outside the term lists");
-                goto done;
-            }
-        }
-        for (Py_ssize_t j = 1; j < m; j++) {
-            if (td[j - 1] >= td[j]) {
-                PyErr_SetString(PyExc_ValueError, "overlap: tids must be sorted and distinct");
-                goto done;
-            }
-        }
-        for (Py_ssize_t i = 0; i < n; i++) { /* microseconds of work: the GIL is kept */
-            hw_overlap(tm, ip[rw[i]], ip[rw[i] + 1], td, wt, m, &oc[i], &ow[i]);
-        }
-    }
-    result = Py_None;
-    Py_INCREF(result);
-done:;
-    Py_buffer *all[] = {&indptr, &terms, &rows, &tids, &weights, &count, &weight};
-    for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
-        if (all[i]->obj) PyBuffer_Release(all[i]);
-    return result;
-}
+#include "_overlap.h" /* overlap(): a clue's terms in a few articles */
 
 static PyMethodDef methods[] = {
     {"search", search, METH_VARARGS, search_doc},

@@ -3,7 +3,7 @@
 For each field an index folder keeps `{field}_term_max` (each term's largest posting
 weight) and `{field}_block_max` (the largest weight of each run of 64 postings in the
 term-major arrays; a run may straddle two terms, which only loosens the bound). The
-compiled kernel's exact top-k (retriever/_prune.h) uses them to skip articles that cannot
+compiled kernel's windowed top-k (retriever/_daat.h) uses them to skip articles that cannot
 reach the k best. Folders written before these files existed still open: their queries
 are scored exhaustively (the same results), until the index is rebuilt or updated.
 """

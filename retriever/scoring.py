@@ -116,21 +116,26 @@ def top_k_many(
 
     `buf` (the weights' type, one slot per article) must be all zeros on entry and is all
     zeros again on return. `touched` (int32, one slot per article) is the kernel's scratch;
-    pass one to reuse it across calls. `prune`: let the kernel skip postings that cannot
-    change the result (None: where `prunable` says it pays; True: wherever the index has
-    the bounds; False: never); the result is the same either way. `work` (int64,
-    one per query), filled by the kernel only: the postings each query read.
+    pass one to reuse it across calls. `prune`: use the windowed kernel, which skips
+    postings that cannot change the result (None: where `prunable` says it pays; True:
+    wherever the index has the bounds; False: never); the result is the same either way.
+    `work` (int64, one per query), filled by the kernel only: the postings each query read.
     """
     if k < 1:
         raise ValueError(f"k must be at least 1, got {k}")
     n = p.n_queries
-    # The compiled kernel takes no row mask: a filtered query runs the numpy twin, which
-    # gives the same scores bit for bit and drops the masked rows before its top-k cut.
-    if use_kernel and _kernels is not None and allowed is None:
+    # The kernel takes a row mask on its windowed path only (float32 weights with bounds,
+    # prune not False);
+    # other filtered queries run the numpy twin, which gives the same scores bit for bit and
+    # drops the masked rows before its top-k cut.
+    masked_ok = allowed is None or (prune is not False and prunable(p, None))
+    if use_kernel and _kernels is not None and masked_ok:
         rows = np.empty(n * k, dtype=np.int64)
         scores = np.empty(n * k, dtype=np.float64)
         counts = np.empty(n, dtype=np.int64)
-        use_bounds = prune is not False and prunable(p, buf.size if prune is None else None)
+        use_bounds = allowed is not None or (
+            prune is not False and prunable(p, buf.size if prune is None else None)
+        )
         fields = tuple(
             (fld.indptr, fld.docs, fld.weight, float(sc))
             + ((fld.bounds.term_max, fld.bounds.block_max) if use_bounds else ())  # type: ignore[attr-defined]
@@ -139,7 +144,19 @@ def top_k_many(
         if touched is None:
             touched = np.empty(buf.size, dtype=np.int32)
         _kernels.search(
-            buf, touched, k, fields, p.qptr, p.tids, p.qtf, rows, scores, counts, use_bounds, work
+            buf,
+            touched,
+            k,
+            fields,
+            p.qptr,
+            p.tids,
+            p.qtf,
+            rows,
+            scores,
+            counts,
+            use_bounds,
+            work,
+            None if allowed is None else np.ascontiguousarray(allowed, dtype=bool),
         )
         return [
             (rows[q * k : q * k + c], scores[q * k : q * k + c])
@@ -148,14 +165,16 @@ def top_k_many(
     return [_numpy_top_k(buf, p, q, k, allowed) for q in range(n)]
 
 
-# Pruning is used where asked for (prune=True), not by default: on the benchmark's clue
-# queries (tests/benchmarks/bench_retrieval.py, 100k synthetic articles, ~16 terms, k=10)
-# the terms' bounds leave most postings to be read (the top article's score needs most of
-# the clue's terms, and no list dominates), so the exact pruned path measured slower than
-# scoring everything. It pays on queries where a few rare terms decide the top k and long
-# lists of common terms can be skipped (tests/retriever/test_pruning.py shows the skipped
-# postings). None of this changes a result: both paths give the same hits bit for bit.
-PRUNE_MIN_ARTICLES: int | None = None  # auto-pruning from this corpus size; None: never
+# The windowed path (retriever/_daat.h: rows in windows of 8192 with MaxScore over block
+# maxima) is the default from PRUNE_MIN_ARTICLES articles. It visits rows in windows whose
+# sums stay in the CPU cache, where the exhaustive kernel's buffer (4 bytes per article)
+# no longer does: on the benchmark's clues (tests/benchmarks/bench_retrieval.py, ~16
+# terms, k=10) its kernel CPU time per query was 0.68-0.72x the exhaustive one's at 1M
+# articles, and 1.03-1.15x at 100k (a 400 KB buffer fits this machine's 2 MB L2 per core),
+# so small indexes keep the exhaustive kernel. The cut sits where the buffer reaches 1 MB.
+# Both paths give the same hits bit for bit (tests/retriever/test_pruning.py,
+# test_windowed.py).
+PRUNE_MIN_ARTICLES: int | None = 250_000  # the windowed path from this corpus size; None: never
 
 
 def prunable(p: Plan, n_docs: int | None) -> bool:
@@ -164,8 +183,8 @@ def prunable(p: Plan, n_docs: int | None) -> bool:
     (never negative, see postings.weight_dtype; float64 ones may be, which the bounds
     cannot handle).
 
-    The kernel then also decides per query (retriever/_prune.h): a query with one list,
-    few postings next to k, or whose bounds prune too little is scored exhaustively.
+    The kernel then decides per window of rows (retriever/_daat.h) whether to skip it,
+    prune it with MaxScore or add every posting in it.
     """
     if n_docs is not None and (PRUNE_MIN_ARTICLES is None or n_docs < PRUNE_MIN_ARTICLES):
         return False

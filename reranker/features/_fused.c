@@ -82,82 +82,7 @@ static const char *const column_names[] = {COLUMN_LIST(AS_NAME) NULL};
 static const char *const row_value_names[] = {ROW_VALUE_LIST(AS_NAME) NULL};
 static const char *const span_names[] = {SPAN_LIST(AS_NAME) NULL};
 
-static int by_key(const void *a, const void *b) {
-    const int64_t x = *(const int64_t *)a, y = *(const int64_t *)b;
-    return (x > y) - (x < y);
-}
-
-/* The items of `seq` sorted by term id, duplicates removed: ints, or (int, float) pairs when
- * `values` is given. Fills *keys (and *values), allocated here; the caller frees *keys only
- * (the values live in the same block). Returns the count, or -1 with an exception set. */
-static Py_ssize_t read_terms(PyObject *seq, int64_t **keys, double **values, const char *name) {
-    typedef struct {
-        int64_t key; /* first: by_key compares it */
-        double value;
-    } Term;
-    PyObject *fast = PySequence_Fast(seq, name);
-    if (!fast) return -1;
-    const Py_ssize_t m = PySequence_Fast_GET_SIZE(fast);
-    const size_t room = (size_t)(m ? m : 1);
-    Term *t = PyMem_Malloc(room * sizeof(Term));
-    int64_t *k = PyMem_Malloc(room * (sizeof(int64_t) + sizeof(double)));
-    if (!t || !k) {
-        PyErr_NoMemory();
-        goto fail;
-    }
-    for (Py_ssize_t j = 0; j < m; j++) {
-        PyObject *item = PySequence_Fast_GET_ITEM(fast, j);
-        if (values) {
-            if (!PyTuple_Check(item) || PyTuple_GET_SIZE(item) != 2) {
-                PyErr_Format(PyExc_TypeError, "%s: expected (term id, weight) pairs", name);
-                goto fail;
-            }
-            t[j].key = PyLong_AsLongLong(PyTuple_GET_ITEM(item, 0));
-            t[j].value = PyFloat_AsDouble(PyTuple_GET_ITEM(item, 1));
-        } else {
-            t[j].key = PyLong_AsLongLong(item);
-            t[j].value = 0;
-        }
-        if (PyErr_Occurred()) goto fail;
-    }
-    Py_DECREF(fast);
-    qsort(t, (size_t)m, sizeof(Term), by_key);
-    double *v = (double *)(k + room);
-    Py_ssize_t kept = 0;
-    for (Py_ssize_t j = 0; j < m; j++) {
-        if (kept == 0 || k[kept - 1] != t[j].key) {
-            k[kept] = t[j].key;
-            v[kept++] = t[j].value;
-        }
-    }
-    PyMem_Free(t);
-    *keys = k;
-    if (values) *values = v;
-    return kept;
-fail:
-    Py_DECREF(fast);
-    PyMem_Free(t);
-    PyMem_Free(k);
-    return -1;
-}
-
-/* Whether `key` is among the sorted keys[0..m). */
-static int holds(const int64_t *keys, Py_ssize_t m, int64_t key) {
-    Py_ssize_t a = 0, b = m;
-    while (a < b) {
-        const Py_ssize_t mid = a + (b - a) / 2;
-        if (keys[mid] < key) a = mid + 1;
-        else b = mid;
-    }
-    return a < m && keys[a] == key;
-}
-
-/* How many of ids[0..len) are among the clue's name tokens. */
-static double in_clue(const int32_t *ids, int64_t len, const int64_t *clue, Py_ssize_t m) {
-    double c = 0;
-    for (int64_t i = 0; i < len; i++) c += holds(clue, m, ids[i]);
-    return c;
-}
+#include "_clueterms.h" /* read_terms, holds, in_clue */
 
 /* The within-clue score features and the clue length of all n candidates (stride N_COLUMNS). */
 static void within_clue(const double *s, const int64_t *rank, Py_ssize_t n, Py_ssize_t words,
@@ -221,35 +146,33 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
                           &o_table, &o_spans, &o_arena, &o_names, &o_indptr, &o_terms,
                           &o_clue_terms))
         return NULL;
-    Py_buffer out = {0}, sv = {0}, rk = {0}, rw = {0}, tb = {0}, sp = {0}, ar = {0}, ip = {0};
-    Py_buffer tm = {0};
+    Py_buffer views[9] = {{0}};
+    Py_buffer *const out = &views[0], *const sv = &views[1], *const rk = &views[2];
+    Py_buffer *const rw = &views[3], *const tb = &views[4], *const sp = &views[5];
+    Py_buffer *const ar = &views[6], *const ip = &views[7], *const tm = &views[8];
     int64_t *names = NULL, *clue = NULL;
     double *rarities = NULL;
     PyObject *result = NULL;
-    if (hw_buffer(o_out, &out, "float64", 1, "out") < 0 ||
-        hw_buffer(o_scores, &sv, "float64", 0, "scores") < 0 ||
-        hw_buffer(o_ranks, &rk, "int64", 0, "ranks") < 0 ||
-        hw_buffer(o_rows, &rw, "int64", 0, "rows") < 0 ||
-        hw_buffer(o_table, &tb, "float64", 0, "table") < 0 ||
-        hw_buffer(o_spans, &sp, "int64", 0, "spans") < 0 ||
-        hw_buffer(o_arena, &ar, "int32", 0, "arena") < 0 ||
-        hw_buffer(o_indptr, &ip, "int64", 0, "indptr") < 0 ||
-        hw_buffer(o_terms, &tm, "int32", 0, "terms") < 0)
+    PyObject *const objs[9] = {o_out, o_scores, o_ranks, o_rows, o_table, o_spans, o_arena,
+                               o_indptr, o_terms};
+    if (hw_buffers(objs, views, 9,
+                   "+out:float64 scores:float64 ranks:int64 rows:int64 table:float64 "
+                   "spans:int64 arena:int32 indptr:int64 terms:int32") < 0)
         goto done;
-    const Py_ssize_t n = sv.len / 8, n_docs = ip.len / 8 - 1;
-    if (n < 1 || rk.len / 8 != n || rw.len / 8 != n || out.len / 8 != n * N_COLUMNS) {
+    const Py_ssize_t n = sv->len / 8, n_docs = ip->len / 8 - 1;
+    if (n < 1 || rk->len / 8 != n || rw->len / 8 != n || out->len / 8 != n * N_COLUMNS) {
         PyErr_SetString(PyExc_ValueError,
                         "candidates: need n >= 1 scores, ranks and rows, and n x COLUMNS out");
         goto done;
     }
-    if (n_docs < 0 || tb.len / 8 != n_docs * N_ROW_VALUES || sp.len / 8 != n_docs * N_SPANS) {
+    if (n_docs < 0 || tb->len / 8 != n_docs * N_ROW_VALUES || sp->len / 8 != n_docs * N_SPANS) {
         PyErr_SetString(PyExc_ValueError, "candidates: row tables do not match the term lists");
         goto done;
     }
-    const double *s = sv.buf, *table = tb.buf;
-    const int64_t *rank = rk.buf, *row = rw.buf, *spans = sp.buf, *indptr = ip.buf;
-    const int32_t *arena = ar.buf, *terms = tm.buf;
-    const int64_t n_arena = ar.len / 4, n_terms = tm.len / 4;
+    const double *s = sv->buf, *table = tb->buf;
+    const int64_t *rank = rk->buf, *row = rw->buf, *spans = sp->buf, *indptr = ip->buf;
+    const int32_t *arena = ar->buf, *terms = tm->buf;
+    const int64_t n_arena = ar->len / 4, n_terms = tm->len / 4;
     /* The candidates' rows are scattered over large tables that the query has just pushed
      * out of the CPU caches: ask for all of them at once, so the misses overlap instead of
      * queueing one after another in the loops below. */
@@ -293,7 +216,7 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
     if (m < 0) goto done;
     /* matched_fraction divides by the clue's known terms, as given (pairs are distinct) */
     const Py_ssize_t known = PyObject_Length(o_clue_terms);
-    double *f = out.buf;
+    double *f = out->buf;
     within_clue(s, rank, n, words, f);
     double best_log_inlinks = -HUGE_VAL;
     for (Py_ssize_t i = 0; i < n; i++) {
@@ -336,9 +259,7 @@ static PyObject *candidates(PyObject *self, PyObject *args) {
 done:;
     PyMem_Free(names);
     PyMem_Free(clue);
-    Py_buffer *all[] = {&out, &sv, &rk, &rw, &tb, &sp, &ar, &ip, &tm};
-    for (size_t i = 0; i < sizeof(all) / sizeof(all[0]); i++)
-        if (all[i]->obj) PyBuffer_Release(all[i]);
+    hw_release(views, 9);
     return result;
 }
 

@@ -372,9 +372,9 @@ def build_table(all_results: dict[int, dict[str, dict[str, Any]]]) -> str:
 
 
 def work_prune_modes(folder: Path, clues: list[str], k: int = 10) -> dict[str, Any]:
-    """hunchwise's pruned and exhaustive paths on one loaded index, in the same process:
-    single-clue p50/p95 (ms) and batch q/s at 1 and 2 threads for each, the share of
-    postings the pruned path read, and a check that both give the same hits."""
+    """hunchwise's windowed (retriever/_daat.h) and exhaustive paths on one loaded index, in
+    the same process: single-clue p50/p95 (ms) and batch q/s at 1 and 2 threads for each,
+    the share of postings the windowed path read, and a check that both give the same hits."""
     import numpy as np
 
     from retriever import load_index, scoring
@@ -384,7 +384,7 @@ def work_prune_modes(folder: Path, clues: list[str], k: int = 10) -> dict[str, A
         idx.search(c, k)  # warm the memory maps
     out: dict[str, Any] = {}
     hits: dict[str, Any] = {}
-    for name, mode in (("exhaustive", False), ("pruned", True)):
+    for name, mode in (("exhaustive", False), ("windowed", True)):
         idx.prune = mode
         p50, p95 = _latencies(lambda c: idx.search(c, k), clues)
         row = {"p50_ms": p50, "p95_ms": p95}
@@ -399,20 +399,20 @@ def work_prune_modes(folder: Path, clues: list[str], k: int = 10) -> dict[str, A
     for m, w in work.items():
         scoring.top_k_many(idx._buffer(), plan, k, prune=m, work=w)
     out["postings_read_share"] = float(work[True].sum() / max(1, int(work[False].sum())))
-    out["same_hits"] = hits["pruned"] == hits["exhaustive"]
+    out["same_hits"] = hits["windowed"] == hits["exhaustive"]
     return out
 
 
 def prune_table(n: int, res: dict[str, Any]) -> str:
     """Markdown rows for work_prune_modes at one size."""
     lines = [
-        f"pruned vs exhaustive at {n:,} articles (same run; same hits: {res['same_hits']}, "
+        f"windowed vs exhaustive at {n:,} articles (same run; same hits: {res['same_hits']}, "
         f"postings read: {res['postings_read_share']:.0%})",
         "",
         "| path | p50 ms | p95 ms | batch q/s, 1 thread | batch q/s, 2 threads |",
         "| --- | --- | --- | --- | --- |",
     ]
-    for name in ("exhaustive", "pruned"):
+    for name in ("exhaustive", "windowed"):
         r = res[name]
         lines.append(
             f"| {name} | {r['p50_ms']:.3f} | {r['p95_ms']:.3f} | {r['batch1_qps']:,.0f} | "
