@@ -107,7 +107,7 @@ class ShardSearcher:
 
     def score_rows(self, tokens: list[str], rows: np.ndarray) -> np.ndarray:
         """BM25 scores of some of this shard's rows (local numbers)."""
-        return self.index.score_tokens(tokens)[rows] if rows.size else np.empty(0)
+        return self.index.bm25_of_rows(tokens, rows)
 
     def describe(self) -> dict[str, Any]:
         """This shard's identity (see `describe`)."""

@@ -269,8 +269,8 @@ class Index(hybrid.HybridSearch):
         scoring.accumulate(scores, self._plan([tokens]))
         return scores.astype(np.float64)
 
-    def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]:
-        """BM25 scores of some articles for analyzed tokens, by row.
+    def bm25_of_rows(self, tokens: Sequence[str], rows: np.ndarray) -> np.ndarray:
+        """BM25 scores of some articles for analyzed tokens, one per row, in order. float64.
 
         The same numbers as `score_tokens` (and `search_tokens`) give them, found by binary
         search in each query term's postings instead of scoring the whole corpus (used for
@@ -278,7 +278,12 @@ class Index(hybrid.HybridSearch):
         """
         rows = np.asarray(rows, dtype=np.int64)
         scores = scoring.score_rows(self._plan([tokens]), rows, self.body.weight.dtype)
-        return dict(zip(rows.tolist(), scores.astype(np.float64).tolist(), strict=True))
+        return scores.astype(np.float64)
+
+    def score_rows(self, tokens: Sequence[str], rows: np.ndarray) -> dict[int, float]:
+        """`bm25_of_rows` by row."""
+        rows = np.asarray(rows, dtype=np.int64)
+        return dict(zip(rows.tolist(), self.bm25_of_rows(tokens, rows).tolist(), strict=True))
 
     def search_tokens(
         self, tokens: Sequence[str], k: int = 20, *, allowed: np.ndarray | None = None

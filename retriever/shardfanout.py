@@ -4,7 +4,7 @@ Each method gives one entry per shard, in shard order, rows counted over the who
 BM25's top k for analysed terms, the nearest articles for query vectors made by the caller,
 and the BM25 scores of a few rows. `LocalShards` asks the shards opened in this process one
 after the other; api/rayserve.py sends the same calls to one Ray Serve deployment per shard,
-whose replicas answer with `local_search`, `local_dense` and `Index.score_tokens`.
+whose replicas answer with `local_search`, `local_dense` and `Index.bm25_of_rows`.
 """
 
 from __future__ import annotations
@@ -116,7 +116,4 @@ class LocalShards:
 
     def score_rows(self, tokens: Sequence[str], rows: Sequence[np.ndarray]) -> list[np.ndarray]:
         """See `FanOut.score_rows`."""
-        return [
-            s.score_tokens(tokens)[r] if r.size else np.empty(0)
-            for s, r in zip(self.shards, rows, strict=True)
-        ]
+        return [s.bm25_of_rows(tokens, r) for s, r in zip(self.shards, rows, strict=True)]
