@@ -18,7 +18,7 @@ import numpy as np
 
 from retriever import Hit, Index, vecgen
 from retriever.dense import DenseSearcher
-from retriever.hybrid import FUSIONS, fuse
+from retriever.hybrid import FUSIONS, fuse, members_bm25
 
 from .errors import ModelFormatError
 from .features import DenseInfo
@@ -140,12 +140,7 @@ def _hybrid_set(
     dense: DenseSearcher | None,
 ) -> tuple[list[Hit], DenseInfo]:
     rows = fused_rows(p, k, policy)
-    # Every member's real BM25 score, also for those only the vectors found.
-    known = dict(zip(p.bm25_rows.tolist(), p.bm25_scores.tolist(), strict=True))
-    missing = [r for r in rows.tolist() if r not in known]
-    if missing:
-        known.update(index.score_rows(tokens, np.asarray(missing, dtype=np.int64)))
-    bm25 = np.array([known[r] for r in rows.tolist()], dtype=np.float64)
+    bm25 = members_bm25(index, tokens, rows, p.bm25_rows, p.bm25_scores)
     cos = dense.cosines(p.query, rows) if dense is not None else np.zeros(rows.size)
     d_rank = {r: i + 1 for i, r in enumerate(p.dense_rows.tolist())}
     b_member = set(p.bm25_rows.tolist())

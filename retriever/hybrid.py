@@ -142,6 +142,22 @@ def fuse(
     return union[order], fused[order]
 
 
+def members_bm25(
+    index: HybridSource,
+    tokens: Sequence[str],
+    rows: np.ndarray,
+    pool_rows: np.ndarray,
+    pool_scores: np.ndarray,
+) -> np.ndarray:
+    """Every member's BM25 score: the BM25 pool's own, and for the rows only the vectors
+    found, scored for just those rows."""
+    known = dict(zip(pool_rows.tolist(), pool_scores.tolist(), strict=True))
+    missing = [r for r in rows.tolist() if r not in known]
+    if missing:
+        known.update(index.score_rows(tokens, np.asarray(missing, dtype=np.int64)))
+    return np.array([known[r] for r in rows.tolist()], dtype=np.float64)
+
+
 def search_hybrid_many(
     index: HybridSource,
     clues: Sequence[str],
@@ -179,13 +195,7 @@ def search_hybrid_many(
         rows, fused = rows[:k], fused[:k]
         b_rank = {int(r): i + 1 for i, r in enumerate(b_rows.tolist())}
         d_rank = {int(r): i + 1 for i, r in enumerate(d_rows.tolist())}
-        # Every member's BM25 score: the pool's own, and for those only the vectors found,
-        # scored for just those rows.
-        known = dict(zip(b_rows.tolist(), b_scores.tolist(), strict=True))
-        missing = [r for r in rows.tolist() if r not in known]
-        if missing:
-            known.update(index.score_rows(tokens, np.asarray(missing, dtype=np.int64)))
-        bm25_all = np.array([known[r] for r in rows.tolist()], dtype=np.float64)
+        bm25_all = members_bm25(index, tokens, rows, b_rows, b_scores)
         cos = dense.cosines(qvec, rows) if dense is not None else np.zeros(rows.size)
         ids, titles = index.ids.take(rows), index.titles.take(rows)
         out.append(
