@@ -4,14 +4,13 @@ from __future__ import annotations
 
 import functools
 from collections.abc import Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from retriever import Hit, Index
-from retriever.index import batch_threads
+from retriever.batches import batch_threads, map_parts
 from retriever.snippets import snippet
 
 from .candidates import CandidatePolicy, find_candidates
@@ -281,18 +280,15 @@ def rank_clues(
     metas = list(metadata) if metadata is not None else [None] * len(clues)
     n_threads = batch_threads(len(clues), threads)
     if n_threads > 1:
-        step = -(-len(clues) // n_threads)
-        parts = [(clues[i : i + step], metas[i : i + step]) for i in range(0, len(clues), step)]
 
-        def part(cm: tuple[Sequence[str], list[dict[str, Any] | None]]) -> list[Ranking]:
+        def part(at: slice) -> list[Ranking]:
             return rank_clues(
-                index, model, cm[0], k=k, payoff=payoff, complete=complete,
-                revealed=revealed, include_features=include_features, metadata=cm[1],
+                index, model, clues[at], k=k, payoff=payoff, complete=complete,
+                revealed=revealed, include_features=include_features, metadata=metas[at],
                 registry=registry, where=where, snippets=snippets, threads=1,
             )  # fmt: skip
 
-        with ThreadPoolExecutor(len(parts), thread_name_prefix="hunchwise-rank") as pool:
-            return [r for done in pool.map(part, parts) for r in done]
+        return map_parts(part, len(clues), n_threads, "hunchwise-rank")
     # Analyzed once, for the search and the features (words: the clue-length features).
     analyzer = index.analyzer
     analyzed = [(analyzer.tokens(c), analyzer.words(c)) for c in clues]

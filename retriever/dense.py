@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from threadpoolctl import ThreadpoolController
 
-from .vectors import DenseVectors
+from .storedvectors import DenseVectors
 
 if TYPE_CHECKING:
     from .ann import AnnIndex

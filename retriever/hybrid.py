@@ -21,7 +21,7 @@ import numpy as np
 
 from .analyzer import Analyzer
 from .hits import Hit
-from .vectors import DenseVectors
+from .storedvectors import DenseVectors
 
 FUSIONS = ("minmax", "rrf")
 

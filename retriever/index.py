@@ -5,7 +5,6 @@ from __future__ import annotations
 import threading
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
@@ -13,17 +12,21 @@ from typing import Any, Literal, overload
 
 import numpy as np
 
-from . import bounds, columns, hybrid, metafilter, scoring, store, vecgen
+from . import columns, hybrid, metafilter, scoring, store, vecgen
 from .analyzer import Analyzer, AnalyzerConfig
+from .batches import batch_threads, map_parts
 from .bm25 import BM25Params
-from .counting import cores
 from .dense import DenseSearcher
 from .errors import IndexFormatError, UnknownDocumentError
-from .hits import Hit, RowMask, TokenLists
+from .fieldpostings import FieldPostings
+from .hits import Hit, RowMask, TokenLists, ranked_hits
 from .links import NameResolver
 from .metacolumns import MetaColumns
 from .sharded import ShardedIndex
-from .vectors import DenseVectors
+from .storedvectors import DenseVectors
+
+# The name retriever/shardview.py imports from here.
+_FieldPostings = FieldPostings
 
 
 @dataclass(frozen=True)
@@ -41,38 +44,6 @@ class Document:
     inlinks: int
     metadata: dict[str, Any]
     row: int
-
-
-BATCH_THREADS_FROM = 64  # clues in a batch before it is shared between threads
-
-
-def batch_threads(n_clues: int, threads: int | None) -> int:
-    """Threads for a batch of `n_clues`: `threads` when given (at least 1), else one per core
-    this process may use for batches of BATCH_THREADS_FROM clues or more (a smaller batch
-    is over before the threads pay for themselves); never more than the clues."""
-    if threads is not None and threads < 1:
-        raise ValueError(f"threads must be at least 1, got {threads}")
-    if threads is None:
-        threads = cores() if n_clues >= BATCH_THREADS_FROM else 1
-    return max(1, min(threads, n_clues))
-
-
-class _FieldPostings:
-    """Term-major postings of one field: CSR arrays over the shared vocabulary."""
-
-    def __init__(
-        self, folder: Path, prefix: str, n_terms: int, n_postings: int, dtype: str
-    ) -> None:
-        # Plain ndarray views of the memory maps: slicing a np.memmap costs far more.
-        self.indptr = np.asarray(store.open_array(folder, f"{prefix}_indptr", "int64", n_terms + 1))
-        self.docs = np.asarray(store.open_array(folder, f"{prefix}_docs", "int32", n_postings))
-        self.weight = np.asarray(store.open_array(folder, f"{prefix}_weight", dtype, n_postings))
-        if int(self.indptr[-1]) != n_postings or (n_terms and int(self.indptr[0]) != 0):
-            raise IndexFormatError(
-                f"{folder}: {prefix}_indptr does not match the postings; rebuild the index"
-            )
-        # None for a folder written before the bounds existed: scored exhaustively.
-        self.bounds = bounds.open_bounds(folder, prefix, n_terms, n_postings, dtype)
 
 
 class Index(hybrid.HybridSearch):
@@ -101,10 +72,10 @@ class Index(hybrid.HybridSearch):
             dtype = str(self.manifest["weights"])
             if dtype not in ("float32", "float64"):
                 raise IndexFormatError(f"{self.path}: unknown weight type {dtype!r}; rebuild")
-            self.body = _FieldPostings(
+            self.body = FieldPostings(
                 self.path, "body", self.n_terms, int(counts["body_postings"]), dtype
             )
-            self.title_field = _FieldPostings(
+            self.title_field = FieldPostings(
                 self.path, "title", self.n_terms, int(counts["title_postings"]), dtype
             )
         except (KeyError, TypeError, ValueError, FileNotFoundError) as exc:
@@ -310,27 +281,7 @@ class Index(hybrid.HybridSearch):
             self._buffer(), plan, k, touched=self._scratch(), prune=self.prune, allowed=allowed
         )
         rows = np.concatenate([r for r, _ in results])
-        ids, titles = self.ids.take(rows), self.titles.take(rows)
-        out: list[list[Hit]] = []
-        at = 0
-        for r, sc in results:
-            n = r.size
-            out.append(
-                [
-                    Hit(doc_id, title, score, i + 1, row)
-                    for i, (doc_id, title, row, score) in enumerate(
-                        zip(
-                            ids[at : at + n],
-                            titles[at : at + n],
-                            r.tolist(),
-                            sc.tolist(),
-                            strict=True,
-                        )
-                    )
-                ]
-            )
-            at += n
-        return out
+        return ranked_hits(results, self.ids.take(rows), self.titles.take(rows))
 
     def search(self, clue: str, k: int = 20) -> list[Hit]:
         """Top-k articles for a free-text clue, best first."""
@@ -348,11 +299,12 @@ class Index(hybrid.HybridSearch):
         token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
         if threads <= 1 or len(clues) < 2:
             return self.search_token_lists(token_lists, k)
-        step = -(-len(clues) // threads)
-        shards = [token_lists[i : i + step] for i in range(0, len(token_lists), step)]
-        with ThreadPoolExecutor(len(shards), thread_name_prefix="hunchwise-search") as pool:
-            parts = pool.map(lambda shard: self.search_token_lists(shard, k), shards)
-            return [hits for part in parts for hits in part]
+        return map_parts(
+            lambda part: self.search_token_lists(token_lists[part], k),
+            len(clues),
+            threads,
+            "hunchwise-search",
+        )
 
     def __len__(self) -> int:
         return self.n_docs

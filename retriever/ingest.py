@@ -9,28 +9,17 @@ need (ids, titles, aliases, links, popularity), never the article texts.
 from __future__ import annotations
 
 import contextlib
-import gzip
 import itertools
-import json
 from collections import deque
-from collections.abc import Generator, Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
 
 import numpy as np
-import orjson
 
 from .analyzer import Analyzer
-from .corpus import (
-    Article,
-    CorpusError,
-    RawItem,
-    ReadReport,
-    detect_format,
-    iter_raw,
-    validate_record,
-)
+from .corpus import Article, CorpusError, RawItem, ReadReport
 from .counting import (
     CHUNK,
     Csr,
@@ -41,7 +30,11 @@ from .counting import (
     run_chunks,
     worker_state,
 )
-from .errors import JSON_ARRAY, RECORDS, position
+from .errors import RECORDS, position
+from .rawitems import count_items as count_items  # re-exported: tests import them here
+from .rawitems import item_offsets as item_offsets
+from .rawitems import raw_items, window_items
+from .recordjson import parse_item
 from .scoring import concat_ranges
 from .store import record_line
 
@@ -103,75 +96,6 @@ class ChunkOut:
     title: Csr
 
 
-# orjson reads an integer past 64 bits as a float where Python's json keeps it exact; a
-# float this large or larger might be one, and its record is read again by json.
-_BIG = float(2**63)
-
-
-def _has_big_float(value: Any) -> bool:
-    """Whether a float of 2**63 or more (or an infinity) is somewhere in `value`."""
-    if isinstance(value, float):
-        return not -_BIG < value < _BIG  # NaN cannot come from orjson
-    if isinstance(value, dict):
-        value = value.values()
-    elif not isinstance(value, list):
-        return False
-    return any(_has_big_float(v) for v in value)
-
-
-def _record_has_big_float(record: Any) -> bool:
-    """Whether a big float sits where the record's reading could show it: a top-level value
-    (popularity, or a required field's type in an error) or anywhere in an object
-    (metadata). Lists of strings at the top (links, aliases) are refused the same way
-    whatever their numbers, and the text is a string: neither is walked."""
-    if not isinstance(record, dict):
-        return False  # "each record must be a JSON object" either way
-    for v in record.values():
-        if isinstance(v, float):
-            if not -_BIG < v < _BIG:
-                return True
-        elif isinstance(v, dict) and _has_big_float(v):
-            return True
-    return False
-
-
-def _loads(raw: bytes) -> Any:
-    """One JSON Lines record as Python's json reads it, parsed by orjson (several times
-    faster) whenever that gives the same value. Anything orjson refuses (malformed JSON,
-    invalid UTF-8, but also NaN, Infinity, lone surrogates, which json accepts) and any
-    record holding a number of 2**63 or more goes to json, whose result or error stands."""
-    try:
-        value = orjson.loads(raw)
-    except orjson.JSONDecodeError:
-        return _json_loads(raw)
-    return _json_loads(raw) if _record_has_big_float(value) else value
-
-
-def _json_loads(raw: bytes) -> Any:
-    """Python's json on one line, with its errors as CorpusError reasons (no file or line)."""
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise ValueError(f"not valid UTF-8 ({exc.reason} at byte {exc.start})") from exc
-    try:
-        return json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise ValueError(f"malformed JSON: {exc.msg} (column {exc.colno})") from exc
-
-
-def _parse(raw: Any, file: str, line: int) -> Article:
-    if isinstance(raw, Article):
-        return raw
-    if isinstance(raw, tuple):  # an error the reader already found
-        raise CorpusError(raw[1], file=file, line=line, field=raw[2])
-    if isinstance(raw, bytes):
-        try:
-            raw = _loads(raw)
-        except ValueError as exc:
-            raise CorpusError(str(exc), file=file, line=line) from exc
-    return validate_record(raw, file=file, line=line)
-
-
 def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     """Parse, validate, encode and count one chunk (runs in a worker)."""
     file, items = task
@@ -185,7 +109,7 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     with no_gc():
         for pos, (line, raw) in enumerate(items):
             try:
-                art = _parse(raw, file, line)
+                art = parse_item(raw, file, line)
             except CorpusError as exc:
                 errors.append((line, exc.reason, exc.field))
                 continue
@@ -199,73 +123,6 @@ def ingest_chunk(task: tuple[str, list[RawItem]]) -> ChunkOut:
     title = count_texts(analyzer, table, titles)
     pid, fresh = new_terms()
     return ChunkOut(pid, fresh, metas, metadata, errors, encoded, body, title)
-
-
-def count_items(source: str | Path) -> int:
-    """Raw items (lines or rows, blank lines not counted) of a corpus file."""
-    return sum(1 for _ in _raw_items(source))
-
-
-def item_offsets(source: str | Path) -> tuple[np.ndarray, np.ndarray] | None:
-    """Byte offset and line number of every raw item of an uncompressed JSON-lines file,
-    each with one more entry for the end; None for other formats (and for a file holding
-    one JSON array), whose shards are read by skipping items from the start."""
-    path = Path(source)
-    if path.suffix.lower() == ".gz" or detect_format(path) != "jsonl":
-        return None
-    offsets: list[int] = []
-    lines: list[int] = []
-    pos, n = 0, 0
-    with open(path, "rb") as fh:
-        for n, raw in enumerate(fh, 1):
-            if raw.strip():
-                if not offsets and raw.lstrip().startswith(b"["):
-                    return None
-                offsets.append(pos)
-                lines.append(n)
-            pos += len(raw)
-    offsets.append(pos)
-    lines.append(n + 1)
-    return np.asarray(offsets, dtype=np.int64), np.asarray(lines, dtype=np.int64)
-
-
-def _window_items(path: Path, window: tuple[int, int, int]) -> Generator[RawItem, None, None]:
-    """The raw items of bytes window[0]..window[1] of a JSON-lines file whose first line
-    there is line window[2] (as `_raw_items` gives them)."""
-    start, stop, first_line = window
-    with open(path, "rb") as fh:
-        fh.seek(start)
-        pos = start
-        for n, raw in enumerate(fh, first_line):
-            if pos >= stop:
-                return
-            pos += len(raw)
-            if raw.strip():
-                yield n, raw
-
-
-def _raw_items(
-    source: str | Path | Iterable[Mapping[str, Any] | Article],
-) -> Generator[RawItem, None, None]:
-    if not isinstance(source, str | Path):
-        yield from enumerate(source, 1)
-        return
-    path = Path(source)
-    if path.exists() and detect_format(path) == "jsonl":
-        opener = gzip.open if path.suffix.lower() == ".gz" else open
-        with opener(path, "rb") as fh:
-            first = True
-            for n, raw in enumerate(fh, 1):
-                if not raw.strip():
-                    continue
-                if first and raw.lstrip().startswith(b"["):  # as corpus.iter_raw says it
-                    yield n, ("error", JSON_ARRAY, "")
-                    return
-                first = False
-                yield n, raw
-        return
-    for n, rec in iter_raw(path):
-        yield n, ("error", rec.reason, rec.field) if isinstance(rec, CorpusError) else rec
 
 
 def _tasks(
@@ -408,7 +265,7 @@ def ingest(
     sent: deque[list[RawItem]] = deque()
     # closing: a shard stops reading before the end, and the file must not wait for the
     # garbage collector to be closed.
-    opened = _window_items(Path(str(source)), window) if window else _raw_items(source)
+    opened = window_items(Path(str(source)), window) if window else raw_items(source)
     with contextlib.closing(opened) as all_items:
         raw: Iterator[RawItem] = all_items
         if items is not None:

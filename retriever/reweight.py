@@ -18,15 +18,16 @@ import scipy.sparse as sp
 
 from . import bounds, store
 from .bm25 import BM25Params
-from .build import index_version
-from .index import Index, _FieldPostings
+from .fieldpostings import FieldPostings
+from .folderwriter import index_version
+from .index import Index
 from .postings import FieldCounts, weight_dtype
 
 
-class _Reweighted(_FieldPostings):
+class _Reweighted(FieldPostings):
     """One field's postings arrays with weights computed in memory."""
 
-    def __init__(self, base: _FieldPostings, weight: np.ndarray) -> None:
+    def __init__(self, base: FieldPostings, weight: np.ndarray) -> None:
         self.indptr, self.docs, self.weight = base.indptr, base.docs, weight
         self.bounds = bounds.compute(self.indptr, weight)  # the stored ones are for old weights
 

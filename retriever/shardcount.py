@@ -17,11 +17,11 @@ from typing import Any
 import numpy as np
 
 from .analyzer import Analyzer, AnalyzerConfig
-from .build import KnownLinks
 from .cluster import Runner
 from .corpus import CorpusError, ReadReport
 from .counting import no_gc
 from .errors import position
+from .folderwriter import KnownLinks
 from .ingest import Keys, ingest
 from .links import NameResolver, count_inlinks
 from .postings import CorpusStats, FieldStats, sorted_terms

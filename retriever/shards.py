@@ -35,13 +35,14 @@ import numpy as np
 from . import bm25, columns, sharded, shardvectors, store
 from . import vectors as vecs
 from .analyzer import Analyzer, AnalyzerConfig
-from .build import KnownLinks, index_version, write_folder
 from .cluster import Runner
 from .corpus import CorpusError, ReadReport, file_checksum
 from .counting import no_gc
 from .errors import IndexFormatError
-from .ingest import count_items, ingest, item_offsets
+from .folderwriter import KnownLinks, index_version, write_folder
+from .ingest import ingest
 from .postings import CorpusStats, FieldStats
+from .rawitems import count_items, item_offsets
 from .shardcount import (
     ShardCounts,
     _NoBar,

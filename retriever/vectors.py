@@ -18,197 +18,68 @@ float16). gensim's own model file is not kept.
 
 from __future__ import annotations
 
-import itertools
 import time
-from collections.abc import Iterable, Iterator
-from dataclasses import asdict, dataclass, replace
+from dataclasses import replace
 from pathlib import Path
-from typing import Any, NamedTuple
+from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-from tqdm.auto import tqdm
 
 from . import columns, store
 from .analyzer import Analyzer
-from .counting import cores
 from .errors import IndexFormatError
+from .storedvectors import (
+    DOCVEC,
+    TERMVEC_ROW,
+    WORDVEC,
+    WORDVEC_TERMS,
+    WORDVEC_WEIGHT,
+    DenseVectors,
+    open_matrix,
+)
+from .vecsettings import (
+    MAX_EPOCHS,
+    MIN_EPOCHS,
+    TOKEN_PASSES,
+    VectorSettings,
+    epochs_for_tokens,
+    resolve_settings,
+)
+from .wordtraining import Trained, article_lines, train, train_lines
 
-WORDVEC, WORDVEC_WEIGHT, WORDVEC_TERMS = "wordvec", "wordvec_weight", "wordvec_terms"
-TERMVEC_ROW, DOCVEC = "termvec_row", "docvec"
-# gensim cuts longer sentences at 10,000 tokens (its MAX_WORDS_IN_BATCH); longer articles
-# are fed as several lines so no text is lost.
-_MAX_LINE_TOKENS = 10_000
+# The settings, the stored files and the training live in their own modules; this one,
+# which writes the vectors into a folder, names them all, as callers have always used them.
+__all__ = [
+    "DOCVEC",
+    "MAX_EPOCHS",
+    "MIN_EPOCHS",
+    "TERMVEC_ROW",
+    "TOKEN_PASSES",
+    "WORDVEC",
+    "WORDVEC_TERMS",
+    "WORDVEC_WEIGHT",
+    "DenseVectors",
+    "Trained",
+    "VectorSettings",
+    "add_to_folder",
+    "article_lines",
+    "article_vectors",
+    "body_counts",
+    "columns",
+    "epochs_for_tokens",
+    "folder_idf_weights",
+    "idf_weights",
+    "open_matrix",
+    "resolve_settings",
+    "store",
+    "term_rows",
+    "train",
+    "train_lines",
+    "write_article_vectors",
+]
+
 _DOC_BLOCK = 32_768  # article rows per block when computing article vectors
-# Epochs from the corpus's size: about TOKEN_PASSES tokens trained on in all, within
-# [MIN_EPOCHS, MAX_EPOCHS]. Measured on FOLDOC (495,000 tokens), the vectors alone on the
-# 196 Jargon training clues (tests/opendata/vector_curve.py; the test clues never read),
-# after 1 / 5 / 10 / 20 / 40 epochs: recall@100 0.08 / 0.37 / 0.43 / 0.49 / 0.53, top-1
-# 0.01 / 0.08 / 0.15 / 0.19 / 0.21, still rising at 40. So about 40 passes over a corpus
-# that small (20M tokens in all), 6 over the 100,000-article demo corpus (3.6M tokens),
-# word2vec's usual 5 from 4M tokens on, and never more than 40 (build time).
-TOKEN_PASSES, MIN_EPOCHS, MAX_EPOCHS = 20_000_000, 5, 40
-
-
-@dataclass(frozen=True)
-class VectorSettings:
-    """How word vectors are trained and article vectors stored; kept in the manifest."""
-
-    dim: int = 200
-    window: int = 5
-    # 0: from the corpus's token count (`epochs_for_tokens`); the manifest stores the number
-    # of epochs the vectors were trained with.
-    epochs: int = 0
-    min_count: int = 2
-    negative: int = 5
-    sample: float = 1e-3
-    seed: int = 1
-    dtype: str = "float32"
-    # Approximate search from this many articles on. Measured on the invented corpus at 100k
-    # (tests/benchmarks/bench_dense.py): exact search costs about 30x the BM25 query there,
-    # and about one BM25 query already at 5k-10k articles.
-    ann_min_articles: int = 10_000
-    ann_m: int = 16  # HNSW graph degree
-    ann_ef_construction: int = 100
-    # 256: recall@10 0.985 against exact at 1M articles in 0.39 ms (p50), a fifth of a BM25
-    # query there (128 gave 0.976; at 100k, 128 gave recall@20 0.988 and 256 0.997 in 0.58 ms).
-    ann_ef_search: int = 256
-    # Training threads; 0: up to 4 of this machine's cores. Only 1 gives the very same
-    # vectors on every build (gensim's threads update shared weights in no fixed order).
-    threads: int = 0
-
-    def __post_init__(self) -> None:
-        for name in ("dim", "window", "min_count", "negative", "ann_m"):
-            if int(getattr(self, name)) < 1:
-                raise ValueError(f"vector setting {name} must be at least 1")
-        if int(self.epochs) < 0:
-            raise ValueError("vector setting epochs must be 0 (from the corpus's size) or more")
-        if int(self.threads) < 0:
-            raise ValueError("vector setting threads must be 0 (up to 4 cores) or more")
-        if self.dtype not in ("float32", "float16"):
-            raise ValueError(f"vector dtype must be float32 or float16, got {self.dtype!r}")
-        if self.ann_min_articles < 1 or self.ann_ef_search < 1 or self.ann_ef_construction < 1:
-            raise ValueError("ANN settings must be at least 1")
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain-JSON form."""
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, data: dict[str, Any]) -> VectorSettings:
-        """Settings written by `to_dict`, rejecting unknown keys."""
-        unknown = set(data) - set(cls.__dataclass_fields__)
-        if unknown:
-            raise ValueError(f"unknown vector settings: {sorted(unknown)}")
-        return cls(**data)
-
-
-def epochs_for_tokens(tokens: int) -> int:
-    """Training epochs for a corpus of `tokens` analyzed tokens: about `TOKEN_PASSES` token
-    passes in all, at least `MIN_EPOCHS` and at most `MAX_EPOCHS`. Small corpora need more
-    passes than word2vec's usual 5 (measured on FOLDOC, see `TOKEN_PASSES`)."""
-    return max(MIN_EPOCHS, min(MAX_EPOCHS, round(TOKEN_PASSES / max(tokens, 1))))
-
-
-class Trained(NamedTuple):
-    """Word vectors as trained: the words, their float32 vectors, and the settings used
-    (with the number of epochs filled in)."""
-
-    words: list[str]
-    wordvec: np.ndarray
-    settings: VectorSettings
-
-
-def resolve_settings(value: Any) -> VectorSettings | None:
-    """The `vectors` build option: True/None (defaults), False/'off' (none), a dict or settings."""
-    if value is None or value is True or value == "on":
-        return VectorSettings()
-    if value is False or value == "off":
-        return None
-    if isinstance(value, VectorSettings):
-        return value
-    if isinstance(value, dict):
-        return VectorSettings.from_dict(value)
-    raise TypeError(
-        f"vectors must be True, False, 'on', 'off', a dict or VectorSettings: {value!r}"
-    )
-
-
-def article_lines(folder: Path, n_docs: int, analyzer: Analyzer) -> Iterator[str]:
-    """Each stored article's analyzed title and text as space-separated lines."""
-    reader = store.StoreReader(folder, n_docs)
-    batch: list[str] = []
-    for row in range(n_docs):
-        art = reader.article(row)
-        batch.append(f"{art.title}\n{art.text}")
-        if len(batch) == 512 or row == n_docs - 1:
-            for tokens in analyzer.tokens_many(batch):
-                for s in range(0, max(len(tokens), 1), _MAX_LINE_TOKENS):
-                    yield " ".join(tokens[s : s + _MAX_LINE_TOKENS])
-            batch = []
-
-
-def train(
-    folder: Path,
-    n_docs: int,
-    analyzer: Analyzer,
-    settings: VectorSettings,
-    progress: bool,
-    extra: Iterable[str] = (),
-) -> Trained:
-    """Train word vectors on the articles stored in `folder`, and on the `extra` lines of
-    analyzed tokens (space-separated) after them."""
-    lines = itertools.chain(article_lines(folder, n_docs, analyzer), extra)
-    return train_lines(lines, folder / ".vector-training.txt", settings, progress)
-
-
-def train_lines(
-    lines: Iterable[str],
-    line_file: Path,
-    settings: VectorSettings,
-    progress: bool,
-) -> Trained:
-    """Train word vectors on analyzed lines (streamed to `line_file`, removed after). With
-    `settings.epochs` 0 the epochs follow the lines' token count (`epochs_for_tokens`)."""
-    from gensim.models import Word2Vec  # imported here: gensim takes a second to import
-    from gensim.models.callbacks import CallbackAny2Vec
-
-    tokens = 0
-    with open(line_file, "w", encoding="utf-8") as fh:
-        for line in lines:
-            fh.write(line + "\n")
-            tokens += line.count(" ") + 1 if line else 0
-    if settings.epochs == 0:
-        settings = replace(settings, epochs=epochs_for_tokens(tokens))
-    bar = tqdm(total=settings.epochs, desc="word vectors", unit=" epochs", disable=not progress)
-
-    class _Epochs(CallbackAny2Vec):
-        def on_epoch_end(self, model: Any) -> None:
-            bar.update(1)
-
-    try:
-        model = Word2Vec(
-            corpus_file=str(line_file),
-            vector_size=settings.dim,
-            window=settings.window,
-            min_count=settings.min_count,
-            negative=settings.negative,
-            sample=settings.sample,
-            sg=1,
-            epochs=settings.epochs,
-            seed=settings.seed,
-            workers=settings.threads or min(cores(), 4),
-            callbacks=[_Epochs()],
-        )
-    except RuntimeError as exc:  # gensim: "you must first build vocabulary before training"
-        if "vocabulary" not in str(exc):
-            raise
-        return Trained([], np.zeros((0, settings.dim), dtype=np.float32), settings)
-    finally:
-        bar.close()
-        line_file.unlink(missing_ok=True)
-    words = [str(w) for w in model.wv.index_to_key]
-    return Trained(words, np.ascontiguousarray(model.wv.vectors, dtype=np.float32), settings)
 
 
 def body_counts(folder: Path, manifest: dict[str, Any]) -> sp.csr_matrix:
@@ -343,61 +214,3 @@ def idf_weights(df_term: np.ndarray, rows: np.ndarray, n_words: int, n_docs: int
     has = rows >= 0
     df[rows[has]] = np.asarray(df_term, dtype=np.float64)[has]
     return np.log1p((n_docs - df + 0.5) / (df + 0.5)).astype(np.float32)
-
-
-def open_matrix(folder: Path, name: str, dtype: str, rows: int, dim: int) -> np.ndarray:
-    """Memory-map a 2-d `name.npy` read-only, checking its type and shape."""
-    path = folder / f"{name}.npy"
-    try:
-        arr = np.load(path, mmap_mode="r", allow_pickle=False)
-    except FileNotFoundError as exc:
-        raise IndexFormatError(f"{folder}: {path.name} is missing; rebuild the index") from exc
-    except (ValueError, OSError, EOFError) as exc:
-        raise IndexFormatError(f"{folder}: {path.name} is corrupt ({exc}); rebuild") from exc
-    if arr.dtype != np.dtype(dtype) or arr.shape != (rows, dim):
-        raise IndexFormatError(
-            f"{folder}: {path.name} holds {arr.dtype} of shape {arr.shape}, expected {dtype} "
-            f"of shape ({rows}, {dim}); the index is damaged, rebuild it"
-        )
-    return np.asarray(arr)
-
-
-class DenseVectors:
-    """The stored word and article vectors of an index, memory-mapped."""
-
-    def __init__(self, folder: Path, entry: dict[str, Any], n_docs: int, n_terms: int) -> None:
-        self.folder = folder
-        self.settings = VectorSettings.from_dict(entry["settings"])
-        dim, n_words = self.settings.dim, int(entry["words"])
-        self.n_words = n_words
-        self.wordvec = open_matrix(folder, WORDVEC, "float32", n_words, dim)
-        self.weight = store.open_array(folder, WORDVEC_WEIGHT, "float32", n_words)
-        self.termvec_row = store.open_array(folder, TERMVEC_ROW, "int32", n_terms)
-        self.docvec = open_matrix(folder, DOCVEC, self.settings.dtype, n_docs, dim)
-        self.ann_info: dict[str, Any] | None = entry.get("ann")
-
-    @classmethod
-    def open(cls, folder: Path, manifest: dict[str, Any]) -> DenseVectors | None:
-        """The vectors of an index folder, or None for an index built without them."""
-        entry = manifest.get("vectors")
-        if not entry:
-            return None
-        counts = manifest["counts"]
-        return cls(folder, entry, int(counts["articles"]), int(counts["terms"]))
-
-    def words(self) -> list[str]:
-        """The words that have vectors, in row order."""
-        return list(columns.StringColumn(self.folder, WORDVEC_TERMS, self.n_words))
-
-    def query_vector(self, term_ids: np.ndarray, qtf: np.ndarray) -> np.ndarray | None:
-        """Unit-length vector of a clue given as known index term ids and their counts;
-        None when none of its words has a vector."""
-        rows = self.termvec_row[term_ids]
-        has = rows >= 0
-        if not has.any():
-            return None
-        r = rows[has]
-        w = (qtf[has] * self.weight[r]).astype(np.float32)
-        vec = w @ self.wordvec[r]
-        norm = float(np.linalg.norm(vec))
-        return (vec / norm).astype(np.float32) if norm > 0 else None

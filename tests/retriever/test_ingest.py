@@ -145,7 +145,7 @@ _JSON_EDGES = [
 @pytest.mark.parametrize("line", _JSON_EDGES)
 def test_lines_parse_as_python_json_parses_them(line: bytes) -> None:
     # Reference: Python's standard json module, which the reader (read_articles) uses.
-    from retriever.ingest import _loads
+    from retriever.recordjson import _loads
 
     expected = json.loads(line.decode("utf-8"))
     got = _loads(line)
@@ -155,7 +155,7 @@ def test_lines_parse_as_python_json_parses_them(line: bytes) -> None:
 
 @pytest.mark.parametrize("line", [b'{"id": "a"', b'{"id": "\xff"}', b"\xef\xbb\xbf{}", b"[1,]"])
 def test_bad_lines_give_python_json_errors(line: bytes) -> None:
-    from retriever.ingest import _json_loads, _loads
+    from retriever.recordjson import _json_loads, _loads
 
     with pytest.raises(ValueError) as fast:
         _loads(line)
