@@ -8,6 +8,7 @@ them all. Without that variable (one process, tests) each app keeps its own regi
 
 from __future__ import annotations
 
+import functools
 import os
 import time
 
@@ -57,11 +58,11 @@ class Metrics:
 
     def __init__(self) -> None:
         self.registry = CollectorRegistry()
-        self.requests = Counter(
+        counter = functools.partial(Counter, registry=self.registry)
+        self.requests = counter(
             "hunchwise_http_requests",
             "HTTP requests answered, by endpoint, method and status",
             ["endpoint", "method", "status"],
-            registry=self.registry,
         )
         self.latency = Histogram(
             "hunchwise_http_request_duration_seconds",
@@ -70,28 +71,18 @@ class Metrics:
             buckets=BUCKETS,
             registry=self.registry,
         )
-        self.clues = Counter(
-            "hunchwise_clues_ranked",
-            "Clues ranked (batch requests count each clue)",
-            ["ranked_by"],
-            registry=self.registry,
+        self.clues = counter(
+            "hunchwise_clues_ranked", "Clues ranked (batch requests count each clue)", ["ranked_by"]
         )
-        self.log_failures = Counter(
+        self.log_failures = counter(
             "hunchwise_served_log_write_failures",
             "Appends to the served log that failed (the reply was served all the same)",
-            registry=self.registry,
         )
-        self.decisions = Counter(
-            "hunchwise_decisions",
-            "Decisions returned, by action",
-            ["action"],
-            registry=self.registry,
-        )
-        self.reloads = Counter(
+        self.decisions = counter("hunchwise_decisions", "Decisions returned, by action", ["action"])
+        self.reloads = counter(
             "hunchwise_reloads",
             "Index/model swaps in this worker, by cause and outcome",
             ["cause", "outcome"],
-            registry=self.registry,
         )
 
     @staticmethod

@@ -205,19 +205,9 @@ def feedback(body: s.FeedbackRequest, runtime: RuntimeDep) -> s.FeedbackResponse
 
 
 def _entry(runtime: Runtime, doc_id: str) -> s.EntryOut:
-    d = runtime.serving.current.index.document(doc_id)
-    return s.EntryOut(
-        id=d.id,
-        title=d.title,
-        base=d.base,
-        qualifier=d.qualifier,
-        text=d.text,
-        links=list(d.links),
-        aliases=list(d.aliases),
-        popularity=d.popularity,
-        inlinks=d.inlinks,
-        metadata=d.metadata,
-    )
+    # The reply's fields are the Document's (its row aside), read by name.
+    document = runtime.serving.current.index.document(doc_id)
+    return s.EntryOut.model_validate(document, from_attributes=True)
 
 
 @router.get(

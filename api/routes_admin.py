@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import logging
 import traceback
@@ -26,14 +27,7 @@ log = logging.getLogger("hunchwise.serve")
 
 
 def _change(c: Change, runtime: Runtime) -> s.ChangeOut:
-    return s.ChangeOut(
-        generation=c.generation,
-        index_version=c.index_version,
-        model_version=c.model_version,
-        previous_index_version=c.previous_index_version,
-        previous_model_version=c.previous_model_version,
-        articles=runtime.serving.current.index.n_docs,
-    )
+    return s.ChangeOut(**dataclasses.asdict(c), articles=runtime.serving.current.index.n_docs)
 
 
 def _not_applied(runtime: Runtime, what: str, exc: Exception) -> HTTPException:

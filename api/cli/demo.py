@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from .options import add_ablation_option
+from .options import add_ablation_option, add_port_option
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -26,9 +26,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="folder for the index, model, report and served log (default ./hunchwise-demo)",
     )
     p.add_argument("--no-serve", action="store_true", help="stop after the evaluation report")
-    p.add_argument(
-        "--port", type=int, default=8000, help="port for the service (default 8000; 0: any free)"
-    )
+    add_port_option(p, " for the service")
     p.add_argument(
         "--articles",
         type=int,

@@ -19,9 +19,9 @@ from .options import (
     add_prefix_options,
     add_ray_option,
     add_reporting_options,
+    add_share_option,
     at_least_zero,
     byte_size,
-    unit_share,
 )
 
 
@@ -41,12 +41,10 @@ def _common(p: argparse.ArgumentParser) -> None:
         "--reward", type=float, default=None, help="payoff of a right answer (default 1)"
     )
     p.add_argument("--penalty", type=float, default=None, help="cost of a wrong answer (default 1)")
-    p.add_argument(
+    add_share_option(
+        p,
         "--reward-fall",
-        type=unit_share,
-        default=None,
-        metavar="SHARE",
-        help="share of the reward lost by waiting for the whole clue, 0-1: a right answer after "
+        "share of the reward lost by waiting for the whole clue, 0-1: a right answer after "
         "share s of the clue earns reward * (1 - SHARE * s) (default 0)",
     )
     p.add_argument(
@@ -101,12 +99,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         default="auto",
         help="post-hoc calibration on held-out folds; auto keeps it only if log-loss improves",
     )
-    p.add_argument(
+    add_share_option(
+        p,
         "--abstain-if-none",
-        type=unit_share,
-        default=None,
-        metavar="SHARE",
-        help="on a complete clue, abstain when the 'none of these' share is at least SHARE, 0-1 "
+        "on a complete clue, abstain when the 'none of these' share is at least SHARE, 0-1 "
         "(default: never)",
     )
     p.add_argument(

@@ -72,6 +72,24 @@ def add_prefix_options(p: argparse.ArgumentParser, help: str) -> None:
     )
 
 
+def add_share_option(p: argparse.ArgumentParser, flag: str, help: str) -> None:
+    """`flag` SHARE: a number from 0 to 1, None when not given."""
+    p.add_argument(flag, type=unit_share, default=None, metavar="SHARE", help=help)
+
+
+DEFAULT_PORT = 8000
+
+
+def add_port_option(p: argparse.ArgumentParser, what: str = "") -> None:
+    """--port: the service's port (`what` after the word in the help), 0 for any free one."""
+    p.add_argument(
+        "--port",
+        type=int,
+        default=DEFAULT_PORT,
+        help=f"port{what} (default {DEFAULT_PORT}; 0: any free port)",
+    )
+
+
 def add_ablation_option(p: argparse.ArgumentParser) -> None:
     """--no-ablation: skip refitting the model without each feature group."""
     p.add_argument("--no-ablation", action="store_true", help="skip the feature ablation (faster)")

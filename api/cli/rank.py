@@ -16,7 +16,7 @@ from .options import (
     add_index_option,
     add_model_option,
     add_ray_option,
-    unit_share,
+    add_share_option,
 )
 from .records import ClueIn, json_line, output_format, read_clues, write_rows
 
@@ -54,12 +54,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         "(default: stdout, JSON Lines)",
     )
     p.add_argument("-k", type=int, default=None, help="candidates per clue (default: the model's)")
-    p.add_argument(
+    add_share_option(
+        p,
         "--revealed",
-        type=unit_share,
-        default=None,
-        metavar="SHARE",
-        help="share of each whole clue the text is, 0-1: picks the model's threshold for it",
+        "share of each whole clue the text is, 0-1: picks the model's threshold for it",
     )
     p.add_argument(
         "--complete", action="store_true", help="the clues are finished (abstaining is allowed)"

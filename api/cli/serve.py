@@ -21,7 +21,7 @@ from multiprocessing.connection import Connection
 from pathlib import Path
 
 from ..parentwatch import PARENT_ENV
-from .options import add_feature_option
+from .options import add_feature_option, add_port_option
 
 ENV_PREFIX = "HUNCHWISE_"
 STARTUP_FAILURE_NOTE = "worker-failed.txt"  # as api.app writes it (not imported: it is heavy)
@@ -44,7 +44,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         "--model", type=Path, help="reranker model file (without one: BM25 order, no probabilities)"
     )
     p.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1)")
-    p.add_argument("--port", type=int, default=8000, help="port (default 8000; 0: any free port)")
+    add_port_option(p)
     p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
     p.add_argument("--log-dir", type=Path, help="folder of the served log served.jsonl")
     add_feature_option(p, "user feature function the model was trained with (repeatable)")

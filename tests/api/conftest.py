@@ -117,3 +117,18 @@ def client(
     """A client of an app serving the session index and model, with a served log."""
     with make_client() as c:
         yield c
+
+
+@pytest.fixture(scope="module")
+def ray_address() -> Iterator[str]:
+    """A local Ray cluster for the module asking for it; its address, as `ray start --head`
+    prints it (the Ray Serve tests, which skip where Ray is not installed).
+
+    Four logical CPUs on any machine: each deployment replica asks for one (three shards
+    and the front), whatever the cores underneath.
+    """
+    import ray
+
+    ray.init(num_cpus=4, include_dashboard=False, log_to_driver=False)
+    yield str(ray.get_runtime_context().gcs_address)
+    ray.shutdown()

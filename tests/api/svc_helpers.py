@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 import httpx
+import pytest
 from starlette.exceptions import StarletteDeprecationWarning
 
 with warnings.catch_warnings():
@@ -38,6 +39,40 @@ def admin_headers(token: str = ADMIN_TOKEN) -> dict[str, str]:
 def read_jsonl(path: Path) -> list[dict[str, Any]]:
     """Every line of a JSON-lines file, parsed (fails on any broken line)."""
     return [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines()]
+
+
+def replies_ok(
+    server: Server, requests: Sequence[tuple[str, str, dict[str, Any] | None]]
+) -> list[dict[str, Any]]:
+    """Send each (method, path, JSON body or None) to `server` in order on one connection;
+    every reply must be a 200. Their JSON bodies."""
+    with httpx.Client(base_url=server.url, timeout=60) as c:
+        replies = [c.request(method, path, json=body) for method, path, body in requests]
+    assert all(r.status_code == 200 for r in replies), [r.text for r in replies[:3]]
+    return [r.json() for r in replies]
+
+
+def same_rankings(
+    labels: Sequence[object],
+    expected: Sequence[dict[str, Any]],
+    got: Sequence[dict[str, Any]],
+    *,
+    features: bool = False,
+) -> int:
+    """Assert that each rank reply in `got` ranks as the one in `expected` (the same
+    candidates in order, scores, probabilities to 1e-12, decision; with `features`, the same
+    features too); `labels` name the replies in a failure. How many candidates it compared."""
+    compared = 0
+    for label, want, have in zip(labels, expected, got, strict=True):
+        assert [c["id"] for c in have["candidates"]] == [c["id"] for c in want["candidates"]], label
+        for cw, ch in zip(want["candidates"], have["candidates"], strict=True):
+            assert ch["score"] == cw["score"], (label, cw["id"])
+            assert ch["probability"] == pytest.approx(cw["probability"], abs=1e-12, rel=0)
+            if features:
+                assert ch["features"] == cw["features"], (label, cw["id"])
+            compared += 1
+        assert have["decision"] == want["decision"], label
+    return compared
 
 
 def free_port() -> int:
@@ -147,6 +182,20 @@ def serve(
         yield server
     finally:
         stop(server)
+
+
+@contextlib.contextmanager
+def serving_client(
+    index_dir: Path, model_path: Path, logs: Path, workdir: Path, **options: Any
+) -> Iterator[httpx.Client]:
+    """One kept-alive client of `hunchwise serve` on an index and a model, its served log in
+    `logs` (`options` as `serve` takes them: workers, env, ...)."""
+    args = serve_args(index_dir, model_path, logs)
+    with (
+        serve(args, workdir, **options) as server,
+        httpx.Client(base_url=server.url, timeout=30) as client,
+    ):
+        yield client
 
 
 def stop(server: Server, timeout: float = 30) -> int:

@@ -8,10 +8,9 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-import httpx
 import pytest
 
-from tests.api.svc_helpers import TestClient, read_jsonl, serve, serve_args
+from tests.api.svc_helpers import TestClient, read_jsonl, serving_client
 
 N_CLUES = 6  # live-server requests: N_CLUES * model k singles + model k batches
 
@@ -32,8 +31,7 @@ def test_live_service_gives_the_same_probabilities_at_every_k(
     model_k = _model_k(model_path)
     clues = [q["clue"] for q in test_questions[:N_CLUES]]
     logs = tmp_path / "logs"
-    args = serve_args(index_dir, model_path, logs)
-    with serve(args, tmp_path) as server, httpx.Client(base_url=server.url, timeout=30) as c:
+    with serving_client(index_dir, model_path, logs, tmp_path) as c:
         full = []
         for clue in clues:
             r = c.post("/v1/rank", json={"clue": clue, "k": model_k})

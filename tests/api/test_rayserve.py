@@ -12,7 +12,6 @@ import json
 import shutil
 import subprocess
 import sys
-from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -22,27 +21,15 @@ import pytest
 from reranker.training import train
 from retriever import load_index
 from retriever.shards import build_sharded
-from tests.api.svc_helpers import Server, read_jsonl, serve
+from tests.api.svc_helpers import Server, read_jsonl, replies_ok, same_rankings, serve
 
-ray = pytest.importorskip("ray", reason="Ray is not installed (pip install '.[cluster]')")
+pytest.importorskip("ray", reason="Ray is not installed (pip install '.[cluster]')")
 pytest.importorskip("ray.serve", reason="Ray Serve is not installed (pip install '.[cluster]')")
 
 pytestmark = [pytest.mark.slow, pytest.mark.server]
 
 N_CLUES = 60
 K = 20
-
-
-@pytest.fixture(scope="module")
-def ray_address() -> Iterator[str]:
-    """A local Ray cluster for the module; its address, as `ray start --head` prints it.
-
-    Four logical CPUs on any machine: each deployment replica asks for one (three shards
-    and the front), whatever the cores underneath.
-    """
-    ray.init(num_cpus=4, include_dashboard=False, log_to_driver=False)
-    yield str(ray.get_runtime_context().gcs_address)
-    ray.shutdown()
 
 
 @pytest.fixture(scope="module")
@@ -68,17 +55,11 @@ def clues(demo: dict[str, Path]) -> list[str]:
 
 
 def rank_all(server: Server, texts: list[str]) -> list[dict[str, Any]]:
-    with httpx.Client(base_url=server.url, timeout=60) as c:
-        replies = [c.post("/v1/rank", json={"clue": t, "k": K}) for t in texts]
-    assert all(r.status_code == 200 for r in replies), [r.text for r in replies[:3]]
-    return [r.json() for r in replies]
+    return replies_ok(server, [("POST", "/v1/rank", {"clue": t, "k": K}) for t in texts])
 
 
 def entries(server: Server, ids: list[str]) -> list[dict[str, Any]]:
-    with httpx.Client(base_url=server.url, timeout=60) as c:
-        replies = [c.get(f"/v1/entries/{i}") for i in ids]
-    assert all(r.status_code == 200 for r in replies), [r.text for r in replies[:3]]
-    return [r.json() for r in replies]
+    return replies_ok(server, [("GET", f"/v1/entries/{i}", None) for i in ids])
 
 
 def test_sharded_serving_answers_as_one_index_logs_and_takes_feedback(
@@ -116,14 +97,7 @@ def test_sharded_serving_answers_as_one_index_logs_and_takes_feedback(
     assert got_entries == expected_entries
     assert made_up.status_code == 404  # request ids are still signed
 
-    compared = 0
-    for text, want, have in zip(texts, expected, got, strict=True):
-        assert [c["id"] for c in have["candidates"]] == [c["id"] for c in want["candidates"]], text
-        for cw, ch in zip(want["candidates"], have["candidates"], strict=True):
-            assert ch["score"] == cw["score"], (text, cw["id"])
-            assert ch["probability"] == pytest.approx(cw["probability"], abs=1e-12, rel=0)
-            compared += 1
-        assert have["decision"] == want["decision"], text
+    compared = same_rankings(texts, expected, got)
     assert compared > N_CLUES  # most clues have several candidates
 
     served = read_jsonl(logs / "served.jsonl")

@@ -16,7 +16,6 @@ import threading
 import time
 from pathlib import Path
 
-import httpx
 import pytest
 
 from api.servedlog import ServedLog
@@ -25,7 +24,7 @@ from reranker import LabelledLogError
 from reranker.servedrecords import FEEDBACK, SERVED
 from reranker.training import read_logs
 from reranker.training.logs import LogReport
-from tests.api.svc_helpers import read_jsonl, serve, serve_args
+from tests.api.svc_helpers import read_jsonl, serving_client
 
 
 def test_a_failed_reopen_never_closes_a_descriptor_it_does_not_own(tmp_path: Path) -> None:
@@ -157,11 +156,7 @@ def test_ranking_goes_on_when_the_log_cannot_be_written(
     index_dir: Path, model_path: Path, tmp_path: Path
 ) -> None:
     logs = tmp_path / "logs"
-    args = serve_args(index_dir, model_path, logs)
-    with (
-        serve(args, tmp_path, workers=2) as server,
-        httpx.Client(base_url=server.url, timeout=30) as c,
-    ):
+    with serving_client(index_dir, model_path, logs, tmp_path, workers=2) as c:
         body = {"clue": "This island exports pearls", "k": 3}
         assert c.post("/v1/rank", json=body).status_code == 200
         (logs / SERVED).unlink()
@@ -197,12 +192,8 @@ def test_feedback_token_and_logged_features_are_opt_in(
     index_dir: Path, model_path: Path, tmp_path: Path
 ) -> None:
     logs = tmp_path / "logs"
-    args = serve_args(index_dir, model_path, logs)
     env = {"HUNCHWISE_FEEDBACK_TOKEN": "label-key", "HUNCHWISE_LOG_FEATURES": "true"}
-    with (
-        serve(args, tmp_path, env=env) as server,
-        httpx.Client(base_url=server.url, timeout=30) as c,
-    ):
+    with serving_client(index_dir, model_path, logs, tmp_path, env=env) as c:
         rid = c.post("/v1/rank", json={"clue": "a river town", "k": 2}).json()["request_id"]
         body = {"request_id": rid, "answer": None}
         assert c.post("/v1/feedback", json=body).status_code == 401

@@ -9,6 +9,7 @@ import math
 import shutil
 import subprocess
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -27,6 +28,34 @@ def run(*args: str | Path) -> subprocess.CompletedProcess[str]:
     """Run the installed `hunchwise` script."""
     assert EXE is not None, "the hunchwise console script is not installed (pip install -e .)"
     return subprocess.run([EXE, *map(str, args)], capture_output=True, text=True, timeout=300)
+
+
+@dataclass(frozen=True)
+class DemoService:
+    """The demo's index folder, model file and held-out questions, and clients of the
+    service serving that index and model: what `hunchwise rank` is compared against."""
+
+    index: Path
+    model: Path
+    questions: list[dict[str, Any]]
+    client: Callable[..., contextlib.AbstractContextManager[TestClient]]
+
+
+@pytest.fixture
+def demo_service(
+    index_dir: Path,
+    model_path: Path,
+    test_questions: list[dict[str, Any]],
+    make_client: Callable[..., contextlib.AbstractContextManager[TestClient]],
+) -> DemoService:
+    return DemoService(index_dir, model_path, test_questions, make_client)
+
+
+def clue_file(folder: Path, questions: list[dict[str, Any]], *fields: str) -> Path:
+    """clues.jsonl in `folder`: these `fields` of each question, one JSON object a line."""
+    path = folder / "clues.jsonl"
+    path.write_text("".join(json.dumps({f: q[f] for f in fields}) + "\n" for q in questions))
+    return path
 
 
 def read_jsonl(path: Path) -> list[dict[str, Any]]:
@@ -58,26 +87,17 @@ def check_explanation(cand: dict[str, Any]) -> None:
 
 @pytest.mark.slow
 def test_rank_file_gives_the_services_probabilities(
-    index_dir: Path,
-    model_path: Path,
-    test_questions: list[dict[str, Any]],
-    make_client: Callable[..., contextlib.AbstractContextManager[TestClient]],
-    tmp_path: Path,
+    demo_service: DemoService, tmp_path: Path
 ) -> None:
-    qs = test_questions[:N_CLUES]
-    jsonl = tmp_path / "clues.jsonl"
-    jsonl.write_text(
-        "".join(
-            json.dumps({"id": q["id"], "clue": q["clue"], "metadata": q["metadata"]}) + "\n"
-            for q in qs
-        )
-    )
+    qs = demo_service.questions[:N_CLUES]
+    jsonl = clue_file(tmp_path, qs, "id", "clue", "metadata")
     table = tmp_path / "clues.csv"
     with open(table, "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh)
         w.writerow(["id", "clue", "metadata"])
         w.writerows([q["id"], q["clue"], json.dumps(q["metadata"])] for q in qs)
-    common = ["--index", index_dir, "--model", model_path, "-k", "5", "--revealed", "0.6"]
+    common = ["--index", demo_service.index, "--model", demo_service.model, "-k", "5"]
+    common += ["--revealed", "0.6"]
     out = tmp_path / "ranked.jsonl"
     res = run("rank", *common, "--input", jsonl, "--output", out, "--explain")
     assert res.returncode == 0, res.stderr
@@ -90,7 +110,7 @@ def test_rank_file_gives_the_services_probabilities(
     assert res.returncode == 0, res.stderr
     assert read_jsonl(from_csv) == ranked
 
-    with make_client() as client:
+    with demo_service.client() as client:
         for q, mine in zip(qs, ranked, strict=True):
             body = {"clue": q["clue"], "metadata": q["metadata"], "k": 5, "revealed": 0.6}
             r = client.post("/v1/rank", json={**body, "explain": True, "include_features": True})

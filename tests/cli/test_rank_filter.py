@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import contextlib
 import json
-from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -13,32 +11,33 @@ import pytest
 from retriever import build_index, load_index
 from retriever.snippets import MAX_CHARS
 from tests.api.conftest import demo, index_dir, make_client, model_path, test_questions
-from tests.api.svc_helpers import TestClient
-from tests.cli.test_rank import run
+from tests.cli.test_rank import DemoService, clue_file, demo_service, run
 
-__all__ = ["demo", "index_dir", "make_client", "model_path", "test_questions"]  # fixtures
+__all__ = [  # fixtures
+    "demo",
+    "demo_service",
+    "index_dir",
+    "make_client",
+    "model_path",
+    "test_questions",
+]
 
 SPEC = {"kind": {"in": ["town", "river", "island", "mountain"]}}
 
 
 @pytest.mark.slow
 def test_rank_with_a_filter_gives_the_services_probabilities(
-    index_dir: Path,
-    model_path: Path,
-    test_questions: list[dict[str, Any]],
-    make_client: Callable[..., contextlib.AbstractContextManager[TestClient]],
-    tmp_path: Path,
+    demo_service: DemoService, tmp_path: Path
 ) -> None:
-    qs = test_questions[:5]
-    clues = tmp_path / "clues.jsonl"
-    clues.write_text("".join(json.dumps({"id": q["id"], "clue": q["clue"]}) + "\n" for q in qs))
+    qs = demo_service.questions[:5]
     out = tmp_path / "ranked.jsonl"
-    res = run("rank", "--index", index_dir, "--model", model_path, "--input", clues,
-              "--output", out, "--filter", json.dumps(SPEC), "--snippet")  # fmt: skip
+    res = run("rank", "--index", demo_service.index, "--model", demo_service.model,
+              "--input", clue_file(tmp_path, qs, "id", "clue"), "--output", out,
+              "--filter", json.dumps(SPEC), "--snippet")  # fmt: skip
     assert res.returncode == 0, res.stderr
     ranked = [json.loads(line) for line in out.read_text().splitlines()]
-    idx = load_index(index_dir)
-    with make_client() as client:
+    idx = load_index(demo_service.index)
+    with demo_service.client() as client:
         for q, mine in zip(qs, ranked, strict=True):
             body = {"clue": q["clue"], "filter": SPEC, "snippet": True}
             served = client.post("/v1/rank", json=body).json()

@@ -6,7 +6,7 @@ import csv
 import gzip
 import json
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import pytest
 
@@ -89,18 +89,26 @@ BAD_LINES = [
 ]
 
 
-def corpus_with_bad_line(folder: Path, line: str) -> Path:
-    """A corpus file of one good article then `line` (so the bad line is line 2)."""
-    path = folder / "bad.jsonl"
+class BadCorpus(NamedTuple):
+    """A corpus file whose line 2 is bad, and what its error names."""
+
+    path: Path
+    lineno: int
+    field: str | None
+    reason: str
+
+
+@pytest.fixture(params=BAD_LINES, ids=[reason for *_, reason in BAD_LINES])
+def bad_corpus(request: pytest.FixtureRequest, tmp_path: Path) -> BadCorpus:
+    """One good article then one of BAD_LINES (so the bad line is line 2)."""
+    line, lineno, field, reason = request.param
+    path = tmp_path / "bad.jsonl"
     path.write_text('{"id": "a1", "title": "First", "text": "ok"}\n' + line + "\n")
-    return path
+    return BadCorpus(path, lineno, field, reason)
 
 
-@pytest.mark.parametrize(("line", "lineno", "field", "reason"), BAD_LINES)
-def test_bad_lines_name_file_line_and_field(
-    tmp_path: Path, line: str, lineno: int, field: str | None, reason: str
-) -> None:
-    path = corpus_with_bad_line(tmp_path, line)
+def test_bad_lines_name_file_line_and_field(bad_corpus: BadCorpus) -> None:
+    path, lineno, field, reason = bad_corpus
     with pytest.raises(CorpusError) as err:
         list(read_articles(path))
     msg = str(err.value)

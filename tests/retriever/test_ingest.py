@@ -13,14 +13,15 @@ from retriever import CorpusError, ReadReport, build_index, read_articles
 from retriever.counting import CHUNK
 
 from .foldoc import synthetic_articles
-from .test_corpus import BAD_LINES, corpus_with_bad_line
+from .test_corpus import BadCorpus, bad_corpus
+
+__all__ = ["bad_corpus"]  # a fixture
 
 
-@pytest.mark.parametrize(("line", "lineno", "field", "reason"), BAD_LINES)
 def test_build_fails_with_the_same_error_as_the_reader(
-    tmp_path: Path, line: str, lineno: int, field: str | None, reason: str
+    bad_corpus: BadCorpus, tmp_path: Path
 ) -> None:
-    path = corpus_with_bad_line(tmp_path, line)
+    path, lineno, field, _ = bad_corpus
     with pytest.raises(CorpusError) as read_err:
         list(read_articles(path))
     with pytest.raises(CorpusError) as build_err:

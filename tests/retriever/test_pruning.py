@@ -33,6 +33,18 @@ def run(idx: Index, queries: list[list[str]], k: int, prune: bool | None) -> tup
     return [(r.tolist(), s.tolist()) for r, s in out], work.tolist()
 
 
+def synthetic_index(
+    folder: Path, n: int, seed: int, *, clue_seed: int, every: int
+) -> tuple[Index, list[str]]:
+    """An index of `n` synthetic articles over FOLDOC's words (the benchmark's corpus shape),
+    and a clue from every `every`-th article."""
+    words = foldoc_words()[:80_000]
+    records = list(synthetic_articles(n, seed=seed, words=words))
+    idx = build_index(records, folder)
+    rng = random.Random(clue_seed)
+    return idx, [clue_from(records[i]["text"], rng, words) for i in range(0, n, every)]
+
+
 def same_everywhere(idx: Index, queries: list[list[str]], k: int) -> list[tuple[int, int]]:
     """Pruned, exhaustive and numpy results must be identical; returns (pruned, all) work."""
     pruned, w_pruned = run(idx, queries, k, True)
@@ -98,11 +110,7 @@ def test_pruning_skips_postings_and_keeps_the_result(tmp_path: Path) -> None:
 @needs_kernel
 def test_benchmark_queries_pruned_equal_exhaustive(tmp_path: Path) -> None:
     # The benchmark's corpus and clue shape (tests/benchmarks/bench_retrieval.py), smaller.
-    words = foldoc_words()[:80_000]
-    records = list(synthetic_articles(3000, seed=11, words=words))
-    idx = build_index(records, tmp_path / "idx")
-    rng = random.Random(4)
-    clues = [clue_from(records[i]["text"], rng, words) for i in range(0, 3000, 60)]
+    idx, clues = synthetic_index(tmp_path / "idx", 3000, 11, clue_seed=4, every=60)
     token_lists = [idx.analyzer.tokens(c) for c in clues]
     for k in (1, 10, 50):
         same_everywhere(idx, token_lists, k)
@@ -168,11 +176,7 @@ def test_kernel_rejects_bounds_that_do_not_match(tmp_path: Path) -> None:
 
 
 def test_search_many_and_threads_give_the_same_hits(tmp_path: Path) -> None:
-    words = foldoc_words()[:80_000]
-    records = list(synthetic_articles(600, seed=5, words=words))
-    idx = build_index(records, tmp_path / "idx")
-    rng = random.Random(6)
-    clues = [clue_from(records[i]["text"], rng, words) for i in range(0, 600, 3)]
+    idx, clues = synthetic_index(tmp_path / "idx", 600, 5, clue_seed=6, every=3)
     one = idx.search_many(clues, 10, threads=1)
     two = idx.search_many(clues, 10, threads=2)
     assert json.dumps([[h.row for h in hs] for hs in one]) == json.dumps(
