@@ -210,8 +210,9 @@ def check_files(settings: ServiceSettings) -> str:
     )
 
 
-def deployment(settings: ServiceSettings, shard_replicas: int) -> Any:
-    """The Serve application: one `ShardSearcher` per shard folder, `Front` over them."""
+def deployment(settings: ServiceSettings, shard_replicas: int, front_replicas: int = 1) -> Any:
+    """The Serve application: one `ShardSearcher` per shard folder, `Front` over them
+    (`front_replicas` copies of it: the proxy spreads the requests among them)."""
     manifest = read_manifest(settings.index_dir)
     sha = str(manifest.get("stats", {}).get("sha256"))
     handles: list[Any] = [
@@ -220,16 +221,43 @@ def deployment(settings: ServiceSettings, shard_replicas: int) -> Any:
         .bind(str(settings.index_dir / str(entry["folder"])), int(entry["first_row"]), sha)
         for i, entry in enumerate(manifest["shards"])
     ]
-    return cast(Any, Front).options(name="front").bind(settings, handles)
+    front = cast(Any, Front).options(name="front", num_replicas=front_replicas)
+    return front.bind(settings, handles)
+
+
+def listening(host: str, port: int) -> str:
+    """Where Ray Serve's HTTP proxy listens, as a URL (with a note when that is not where
+    `serve.start` was asked: Serve already ran on the cluster and keeps its first address)."""
+    # Ray Serve has no public call for its running HTTP options (ServeInstanceDetails
+    # carries them only through the dashboard's REST API); the client holds them.
+    from ray.serve.context import _get_global_client
+
+    # It raises when no Serve controller runs: serve.start has just started or found one.
+    config = cast(Any, _get_global_client()).http_config
+    url = f"http://{config.host}:{config.port}"
+    if (config.host, config.port) == (host, port):
+        return url
+    return (
+        f"{url} (Ray Serve already ran on this cluster and keeps the address it started "
+        f"with, not {host}:{port}; to move it, `serve shutdown` first, which stops every "
+        "Serve application on the cluster)"
+    )
 
 
 def run(
-    settings: ServiceSettings, address: str, *, host: str, port: int, shard_replicas: int
+    settings: ServiceSettings,
+    address: str,
+    *,
+    host: str,
+    port: int,
+    shard_replicas: int,
+    front_replicas: int = 1,
 ) -> int:
     """Serve until SIGINT or SIGTERM on the Ray cluster at `address` ('local': start one
     here); then delete the application (a local cluster stops with this process)."""
-    if shard_replicas < 1:
-        raise ValueError(f"--shard-replicas must be at least 1, got {shard_replicas}")
+    for name, n in (("--shard-replicas", shard_replicas), ("--front-replicas", front_replicas)):
+        if n < 1:
+            raise ValueError(f"{name} must be at least 1, got {n}")
     summary = check_files(settings)
     local = address == "local"
     n_shards = len(read_manifest(settings.index_dir)["shards"])
@@ -237,7 +265,9 @@ def run(
         address=None if local else address,
         # Each replica asks for one CPU; a local cluster counts at least one per replica,
         # so a small machine still places them all (a real cluster is sized for them).
-        num_cpus=max(os.cpu_count() or 1, n_shards * shard_replicas + 1) if local else None,
+        num_cpus=max(os.cpu_count() or 1, n_shards * shard_replicas + front_replicas)
+        if local
+        else None,
         include_dashboard=False if local else None,
         log_to_driver=False,
     )
@@ -254,12 +284,16 @@ def run(
         signal.signal(sig, on_signal)
     try:
         serve.start(http_options={"host": host, "port": port})
+        where = listening(host, port)
         serve.run(
-            deployment(settings, shard_replicas), name=APP_NAME, route_prefix="/", blocking=False
+            deployment(settings, shard_replicas, front_replicas),
+            name=APP_NAME,
+            route_prefix="/",
+            blocking=False,
         )
         print(
-            f"{summary}, {shard_replicas} replica(s) per shard on Ray at "
-            f"{ray.get_runtime_context().gcs_address}, http://{host}:{port}",
+            f"{summary}, {shard_replicas} replica(s) per shard and {front_replicas} front "
+            f"replica(s) on Ray at {ray.get_runtime_context().gcs_address}, {where}",
             flush=True,
         )
         serving.set()
