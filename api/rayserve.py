@@ -36,30 +36,13 @@ from ray import serve
 from reranker import load_model
 from retriever import Index, IndexFormatError
 from retriever.sharded import read_manifest
-from retriever.shardeddense import DenseLists
-from retriever.shardfanout import Scored, local_dense, local_search
+from retriever.shardfanout import ShardCalls, ShardWork, Wired, pack
 from retriever.shardview import ShardedView
 
 from .app import create_app
 from .settings import ServiceSettings
 
 APP_NAME = "hunchwise"
-
-# A shard's part of a filter's row mask as sent: (bits packed 8 a byte, rows), or None.
-PackedMask = tuple[np.ndarray, int] | None
-
-
-def pack(mask: np.ndarray | None) -> PackedMask:
-    """A boolean mask packed to bits for the trip to a shard (1 bit an article, not 8)."""
-    return None if mask is None else (np.packbits(mask), int(mask.shape[0]))
-
-
-def unpack(packed: PackedMask) -> np.ndarray | None:
-    """The boolean mask `pack` sent."""
-    if packed is None:
-        return None
-    bits, n = packed
-    return np.unpackbits(bits, count=n).astype(bool)
 
 
 def describe(index: Index, first_row: int) -> dict[str, Any]:
@@ -75,12 +58,11 @@ def describe(index: Index, first_row: int) -> dict[str, Any]:
 
 
 @serve.deployment(ray_actor_options={"num_cpus": 1})
-class ShardSearcher:
-    """One shard's folder, memory-mapped; searches it for analysed query terms."""
+class ShardSearcher(ShardWork):
+    """One shard's folder, memory-mapped; answers `ShardWork`'s calls (masks come packed)."""
 
     def __init__(self, folder: str, first_row: int, stats_sha256: str) -> None:
-        self.index = Index(folder)
-        self.first_row = first_row
+        super().__init__(Index(folder), first_row)
         got = self.index.manifest.get("shard", {}).get("stats_sha256")
         if got != stats_sha256:
             raise IndexFormatError(
@@ -88,74 +70,30 @@ class ShardSearcher:
                 f"{stats_sha256[:12]}: built with other corpus statistics; rebuild the index"
             )
 
-    def search(self, token_lists: list[list[str]], k: int, allowed: PackedMask) -> list[Scored]:
-        """Per query, this shard's top k as (score, global row), best first."""
-        return local_search(self.index, self.first_row, token_lists, k, unpack(allowed))
-
-    def dense_search(
-        self,
-        generation: str,
-        queries: list[np.ndarray | None],
-        k: int,
-        exact: bool,
-        allowed: PackedMask,
-    ) -> list[tuple[np.ndarray, np.ndarray]]:
-        """Per query vector, this shard's k nearest as (global rows, cosines), best first."""
-        return local_dense(
-            self.index, self.first_row, generation, queries, k, exact, unpack(allowed)
-        )
-
-    def score_rows(self, tokens: list[str], rows: np.ndarray) -> np.ndarray:
-        """BM25 scores of some of this shard's rows (local numbers)."""
-        return self.index.bm25_of_rows(tokens, rows)
-
     def describe(self) -> dict[str, Any]:
         """This shard's identity (see `describe`)."""
         return describe(self.index, self.first_row)
 
 
-class RemoteShards:
+class RemoteShards(ShardCalls):
     """`retriever.shardfanout.FanOut` over the shard deployments: each call is sent to every
-    shard before waiting for any."""
+    shard before waiting for any, a filter's mask packed to bits."""
 
     def __init__(self, handles: Sequence[Any]) -> None:
         self.handles = list(handles)  # DeploymentHandles, in shard order
+        self.n_shards = len(self.handles)
 
-    def _parts(self, allowed: Sequence[np.ndarray] | None) -> list[PackedMask]:
-        return [None] * len(self.handles) if allowed is None else [pack(a) for a in allowed]
+    def wire(self, mask: np.ndarray) -> Wired:
+        """See `ShardCalls.wire`."""
+        return pack(mask)
 
-    def search(
-        self, token_lists: Sequence[Sequence[str]], k: int, allowed: Sequence[np.ndarray] | None
-    ) -> list[list[Scored]]:
-        """Every shard's top k per query."""
-        lists = [list(t) for t in token_lists]
-        parts = self._parts(allowed)
-        pending = [h.search.remote(lists, k, a) for h, a in zip(self.handles, parts, strict=True)]
-        return [p.result() for p in pending]
-
-    def dense_search(
-        self,
-        generation: str,
-        queries: Sequence[np.ndarray | None],
-        k: int,
-        exact: bool,
-        allowed: Sequence[np.ndarray] | None,
-    ) -> DenseLists:
-        """Every shard's k nearest per query vector."""
-        qs, parts = list(queries), self._parts(allowed)
+    def each(self, method: str, args: Sequence[tuple[Any, ...] | None]) -> list[Any]:
+        """See `ShardCalls.each`."""
         pending = [
-            h.dense_search.remote(generation, qs, k, exact, a)
-            for h, a in zip(self.handles, parts, strict=True)
+            None if a is None else getattr(h, method).remote(*a)
+            for h, a in zip(self.handles, args, strict=True)
         ]
-        return [p.result() for p in pending]
-
-    def score_rows(self, tokens: Sequence[str], rows: Sequence[np.ndarray]) -> list[np.ndarray]:
-        """Every shard's BM25 scores of its rows in `rows` (shards with none are not asked)."""
-        pending = [
-            h.score_rows.remote(list(tokens), r) if r.size else None
-            for h, r in zip(self.handles, rows, strict=True)
-        ]
-        return [np.empty(0) if p is None else p.result() for p in pending]
+        return [None if p is None else p.result() for p in pending]
 
 
 @serve.deployment(ray_actor_options={"num_cpus": 1})
