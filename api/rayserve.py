@@ -4,7 +4,9 @@ Each shard deployment (`ShardSearcher`, replicas configurable) memory-maps its s
 and answers "the top k for these analysed query terms" with (score, global row) pairs,
 "the k nearest articles to these clue vectors" (hybrid models: the front makes each clue's
 vector once from the shared word vectors; a refined generation is named by the model) with
-(global rows, cosines), and "the BM25 scores of these rows". A metadata filter is compiled
+(global rows, cosines), "the BM25 scores of these rows", and, for hybrid candidates, the
+first two in one call with the nearest rows' BM25 scores (retriever/shardfanout.py's
+`ShardWork`, whose calls are sent by `RemoteShards`). A metadata filter is compiled
 at the front over the whole corpus and each shard is sent its part of the mask, packed to
 bits. The
 front deployment (`Front`) is the ordinary FastAPI application of api/app.py, mounted as the

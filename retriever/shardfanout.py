@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from abc import ABC, abstractmethod
 from collections.abc import Sequence
-from typing import Any, Protocol
+from typing import Any
 
 import numpy as np
 
@@ -98,47 +98,11 @@ class ShardWork:
         ]
 
 
-class FanOut(Protocol):
-    """Where a `ShardedView` sends each shard's part of a search; every method returns one
-    entry per shard, in shard order. `allowed`: each shard's part of a filter's row mask."""
-
-    def search(
-        self, token_lists: Sequence[Sequence[str]], k: int, allowed: Sequence[np.ndarray] | None
-    ) -> list[list[Scored]]:
-        """Per shard, per query, its top k as (score, global row)."""
-        ...
-
-    def dense_search(
-        self,
-        generation: str,
-        queries: Sequence[np.ndarray | None],
-        k: int,
-        exact: bool,
-        allowed: Sequence[np.ndarray] | None,
-    ) -> DenseLists:
-        """Per shard, per query vector, its k nearest as (global rows, cosines)."""
-        ...
-
-    def score_rows(self, tokens: Sequence[str], rows: Sequence[np.ndarray]) -> list[np.ndarray]:
-        """Per shard, the BM25 scores of some of its rows (local row numbers)."""
-        ...
-
-    def pools(
-        self,
-        token_lists: Sequence[Sequence[str]],
-        k: int,
-        generation: str,
-        queries: Sequence[np.ndarray | None],
-        k_dense: int,
-        allowed: Sequence[np.ndarray] | None,
-    ) -> list[tuple[list[Scored], NearestBM25]]:
-        """Per shard, `ShardWork.pools`: both top lists in one call."""
-        ...
-
-
 class ShardCalls(ABC):
-    """A `FanOut` whose every call is one `ShardWork` method asked of each shard; a
-    subclass says how the shards are reached (`each`) and how a mask travels (`wire`)."""
+    """Where a `ShardedView` sends each shard's part of a search: every call is one
+    `ShardWork` method asked of each shard, and returns one entry per shard, in shard order
+    (`allowed`: each shard's part of a filter's row mask). A subclass says how the shards
+    are reached (`each`) and how a mask travels (`wire`)."""
 
     n_shards: int
 
@@ -159,7 +123,7 @@ class ShardCalls(ABC):
     def search(
         self, token_lists: Sequence[Sequence[str]], k: int, allowed: Sequence[np.ndarray] | None
     ) -> list[list[Scored]]:
-        """See `FanOut.search`."""
+        """Per shard, per query, its top k as (score, global row)."""
         lists = [list(t) for t in token_lists]
         return self.each("search", [(lists, k, a) for a in self._masks(allowed)])
 
@@ -171,14 +135,15 @@ class ShardCalls(ABC):
         exact: bool,
         allowed: Sequence[np.ndarray] | None,
     ) -> DenseLists:
-        """See `FanOut.dense_search`."""
+        """Per shard, per query vector, its k nearest as (global rows, cosines)."""
         qs = list(queries)
         return self.each(
             "dense_search", [(generation, qs, k, exact, a) for a in self._masks(allowed)]
         )
 
     def score_rows(self, tokens: Sequence[str], rows: Sequence[np.ndarray]) -> list[np.ndarray]:
-        """See `FanOut.score_rows` (shards with no rows are not asked)."""
+        """Per shard, the BM25 scores of some of its rows (local row numbers; shards with
+        none are not asked)."""
         terms = list(tokens)
         got = self.each("score_rows", [(terms, r) if r.size else None for r in rows])
         return [np.empty(0) if g is None else g for g in got]
@@ -192,7 +157,7 @@ class ShardCalls(ABC):
         k_dense: int,
         allowed: Sequence[np.ndarray] | None,
     ) -> list[tuple[list[Scored], NearestBM25]]:
-        """See `FanOut.pools`."""
+        """Per shard, `ShardWork.pools`: both top lists in one call."""
         lists, qs = [list(t) for t in token_lists], list(queries)
         return self.each(
             "pools", [(lists, k, generation, qs, k_dense, a) for a in self._masks(allowed)]
@@ -212,3 +177,7 @@ class LocalShards(ShardCalls):
             None if a is None else getattr(w, method)(*a)
             for w, a in zip(self.work, args, strict=True)
         ]
+
+
+# What a `ShardedView` is given to reach its shards.
+FanOut = ShardCalls
