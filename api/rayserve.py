@@ -4,7 +4,9 @@ Each shard deployment (`ShardSearcher`, replicas configurable) memory-maps its s
 and answers "the top k for these analysed query terms" with (score, global row) pairs,
 "the k nearest articles to these clue vectors" (hybrid models: the front makes each clue's
 vector once from the shared word vectors; a refined generation is named by the model) with
-(global rows, cosines), and "the BM25 scores of these rows". A metadata filter is compiled
+(global rows, cosines), "the BM25 scores of these rows", and, for hybrid candidates, the
+first two in one call with the nearest rows' BM25 scores (retriever/shardfanout.py's
+`ShardWork`, whose calls are sent by `RemoteShards`). A metadata filter is compiled
 at the front over the whole corpus and each shard is sent its part of the mask, packed to
 bits. The
 front deployment (`Front`) is the ordinary FastAPI application of api/app.py, mounted as the
@@ -36,30 +38,13 @@ from ray import serve
 from reranker import load_model
 from retriever import Index, IndexFormatError
 from retriever.sharded import read_manifest
-from retriever.shardeddense import DenseLists
-from retriever.shardfanout import Scored, local_dense, local_search
+from retriever.shardfanout import ShardCalls, ShardWork, Wired, pack
 from retriever.shardview import ShardedView
 
 from .app import create_app
 from .settings import ServiceSettings
 
 APP_NAME = "hunchwise"
-
-# A shard's part of a filter's row mask as sent: (bits packed 8 a byte, rows), or None.
-PackedMask = tuple[np.ndarray, int] | None
-
-
-def pack(mask: np.ndarray | None) -> PackedMask:
-    """A boolean mask packed to bits for the trip to a shard (1 bit an article, not 8)."""
-    return None if mask is None else (np.packbits(mask), int(mask.shape[0]))
-
-
-def unpack(packed: PackedMask) -> np.ndarray | None:
-    """The boolean mask `pack` sent."""
-    if packed is None:
-        return None
-    bits, n = packed
-    return np.unpackbits(bits, count=n).astype(bool)
 
 
 def describe(index: Index, first_row: int) -> dict[str, Any]:
@@ -75,12 +60,11 @@ def describe(index: Index, first_row: int) -> dict[str, Any]:
 
 
 @serve.deployment(ray_actor_options={"num_cpus": 1})
-class ShardSearcher:
-    """One shard's folder, memory-mapped; searches it for analysed query terms."""
+class ShardSearcher(ShardWork):
+    """One shard's folder, memory-mapped; answers `ShardWork`'s calls (masks come packed)."""
 
     def __init__(self, folder: str, first_row: int, stats_sha256: str) -> None:
-        self.index = Index(folder)
-        self.first_row = first_row
+        super().__init__(Index(folder), first_row)
         got = self.index.manifest.get("shard", {}).get("stats_sha256")
         if got != stats_sha256:
             raise IndexFormatError(
@@ -88,74 +72,30 @@ class ShardSearcher:
                 f"{stats_sha256[:12]}: built with other corpus statistics; rebuild the index"
             )
 
-    def search(self, token_lists: list[list[str]], k: int, allowed: PackedMask) -> list[Scored]:
-        """Per query, this shard's top k as (score, global row), best first."""
-        return local_search(self.index, self.first_row, token_lists, k, unpack(allowed))
-
-    def dense_search(
-        self,
-        generation: str,
-        queries: list[np.ndarray | None],
-        k: int,
-        exact: bool,
-        allowed: PackedMask,
-    ) -> list[tuple[np.ndarray, np.ndarray]]:
-        """Per query vector, this shard's k nearest as (global rows, cosines), best first."""
-        return local_dense(
-            self.index, self.first_row, generation, queries, k, exact, unpack(allowed)
-        )
-
-    def score_rows(self, tokens: list[str], rows: np.ndarray) -> np.ndarray:
-        """BM25 scores of some of this shard's rows (local numbers)."""
-        return self.index.bm25_of_rows(tokens, rows)
-
     def describe(self) -> dict[str, Any]:
         """This shard's identity (see `describe`)."""
         return describe(self.index, self.first_row)
 
 
-class RemoteShards:
+class RemoteShards(ShardCalls):
     """`retriever.shardfanout.FanOut` over the shard deployments: each call is sent to every
-    shard before waiting for any."""
+    shard before waiting for any, a filter's mask packed to bits."""
 
     def __init__(self, handles: Sequence[Any]) -> None:
         self.handles = list(handles)  # DeploymentHandles, in shard order
+        self.n_shards = len(self.handles)
 
-    def _parts(self, allowed: Sequence[np.ndarray] | None) -> list[PackedMask]:
-        return [None] * len(self.handles) if allowed is None else [pack(a) for a in allowed]
+    def wire(self, mask: np.ndarray) -> Wired:
+        """See `ShardCalls.wire`."""
+        return pack(mask)
 
-    def search(
-        self, token_lists: Sequence[Sequence[str]], k: int, allowed: Sequence[np.ndarray] | None
-    ) -> list[list[Scored]]:
-        """Every shard's top k per query."""
-        lists = [list(t) for t in token_lists]
-        parts = self._parts(allowed)
-        pending = [h.search.remote(lists, k, a) for h, a in zip(self.handles, parts, strict=True)]
-        return [p.result() for p in pending]
-
-    def dense_search(
-        self,
-        generation: str,
-        queries: Sequence[np.ndarray | None],
-        k: int,
-        exact: bool,
-        allowed: Sequence[np.ndarray] | None,
-    ) -> DenseLists:
-        """Every shard's k nearest per query vector."""
-        qs, parts = list(queries), self._parts(allowed)
+    def each(self, method: str, args: Sequence[tuple[Any, ...] | None]) -> list[Any]:
+        """See `ShardCalls.each`."""
         pending = [
-            h.dense_search.remote(generation, qs, k, exact, a)
-            for h, a in zip(self.handles, parts, strict=True)
+            None if a is None else getattr(h, method).remote(*a)
+            for h, a in zip(self.handles, args, strict=True)
         ]
-        return [p.result() for p in pending]
-
-    def score_rows(self, tokens: Sequence[str], rows: Sequence[np.ndarray]) -> list[np.ndarray]:
-        """Every shard's BM25 scores of its rows in `rows` (shards with none are not asked)."""
-        pending = [
-            h.score_rows.remote(list(tokens), r) if r.size else None
-            for h, r in zip(self.handles, rows, strict=True)
-        ]
-        return [np.empty(0) if p is None else p.result() for p in pending]
+        return [None if p is None else p.result() for p in pending]
 
 
 @serve.deployment(ray_actor_options={"num_cpus": 1})
@@ -210,8 +150,9 @@ def check_files(settings: ServiceSettings) -> str:
     )
 
 
-def deployment(settings: ServiceSettings, shard_replicas: int) -> Any:
-    """The Serve application: one `ShardSearcher` per shard folder, `Front` over them."""
+def deployment(settings: ServiceSettings, shard_replicas: int, front_replicas: int = 1) -> Any:
+    """The Serve application: one `ShardSearcher` per shard folder, `Front` over them
+    (`front_replicas` copies of it: the proxy spreads the requests among them)."""
     manifest = read_manifest(settings.index_dir)
     sha = str(manifest.get("stats", {}).get("sha256"))
     handles: list[Any] = [
@@ -220,16 +161,43 @@ def deployment(settings: ServiceSettings, shard_replicas: int) -> Any:
         .bind(str(settings.index_dir / str(entry["folder"])), int(entry["first_row"]), sha)
         for i, entry in enumerate(manifest["shards"])
     ]
-    return cast(Any, Front).options(name="front").bind(settings, handles)
+    front = cast(Any, Front).options(name="front", num_replicas=front_replicas)
+    return front.bind(settings, handles)
+
+
+def listening(host: str, port: int) -> str:
+    """Where Ray Serve's HTTP proxy listens, as a URL (with a note when that is not where
+    `serve.start` was asked: Serve already ran on the cluster and keeps its first address)."""
+    # Ray Serve has no public call for its running HTTP options (ServeInstanceDetails
+    # carries them only through the dashboard's REST API); the client holds them.
+    from ray.serve.context import _get_global_client
+
+    # It raises when no Serve controller runs: serve.start has just started or found one.
+    config = cast(Any, _get_global_client()).http_config
+    url = f"http://{config.host}:{config.port}"
+    if (config.host, config.port) == (host, port):
+        return url
+    return (
+        f"{url} (Ray Serve already ran on this cluster and keeps the address it started "
+        f"with, not {host}:{port}; to move it, `serve shutdown` first, which stops every "
+        "Serve application on the cluster)"
+    )
 
 
 def run(
-    settings: ServiceSettings, address: str, *, host: str, port: int, shard_replicas: int
+    settings: ServiceSettings,
+    address: str,
+    *,
+    host: str,
+    port: int,
+    shard_replicas: int,
+    front_replicas: int = 1,
 ) -> int:
     """Serve until SIGINT or SIGTERM on the Ray cluster at `address` ('local': start one
     here); then delete the application (a local cluster stops with this process)."""
-    if shard_replicas < 1:
-        raise ValueError(f"--shard-replicas must be at least 1, got {shard_replicas}")
+    for name, n in (("--shard-replicas", shard_replicas), ("--front-replicas", front_replicas)):
+        if n < 1:
+            raise ValueError(f"{name} must be at least 1, got {n}")
     summary = check_files(settings)
     local = address == "local"
     n_shards = len(read_manifest(settings.index_dir)["shards"])
@@ -237,7 +205,9 @@ def run(
         address=None if local else address,
         # Each replica asks for one CPU; a local cluster counts at least one per replica,
         # so a small machine still places them all (a real cluster is sized for them).
-        num_cpus=max(os.cpu_count() or 1, n_shards * shard_replicas + 1) if local else None,
+        num_cpus=max(os.cpu_count() or 1, n_shards * shard_replicas + front_replicas)
+        if local
+        else None,
         include_dashboard=False if local else None,
         log_to_driver=False,
     )
@@ -254,12 +224,16 @@ def run(
         signal.signal(sig, on_signal)
     try:
         serve.start(http_options={"host": host, "port": port})
+        where = listening(host, port)
         serve.run(
-            deployment(settings, shard_replicas), name=APP_NAME, route_prefix="/", blocking=False
+            deployment(settings, shard_replicas, front_replicas),
+            name=APP_NAME,
+            route_prefix="/",
+            blocking=False,
         )
         print(
-            f"{summary}, {shard_replicas} replica(s) per shard on Ray at "
-            f"{ray.get_runtime_context().gcs_address}, http://{host}:{port}",
+            f"{summary}, {shard_replicas} replica(s) per shard and {front_replicas} front "
+            f"replica(s) on Ray at {ray.get_runtime_context().gcs_address}, {where}",
             flush=True,
         )
         serving.set()

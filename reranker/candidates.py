@@ -19,6 +19,7 @@ import numpy as np
 from retriever import Hit, Index, vecgen
 from retriever.dense import DenseSearcher
 from retriever.hybrid import FUSIONS, fuse, members_bm25
+from retriever.shardview import ShardedView
 
 from .errors import ModelFormatError
 from .features import DenseInfo
@@ -89,6 +90,16 @@ class Pools:
     dense_rows: np.ndarray
     dense_scores: np.ndarray
     query: np.ndarray | None  # the clue's vector (None: no word of it has one)
+    # The dense pool's BM25 scores, when the search gave them (a sharded index's shards do,
+    # so they need not be asked again); None: members missing from BM25's pool are scored.
+    dense_bm25: np.ndarray | None = None
+
+    def known_bm25(self) -> tuple[np.ndarray, np.ndarray]:
+        """(rows, BM25 scores) known without scoring again; BM25's own pool wins a tie."""
+        if self.dense_bm25 is None:
+            return self.bm25_rows, self.bm25_scores
+        rows = np.concatenate([self.dense_rows, self.bm25_rows])
+        return rows, np.concatenate([self.dense_bm25, self.bm25_scores])
 
 
 def search_pools(
@@ -101,8 +112,16 @@ def search_pools(
     """BM25's and the vectors' top `pool` of each clue (the vectors' empty without them),
     with the vectors `policy` names (default: the index's own); with `allowed` (a metadata
     filter's row mask), both searched among those rows only."""
-    bm25 = index.search_token_lists(token_lists, pool, allowed=allowed)
     dense = dense_of(index, policy or CandidatePolicy())
+    if dense is not None and isinstance(index, ShardedView):
+        # One call to each shard for both lists, the nearest rows' BM25 scores with them.
+        vecs = [dense.vectors.query_vector(*index.term_ids(t)) for t in token_lists]
+        both = index.search_pools(token_lists, pool, dense, vecs, allowed)
+        return [
+            Pools(*_rows_scores(hits), rows, cos, vec, bm25)
+            for (hits, rows, cos, bm25), vec in zip(both, vecs, strict=True)
+        ]
+    bm25 = index.search_token_lists(token_lists, pool, allowed=allowed)
     empty = (np.empty(0, dtype=np.int64), np.empty(0))
     if dense is None:
         queries: list[np.ndarray | None] = [None] * len(token_lists)
@@ -112,10 +131,13 @@ def search_pools(
         dense_lists = dense.search(queries, pool, allowed=allowed)
     out = []
     for hits, query, (d_rows, d_scores) in zip(bm25, queries, dense_lists, strict=True):
-        b_rows = np.fromiter((h.row for h in hits), np.int64, len(hits))
-        b_scores = np.fromiter((h.score for h in hits), np.float64, len(hits))
-        out.append(Pools(b_rows, b_scores, d_rows, d_scores, query))
+        out.append(Pools(*_rows_scores(hits), d_rows, d_scores, query))
     return out
+
+
+def _rows_scores(hits: Sequence[Hit]) -> tuple[np.ndarray, np.ndarray]:
+    rows = np.fromiter((h.row for h in hits), np.int64, len(hits))
+    return rows, np.fromiter((h.score for h in hits), np.float64, len(hits))
 
 
 def fused_rows(p: Pools, k: int, policy: CandidatePolicy) -> np.ndarray:
@@ -140,7 +162,7 @@ def _hybrid_set(
     dense: DenseSearcher | None,
 ) -> tuple[list[Hit], DenseInfo]:
     rows = fused_rows(p, k, policy)
-    bm25 = members_bm25(index, tokens, rows, p.bm25_rows, p.bm25_scores)
+    bm25 = members_bm25(index, tokens, rows, *p.known_bm25())
     cos = dense.cosines(p.query, rows) if dense is not None else np.zeros(rows.size)
     d_rank = {r: i + 1 for i, r in enumerate(p.dense_rows.tolist())}
     b_member = set(p.bm25_rows.tolist())

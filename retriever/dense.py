@@ -22,6 +22,12 @@ from .storedvectors import DenseVectors
 if TYPE_CHECKING:
     from .ann import AnnIndex
 
+# Query vectors (None: a clue none of whose words has a vector); a boolean row mask or
+# None; one query's nearest articles as (rows, cosines), best first.
+Queries = Sequence[np.ndarray | None]
+Mask = np.ndarray | None
+Nearest = tuple[np.ndarray, np.ndarray]
+
 _BLOCK = 65_536  # article rows per block of the exact product (~50 MB of float32 at 200-d)
 # Candidates kept beyond k from the blocked product before exact rescoring: BLAS may add a
 # batch's products in another order than one query's, so the final cosines are recomputed
@@ -135,6 +141,10 @@ class DenseSearcher:
         """
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
+        return self._nearest(queries, k, exact, allowed)
+
+    def _nearest(self, queries: Queries, k: int, exact: bool, allowed: Mask) -> list[Nearest]:
+        """`search` once its arguments are checked (a sharded searcher asks its shards)."""
         empty = (np.empty(0, dtype=np.int64), np.empty(0))
         out: list[tuple[np.ndarray, np.ndarray]] = [empty] * len(queries)
         live = [i for i, q in enumerate(queries) if q is not None]

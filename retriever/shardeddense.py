@@ -14,11 +14,11 @@ the dense lists are approximate, as a big single index's are, but not the same c
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 
-from .dense import DenseSearcher, dot
+from .dense import DenseSearcher, Mask, Nearest, Queries, dot
 from .errors import IndexFormatError
 
 
@@ -57,12 +57,38 @@ class ShardedColumn:
         return out
 
 
-# Per query, each shard's nearest articles as (global rows, cosines), best first; given the
-# queries, k, exact, and each shard's part of a filter's row mask (None: no filter).
-DenseLists = list[list[tuple[np.ndarray, np.ndarray]]]
-DenseFanOut = Callable[
-    [Sequence[np.ndarray | None], int, bool, Sequence[np.ndarray] | None], DenseLists
-]
+# Per shard, per query, its nearest articles as (global rows, cosines), best first; given
+# the queries, k, exact, and each shard's part of a filter's row mask (None: no filter).
+DenseLists = list[list[Nearest]]
+DenseFanOut = Callable[[Queries, int, bool, Sequence[np.ndarray] | None], DenseLists]
+
+
+def shard_parts(allowed: Sequence[np.ndarray] | None, n_shards: int) -> list[Mask]:
+    """Each shard's part of a filter's mask, None for every shard without a filter."""
+    return [None] * n_shards if allowed is None else list(allowed)
+
+
+def shifted(
+    searcher: DenseSearcher, first_row: int, queries: Queries, k: int, exact: bool, allowed: Mask
+) -> list[Nearest]:
+    """One shard's k nearest per query vector, rows counted over the whole corpus."""
+    found = searcher.search(queries, k, exact=exact, allowed=allowed)
+    return [(rows + first_row, scores) for rows, scores in found]
+
+
+def merge_nearest(per_shard: Sequence[Sequence[tuple[np.ndarray, ...]]], k: int) -> list[Any]:
+    """Per query, the shards' nearest merged by (cosine desc, global row asc), as one index
+    orders them, cut to k; each entry's further arrays (BM25 scores) follow their rows."""
+    out = []
+    for q in range(len(per_shard[0]) if per_shard else 0):
+        cols = [
+            np.concatenate([lists[q][c] for lists in per_shard])
+            for c in range(len(per_shard[0][q]))
+        ]
+        rows, scores = cols[0].astype(np.int64), cols[1].astype(np.float64)
+        order = np.lexsort((rows, -scores))[:k]
+        out.append((rows[order], scores[order], *(c[order] for c in cols[2:])))
+    return out
 
 
 class ShardedDense(DenseSearcher):
@@ -78,12 +104,14 @@ class ShardedDense(DenseSearcher):
         searchers: Sequence[DenseSearcher],
         first_rows: Sequence[int],
         fan_out: DenseFanOut | None = None,
+        generation: str = "",
     ) -> None:
         # Any shard's words and weights make the clue's vector: they are the same arrays.
         super().__init__(searchers[0].vectors)
         self.searchers = list(searchers)
         self.first = np.asarray(first_rows, dtype=np.int64)
         self._fan_out = fan_out if fan_out is not None else self._search_here
+        self.generation = generation  # the shards' vector generation ("" their own)
 
     @classmethod
     def of(
@@ -91,6 +119,7 @@ class ShardedDense(DenseSearcher):
         shards: Sequence[DenseShard],
         first_rows: Sequence[int],
         fan_out: DenseFanOut | None = None,
+        generation: str = "",
     ) -> ShardedDense | None:
         """The shards' dense search, None when built without vectors; refused when only
         some shards have vectors or their word vectors differ."""
@@ -102,23 +131,15 @@ class ShardedDense(DenseSearcher):
             raise IndexFormatError(
                 "the shards do not share one set of word vectors; rebuild the sharded index"
             )
-        return cls([d for d in searchers if d is not None], first_rows, fan_out)
+        return cls([d for d in searchers if d is not None], first_rows, fan_out, generation)
 
     def _search_here(
-        self,
-        queries: Sequence[np.ndarray | None],
-        k: int,
-        exact: bool,
-        allowed: Sequence[np.ndarray] | None,
+        self, queries: Queries, k: int, exact: bool, allowed: Sequence[np.ndarray] | None
     ) -> DenseLists:
+        parts = shard_parts(allowed, len(self.searchers))
         return [
-            [
-                (rows + first, scores)
-                for rows, scores in s.search(
-                    queries, k, exact=exact, allowed=None if allowed is None else allowed[i]
-                )
-            ]
-            for i, (s, first) in enumerate(zip(self.searchers, self.first.tolist(), strict=True))
+            shifted(s, first, queries, k, exact, part)
+            for s, first, part in zip(self.searchers, self.first.tolist(), parts, strict=True)
         ]
 
     @property
@@ -131,28 +152,11 @@ class ShardedDense(DenseSearcher):
         ends = [*self.first.tolist()[1:], allowed.shape[0]]
         return [allowed[a:b] for a, b in zip(self.first.tolist(), ends, strict=True)]
 
-    def search(
-        self,
-        queries: Sequence[np.ndarray | None],
-        k: int,
-        *,
-        exact: bool = False,
-        allowed: np.ndarray | None = None,
-    ) -> list[tuple[np.ndarray, np.ndarray]]:
-        """(global rows, cosines) of each query's k nearest articles over all shards, merged
-        by (cosine desc, global row asc) as one index orders them; `allowed` (bool, one per
-        article): only the rows it keeps, each shard given its part."""
-        if k < 1:
-            raise ValueError(f"k must be at least 1, got {k}")
+    def _nearest(self, queries: Queries, k: int, exact: bool, allowed: Mask) -> list[Nearest]:
+        """Each query's k nearest over all shards, merged by (cosine desc, global row asc)
+        as one index orders them; with `allowed`, each shard is given its part."""
         parts = None if allowed is None else self.split(allowed)
-        per_shard = self._fan_out(queries, k, exact, parts)
-        out = []
-        for q in range(len(queries)):
-            rows = np.concatenate([lists[q][0] for lists in per_shard]).astype(np.int64)
-            scores = np.concatenate([lists[q][1] for lists in per_shard]).astype(np.float64)
-            order = np.lexsort((rows, -scores))[:k]
-            out.append((rows[order], scores[order]))
-        return out
+        return merge_nearest(self._fan_out(queries, k, exact, parts), k)
 
     def cosines(self, query: np.ndarray | None, rows: np.ndarray) -> np.ndarray:
         """Cosine of a query vector with some articles by global row (0 where none)."""

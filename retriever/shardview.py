@@ -42,8 +42,8 @@ from .hits import Hit, RowMask, TokenLists
 from .index import Document, Index, _FieldPostings
 from .metacolumns import MetaColumns
 from .sharded import ShardedIndex, merge_scored
-from .shardeddense import ShardedDense
-from .shardfanout import FanOut, LocalShards
+from .shardeddense import ShardedDense, merge_nearest
+from .shardfanout import FanOut, LocalShards, Scored
 
 
 class ConcatStrings(StringColumn):
@@ -181,7 +181,10 @@ class ShardedView(Index):
         else:
             shards = [_Generation(s.dense) for s in self.shards]
         return ShardedDense.of(
-            shards, self.first_rows, functools.partial(self.fan_out.dense_search, generation)
+            shards,
+            self.first_rows,
+            functools.partial(self.fan_out.dense_search, generation),
+            generation,
         )
 
     def dense_generation(self, name: str) -> DenseSearcher | None:
@@ -241,21 +244,18 @@ class ShardedView(Index):
         shard, local = self._local_row(row)
         return shard.text_of(local)
 
-    def search_token_lists(
-        self, token_lists: TokenLists, k: int = 20, *, allowed: RowMask = None
-    ) -> list[list[Hit]]:
-        """Every shard's top k merged by (score desc, global row asc), per token list."""
-        if k < 1:
-            raise ValueError(f"k must be at least 1, got {k}")
-        if not token_lists:
-            return []
-        parts = None
-        if allowed is not None:
-            if allowed.shape != (self.n_docs,):
-                raise ValueError(f"allowed must hold one entry per article ({self.n_docs})")
-            parts = [allowed[a:b] for a, b in zip(self._starts[:-1], self._starts[1:], strict=True)]
-        per_shard = self.fan_out.search(token_lists, k, parts)
-        best = [merge_scored([lists[q] for lists in per_shard], k) for q in range(len(token_lists))]
+    def _parts(self, allowed: RowMask) -> list[np.ndarray] | None:
+        """Each shard's part of a row mask over the whole corpus (None: no filter)."""
+        if allowed is None:
+            return None
+        if allowed.shape != (self.n_docs,):
+            raise ValueError(f"allowed must hold one entry per article ({self.n_docs})")
+        return [allowed[a:b] for a, b in zip(self._starts[:-1], self._starts[1:], strict=True)]
+
+    def _hits(self, per_shard: Sequence[Sequence[Scored]], k: int) -> list[list[Hit]]:
+        """Per query, the shards' top lists merged by (score desc, global row asc)."""
+        n = len(per_shard[0]) if per_shard else 0
+        best = [merge_scored([lists[q] for lists in per_shard], k) for q in range(n)]
         rows = np.array([r for b in best for _, r in b], dtype=np.int64)
         ids, titles = self.ids.take(rows), self.titles.take(rows)
         out: list[list[Hit]] = []
@@ -269,6 +269,38 @@ class ShardedView(Index):
             )
             at += len(b)
         return out
+
+    def search_token_lists(
+        self, token_lists: TokenLists, k: int = 20, *, allowed: RowMask = None
+    ) -> list[list[Hit]]:
+        """Every shard's top k merged by (score desc, global row asc), per token list."""
+        parts = self._parts(allowed)
+        if k < 1:
+            raise ValueError(f"k must be at least 1, got {k}")
+        return self._hits(self.fan_out.search(token_lists, k, parts) if token_lists else [], k)
+
+    def search_pools(
+        self,
+        token_lists: TokenLists,
+        k: int,
+        dense: DenseSearcher,
+        queries: Sequence[np.ndarray | None],
+        allowed: RowMask = None,
+    ) -> list[tuple[list[Hit], np.ndarray, np.ndarray, np.ndarray]]:
+        """Per token list, BM25's top k and the k nearest articles to its query vector
+        (`dense`: this view's `dense_generation`) as (hits, rows, cosines, the rows' BM25
+        scores), from one call to each shard instead of one round per list; equal to
+        `search_token_lists`, `dense.search` and `score_rows` asked one after the other."""
+        if k < 1:
+            raise ValueError(f"k must be at least 1, got {k}")
+        if not isinstance(dense, ShardedDense):
+            raise ValueError("search_pools needs this view's own dense searcher")
+        per_shard = self.fan_out.pools(
+            token_lists, k, dense.generation, queries, k, self._parts(allowed)
+        )
+        hits = self._hits([bm25 for bm25, _ in per_shard], k)
+        near = merge_nearest([nearest for _, nearest in per_shard], k)
+        return [(h, *n) for h, n in zip(hits, near, strict=True)]
 
     def __repr__(self) -> str:
         return f"ShardedView({str(self.path)!r}, articles={self.n_docs}, shards={len(self.shards)})"

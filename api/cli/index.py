@@ -140,6 +140,7 @@ def cmd_search(args: argparse.Namespace) -> int:
     """Print BM25 candidates for one clue."""
     from retriever import load_index
     from retriever.sharded import ShardedIndex
+    from retriever.shardview import ShardedView
 
     check_k(args.k)
     if not args.clue.strip():
@@ -147,11 +148,12 @@ def cmd_search(args: argparse.Namespace) -> int:
     idx = load_index(args.index, sharded=True)
     if args.filter is None:
         hits = idx.search(args.clue, k=args.k)
-    elif isinstance(idx, ShardedIndex):
-        raise ValueError("--filter works on an index built without --shards")
     else:
-        mask = idx.filter_mask(args.filter)
-        hits = idx.search_tokens(idx.analyzer.tokens(args.clue), args.k, allowed=mask)
+        # A sharded folder is read as one index (ShardedView), so the filter is typed over
+        # the whole corpus as the unsharded index types it, each shard searching its part.
+        one = ShardedView(args.index) if isinstance(idx, ShardedIndex) else idx
+        mask = one.filter_mask(args.filter)
+        hits = one.search_tokens(one.analyzer.tokens(args.clue), args.k, allowed=mask)
     if args.json:
         print_json(
             [{"rank": h.rank, "id": h.doc_id, "title": h.title, "score": h.score} for h in hits]

@@ -101,6 +101,15 @@ def register(sub: argparse._SubParsersAction) -> None:
         default=1,
         help="with --ray: replicas of each shard's deployment (default 1)",
     )
+    p.add_argument(
+        "--front-replicas",
+        type=int,
+        metavar="N",
+        default=1,
+        help="with --ray: replicas of the front deployment, the HTTP API that analyses "
+        "clues, merges the shards' lists and computes features and probabilities; Ray "
+        "Serve's proxy spreads requests among them (default 1)",
+    )
     p.set_defaults(func=cmd_serve)
 
 
@@ -236,7 +245,7 @@ def _serve_on_ray(args: argparse.Namespace) -> int:
     if given:
         raise ValueError(
             f"{', '.join(given)}: not with --ray (Ray Serve's HTTP proxy serves the requests; "
-            "scale the shards with --shard-replicas)"
+            "scale with --shard-replicas and --front-replicas)"
         )
     if not 1 <= args.port <= 65535:
         raise ValueError("--port must be between 1 and 65535 with --ray")
@@ -254,6 +263,7 @@ def _serve_on_ray(args: argparse.Namespace) -> int:
         host=args.host,
         port=args.port,
         shard_replicas=args.shard_replicas,
+        front_replicas=args.front_replicas,
     )
 
 
@@ -261,8 +271,9 @@ def cmd_serve(args: argparse.Namespace) -> int:
     """Run the service until interrupted."""
     from ..settings import settings_from_env
 
-    if args.ray is None and args.shard_replicas != 1:
-        raise ValueError("--shard-replicas: only with --ray")
+    for name in ("shard_replicas", "front_replicas"):
+        if args.ray is None and getattr(args, name) != 1:
+            raise ValueError(f"--{name.replace('_', '-')}: only with --ray")
     with _state_folder(args.state_dir) as state_dir:
         os.environ.update(_environment(args, state_dir))
         if args.ray is not None:

@@ -76,3 +76,31 @@ def test_copy_vectors_refuses_plainly_what_it_cannot_copy(
     nothing = run("index", "copy-vectors", str(single.path), str(out), "--json")
     assert nothing.returncode == 0, nothing.stderr
     assert json.loads(nothing.stdout)["generations"] == []
+
+
+@pytest.mark.slow
+def test_search_with_a_filter_on_a_sharded_folder_equals_the_single_index(
+    tmp_path: Path,
+) -> None:
+    """The filter is typed over the whole corpus (as one index types it), not per shard."""
+    from corpus_demo.pipeline import generate_corpus
+    from retriever.shards import build_sharded
+
+    generate_corpus(tmp_path, n_articles=300, n_questions=10, seed=3, progress=False)
+    corpus = tmp_path / "articles.jsonl"
+    single = build_index(corpus, tmp_path / "single", vectors=False).path
+    sharded = build_sharded(corpus, tmp_path / "sharded", shards=3, vectors=False)
+    specs = [{"category": {"in": ["place", "person"]}}, {"category": "work"}]
+    for spec in specs:
+        for clue in ("river town", "a painter of the north", "old stone bridge"):
+            args = [clue, "-k", "8", "--json", "--filter", json.dumps(spec)]
+            want = run("search", str(single), *args)
+            got = run("search", str(sharded), *args)
+            assert want.returncode == 0, want.stderr
+            assert got.returncode == 0, got.stderr
+            assert json.loads(got.stdout) == json.loads(want.stdout), (spec, clue)
+    # The filter acted: fewer or other hits than without it for some clue.
+    plain = json.loads(run("search", str(sharded), "river town", "-k", "8", "--json").stdout)
+    only = run("search", str(sharded), "river town", "-k", "8", "--json",
+               "--filter", json.dumps(specs[1]))  # fmt: skip
+    assert plain != json.loads(only.stdout)

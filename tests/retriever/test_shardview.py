@@ -16,6 +16,7 @@ import pytest
 from retriever import IndexFormatError, build_index, load_index
 from retriever.errors import FilterError
 from retriever.index import Index
+from retriever.shardfanout import LocalShards
 from retriever.shards import build_sharded
 from retriever.shardview import ShardedView
 
@@ -233,3 +234,39 @@ def test_ties_across_shards_break_by_global_row(tmp_path: Path) -> None:
         np.testing.assert_array_equal(got_rows, want_rows)
         np.testing.assert_array_equal(got_cos, want_cos)
         assert view.search_tokens(tokens, k) == single.search_tokens(tokens, k)
+
+
+class CountingShards(LocalShards):
+    """The real in-process fan-out, counting the rounds of calls it sends to the shards."""
+
+    def __init__(self, view: ShardedView) -> None:
+        super().__init__(view.shards, view.first_rows)
+        self.rounds: list[str] = []
+
+    def each(self, method: str, args: Any) -> list[Any]:
+        self.rounds.append(method)
+        return super().each(method, args)
+
+
+def test_hybrid_candidates_come_from_one_round_of_shard_calls_and_equal_one_index(
+    pair: tuple[Index, ShardedView],
+) -> None:
+    from reranker.candidates import CandidatePolicy, find_candidates
+
+    single, view = pair
+    counting = CountingShards(view)
+    counted = ShardedView(view.path, counting)
+    lines = QUESTIONS.read_text("utf-8").splitlines()[:40]
+    tokens = [single.analyzer.tokens(json.loads(line)["clue"]) for line in lines]
+    mask = single.filter_mask({"category": "place"})
+    for policy in (CandidatePolicy("hybrid", 0.5, 30), CandidatePolicy("hybrid", 0.2, 12, "rrf")):
+        for allowed in (None, mask):
+            want = find_candidates(single, tokens, 10, policy, allowed)
+            for t, w in zip(tokens, want, strict=True):
+                counting.rounds.clear()
+                [(hits, info)] = find_candidates(counted, [t], 10, policy, allowed)
+                assert counting.rounds == ["pools"]  # BM25 and dense together, no third round
+                assert hits == w[0]
+                assert info is not None and w[1] is not None
+                for a, b in zip(vars(info).values(), vars(w[1]).values(), strict=True):
+                    np.testing.assert_array_equal(a, b)
