@@ -107,6 +107,8 @@ def row_blocks(
     block (a dict of the table's columns, `X` and the bookkeeping ones, whole prefixes in
     prefix order), none of them fetched by the driver. The Ray Data job's record is
     appended to `runner.data_runs`."""
+    if not pre.texts:
+        return []
     ray = runner.ray
     with warnings.catch_warnings():
         # As in retriever/cluster.py: Ray Data's first DataContext warns about its own
