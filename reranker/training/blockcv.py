@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 from sklearn.metrics import log_loss
+from tqdm.auto import tqdm
 
 from retriever.cluster import Runner
 
@@ -139,6 +140,7 @@ def newton_many(
     *,
     max_iter: int = 100,
     tol: float = 1e-10,
+    on_pass: Callable[[], object] | None = None,
 ) -> tuple[list[BlockFit], int]:
     """`blockfit.fit_blocks`'s Newton steps, with its step halving and stopping rule, for
     every (training set, C) of `specs` at once: one pass over the blocks per step.
@@ -160,6 +162,8 @@ def newton_many(
             _add_parts,
         )
         passes += 1
+        if on_pass is not None:
+            on_pass()
         for m, w, (loss, grad, hess) in zip(live, proposals, parts, strict=True):
             obj, g, h = penalised(loss, grad, hess, w, m.C)
             if not first:
@@ -229,8 +233,21 @@ def cross_validated_fit(
     fold_of_clue: np.ndarray,
     n_folds: int,
     Cs: Sequence[float],
+    progress: bool = False,
 ) -> BlockCV:
     """Choose C by the grouped folds' held-out log-loss, then fit every row at that C."""
+    with tqdm(desc="fitting in blocks", unit=" passes", disable=not progress) as bar:
+        return _cross_validated_fit(runner, blocks, fold_of_clue, n_folds, Cs, bar.update)
+
+
+def _cross_validated_fit(
+    runner: Runner,
+    blocks: Sequence[Any],
+    fold_of_clue: np.ndarray,
+    n_folds: int,
+    Cs: Sequence[float],
+    on_pass: Callable[[], object],
+) -> BlockCV:
     fold_of = runner.put(fold_of_clue)  # sent to the cluster once
     scaler, rows, pos = scalers(runner, blocks, fold_of, n_folds)
     n, positives = int(rows.sum()), float(pos.sum())
@@ -246,10 +263,12 @@ def cross_validated_fit(
                 "a cross-validation fold has only one label; add more labelled clues"
             )
     specs = [(f, C) for C in Cs for f in range(n_folds)]
-    fitted, passes = newton_many(runner, blocks, fold_of, specs, scaler)
+    fitted, passes = newton_many(runner, blocks, fold_of, specs, scaler, on_pass=on_pass)
     per_c = [fitted[i * n_folds : (i + 1) * n_folds] for i in range(len(Cs))]
     losses = _reduce(runner, block_held_out_loss, blocks, (fold_of, per_c), np.add) / n
     cv_log_loss = {repr(C): float(loss) for C, loss in zip(Cs, losses, strict=True)}
     best = min(range(len(Cs)), key=lambda i: (losses[i], i))
-    (final,), more = newton_many(runner, blocks, fold_of, [(ALL, Cs[best])], scaler)
+    (final,), more = newton_many(
+        runner, blocks, fold_of, [(ALL, Cs[best])], scaler, on_pass=on_pass
+    )
     return BlockCV(float(Cs[best]), cv_log_loss, per_c[best], final, passes + more + 3)

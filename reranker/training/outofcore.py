@@ -156,6 +156,7 @@ def fit_out_of_core(
     calibration: str = "auto",
     sample_rows: int = SAMPLE_ROWS,
     n_folds: int = 5,
+    progress: bool = False,
 ) -> OutOfCoreFit:
     """Reranker.fit's model from every row in blocks; calibration on a sample of clues."""
     est = Reranker(calibration=calibration, fit="blocks", runner=runner, n_folds=n_folds)
@@ -166,7 +167,7 @@ def fit_out_of_core(
         raise TrainingError("cross-validation needs at least two clues")
     fold_of = np.full(facts.clue_rows.size, -1, dtype=np.int64)
     fold_of[present] = clue_folds(facts.clue_rows[present], folds)
-    cv = cross_validated_fit(runner, blocks, fold_of, folds, est.Cs)
+    cv = cross_validated_fit(runner, blocks, fold_of, folds, est.Cs, progress=progress)
     chosen = sample_clues(facts.clue_rows, sample_rows)
     sample = as_table(gather(runner, blocks, len(names), chosen), pre, names)
     raw = np.zeros(sample.y.size)
@@ -193,8 +194,13 @@ def fit_out_of_core(
     est.C_, est.cv_log_loss_, est.calibration_scores_ = cv.C, cv.cv_log_loss, scores
     est.feature_names_ = list(names)
     est.fit_choice_, est.fitted_in_blocks_ = choice, True
+    sampled = (
+        f"; calibration, presence model, thresholds and held-out figures on {chosen.size:,} of "
+        f"{present.size:,} clues ({sample.y.size:,} of {facts.rows:,} rows)"
+    )
     record = {
         **choice.to_dict(),
+        "reason": choice.reason + sampled,
         "engine": "blocks on the cluster" if runner.ray is not None else "blocks in process",
         "blocks": facts.blocks,
         "passes": cv.passes,
@@ -263,7 +269,7 @@ def fit_on_cluster(
         return ClusterFit(table, est, int(table.y.size), int(table.y.sum()), table.recall(), record)
     got = fit_out_of_core(
         runner, blocks, pre, all_names, choice, facts, calibration=calibration,
-        sample_rows=sample_rows,
+        sample_rows=sample_rows, progress=progress,
     )  # fmt: skip
     return ClusterFit(
         got.sample, got.estimator, facts.rows, facts.positives, facts.recall, got.record

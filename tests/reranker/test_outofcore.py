@@ -19,7 +19,6 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.preprocessing import StandardScaler
 
 from reranker.training import TrainResult, train
-from reranker.training.blockcv import clue_folds
 from reranker.training.blockfit import choose_fit
 from reranker.training.estimator import Reranker
 from reranker.training.outofcore import TableFacts, fit_out_of_core, table_facts
@@ -92,6 +91,7 @@ def test_the_driver_does_not_gather_the_table(both: dict[str, Any]) -> None:
     assert fit["rows"] == rows == ooc.artifact["training"]["rows"]
     assert 0 < fit["driver_rows"] == ooc.table.y.size <= SAMPLE < rows
     assert fit["sample"]["rows"] == fit["driver_rows"] and fit["sample"]["of_rows"] == rows
+    assert f"of {fit['sample']['of_clues']:,} clues" in fit["reason"]  # the CLI's summary line
     # And the allocator's: the gathered training's driver held at least the table's features
     # at its peak; the out-of-core one never allocated that much in all.
     peak_g, peak_o = both["peaks"]
@@ -148,5 +148,3 @@ def test_a_sample_of_every_clue_gives_the_gathered_calibration(both: dict[str, A
     assert got.estimator.calibrator_["method"] == want.calibrator_["method"]
     assert np.allclose(got.estimator.oof_proba_, want.oof_proba_, rtol=0, atol=1e-9)
     assert np.allclose(got.estimator.coef_, want.coef_, rtol=1e-9, atol=1e-12)
-    # The folds the blocks used are GroupKFold's (tests/reranker/test_blockcv.py).
-    assert clue_folds(facts.clue_rows, 5).size == 250
