@@ -82,6 +82,22 @@ class BlockFit:
         return make_pipeline(scaler, lr)
 
 
+def penalised(
+    loss: float, grad: np.ndarray, hess: np.ndarray, w: np.ndarray, C: float
+) -> tuple[float, np.ndarray, np.ndarray]:
+    """The objective C * log-loss + 0.5 * ||coef||^2 (the intercept unpenalised), its gradient
+    and Hessian, from the log-loss sums; C = inf: the log-loss alone."""
+    if np.isinf(C):
+        return loss, grad, hess
+    penalty = np.ones(w.size)
+    penalty[-1] = 0.0  # the intercept is not penalised
+    return (
+        C * loss + 0.5 * float(np.sum(penalty * w * w)),
+        C * grad + penalty * w,
+        C * hess + np.diag(penalty),
+    )
+
+
 def _objective(
     runner: Runner,
     blocks: Sequence[Any],
@@ -94,15 +110,7 @@ def _objective(
     loss = sum(p[0] for p in parts)
     grad = np.sum([p[1] for p in parts], axis=0)
     hess = np.sum([p[2] for p in parts], axis=0)
-    if np.isinf(C):
-        return loss, grad, hess
-    penalty = np.ones(w.size)
-    penalty[-1] = 0.0  # the intercept is not penalised
-    return (
-        C * loss + 0.5 * float(np.sum(penalty * w * w)),
-        C * grad + penalty * w,
-        C * hess + np.diag(penalty),
-    )
+    return penalised(loss, grad, hess, w, C)
 
 
 def fit_blocks(

@@ -10,6 +10,7 @@ equals the in-process one.
 from __future__ import annotations
 
 import json
+import warnings
 from collections.abc import Sequence
 from typing import Any
 
@@ -72,6 +73,69 @@ class TableWorker:
         return out
 
 
+def _columns(
+    pre: Prefixes, policy: CandidatePolicy, policies: Sequence[CandidatePolicy] | None
+) -> dict[str, Any]:
+    """The prefixes as the columns a TableWorker reads."""
+    n = len(pre.texts)
+    return {
+        "seq": np.arange(n, dtype=np.int64),
+        "text": np.asarray(pre.texts, dtype=object),
+        "clue": np.asarray([o[0] for o in pre.owners], dtype=np.int64),
+        "fraction": np.asarray([o[1] for o in pre.owners], dtype=np.float64),
+        "gold": np.asarray([-1 if o[2] is None else o[2] for o in pre.owners], dtype=np.int64),
+        "meta": np.asarray([json.dumps(o[3]) for o in pre.owners], dtype=object),
+        "policy": np.asarray(
+            [json.dumps((policies[i] if policies else policy).to_dict()) for i in range(n)],
+            dtype=object,
+        ),
+    }
+
+
+def row_blocks(
+    runner: Runner,
+    index: Index,
+    pre: Prefixes,
+    registry: FeatureRegistry,
+    feature_names: Sequence[str],
+    k: int,
+    metadata: MetadataColumns,
+    policy: CandidatePolicy,
+    policies: Sequence[CandidatePolicy] | None = None,
+) -> list[Any]:
+    """The rows of every prefix as blocks left on the cluster: one object reference per
+    block (a dict of the table's columns, `X` and the bookkeeping ones, whole prefixes in
+    prefix order), none of them fetched by the driver. The Ray Data job's record is
+    appended to `runner.data_runs`."""
+    if not pre.texts:
+        return []
+    ray = runner.ray
+    with warnings.catch_warnings():
+        # As in retriever/cluster.py: Ray Data's first DataContext warns about its own
+        # deprecated options (Ray 2.60); nothing here sets them.
+        warnings.filterwarnings("ignore", category=DeprecationWarning, module=r"ray\.data\.context")
+        ctx = ray.data.DataContext.get_current()
+    ctx.enable_progress_bars = False
+    ctx.raise_original_map_exception = True
+    ctx.execution_options.preserve_order = True  # blocks in prefix order: sums in one order
+    columns = _columns(pre, policy, policies)
+    names = list(columns)
+    values = [columns[c].tolist() for c in names]
+    rows = [dict(zip(names, r, strict=True)) for r in zip(*values, strict=True)]
+    args = (str(index.path), index.title_weight, registry, list(feature_names), k, metadata)
+    ds = ray.data.from_items(rows).map_batches(
+        TableWorker,
+        fn_constructor_args=(*args, policy),
+        batch_size=BLOCK,
+        batch_format="numpy",
+        concurrency=max(1, int(ray.cluster_resources().get("CPU", 1))),
+        num_cpus=1,
+    )
+    refs = ds.to_numpy_refs()
+    runner.data_runs.append(ds.stats())
+    return list(refs)
+
+
 def distributed_rows(
     runner: Runner,
     index: Index,
@@ -85,19 +149,7 @@ def distributed_rows(
 ) -> dict[str, np.ndarray]:
     """`prefix_rows` of every prefix in `pre`, built by the runner's workers, in order;
     `policies`: each prefix's own candidate policy instead of `policy`."""
-    n = len(pre.texts)
-    columns: dict[str, Any] = {
-        "seq": np.arange(n, dtype=np.int64),
-        "text": np.asarray(pre.texts, dtype=object),
-        "clue": np.asarray([o[0] for o in pre.owners], dtype=np.int64),
-        "fraction": np.asarray([o[1] for o in pre.owners], dtype=np.float64),
-        "gold": np.asarray([-1 if o[2] is None else o[2] for o in pre.owners], dtype=np.int64),
-        "meta": np.asarray([json.dumps(o[3]) for o in pre.owners], dtype=object),
-        "policy": np.asarray(
-            [json.dumps((policies[i] if policies else policy).to_dict()) for i in range(n)],
-            dtype=object,
-        ),
-    }
+    columns = _columns(pre, policy, policies)
     args = (
         str(index.path),
         index.title_weight,

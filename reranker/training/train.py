@@ -23,6 +23,8 @@ from .estimator import Reranker
 from .fusion import tune_fusion
 from .logs import LogReport, read_logs
 from .measures import candidate_metrics, clue_log_loss, clue_metrics
+from .outofcore import SAMPLE_ROWS, fit_on_cluster
+from .prefixrows import labelled_prefixes
 from .presence import fit_presence
 from .refine import Refined, refine_all
 from .schedule import replay_rows, tune_schedule
@@ -99,6 +101,7 @@ def train(
     fit: str = "auto",
     fit_budget: int | None = None,
     refine_vectors: bool = True,
+    sample_rows: int = SAMPLE_ROWS,
 ) -> TrainResult:
     """Read logs, build the training table, fit with grouped CV, tune the threshold, save JSON.
 
@@ -109,6 +112,10 @@ def train(
     'auto' (in memory when the table, rows x features x 8 bytes, is under `fit_budget` bytes;
     None: a share of the memory available, blockfit.default_fit_budget; else in blocks). The
     model file's `fit` says which fit ran and why.
+    With a Ray runner the table's rows stay on the cluster in blocks: over the budget (or
+    with fit='blocks') the model is fitted from every row there, and the calibrator, the
+    presence model, the thresholds and the held-out figures (and `TrainResult.table`) use
+    a sample of whole clues of at most `sample_rows` rows (reranker/training/outofcore.py).
     refine_vectors: with hybrid candidates, train the vectors again with the labelled clues
     (reranker/training/refine.py; the rows cross-fitted, the served vectors refined on all).
     """
@@ -144,22 +151,37 @@ def train(
     if policy.mode == "bm25" and not features:
         # Without vectors the dense features are constant: leave them out of the model.
         names = [n for n in names if reg[n].group != DENSE]
-    table = build_table(
-        index,
-        clues,
-        reg,
-        names,
-        k=k,
-        plan=plan,
-        metadata=meta,
-        candidates=policy,
-        progress=progress,
-        runner=runner,
-        policy_for=policy_for,
-    )
-    estimator = Reranker(
-        calibration=calibration, verbose=progress, fit=fit, runner=runner, fit_budget=fit_budget
-    ).fit(table.X, table.y, table.clue_id, table.feature_names)
+    if runner is not None and runner.ray is not None:
+        # The table's rows stay on the cluster until the fit is chosen; over the budget
+        # the driver gathers only a bounded sample of clues (reranker/training/outofcore.py).
+        pre = labelled_prefixes(index, clues, plan)
+        own = None if policy_for is None else [policy_for(pre.kept[o[0]]) for o in pre.owners]
+        on = fit_on_cluster(
+            runner, index, pre, reg, names, k=k, metadata=meta, policy=policy, policies=own,
+            calibration=calibration, progress=progress, fit=fit, fit_budget=fit_budget,
+            sample_rows=sample_rows,
+        )  # fmt: skip
+        table, estimator, fit_record = on.table, on.estimator, on.record
+        counts = (on.rows, on.positives, on.recall)
+    else:
+        table = build_table(
+            index,
+            clues,
+            reg,
+            names,
+            k=k,
+            plan=plan,
+            metadata=meta,
+            candidates=policy,
+            progress=progress,
+            runner=runner,
+            policy_for=policy_for,
+        )
+        estimator = Reranker(
+            calibration=calibration, verbose=progress, fit=fit, runner=runner, fit_budget=fit_budget
+        ).fit(table.X, table.y, table.clue_id, table.feature_names)
+        fit_record = {**estimator.fit_choice_.to_dict(), "driver_rows": int(table.y.size)}
+        counts = (int(table.y.size), int(table.y.sum()), table.recall())
     # One distribution per clue: P(among the candidates) from clue-level evidence, shared out
     # in proportion to the pointwise probabilities. Decisions are tuned on that distribution.
     presence, q_oof = fit_presence(table, estimator.oof_proba_)
@@ -190,11 +212,11 @@ def train(
             "checksum": report.checksum,
             "clues": table.n_clues,
             "prefixes": table.n_prefixes,
-            "rows": int(table.y.size),
-            "positives": int(table.y.sum()),
+            "rows": counts[0],
+            "positives": counts[1],
             "k": k,
             "prefix_plan": {"fractions": list(plan.fractions), "every_words": plan.every_words},
-            "recall_at_k_full_clue": table.recall(),
+            "recall_at_k_full_clue": counts[2],
             "unresolved_answers": table.unresolved[:50],
             "unresolved_count": len(table.unresolved),
             "skipped_lines": report.skipped,
@@ -205,7 +227,7 @@ def train(
         },
         presence=presence.to_dict(),
         candidates=policy.to_dict(),
-        fit=estimator.fit_choice_.to_dict(),
+        fit=fit_record,
         metrics=oof,
         decision={
             "threshold": tuned["threshold"],
