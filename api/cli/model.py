@@ -230,16 +230,21 @@ def cmd_train(args: argparse.Namespace) -> int:
     print(format_table(["", "value"], [(k, v) for k, v in shown.items()]))
     tuning = a["training"]["fusion_tuning"]
     if tuning:
-        print("\nfusion weight (BM25's share) chosen by recall@k on the training prefixes:")
+        print(
+            "\nfusion weight (BM25's share), chosen by recall@k on whole clues; BM25's order"
+            " (1.0) kept unless the choice also gains when each half of the clues uses the"
+            " weight the other half chose:"
+        )
         print(
             format_table(
-                ["weight", "recall@k", "recall@k, whole clues", ""],
+                ["weight", "recall@k", "recall@k, whole clues", "", "out of sample"],
                 [
                     (
                         r["weight"],
                         round(r["recall_at_k"], 3),
                         round(r["recall_at_k_full_clue"], 3),
                         "chosen" if r["chosen"] else "",
+                        _held_out(r),
                     )
                     for r in tuning
                 ],
@@ -248,6 +253,15 @@ def cmd_train(args: argparse.Namespace) -> int:
     for note in res.notes:
         print(f"note: {note}")
     return 0
+
+
+def _held_out(row: dict[str, Any]) -> str:
+    """BM25's row: whole-clue recall when each half uses the weight the other half chose."""
+    held = row.get("held_out")
+    if not held:
+        return ""
+    weights = "/".join(f"{w:g}" for w in held["weights_by_fold"])
+    return f"{held['recall_at_k_full_clue']:.3f} (w {weights})"
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:

@@ -72,6 +72,7 @@ def test_the_build_vectors_find_answers_and_the_reranked_hybrid_keeps_the_recall
             assert alone["top1"] >= 0.12, (kind, share)
     bm25 = table.pop("BM25 + reranker")["100%"]
     hybrid = next(v for n, v in table.items() if "refined" in n)["100%"]
-    # Measured 0.605 against 0.616: two clues behind, within noise (see README), so this
-    # checks that the default hybrid keeps BM25's recall within four clues, not that it wins.
-    assert hybrid["r20"] >= bm25["r20"] - 0.022
+    # The weight is chosen on whole training clues and BM25's order kept unless another
+    # weight also gains out of sample; here it keeps 1.0 (measured 0.616 against 0.616; the
+    # prefix-chosen 0.7 gave 0.605), so the default hybrid's recall@20 is BM25's.
+    assert hybrid["r20"] >= bm25["r20"] - 0.006

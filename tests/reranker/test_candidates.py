@@ -24,10 +24,21 @@ def test_the_trained_model_records_how_its_candidates_were_made(
     tuning = a["training"]["fusion_tuning"]
     assert [r["weight"] for r in tuning] == [0.3, 0.5, 0.7, 0.85, 1.0]
     [chosen] = [r for r in tuning if r["chosen"]]
-    # the best recall@k on the training prefixes wins; ties go to the higher weight
-    best = max(r["recall_at_k"] for r in tuning)
-    assert chosen["recall_at_k"] == best
-    assert chosen["weight"] == max(r["weight"] for r in tuning if r["recall_at_k"] == best)
+    # Chosen on whole clues (the prefixes favour other weights than the clues served whole):
+    # BM25's own order (w 1.0) is kept unless the weight best on whole clues, ties going to
+    # the higher weight, also gains over it when each of two folds (split by answer) is
+    # scored with the weight the other fold chose.
+    whole = {r["weight"]: r["recall_at_k_full_clue"] for r in tuning}
+    top = max(whole.values())
+    best = max(w for w, v in whole.items() if v == top)
+    [bm25] = [r for r in tuning if r["weight"] == 1.0]
+    held = bm25["held_out"]
+    assert 0 <= held["recall_at_k_full_clue"] <= 1 and len(held["weights_by_fold"]) == 2
+    assert held["bm25_order"] == whole[1.0]
+    gains = held["recall_at_k_full_clue"] > whole[1.0]
+    assert chosen["weight"] == (best if gains else 1.0)
+    for r in tuning:
+        assert len(r["recall_at_k_full_clue_by_fold"]) == 2
     refined = a["training"]["refined_vectors"]
     assert a["candidates"] == {"mode": "hybrid", "weight": chosen["weight"], "pool": 100,
                                "fusion": "minmax", "vectors": refined["served"]}  # fmt: skip
