@@ -5,7 +5,6 @@ from __future__ import annotations
 import threading
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
@@ -13,7 +12,7 @@ from typing import Any, Literal, overload
 
 import numpy as np
 
-from . import bounds, columns, hybrid, metafilter, scoring, store, vecgen
+from . import batchpool, bounds, columns, hybrid, metafilter, scoring, store, vecgen
 from .analyzer import Analyzer, AnalyzerConfig
 from .bm25 import BM25Params
 from .counting import cores
@@ -348,11 +347,10 @@ class Index(hybrid.HybridSearch):
         token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
         if threads <= 1 or len(clues) < 2:
             return self.search_token_lists(token_lists, k)
-        step = -(-len(clues) // threads)
-        shards = [token_lists[i : i + step] for i in range(0, len(token_lists), step)]
-        with ThreadPoolExecutor(len(shards), thread_name_prefix="hunchwise-search") as pool:
-            parts = pool.map(lambda shard: self.search_token_lists(shard, k), shards)
-            return [hits for part in parts for hits in part]
+        # Chunks of at least 16 clues: the kernel releases the GIL for batches that big.
+        return batchpool.map_chunks(
+            lambda part: self.search_token_lists(part, k), token_lists, threads, min_chunk=16
+        )
 
     def __len__(self) -> int:
         return self.n_docs
