@@ -344,12 +344,16 @@ class Index(hybrid.HybridSearch):
         threads = batch_threads(len(clues), threads)
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
-        token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
         if threads <= 1 or len(clues) < 2:
-            return self.search_token_lists(token_lists, k)
-        # Chunks of at least 16 clues: the kernel releases the GIL for batches that big.
+            # one normalize and stem call for all
+            return self.search_token_lists(self.analyzer.tokens_many(clues), k)
+        # Chunks of at least 16 clues (the kernel releases the GIL for batches that big), each
+        # analyzed by the thread that searches it, while the other threads' kernels run.
         return batchpool.map_chunks(
-            lambda part: self.search_token_lists(part, k), token_lists, threads, min_chunk=16
+            lambda part: self.search_token_lists(self.analyzer.tokens_many(part), k),
+            clues,
+            threads,
+            min_chunk=16,
         )
 
     def __len__(self) -> int:
