@@ -16,6 +16,7 @@ The caller works too, so a batch finishes even when every pool thread is busy el
 
 from __future__ import annotations
 
+import os
 import threading
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -42,6 +43,16 @@ def _executor(workers: int) -> ThreadPoolExecutor:
             if old is not None:
                 old.shutdown(wait=False)
         return _pool
+
+
+def _forget_pool() -> None:
+    """In a forked child the pool's threads do not exist: start a new pool when needed."""
+    global _pool, _pool_size, _lock
+    _pool, _pool_size, _lock = None, 0, threading.Lock()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_pool)
 
 
 def chunk_bounds(n: int, threads: int, min_chunk: int) -> list[tuple[int, int]]:
@@ -98,9 +109,13 @@ def map_chunks(
         work()
     finally:
         for f in futures:
-            f.exception()  # wait for every helper before returning or raising
+            # A helper still queued (the pool busy with another batch) is not waited for:
+            # no chunk is left for it. A running one is.
+            if not f.cancel():
+                f.exception()
     for f in futures:
-        f.result()  # raises a helper's exception
+        if not f.cancelled():
+            f.result()  # raises a helper's exception
     out: list[R] = []
     for part in parts:
         assert part is not None

@@ -3,7 +3,9 @@ does not hold up the rest, errors reach the caller."""
 
 from __future__ import annotations
 
+import os
 import threading
+import time
 from collections.abc import Sequence
 
 import pytest
@@ -92,3 +94,50 @@ def test_a_batch_inside_a_batch_finishes() -> None:
 
     items = list(range(200))
     assert batchpool.map_chunks(outer, items, 2, min_chunk=8) == [x + 1 for x in items]
+
+
+def test_a_batch_waits_for_no_helper_that_another_batch_holds_up() -> None:
+    # Another batch keeps every pool thread busy; this batch's caller does every chunk and
+    # returns while that batch is still held up.
+    batchpool.map_chunks(lambda p: list(p), list(range(8)), 2, min_chunk=1)
+    busy = batchpool._pool_size + 1  # every pool thread and the other batch's caller
+    release = threading.Event()
+    started = threading.Semaphore(0)
+
+    def slow(part: Sequence[int]) -> list[int]:
+        started.release()
+        assert release.wait(timeout=30)
+        return list(part)
+
+    other = threading.Thread(target=batchpool.map_chunks, args=(slow, list(range(busy)), busy))
+    other.start()
+    try:
+        for _ in range(busy):
+            assert started.acquire(timeout=30)
+        got = batchpool.map_chunks(lambda p: [x + 1 for x in p], list(range(8)), 2)
+        assert got == list(range(1, 9))
+        assert other.is_alive()  # this batch did not wait for the other one to end
+    finally:
+        release.set()
+        other.join()
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork")
+def test_a_forked_child_can_run_a_batch() -> None:
+    batchpool.map_chunks(lambda p: list(p), list(range(8)), 2)  # the parent's pool exists
+    pid = os.fork()
+    if pid == 0:  # the child: its pool's threads were not copied
+        ok = batchpool.map_chunks(lambda p: [x * 3 for x in p], list(range(40)), 2) == [
+            x * 3 for x in range(40)
+        ]
+        os._exit(0 if ok else 1)
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        done, status = os.waitpid(pid, os.WNOHANG)
+        if done:
+            assert os.waitstatus_to_exitcode(status) == 0
+            return
+        time.sleep(0.05)
+    os.kill(pid, 9)
+    os.waitpid(pid, 0)
+    pytest.fail("the forked child's batch did not finish")
