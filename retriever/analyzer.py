@@ -234,3 +234,8 @@ class TermTable(dict[str, int]):
                 self.terms.append(term)
         self[word] = tid
         return tid
+
+    def parts(self) -> tuple[Any, Any, dict[str, int], list[str]]:
+        """What __missing__ uses (stop words, stemmer or None, term ids, terms), for the
+        compiled loop (retriever/_analysis.c), which adds new words by the same steps."""
+        return self._stop, self._stem, self._ids, self.terms

@@ -58,8 +58,10 @@ def _ids_of(
     new terms: tests/retriever/test_counting_kernel.py); this loop is its definition.
     """
     if use_kernel and _analysis is not None and default_pattern(analyzer):
+        # A plain TermTable's new words are added by the same steps in C (its parts passed).
+        parts = table.parts() if type(table) is TermTable else None
         flat_b, lens_b = _analysis.term_ids_many(
-            list(texts), table, analyzer.config.casefold, analyzer.words
+            list(texts), table, analyzer.config.casefold, analyzer.words, parts
         )
         return np.frombuffer(flat_b, dtype=np.int64), np.frombuffer(lens_b, dtype=np.int64)
     flat: list[int] = []

@@ -12,9 +12,9 @@ from typing import Any, Literal, overload
 
 import numpy as np
 
-from . import columns, hybrid, metafilter, scoring, store, vecgen
+from . import batchpool, columns, hybrid, metafilter, scoring, store, vecgen
 from .analyzer import Analyzer, AnalyzerConfig
-from .batches import batch_threads, map_parts
+from .batches import batch_threads
 from .bm25 import BM25Params
 from .dense import DenseSearcher
 from .errors import IndexFormatError, UnknownDocumentError
@@ -296,14 +296,16 @@ class Index(hybrid.HybridSearch):
         threads = batch_threads(len(clues), threads)
         if k < 1:
             raise ValueError(f"k must be at least 1, got {k}")
-        token_lists = self.analyzer.tokens_many(clues)  # one normalize and stem call for all
         if threads <= 1 or len(clues) < 2:
-            return self.search_token_lists(token_lists, k)
-        return map_parts(
-            lambda part: self.search_token_lists(token_lists[part], k),
-            len(clues),
+            # one normalize and stem call for all
+            return self.search_token_lists(self.analyzer.tokens_many(clues), k)
+        # Chunks of at least 16 clues (the kernel releases the GIL for batches that big), each
+        # analyzed by the thread that searches it, while the other threads' kernels run.
+        return batchpool.map_chunks(
+            lambda part: self.search_token_lists(self.analyzer.tokens_many(part), k),
+            clues,
             threads,
-            "hunchwise-search",
+            min_chunk=16,
         )
 
     def __len__(self) -> int:

@@ -141,3 +141,26 @@ def test_count_texts_same_with_and_without_the_compiled_loops() -> None:
         out.append(count_texts(an, an.term_table(), texts, use_kernel))
     for g, w in zip(*out, strict=True):
         np.testing.assert_array_equal(g, w)
+
+
+def test_a_table_with_its_own_missing_is_asked_for_new_words() -> None:
+    # The compiled loop adds a plain TermTable's new words itself; a subclass's __missing__
+    # must still be the one that decides.
+    _require_kernel()
+    from retriever.analyzer import TermTable
+
+    asked: list[str] = []
+
+    class Counted(TermTable):
+        def __missing__(self, word: str) -> int:
+            asked.append(word)
+            return super().__missing__(word)
+
+    an = Analyzer(stemmer=None)
+    table = Counted(an)
+    texts = ["alpha beta alpha", "gamma beta delta", "the epsilon"]
+    ids, lens = _ids_of(an, table, texts)
+    assert asked == ["alpha", "beta", "gamma", "delta", "the", "epsilon"]
+    assert table.terms == ["alpha", "beta", "gamma", "delta", "epsilon"]
+    np.testing.assert_array_equal(ids, [0, 1, 0, 2, 1, 3, 4])
+    np.testing.assert_array_equal(lens, [3, 3, 1])
