@@ -30,8 +30,9 @@ import functools
 import logging
 import time
 from collections import OrderedDict
+from typing import Any
 
-from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol
+from uvicorn.protocols.http.httptools_impl import HttpToolsProtocol, RequestResponseCycle
 
 from .settings import settings_from_env
 
@@ -71,6 +72,77 @@ def _warn(kind: str, message: str) -> None:
     if now - _last_warned.get(kind, -WARN_EVERY_SECONDS) >= WARN_EVERY_SECONDS:
         _last_warned[kind] = now
         logger.warning(message)
+
+
+class _HeadFirst:
+    """A reply's transport while its body is sent: the held status line and headers go out in
+    the same write as the first body bytes (or alone, before anything else the cycle does)."""
+
+    def __init__(self, transport: Any, head: bytes) -> None:
+        self.transport = transport
+        self.head: bytes | None = head
+
+    def flush(self) -> None:
+        head, self.head = self.head, None
+        if head is not None:
+            self.transport.write(head)
+
+    def write(self, data: bytes) -> None:
+        head, self.head = self.head, None
+        self.transport.write(data if head is None else head + data)
+
+    def __getattr__(self, name: str) -> Any:
+        self.flush()  # close(), is_closing() ...: the head goes out first, as before
+        return getattr(self.transport, name)
+
+
+class _Held:
+    """Collects what the cycle writes while it handles http.response.start (the head)."""
+
+    def __init__(self, transport: Any) -> None:
+        self.transport = transport
+        self.data = b""
+
+    def write(self, data: bytes) -> None:
+        self.data += data
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.transport, name)
+
+
+class OneWriteCycle(RequestResponseCycle):
+    """uvicorn's request cycle with the reply's head and body in one write, not two.
+
+    uvicorn writes the status line and headers as soon as the application starts its reply,
+    then the body: two sends, two TCP segments, two wake-ups of the client on every request.
+    Here the head is held until the body's first write. The bytes on the wire are the same.
+    """
+
+    _head: bytes | None = None
+
+    async def send(self, message: Any) -> None:
+        """Hold the head of the reply; send it with the body."""
+        if message["type"] == "http.response.start" and not self.response_started:
+            transport = self.transport
+            self.transport = held = _Held(transport)  # type: ignore[assignment]
+            try:
+                await super().send(message)
+            finally:
+                self.transport = transport
+            self._head = held.data or None
+            return
+        if self._head is None:
+            await super().send(message)
+            return
+        transport = self.transport
+        self.transport = joined = _HeadFirst(transport, self._head)  # type: ignore[assignment]
+        self._head = None
+        try:
+            await super().send(message)
+        finally:
+            self.transport = transport
+            if not self.disconnected:
+                joined.flush()  # nothing written (a HEAD reply, an error): the head alone
 
 
 class GuardedHttpToolsProtocol(HttpToolsProtocol):
@@ -114,6 +186,13 @@ class GuardedHttpToolsProtocol(HttpToolsProtocol):
         """The request is fully received: from here on the application has the time."""
         super().on_message_complete()
         self._disarm()
+
+    def _start_asgi_task(self, cycle: RequestResponseCycle, app: Any) -> None:
+        # uvicorn (0.55) builds its cycle itself; it becomes the one-write cycle here,
+        # before its task first runs (pipelined requests pass here too).
+        if type(cycle) is RequestResponseCycle:
+            cycle.__class__ = OneWriteCycle
+        super()._start_asgi_task(cycle, app)
 
     def connection_lost(self, exc: Exception | None) -> None:
         """Drop the timer with the connection."""

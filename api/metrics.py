@@ -11,6 +11,7 @@ from __future__ import annotations
 import functools
 import os
 import time
+from typing import Any
 
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
@@ -85,6 +86,18 @@ class Metrics:
             ["cause", "outcome"],
         )
 
+        # Labelled children by (metric, label values): `labels()` checks and joins the values
+        # and takes a lock on every call; the children it returns live as long as the metric.
+        self._children: dict[tuple[int, tuple[str, ...]], Any] = {}
+
+    def child(self, metric: Counter | Histogram, *values: str) -> Any:
+        """`metric.labels(*values)`, looked up once per label set."""
+        key = (id(metric), values)
+        found = self._children.get(key)
+        if found is None:
+            found = self._children[key] = metric.labels(*values)
+        return found
+
     @staticmethod
     def multiprocess() -> bool:
         """True when samples are shared between worker processes through files."""
@@ -124,8 +137,9 @@ class MetricsMiddleware:
         finally:
             endpoint = _endpoint(scope)
             method = str(scope.get("method", ""))
-            self.metrics.requests.labels(endpoint, method, str(status)).inc()
-            self.metrics.latency.labels(endpoint, method).observe(time.perf_counter() - started)
+            metrics = self.metrics
+            metrics.child(metrics.requests, endpoint, method, str(status)).inc()
+            metrics.child(metrics.latency, endpoint, method).observe(time.perf_counter() - started)
 
 
 def _endpoint(scope: Scope) -> str:

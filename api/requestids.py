@@ -8,7 +8,6 @@ rejected without any shared memory or lookup table.
 
 from __future__ import annotations
 
-import hashlib
 import hmac
 import os
 import re
@@ -28,11 +27,13 @@ class RequestIds:
         self._key = secret
 
     def _sign(self, nonce: str) -> str:
-        return hmac.new(self._key, nonce.encode("ascii"), hashlib.sha256).hexdigest()[:24]
+        # hmac.digest: the one-shot C path, the same bytes as hmac.new(...).digest() without
+        # building an HMAC object per request.
+        return hmac.digest(self._key, nonce.encode("ascii"), "sha256").hex()[:24]
 
     def new(self) -> str:
         """A fresh request id."""
-        nonce = secrets.token_hex(16)
+        nonce = os.urandom(16).hex()  # what secrets.token_hex(16) returns, minus two calls
         return f"{nonce}.{self._sign(nonce)}"
 
     def valid(self, request_id: str) -> bool:

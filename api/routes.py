@@ -60,11 +60,11 @@ def _explainer(body: s.RankRequest | s.BatchRankRequest, loaded: Loaded) -> Serv
 
 
 def _record(runtime: Runtime, rankings: list[Ranking]) -> None:
-    runtime.metrics.clues.labels(
-        "bm25" if rankings[0].model_version is None else "probability"
-    ).inc(len(rankings))
+    metrics = runtime.metrics
+    by = "bm25" if rankings[0].model_version is None else "probability"
+    metrics.child(metrics.clues, by).inc(len(rankings))
     for r in rankings:
-        runtime.metrics.decisions.labels(r.decision.action).inc()
+        metrics.child(metrics.decisions, r.decision.action).inc()
 
 
 def _rank_and_log(
@@ -87,7 +87,10 @@ def _rank_and_log(
         complete=body.complete,
         revealed=body.revealed,
         metadata=metadata,
-        include_features=body.include_features or loaded.model is not None,
+        # Each candidate's features as a dict only where something reads them: the reply,
+        # its explanations or the served log (with a model they are computed all the same).
+        include_features=body.include_features
+        or (loaded.model is not None and (body.explain or settings.log_features)),
         where=body.filter,
         snippets=body.snippet,
     )

@@ -157,3 +157,39 @@ def test_stalled_connections_over_the_cap_make_room(index_dir: Path, tmp_path: P
         finally:
             for s in sockets:
                 s.close()
+
+
+def _data_segments_in(s: socket.socket) -> int:
+    """TCP segments with data this socket has received (Linux struct tcp_info's
+    tcpi_data_segs_in, at byte 152 since Linux 4.6; include/uapi/linux/tcp.h)."""
+    info = s.getsockopt(socket.IPPROTO_TCP, socket.TCP_INFO, 256)
+    return int.from_bytes(info[152:156], "little")
+
+
+def test_a_reply_head_and_body_arrive_in_one_segment(index_dir: Path, tmp_path: Path) -> None:
+    with serve(["--index", str(index_dir)], tmp_path, workers=1) as srv:
+        s = _connect(srv, b"")
+        try:
+            for request in (
+                b"GET /v1/info HTTP/1.1\r\nHost: x\r\n\r\n",
+                b"POST /v1/rank HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+                b'Content-Length: 17\r\n\r\n{"clue": "river"}',
+            ):
+                before = _data_segments_in(s)
+                s.sendall(request)
+                reply = _read_reply(s)
+                assert reply.startswith(b"HTTP/1.1 200"), reply[:100]
+                assert b'"candidates"' in reply or b'"worker_pid"' in reply
+                # Status line, headers and body in one write: one segment on loopback
+                # (two when the head is sent on its own).
+                assert _data_segments_in(s) - before == 1
+            # A HEAD reply has no body: its head still goes out, alone.
+            s.sendall(b"HEAD /healthz HTTP/1.1\r\nHost: x\r\n\r\n")
+            head = b""
+            while b"\r\n\r\n" not in head:
+                chunk = s.recv(65536)
+                assert chunk, "closed before the HEAD reply's head arrived"
+                head += chunk
+            assert head.startswith(b"HTTP/1.1 ") and head.endswith(b"\r\n\r\n")
+        finally:
+            s.close()
