@@ -530,13 +530,7 @@ def table(all_results: dict[int, dict[str, dict[str, Any]]]) -> str:
                 )
                 + " |"
             )
-    lines += [
-        "",
-        "| articles | ratio (hunchwise / peer) | build_s vs bm25s (target <= 0.5) | "
-        "p50 vs fastest bm25s (<= 1) | batch_qps vs fastest (>= 1) | "
-        "2-thread batch vs fastest 2-thread (>= 1) | build RSS vs bm25s (<= 1) |",
-        "|---|---|---|---|---|---|---|",
-    ]
+    bm25s_rows = []
     for n, res in all_results.items():
         hw = res.get("hunchwise", {})
         peers = [res[s] for s in ("bm25s-numpy", "bm25s-numba") if "p50_ms" in res.get(s, {})]
@@ -548,12 +542,41 @@ def table(all_results: dict[int, dict[str, dict[str, Any]]]) -> str:
         best_batch2 = max(p["batch2_qps"] for p in peers)
         best_build = min(p["build_s"] for p in peers)
         min_rss = min(p["build_rss_mib"] for p in peers)
-        lines.append(
+        bm25s_rows.append(
             f"| {n} | fastest single query: {name} | {hw['build_s'] / best_build:.2f} | "
             f"{hw['p50_ms'] / fastest['p50_ms']:.2f} | {hw['batch_qps'] / best_batch:.2f} | "
             f"{hw['batch2_qps'] / best_batch2:.2f} | "
             f"{hw['build_rss_mib'] / min_rss:.2f} |"
         )
+    if bm25s_rows:
+        lines += [
+            "",
+            "| articles | ratio (hunchwise / peer) | build_s vs bm25s (target <= 0.5) | "
+            "p50 vs fastest bm25s (<= 1) | batch_qps vs fastest (>= 1) | "
+            "2-thread batch vs fastest 2-thread (>= 1) | build RSS vs bm25s (<= 1) |",
+            "|---|---|---|---|---|---|---|",
+            *bm25s_rows,
+        ]
+    tantivy_rows = []
+    for n, res in all_results.items():
+        hw, tv = res.get("hunchwise", {}), res.get("tantivy", {})
+        if "p50_ms" not in hw or "p50_ms" not in tv:
+            continue
+        two = hw["batch2_qps"] / hw["batch_qps"]
+        tantivy_rows.append(
+            f"| {n} | {hw['p50_ms'] / tv['p50_ms']:.2f} | {hw['p95_ms'] / tv['p95_ms']:.2f} | "
+            f"{hw['batch_qps'] / tv['batch_qps']:.2f} | "
+            f"{hw['batch2_qps'] / tv['batch2_qps']:.2f} | {two:.2f} |"
+        )
+    if tantivy_rows:
+        lines += [
+            "",
+            "| articles | p50 vs tantivy (<= 0.7 at 100k, <= 0.5 at 1M) | p95 vs tantivy (< 1) | "
+            "batch vs tantivy, 1 thread (>= 2) | 2 threads (>= 2) | "
+            "hunchwise 2 threads / 1 thread (>= 1.7) |",
+            "|---|---|---|---|---|---|",
+            *tantivy_rows,
+        ]
     return "\n".join(lines)
 
 
