@@ -16,7 +16,7 @@ from threadpoolctl import threadpool_limits
 
 from retriever import Index, atomicfile, load_index
 
-from . import routes, routes_admin, schemas
+from . import fastlane, routes, routes_admin, schemas
 from .deps import Runtime, admin_refusal
 from .handlers import BodyLimitMiddleware, SafeJSONResponse, install_handlers
 from .metrics import Metrics, MetricsMiddleware
@@ -136,6 +136,7 @@ def create_app(
     app.include_router(routes_admin.admin, responses={**_COMMON, **_ADMIN})
     install_handlers(app)
     _document_limits(app, settings)
+    fastlane.install(app)  # innermost: the outer middleware below still see every request
     if settings.cors_origins:
         app.add_middleware(
             CORSMiddleware,

@@ -130,6 +130,12 @@ def _reply_fields(
 @router.post("/v1/rank", response_model=s.RankResponse, tags=["rank"])
 async def rank(body: s.RankRequest, runtime: RuntimeDep, settings: SettingsDep) -> Response:
     """Candidates for one clue, sorted by calibrated probability, and what to do now."""
+    # Well-formed JSON requests usually reach rank_now through api/fastlane.py instead.
+    return await rank_now(body, runtime, settings)
+
+
+async def rank_now(body: s.RankRequest, runtime: Runtime, settings: ServiceSettings) -> Response:
+    """The reply to one validated rank request (the route above and api/fastlane.py)."""
     # On the event loop, not the thread pool: one clue (bounded by max_clue_chars) is about a
     # millisecond of work, and the trip to a pool thread and back cost a large share of
     # that. Batches, as long as the client makes them, stay in the pool.

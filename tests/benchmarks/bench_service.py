@@ -118,17 +118,18 @@ def prepare(work: Path, articles: int, candidates: str) -> tuple[Path, Path, lis
 
 
 def library_peer(index: Path, model: Path, clues: list[str], seconds: float) -> tuple[float, float]:
-    """rank_clue itself, one thread, no HTTP: (clues per second, CPU seconds per clue)."""
+    """rank_clue itself, one thread, no HTTP: (clues per second, CPU seconds per clue). It does
+    what the server does for the benchmark's requests (no features asked for, none logged)."""
     from reranker import load_model, rank_clue
     from retriever import load_index
 
     idx = load_index(index)
     m = load_model(model, index=idx)
     for c in clues[:20]:
-        rank_clue(idx, m, c, k=20, include_features=True)
+        rank_clue(idx, m, c, k=20)
     n, start, cpu = 0, time.perf_counter(), time.thread_time()
     while time.perf_counter() - start < seconds:
-        rank_clue(idx, m, clues[n % len(clues)], k=20, include_features=True)
+        rank_clue(idx, m, clues[n % len(clues)], k=20)
         n += 1
     return n / (time.perf_counter() - start), (time.thread_time() - cpu) / n
 
