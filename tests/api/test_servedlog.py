@@ -9,6 +9,7 @@ import threading
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 
 from api.requestids import RequestIds, shared_secret
@@ -41,6 +42,18 @@ def test_lines_are_whole_json_and_ascii_safe(tmp_path: Path) -> None:
     assert [json.loads(x)["n"] for x in raw.splitlines()] == [1, 2]
     with pytest.raises(ValueError):  # NaN is not JSON (RFC 8259, section 6)
         encode_lines([{"p": float("nan")}])
+
+
+@pytest.mark.parametrize(
+    "bad", [float("inf"), -float("inf"), np.float64("nan"), np.float32("inf"), np.float32("nan")]
+)
+def test_non_finite_numbers_are_refused_wherever_they_are(bad: Any) -> None:
+    # A null in the line (a decision without an answer) makes the encoder look for them.
+    record = {"decision": {"id": None}, "candidates": [{"p": 0.5}, {"p": [1.0, {"q": bad}]}]}
+    with pytest.raises(ValueError):  # not JSON numbers (RFC 8259, section 6)
+        encode_lines([record])
+    fine = {"decision": {"id": None}, "candidates": [{"p": np.float32(0.5), "n": np.int64(2)}]}
+    assert json.loads(encode_lines([fine]))["candidates"][0] == {"p": 0.5, "n": 2}
 
 
 def test_rotation_by_size_keeps_order_and_count(tmp_path: Path) -> None:
