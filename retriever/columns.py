@@ -19,6 +19,7 @@ from typing import overload
 import numpy as np
 
 from .errors import IndexFormatError
+from .npymap import map_npy
 
 # Terms up to this many UTF-8 bytes live in a fixed-width sorted array searched in C; longer
 # ones (rare: URLs, chemical names) in a small dict. 32 covers ordinary words with room.
@@ -226,7 +227,7 @@ class Vocab:
         if not keys_path.exists():
             raise IndexFormatError(f"{folder}: vocab_keys.npy is missing; rebuild the index")
         try:
-            self._keys = np.load(keys_path, mmap_mode="r", allow_pickle=False)
+            self._keys = map_npy(keys_path)
         except (ValueError, OSError, EOFError) as exc:
             raise IndexFormatError(f"{folder}: vocab_keys.npy is corrupt ({exc}); rebuild") from exc
         if self._keys.dtype.kind != "S" or self._keys.ndim != 1:

@@ -18,6 +18,7 @@ import numpy as np
 from . import atomicfile
 from .corpus import Article, CorpusError, validate_record
 from .errors import IndexFormatError
+from .npymap import map_npy
 
 FORMAT_NAME = "hunchwise-index"
 FORMAT_VERSION = 3
@@ -48,7 +49,7 @@ def open_array(folder: Path, name: str, dtype: str, length: int | None = None) -
             f"{folder}: the array file {path.name} is missing; rebuild the index"
         )
     try:
-        arr = np.load(path, mmap_mode="r", allow_pickle=False)
+        arr = map_npy(path)
     except (ValueError, OSError, EOFError) as exc:
         raise IndexFormatError(
             f"{folder}: the array file {path.name} is corrupt ({exc}); rebuild the index"

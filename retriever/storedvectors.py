@@ -10,6 +10,7 @@ import numpy as np
 
 from . import columns, store
 from .errors import IndexFormatError
+from .npymap import map_npy
 from .vecsettings import VectorSettings
 
 WORDVEC, WORDVEC_WEIGHT, WORDVEC_TERMS = "wordvec", "wordvec_weight", "wordvec_terms"
@@ -20,7 +21,7 @@ def open_matrix(folder: Path, name: str, dtype: str, rows: int, dim: int) -> np.
     """Memory-map a 2-d `name.npy` read-only, checking its type and shape."""
     path = folder / f"{name}.npy"
     try:
-        arr = np.load(path, mmap_mode="r", allow_pickle=False)
+        arr = map_npy(path)
     except FileNotFoundError as exc:
         raise IndexFormatError(f"{folder}: {path.name} is missing; rebuild the index") from exc
     except (ValueError, OSError, EOFError) as exc:
