@@ -173,11 +173,11 @@ def _candidates_text(c: dict[str, object]) -> str:
 def cmd_train(args: argparse.Namespace) -> int:
     """Train and save a model; print its headline numbers."""
     from reranker.training import PrefixPlan, train
-    from retriever import load_index
     from retriever.cluster import Runner
+    from retriever.shardview import open_whole
 
     check_k(args.k)
-    index = load_index(args.index)
+    index = open_whole(args.index)
     features = [f.strip() for f in args.features.split(",") if f.strip()] if args.features else None
     with Runner(args.ray, "train") as runner:
         res = train(
@@ -268,11 +268,11 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     """Evaluate a model and write the report folder."""
     from reranker import load_model
     from reranker.training import evaluate
-    from retriever import load_index
     from retriever.cluster import Runner
+    from retriever.shardview import open_whole
 
     check_k(args.k)
-    index = load_index(args.index)
+    index = open_whole(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
     with Runner(args.ray, "evaluate") as runner:
         ev = evaluate(
