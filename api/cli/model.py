@@ -22,6 +22,7 @@ from .options import (
     add_share_option,
     at_least_zero,
     byte_size,
+    positive_int,
 )
 
 
@@ -123,6 +124,15 @@ def register(sub: argparse._SubParsersAction) -> None:
         "may take for the in-memory fit, like 512M or 2G (default: a quarter of the memory "
         "available when training starts)",
     )
+    p.add_argument(
+        "--sample-rows",
+        type=positive_int,
+        default=None,
+        metavar="N",
+        help="with --ray, when the table is not gathered: the most rows of the seeded sample "
+        "of whole clues the calibration, thresholds and held-out figures are chosen on "
+        "(default 100000; recorded in the model file's fit)",
+    )
     p.set_defaults(func=cmd_train)
 
     p = sub.add_parser("evaluate", help="score a model on held-out logs and write a report folder")
@@ -177,6 +187,11 @@ def cmd_train(args: argparse.Namespace) -> int:
     from retriever.shardview import open_whole
 
     check_k(args.k)
+    if args.sample_rows is not None and args.ray is None:
+        raise ValueError(
+            "--sample-rows: the sample is taken only when the table stays on a Ray cluster; "
+            "give --ray ADDRESS|local too, or leave --sample-rows out"
+        )
     index = open_whole(args.index)
     features = [f.strip() for f in args.features.split(",") if f.strip()] if args.features else None
     with Runner(args.ray, "train") as runner:
@@ -199,6 +214,7 @@ def cmd_train(args: argparse.Namespace) -> int:
             fit=args.fit,
             fit_budget=args.fit_budget,
             refine_vectors=args.refine_vectors,
+            **({} if args.sample_rows is None else {"sample_rows": args.sample_rows}),
         )
     a = res.artifact
     summary = {

@@ -122,6 +122,8 @@ def train(
     """
     if candidates not in ("auto", "bm25"):
         raise ValueError(f"candidates must be 'auto' or 'bm25', got {candidates!r}")
+    if sample_rows < 1:
+        raise ValueError(f"sample_rows must be at least 1, got {sample_rows}")
     sharded = isinstance(index, ShardedView)
     if candidates == "auto" and refine_vectors and sharded and index.dense is not None:
         # Refining writes a vector generation into the index folder (refine.py); a sharded
