@@ -112,8 +112,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         default="auto",
         help="how the logistic model is fitted: 'memory' (scikit-learn on the whole table), "
         "'blocks' (map-reduce Newton steps over blocks of rows, as Ray tasks with --ray; the "
-        "same model) or 'auto' (in memory when the table of features fits --fit-budget, else "
-        "in blocks; default)",
+        "same coefficients as the in-memory fit within a small tolerance, but with --ray the "
+        "table is not gathered, so the calibration and thresholds are chosen on a sample of "
+        "whole clues, see --sample-rows) or 'auto' (in memory when the table of features fits "
+        "--fit-budget, else in blocks; default)",
     )
     p.add_argument(
         "--fit-budget",
