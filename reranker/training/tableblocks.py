@@ -129,8 +129,7 @@ def row_blocks(
         fn_constructor_args=(*args, policy),
         batch_size=BLOCK,
         batch_format="numpy",
-        concurrency=max(1, int(ray.cluster_resources().get("CPU", 1))),
-        num_cpus=1,
+        **runner.worker_pool(),
     )
     refs = ds.to_numpy_refs()
     runner.data_runs.append(ds.stats())

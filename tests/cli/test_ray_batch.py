@@ -52,6 +52,8 @@ def test_rank_file_on_ray_equals_in_process(
     assert here.returncode == 0, here.stderr
     there = run(*common, "--output", tmp_path / "ray.jsonl", "--ray", cluster)
     assert there.returncode == 0, there.stderr
+    # Ray Data's log on the driver: no deprecated argument (map_batches' concurrency).
+    assert "deprecated" not in there.stderr, there.stderr
     want = (tmp_path / "here.jsonl").read_bytes()
     assert (tmp_path / "ray.jsonl").read_bytes() == want
     assert want.count(b"\n") == 290
@@ -84,6 +86,7 @@ def test_features_export_on_ray_equals_in_process(
     assert here.returncode == 0, here.stderr
     there = run(*common, "--out", tmp_path / "ray.jsonl", "--ray", cluster)
     assert there.returncode == 0, there.stderr
+    assert "deprecated" not in there.stderr, there.stderr  # the blocks of the table too
     want = (tmp_path / "here.jsonl").read_bytes()
     assert want.count(b"\n") > 1000
     assert (tmp_path / "ray.jsonl").read_bytes() == want
