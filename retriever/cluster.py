@@ -137,14 +137,12 @@ class Runner:
         names = list(columns)
         values = [columns[c].tolist() for c in names]
         rows = [dict(zip(names, r, strict=True)) for r in zip(*values, strict=True)]
-        workers = max(1, int(ray.cluster_resources().get("CPU", 1)))
         ds = ray.data.from_items(rows).map_batches(
             worker,
             fn_constructor_args=args,
             batch_size=batch_size,
             batch_format="numpy",
-            concurrency=workers,
-            num_cpus=1,
+            **self.worker_pool(),
         )
         try:
             parts = list(ds.iter_batches(batch_size=None, batch_format="numpy"))
@@ -155,6 +153,23 @@ class Runner:
             raise err from None
         self.data_runs.append(ds.stats())
         return parts
+
+    def worker_pool(self) -> dict[str, Any]:
+        """`map_batches` options for a class of workers: one per cluster CPU, each set up
+        once."""
+        ray = self.ray
+        workers = max(1, int(ray.cluster_resources().get("CPU", 1)))
+        return {
+            # A fixed pool of `workers` actors: what `concurrency=workers` meant for a class,
+            # deprecated since Ray 2.51 for `compute` (ray.data.ActorPoolStrategy's docs).
+            "compute": ray.data.ActorPoolStrategy(size=workers),
+            "num_cpus": 1,
+            # Not set: max_restarts. Ray Data restarts a dead worker and resends its batch
+            # without end, and logs on every job that such restarts may fail (its own
+            # constructor arguments live in the object store, ray-project/ray#57733); the
+            # only way to turn that off, max_restarts=0, goes through **ray_remote_args,
+            # deprecated in Ray 2.60.
+        }
 
     def close(self) -> None:
         """Shut Ray down if this runner started it."""

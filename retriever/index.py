@@ -328,8 +328,9 @@ def load_index(
 ) -> Index | ShardedIndex:
     """Open an index folder (arrays are memory-mapped, so loading is fast and shared).
 
-    sharded=True also opens a sharded index's folder (retriever/shards.py), which can only
-    be searched for now; without it such a folder is refused with a message saying so.
+    sharded=True also opens a sharded index's folder (retriever/shards.py) as a
+    `ShardedIndex`, for search; without it such a folder is refused with a message saying
+    so (`shardview.open_whole` opens it as one `Index`, for ranking and training).
     """
     if sharded and store.is_sharded(Path(folder)):
         return ShardedIndex(Path(folder), lambda path: Index(path, title_weight=title_weight))

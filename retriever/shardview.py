@@ -34,12 +34,12 @@ from typing import Any, cast
 
 import numpy as np
 
-from . import metacolumns, metafilter, vecgen
+from . import metacolumns, metafilter, store, vecgen
 from .columns import JsonListColumn, StringColumn
 from .dense import DenseSearcher
 from .errors import IndexFormatError
 from .hits import Hit, RowMask, TokenLists
-from .index import Document, Index, _FieldPostings
+from .index import Document, Index, _FieldPostings, load_index
 from .metacolumns import MetaColumns
 from .sharded import ShardedIndex, merge_scored
 from .shardeddense import ShardedDense, merge_nearest
@@ -304,3 +304,12 @@ class ShardedView(Index):
 
     def __repr__(self) -> str:
         return f"ShardedView({str(self.path)!r}, articles={self.n_docs}, shards={len(self.shards)})"
+
+
+def open_whole(folder: str | Path, *, title_weight: float | None = None) -> Index:
+    """An index folder for ranking, feature tables and training: a sharded folder
+    (`index build --shards`) as one `ShardedView` asking its shards in this process, any
+    other folder as `load_index` opens it. The same hits, features and scores either way."""
+    if store.is_sharded(Path(folder)):
+        return ShardedView(folder, title_weight=title_weight)
+    return load_index(folder, title_weight=title_weight)

@@ -189,8 +189,8 @@ def read_manifest(folder: Path) -> dict[str, Any]:
     if isinstance(manifest, dict) and manifest.get("format") == SHARDS_FORMAT:
         raise IndexFormatError(
             f"{folder}: this folder holds an index built in {len(manifest.get('shards', []))} "
-            "shards, which can only be searched for now ('hunchwise search'); serving, "
-            "training and updating need an index built without --shards"
+            "shards: search, rank, features export, train, evaluate and serve --ray read it; "
+            "this needs an index built without --shards"
         )
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
         raise IndexFormatError(f"{folder}: {MANIFEST} does not describe a hunchwise index")

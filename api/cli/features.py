@@ -101,12 +101,12 @@ def cmd_export(args: argparse.Namespace) -> int:
     from reranker.features.builtin import DENSE, default_registry
     from reranker.training import PrefixPlan, build_table, read_logs
     from reranker.training.logs import LogReport
-    from retriever import load_index
     from retriever.cluster import Runner
+    from retriever.shardview import open_whole
 
     check_k(args.k)
     fmt = output_format(args.out, ("jsonl", "csv", "parquet"))
-    index = load_index(args.index)
+    index = open_whole(args.index)
     fractions, every = args.prefixes, args.every_words
     if args.model is not None:
         model = load_model(args.model, index=index, user_features=args.feature)

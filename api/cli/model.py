@@ -22,6 +22,7 @@ from .options import (
     add_share_option,
     at_least_zero,
     byte_size,
+    positive_int,
 )
 
 
@@ -111,8 +112,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         default="auto",
         help="how the logistic model is fitted: 'memory' (scikit-learn on the whole table), "
         "'blocks' (map-reduce Newton steps over blocks of rows, as Ray tasks with --ray; the "
-        "same model) or 'auto' (in memory when the table of features fits --fit-budget, else "
-        "in blocks; default)",
+        "same coefficients as the in-memory fit within a small tolerance, but with --ray the "
+        "table is not gathered, so the calibration and thresholds are chosen on a sample of "
+        "whole clues, see --sample-rows) or 'auto' (in memory when the table of features fits "
+        "--fit-budget, else in blocks; default)",
     )
     p.add_argument(
         "--fit-budget",
@@ -122,6 +125,15 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="with --fit auto: the most memory the table of features (rows x features x 8 bytes) "
         "may take for the in-memory fit, like 512M or 2G (default: a quarter of the memory "
         "available when training starts)",
+    )
+    p.add_argument(
+        "--sample-rows",
+        type=positive_int,
+        default=None,
+        metavar="N",
+        help="with --ray, when the table is not gathered: the most rows of the seeded sample "
+        "of whole clues the calibration, thresholds and held-out figures are chosen on "
+        "(default 100000; recorded in the model file's fit)",
     )
     p.set_defaults(func=cmd_train)
 
@@ -173,11 +185,16 @@ def _candidates_text(c: dict[str, object]) -> str:
 def cmd_train(args: argparse.Namespace) -> int:
     """Train and save a model; print its headline numbers."""
     from reranker.training import PrefixPlan, train
-    from retriever import load_index
     from retriever.cluster import Runner
+    from retriever.shardview import open_whole
 
     check_k(args.k)
-    index = load_index(args.index)
+    if args.sample_rows is not None and args.ray is None:
+        raise ValueError(
+            "--sample-rows: the sample is taken only when the table stays on a Ray cluster; "
+            "give --ray ADDRESS|local too, or leave --sample-rows out"
+        )
+    index = open_whole(args.index)
     features = [f.strip() for f in args.features.split(",") if f.strip()] if args.features else None
     with Runner(args.ray, "train") as runner:
         res = train(
@@ -199,6 +216,7 @@ def cmd_train(args: argparse.Namespace) -> int:
             fit=args.fit,
             fit_budget=args.fit_budget,
             refine_vectors=args.refine_vectors,
+            **({} if args.sample_rows is None else {"sample_rows": args.sample_rows}),
         )
     a = res.artifact
     summary = {
@@ -268,11 +286,11 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     """Evaluate a model and write the report folder."""
     from reranker import load_model
     from reranker.training import evaluate
-    from retriever import load_index
     from retriever.cluster import Runner
+    from retriever.shardview import open_whole
 
     check_k(args.k)
-    index = load_index(args.index)
+    index = open_whole(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
     with Runner(args.ray, "evaluate") as runner:
         ev = evaluate(

@@ -31,6 +31,17 @@ unit_share = bounded_number(0.0, 1.0, "a number between 0 and 1")
 at_least_zero = bounded_number(0.0, 1.7976931348623157e308, "a number of at least 0")
 
 
+def positive_int(text: str) -> int:
+    """An argparse type: a whole number of at least 1."""
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0  # fails the check below, with the same message
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number of at least 1, got {text!r}")
+    return value
+
+
 _SIZE = re.compile(r"\s*(\d+(?:\.\d+)?)\s*([kmgt]?)(?:i?b)?\s*", re.IGNORECASE)
 
 

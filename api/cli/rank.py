@@ -142,10 +142,10 @@ class RankWorker:
 
     def __init__(self, args: argparse.Namespace) -> None:
         from reranker import load_model
-        from retriever import load_index
+        from retriever.shardview import open_whole
 
         self.args = args
-        self.index = load_index(args.index)
+        self.index = open_whole(args.index)
         self.model = load_model(args.model, index=self.index, user_features=args.feature)
 
     def __call__(self, batch: dict[str, Any]) -> dict[str, Any]:
@@ -189,7 +189,7 @@ def _distributed(args: argparse.Namespace, clues: list[ClueIn]) -> list[str]:
 def cmd_rank(args: argparse.Namespace) -> int:
     """Rank the clues and write one JSON result per clue."""
     from reranker import load_model
-    from retriever import load_index
+    from retriever.shardview import open_whole
 
     check_k(args.k)
     clues = _clues(args)
@@ -203,7 +203,7 @@ def cmd_rank(args: argparse.Namespace) -> int:
         else:
             write_rows(args.output, (json.loads(line) for line in lines), fmt)
         return 0
-    index = load_index(args.index)
+    index = open_whole(args.index)
     model = load_model(args.model, index=index, user_features=args.feature)
     rows = results(index, model, clues, args, show_progress() and args.output is not None)
     if args.output is None:

@@ -21,7 +21,7 @@ from multiprocessing.connection import Connection
 from pathlib import Path
 
 from ..parentwatch import PARENT_ENV
-from .options import add_feature_option, add_port_option
+from .options import add_feature_option, add_port_option, positive_int
 
 ENV_PREFIX = "HUNCHWISE_"
 STARTUP_FAILURE_NOTE = "worker-failed.txt"  # as api.app writes it (not imported: it is heavy)
@@ -96,16 +96,16 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument(
         "--shard-replicas",
-        type=int,
+        type=positive_int,
         metavar="N",
-        default=1,
+        default=None,
         help="with --ray: replicas of each shard's deployment (default 1)",
     )
     p.add_argument(
         "--front-replicas",
-        type=int,
+        type=positive_int,
         metavar="N",
-        default=1,
+        default=None,
         help="with --ray: replicas of the front deployment, the HTTP API that analyses "
         "clues, merges the shards' lists and computes features and probabilities; Ray "
         "Serve's proxy spreads requests among them (default 1)",
@@ -262,8 +262,8 @@ def _serve_on_ray(args: argparse.Namespace) -> int:
         args.ray,
         host=args.host,
         port=args.port,
-        shard_replicas=args.shard_replicas,
-        front_replicas=args.front_replicas,
+        shard_replicas=args.shard_replicas or 1,
+        front_replicas=args.front_replicas or 1,
     )
 
 
@@ -271,9 +271,13 @@ def cmd_serve(args: argparse.Namespace) -> int:
     """Run the service until interrupted."""
     from ..settings import settings_from_env
 
-    for name in ("shard_replicas", "front_replicas"):
-        if args.ray is None and getattr(args, name) != 1:
-            raise ValueError(f"--{name.replace('_', '-')}: only with --ray")
+    given = [n for n in ("shard_replicas", "front_replicas") if getattr(args, n) is not None]
+    if args.ray is None and given:
+        flags = ", ".join("--" + n.replace("_", "-") for n in given)
+        raise ValueError(
+            f"{flags}: only with --ray (replicas of the Ray Serve deployments of a sharded "
+            "index); without --ray, run more server processes with --workers"
+        )
     with _state_folder(args.state_dir) as state_dir:
         os.environ.update(_environment(args, state_dir))
         if args.ray is not None:

@@ -167,8 +167,14 @@ def fit_out_of_core(
         raise TrainingError("cross-validation needs at least two clues")
     fold_of = np.full(facts.clue_rows.size, -1, dtype=np.int64)
     fold_of[present] = clue_folds(facts.clue_rows[present], folds)
-    cv = cross_validated_fit(runner, blocks, fold_of, folds, est.Cs, progress=progress)
     chosen = sample_clues(facts.clue_rows, sample_rows)
+    if chosen.size < 2:
+        raise TrainingError(
+            f"a sample of at most {sample_rows:,} rows holds {chosen.size} whole clue(s); the "
+            "calibration and thresholds need at least two: raise the sample's rows "
+            f"(--sample-rows; a clue has up to {int(facts.clue_rows.max()):,} rows here)"
+        )
+    cv = cross_validated_fit(runner, blocks, fold_of, folds, est.Cs, progress=progress)
     sample = as_table(gather(runner, blocks, len(names), chosen), pre, names)
     raw = np.zeros(sample.y.size)
     row_fold = fold_of[sample.clue_id]

@@ -16,8 +16,9 @@ from typing import Any
 
 import numpy as np
 
-from retriever import Index, load_index
+from retriever import Index
 from retriever.cluster import Runner
+from retriever.shardview import open_whole
 
 from ..candidates import CandidatePolicy
 from ..features import FeatureRegistry, MetadataColumns
@@ -39,7 +40,7 @@ class TableWorker:
         metadata: MetadataColumns,
         policy: CandidatePolicy,
     ) -> None:
-        self.index = load_index(index_path, title_weight=title_weight)
+        self.index = open_whole(index_path, title_weight=title_weight)
         self.registry, self.names, self.k = registry, names, k
         self.metadata, self.policy = metadata, policy
 
@@ -128,8 +129,7 @@ def row_blocks(
         fn_constructor_args=(*args, policy),
         batch_size=BLOCK,
         batch_format="numpy",
-        concurrency=max(1, int(ray.cluster_resources().get("CPU", 1))),
-        num_cpus=1,
+        **runner.worker_pool(),
     )
     refs = ds.to_numpy_refs()
     runner.data_runs.append(ds.stats())

@@ -11,6 +11,7 @@ import numpy as np
 
 from retriever import Index
 from retriever.cluster import Runner
+from retriever.shardview import ShardedView
 
 from ..candidates import CandidatePolicy
 from ..decision import Payoff, simulate_commits, tune_threshold
@@ -121,6 +122,18 @@ def train(
     """
     if candidates not in ("auto", "bm25"):
         raise ValueError(f"candidates must be 'auto' or 'bm25', got {candidates!r}")
+    if sample_rows < 1:
+        raise ValueError(f"sample_rows must be at least 1, got {sample_rows}")
+    sharded = isinstance(index, ShardedView)
+    if candidates == "auto" and refine_vectors and sharded and index.dense is not None:
+        # Refining writes a vector generation into the index folder (refine.py); a sharded
+        # folder would need it in every shard, trained over all of them: not done yet.
+        raise ValueError(
+            f"{index.path}: refining the word vectors is not done on a sharded index; train "
+            "with --no-refine-vectors (refine_vectors=False, the shards' own vectors) or "
+            "--candidates bm25, or train on the unsharded index and copy its refined vectors "
+            "into the shards with hunchwise index copy-vectors"
+        )
     payoff = payoff or Payoff()
     plan = plan or PrefixPlan()
     reg = registry if registry is not None else default_registry().with_user_features(user_features)

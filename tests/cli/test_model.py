@@ -192,6 +192,8 @@ def test_bad_options_and_missing_files(world: World, tmp_path: Path) -> None:
         ("--cost-per-word", "-0.1", "expected a number of at least 0, got '-0.1'"),
         ("--cost-per-word", "inf", "expected a number of at least 0, got 'inf'"),
         ("--abstain-if-none", "nan", "expected a number between 0 and 1, got 'nan'"),
+        ("--sample-rows", "0", "expected a whole number of at least 1, got '0'"),
+        ("--sample-rows", "1e3", "expected a whole number of at least 1, got '1e3'"),
     ],
 )
 def test_speed_options_are_checked_before_anything_runs(
@@ -202,6 +204,16 @@ def test_speed_options_are_checked_before_anything_runs(
         "--out", tmp_path / "m.json", option, value,
     )  # fmt: skip
     assert out.returncode == 2 and f"argument {option}: {message}" in out.stderr, out.stderr
+    assert not (tmp_path / "m.json").exists()
+
+
+def test_sample_rows_without_ray_is_an_error(tmp_path: Path) -> None:
+    out = hunchwise(
+        "train", "--index", tmp_path / "idx", "--log", tmp_path / "log.jsonl",
+        "--out", tmp_path / "m.json", "--sample-rows", "500",
+    )  # fmt: skip
+    assert out.returncode != 0 and out.stderr.count("\n") == 1
+    assert "--sample-rows" in out.stderr and "--ray" in out.stderr, out.stderr
     assert not (tmp_path / "m.json").exists()
 
 

@@ -52,6 +52,8 @@ def test_rank_file_on_ray_equals_in_process(
     assert here.returncode == 0, here.stderr
     there = run(*common, "--output", tmp_path / "ray.jsonl", "--ray", cluster)
     assert there.returncode == 0, there.stderr
+    # Ray Data's log on the driver: no deprecated argument (map_batches' concurrency).
+    assert "deprecated" not in there.stderr, there.stderr
     want = (tmp_path / "here.jsonl").read_bytes()
     assert (tmp_path / "ray.jsonl").read_bytes() == want
     assert want.count(b"\n") == 290
@@ -84,6 +86,7 @@ def test_features_export_on_ray_equals_in_process(
     assert here.returncode == 0, here.stderr
     there = run(*common, "--out", tmp_path / "ray.jsonl", "--ray", cluster)
     assert there.returncode == 0, there.stderr
+    assert "deprecated" not in there.stderr, there.stderr  # the blocks of the table too
     want = (tmp_path / "here.jsonl").read_bytes()
     assert want.count(b"\n") > 1000
     assert (tmp_path / "ray.jsonl").read_bytes() == want
@@ -140,3 +143,17 @@ def test_train_and_evaluate_on_ray_equal_in_process(
     metrics = [json.loads((tmp_path / f"report-{n}" / "metrics.json").read_text()) for n in models]
     assert _differences(*metrics) == []
     assert metrics[0]["about"]["evaluation"]["clues"] > 50
+
+
+def test_train_on_ray_takes_a_sample_of_at_most_sample_rows(
+    cluster: str, demo: dict[str, Path], index_dir: Path, tmp_path: Path
+) -> None:
+    out = tmp_path / "m.json"
+    res = run("train", "--index", index_dir, "--log", demo["train"], "--out", out,
+              "--candidates", "bm25", "--fit", "blocks", "--sample-rows", "1500",
+              "--ray", cluster)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    fit = json.loads(out.read_text(encoding="utf-8"))["fit"]
+    sample = fit["sample"]
+    assert sample["cap_rows"] == 1500 and 2 <= sample["clues"] < sample["of_clues"]
+    assert fit["driver_rows"] == sample["rows"] <= 1500 < fit["rows"]

@@ -18,6 +18,7 @@ import pytest
 from sklearn.linear_model import LogisticRegression
 from sklearn.preprocessing import StandardScaler
 
+from reranker.errors import TrainingError
 from reranker.training import TrainResult, train
 from reranker.training.blockfit import choose_fit
 from reranker.training.estimator import Reranker
@@ -148,3 +149,27 @@ def test_a_sample_of_every_clue_gives_the_gathered_calibration(both: dict[str, A
     assert got.estimator.calibrator_["method"] == want.calibrator_["method"]
     assert np.allclose(got.estimator.oof_proba_, want.oof_proba_, rtol=0, atol=1e-9)
     assert np.allclose(got.estimator.coef_, want.coef_, rtol=1e-9, atol=1e-12)
+
+
+def test_the_sample_holds_whole_clues_within_its_cap(both: dict[str, Any]) -> None:
+    gathered, ooc = both["gathered"].table, both["ooc"].table
+    sample = both["ooc"].artifact["fit"]["sample"]
+    assert sample["cap_rows"] == SAMPLE and 2 <= sample["clues"] < sample["of_clues"]
+    assert ooc.y.size == sample["rows"] <= SAMPLE
+    # Every sampled clue brings all of its rows: as many as it has in the whole table.
+    clues, rows = np.unique(ooc.clue_id, return_counts=True)
+    assert clues.size == sample["clues"]
+    assert np.array_equal(rows, np.bincount(gathered.clue_id)[clues])
+
+
+def test_a_cap_below_two_whole_clues_is_refused_saying_so(both: dict[str, Any]) -> None:
+    t = both["gathered"].table
+    blocks = [{c: getattr(t, c) for c in ("X", "y", "group", "clue_id", "fraction", "score",
+                                           "rank", "row", "words")}]  # fmt: skip
+    here = Runner(None)
+    facts = table_facts(here, blocks, t.n_clues)
+    pre = Prefixes(t.texts, [], t.unresolved, t.n_clues, t.clues)
+    choice = choose_fit("blocks", facts.rows, t.X.shape[1])
+    smallest = int(np.bincount(t.clue_id).min())
+    with pytest.raises(TrainingError, match=r"holds [01] whole clue.*--sample-rows"):
+        fit_out_of_core(here, blocks, pre, t.feature_names, choice, facts, sample_rows=smallest)
