@@ -189,8 +189,8 @@ def read_manifest(folder: Path) -> dict[str, Any]:
     if isinstance(manifest, dict) and manifest.get("format") == SHARDS_FORMAT:
         raise IndexFormatError(
             f"{folder}: this folder holds an index built in {len(manifest.get('shards', []))} "
-            "shards: search, rank, features export, train, evaluate and serve --ray read it; "
-            "this needs an index built without --shards"
+            "shards: search, index info, rank, features export, train, evaluate and serve --ray "
+            "read it; this needs an index built without --shards"
         )
     if not isinstance(manifest, dict) or manifest.get("format") != FORMAT_NAME:
         raise IndexFormatError(f"{folder}: {MANIFEST} does not describe a hunchwise index")
@@ -268,5 +268,6 @@ def atomic_folder(target: Path) -> Iterator[Path]:
 
 
 def folder_size(folder: Path) -> int:
-    """Bytes on disk of the files in a folder."""
-    return sum(p.stat().st_size for p in folder.iterdir() if p.is_file())
+    """Bytes of the files in a folder and its subfolders (a sharded index's shards, an
+    index's vector generations)."""
+    return sum(p.stat().st_size for p in folder.rglob("*") if p.is_file())

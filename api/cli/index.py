@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import time
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 if TYPE_CHECKING:
     from retriever import Index
@@ -74,9 +74,11 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def cmd_info(args: argparse.Namespace) -> int:
     """Print an index's manifest."""
-    from retriever import load_index, scoring
+    from retriever import load_index, scoring, store
     from retriever.store import folder_size
 
+    if store.is_sharded(Path(args.index)):
+        return _sharded_info(args)
     idx = load_index(args.index)
     if args.unresolved:
         from retriever.store import read_unresolved
@@ -111,6 +113,67 @@ def cmd_info(args: argparse.Namespace) -> int:
         ),
     ]
     print(format_table(["field", "value"], rows))
+    return 0
+
+
+def _sharded_info(args: argparse.Namespace) -> int:
+    """`index info` on a sharded folder: the corpus's figures, then one row per shard."""
+    from retriever import load_index, scoring
+    from retriever.store import folder_size, read_unresolved
+
+    sharded = cast("ShardedIndex", load_index(args.index, sharded=True))
+    shards = [cast("Index", s) for s in sharded.shards]
+    if args.unresolved:
+        links = [pair for s in shards for pair in read_unresolved(s.path)]
+        if args.json:
+            print_json([{"from": src, "link": name} for src, name in links])
+        else:
+            for src, name in links:
+                print(f"{src}\t{name}")
+        return 0
+    top = sharded.manifest
+    parts = [s.manifest for s in shards]
+    if args.json:
+        print_json({**top, "shard_manifests": parts})
+        return 0
+    counts = [m["counts"] for m in parts]
+    rows = [
+        ("index version", top["index_version"]),
+        ("created", top["created_at"]),
+        ("articles", top["articles"]),
+        ("shards", len(parts)),
+        ("terms", counts[0]["terms"]),  # the corpus's vocabulary, the same in every shard
+        ("postings", sum(c["body_postings"] for c in counts)),
+        ("mean length", round(counts[0]["avgdl"], 1)),  # the corpus's, every shard uses it
+        ("qualified titles", sum(c["qualified_titles"] for c in counts)),
+        ("unresolved links", sum(m["build"].get("unresolved_links", 0) for m in parts)),
+        ("bm25", ", ".join(f"{k}={v}" for k, v in top["bm25"].items())),
+        ("analyzer", ", ".join(f"{k}={v}" for k, v in top["analyzer"].items() if k != "extra")),
+        ("statistics sha256", top["stats"]["sha256"][:16] + "..."),
+        ("size on disk", human_bytes(folder_size(Path(args.index)))),
+        ("weights", parts[0]["weights"]),
+        (
+            "query kernel",
+            "compiled" if scoring.compiled() else "numpy (retriever._kernels not built)",
+        ),
+    ]
+    print(format_table(["field", "value"], rows))
+    print()
+    print(
+        format_table(
+            ["shard", "first row", "articles", "postings", "size on disk"],
+            [
+                (
+                    entry["folder"],
+                    entry["first_row"],
+                    entry["articles"],
+                    m["counts"]["body_postings"],
+                    human_bytes(folder_size(s.path)),
+                )
+                for entry, m, s in zip(top["shards"], parts, shards, strict=True)
+            ],
+        )
+    )
     return 0
 
 

@@ -104,3 +104,37 @@ def test_search_with_a_filter_on_a_sharded_folder_equals_the_single_index(
     only = run("search", str(sharded), "river town", "-k", "8", "--json",
                "--filter", json.dumps(specs[1]))  # fmt: skip
     assert plain != json.loads(only.stdout)
+
+
+def _info_rows(text: str) -> dict[str, str]:
+    """The `field  value` rows of `index info`'s first table."""
+    rows = {}
+    for line in text.split("\n\n")[0].splitlines()[2:]:
+        field, _, value = line.partition("  ")
+        rows[field.strip()] = value.strip()
+    return rows
+
+
+def test_index_info_on_a_sharded_folder_gives_the_single_index_s_figures(
+    tmp_path: Path, small_records: list[dict[str, Any]]
+) -> None:
+    from retriever.shards import build_sharded
+
+    corpus = write_jsonl(tmp_path / "c.jsonl", small_records)
+    single = build_index(corpus, tmp_path / "single", vectors=False)
+    out = build_sharded(corpus, tmp_path / "sharded", shards=2, vectors=False)
+    res = run("index", "info", str(out))
+    assert res.returncode == 0, res.stderr
+    one, many = _info_rows(run("index", "info", str(single.path)).stdout), _info_rows(res.stdout)
+    for field in ("articles", "terms", "postings", "mean length", "qualified titles", "bm25"):
+        assert many[field] == one[field], field
+    assert many["unresolved links"] == one["unresolved links"]
+    assert many["shards"] == "2"
+    # One row per shard, its rows and articles as the top manifest lists them.
+    shard_rows = res.stdout.split("\n\n")[1].splitlines()[2:]
+    assert [r.split()[:3] for r in shard_rows] == [["shard-000", "0", "2"], ["shard-001", "2", "3"]]
+    as_json = json.loads(run("index", "info", str(out), "--json").stdout)
+    assert as_json["articles"] == 5 and len(as_json["shard_manifests"]) == 2
+    links = json.loads(run("index", "info", str(out), "--unresolved", "--json").stdout)
+    single_links = run("index", "info", str(single.path), "--unresolved", "--json").stdout
+    assert sorted(map(str, links)) == sorted(map(str, json.loads(single_links)))
