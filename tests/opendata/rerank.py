@@ -32,14 +32,17 @@ from .jargon_clues import Clue, build_set, truncate
 SHARES = (1.0, 0.5)
 
 
-def score(index: Index, model: Any, test: Sequence[Clue]) -> dict[str, dict[str, float]]:
-    """Top-1, recall@k and MRR of the model's ranking of the test clues, per share."""
+def score(
+    index: Index, model: Any, test: Sequence[Clue], top: int | None = None
+) -> dict[str, dict[str, float]]:
+    """Top-1, recall@k and MRR of the model's ranking of the test clues, per share; with
+    `top`, only the first `top` of the model's k reranked candidates count (recall@top)."""
     out = {}
     for share in SHARES:
         ranked = rank_clues(index, model, [truncate(c.text, share) for c in test])
         ranks = []
         for r, c in zip(ranked, test, strict=True):
-            ids = [x.doc_id for x in r.candidates]
+            ids = [x.doc_id for x in r.candidates][:top]
             ranks.append(ids.index(c.answer) + 1 if c.answer in ids else 0)
         a = np.array(ranks)
         out[f"{share:.0%}"] = {
