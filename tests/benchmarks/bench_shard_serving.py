@@ -51,11 +51,13 @@ def prepare(
         gen = [sys.executable, "-m", "corpus_demo.generate", "--articles", str(articles)]
         run([*gen, "--questions", "2000", "--out", str(data), "--no-progress"])
     corpus = str(data / "articles.jsonl")
+    # A BM25 model needs no word vectors: training them (minutes at 1M articles) is skipped.
+    no_vectors = ["--no-vectors"] if candidates == "bm25" else []
     if not (index / "manifest.json").exists():
-        no_vectors = ["--no-vectors"] if candidates == "bm25" else []
         run([*cli, "index", "build", corpus, "--out", str(index), *no_vectors])
     if not (sharded / "manifest.json").exists():
-        run([*cli, "index", "build", corpus, "--out", str(sharded), "--shards", str(shards)])
+        shard_opts = ["--shards", str(shards), *no_vectors]
+        run([*cli, "index", "build", corpus, "--out", str(sharded), *shard_opts])
     if not model.exists():
         train = [
             *cli,
