@@ -74,7 +74,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def cmd_info(args: argparse.Namespace) -> int:
     """Print an index's manifest."""
-    from retriever import load_index, scoring, store
+    from retriever import load_index, store
     from retriever.store import folder_size
 
     if store.is_sharded(Path(args.index)):
@@ -83,13 +83,7 @@ def cmd_info(args: argparse.Namespace) -> int:
     if args.unresolved:
         from retriever.store import read_unresolved
 
-        links = read_unresolved(idx.path)
-        if args.json:
-            print_json([{"from": src, "link": name} for src, name in links])
-        else:
-            for src, name in links:
-                print(f"{src}\t{name}")
-        return 0
+        return _print_links(read_unresolved(idx.path), args.json)
     if args.json:
         print_json(idx.manifest)
         return 0
@@ -107,30 +101,40 @@ def cmd_info(args: argparse.Namespace) -> int:
         ("analyzer", ", ".join(f"{k}={v}" for k, v in m["analyzer"].items() if k != "extra")),
         ("size on disk", human_bytes(folder_size(Path(args.index)))),
         ("weights", m["weights"]),
-        (
-            "query kernel",
-            "compiled" if scoring.compiled() else "numpy (retriever._kernels not built)",
-        ),
+        _kernel_row(),
     ]
     print(format_table(["field", "value"], rows))
     return 0
 
 
+def _print_links(links: list[tuple[str, str]], as_json: bool) -> int:
+    """`index info --unresolved`: (article id, link text) pairs, tab-separated or as JSON."""
+    if as_json:
+        print_json([{"from": src, "link": name} for src, name in links])
+    else:
+        for src, name in links:
+            print(f"{src}\t{name}")
+    return 0
+
+
+def _kernel_row() -> tuple[str, str]:
+    from retriever import scoring
+
+    return (
+        "query kernel",
+        "compiled" if scoring.compiled() else "numpy (retriever._kernels not built)",
+    )
+
+
 def _sharded_info(args: argparse.Namespace) -> int:
     """`index info` on a sharded folder: the corpus's figures, then one row per shard."""
-    from retriever import load_index, scoring
+    from retriever import load_index
     from retriever.store import folder_size, read_unresolved
 
     sharded = cast("ShardedIndex", load_index(args.index, sharded=True))
     shards = [cast("Index", s) for s in sharded.shards]
     if args.unresolved:
-        links = [pair for s in shards for pair in read_unresolved(s.path)]
-        if args.json:
-            print_json([{"from": src, "link": name} for src, name in links])
-        else:
-            for src, name in links:
-                print(f"{src}\t{name}")
-        return 0
+        return _print_links([pair for s in shards for pair in read_unresolved(s.path)], args.json)
     top = sharded.manifest
     parts = [s.manifest for s in shards]
     if args.json:
@@ -152,10 +156,7 @@ def _sharded_info(args: argparse.Namespace) -> int:
         ("statistics sha256", top["stats"]["sha256"][:16] + "..."),
         ("size on disk", human_bytes(folder_size(Path(args.index)))),
         ("weights", parts[0]["weights"]),
-        (
-            "query kernel",
-            "compiled" if scoring.compiled() else "numpy (retriever._kernels not built)",
-        ),
+        _kernel_row(),
     ]
     print(format_table(["field", "value"], rows))
     print()
