@@ -17,6 +17,7 @@ import pytest
 from retriever import build_index
 from tests.api.conftest import demo, index_dir, model_path
 
+from .jsondiff import json_differences
 from .test_rank import run
 
 __all__ = ["demo", "index_dir", "model_path"]  # fixtures
@@ -108,17 +109,9 @@ VARYING = {
 }
 
 
-def _differences(x: Any, y: Any, path: str = "") -> list[str]:
+def _differences(x: Any, y: Any) -> list[str]:
     """Where two JSON documents differ, but for VARYING keys and the files' own names."""
-    if isinstance(x, dict) and isinstance(y, dict):
-        keys = (set(x) | set(y)) - VARYING
-        return [d for k in sorted(keys) for d in _differences(x.get(k), y.get(k), f"{path}/{k}")]
-    if isinstance(x, list) and isinstance(y, list) and len(x) == len(y):
-        pairs = enumerate(zip(x, y, strict=True))
-        return [d for i, (u, v) in pairs for d in _differences(u, v, f"{path}[{i}]")]
-    if isinstance(x, str) and isinstance(y, str):
-        x, y = x.replace("here", "ray"), y.replace("here", "ray")
-    return [] if x == y else [f"{path}: {str(x)[:60]} != {str(y)[:60]}"]
+    return json_differences(x, y, ignore=VARYING, same_name=("here", "ray"))
 
 
 def test_train_and_evaluate_on_ray_equal_in_process(

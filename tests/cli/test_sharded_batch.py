@@ -11,7 +11,6 @@ the single build's posting weights bit for bit, README "Past one machine"), stri
 from __future__ import annotations
 
 import json
-import math
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -22,6 +21,7 @@ from retriever import build_index
 from retriever.shards import build_sharded
 from tests.api.conftest import demo
 
+from .jsondiff import json_differences
 from .test_rank import run
 
 __all__ = ["demo"]  # fixtures
@@ -58,22 +58,10 @@ def folders(demo: dict[str, Path], tmp_path_factory: pytest.TempPathFactory) -> 
     return {"single": single, "sharded": sharded, "model": model}
 
 
-def differences(x: Any, y: Any, path: str = "") -> list[str]:
+def differences(x: Any, y: Any) -> list[str]:
     """Where two JSON documents differ: numbers beyond TOL, anything else at all, but for
     VARYING keys and the two index folders' names."""
-    if isinstance(x, dict) and isinstance(y, dict):
-        keys = (set(x) | set(y)) - VARYING
-        return [d for k in sorted(keys) for d in differences(x.get(k), y.get(k), f"{path}/{k}")]
-    if isinstance(x, list) and isinstance(y, list) and len(x) == len(y):
-        pairs = enumerate(zip(x, y, strict=True))
-        return [d for i, (u, v) in pairs for d in differences(u, v, f"{path}[{i}]")]
-    numbers = (int, float)
-    if isinstance(x, numbers) and isinstance(y, numbers) and not isinstance(x, bool):
-        close = math.isclose(x, y, rel_tol=TOL, abs_tol=TOL)
-        return [] if close or (math.isnan(x) and math.isnan(y)) else [f"{path}: {x} != {y}"]
-    if isinstance(x, str) and isinstance(y, str):
-        x, y = x.replace("sharded", "single"), y.replace("sharded", "single")
-    return [] if x == y else [f"{path}: {str(x)[:60]} != {str(y)[:60]}"]
+    return json_differences(x, y, ignore=VARYING, same_name=("sharded", "single"), tol=TOL)
 
 
 def lines(path: Path) -> list[Any]:
